@@ -1,0 +1,216 @@
+"""Command line: ``potfield new | check | run | stages | demo | report | batch``.
+
+Thin: parse arguments, call the library, print. A user's mistake (any PotfieldError) is printed
+as one line on stderr with exit code 2 and no traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from importlib import resources
+from pathlib import Path
+
+from . import __version__
+from .errors import ConfigError, PotfieldError
+
+RAW_README = {
+    "magnetic": """Put the raw survey files here (potfield reads them, never writes them):
+- the magnetometer readings as delimited text (CSV, semicolon, tab or whitespace; .gz allowed),
+  one or several files, with time, position (longitude/latitude or easting/northing), height,
+  line and total field columns; map their column names in ../survey.toml [input.columns];
+- base-station records (delimited text or IAGA-2002 files) named in [[diurnal.bases]].
+""",
+    "gravity": """Put the raw survey files here (potfield reads them, never writes them):
+- the gravimeter readings as delimited text: station, time, position, height, reading
+  (mGal or counter units), instrument height and loop; map the columns in ../survey.toml;
+- the meter's calibration (interval) table when readings are in counter units ([drift]);
+- a digital elevation grid (NetCDF, GeoTIFF or x,y,z table) for the terrain correction ([reference]).
+""",
+    "observatory": """Put the observatory files here (potfield reads them, never writes them):
+- IAGA-2002 minute files, one or more per station (e.g. abc20240501dmin.min); the station
+  position is read from each file's header.
+""",
+}
+
+
+def _template(kind: str) -> str:
+    return (resources.files("potfield") / "data" / "configs" / f"{kind}.toml").read_text(encoding="utf-8")
+
+
+def cmd_new(args) -> int:
+    root = Path(args.directory)
+    if (root / "survey.toml").exists():
+        raise ConfigError(f"{root / 'survey.toml'} already exists",
+                          fix="choose a new folder or edit the existing survey.toml")
+    (root / "raw").mkdir(parents=True, exist_ok=True)
+    name = root.resolve().name
+    text = _template(args.kind).replace('name = "my survey"', f'name = "{name}"')
+    from .io.atomic import write_text
+
+    write_text(root / "survey.toml", text)
+    write_text(root / "raw" / "README.md", f"# raw/\n\n{RAW_README[args.kind]}")
+    print(f"created {root}/survey.toml and {root}/raw/ for a {args.kind} survey")
+    print("next: put your files in raw/, map their columns in survey.toml, then run "
+          f"'potfield check {root}'")
+    return 0
+
+
+def cmd_check(args) -> int:
+    from .pipeline import check_survey
+
+    info = check_survey(args.directory)
+    print(f"survey   {info['survey']} ({info['kind']})")
+    for path, rows in info["files"].items():
+        print(f"file     {path}: {rows:,} readings")
+    print(f"readings {info['readings']:,}")
+    print(f"time     {info['time_span'][0]} .. {info['time_span'][1]} UTC")
+    lo = info["extent_lonlat"]
+    print(f"extent   longitude {lo[0]:.5f} .. {lo[1]:.5f}, latitude {lo[2]:.5f} .. {lo[3]:.5f}")
+    r = info["region_m"]
+    print(f"region   easting {r[0]:.0f} .. {r[1]:.0f} m, northing {r[2]:.0f} .. {r[3]:.0f} m")
+    print(f"crs      input {info['input_crs']}, output {info['output_crs']}")
+    spacing = info["line_spacing_m"]
+    print(f"lines    {info['lines']} ({info['traverse_lines']} traverse, {info['tie_lines']} tie)"
+          + (f", spacing {spacing:.0f} m" if spacing else ""))
+    print(f"stages   {', '.join(info['stages'])}")
+    print("ok: configuration and inputs are valid")
+    return 0
+
+
+FINAL_WORDS = ("done in", "unchanged", "not available", "does nothing")
+
+
+def cmd_run(args) -> int:
+    from rich.console import Console
+
+    from .pipeline import run_survey
+
+    console = Console(stderr=False, highlight=False)
+    with console.status("starting") as status:
+        def progress(message: str) -> None:
+            if any(word in message for word in FINAL_WORDS):
+                console.print(message)
+            else:
+                status.update(message)
+
+        summary = run_survey(args.directory, until=args.until, only=args.only, start=args.start,
+                             force=args.force, progress=progress)
+    failed = summary.failed_checks
+    console.print(f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
+                  f"{len(failed)} failed")
+    for check in failed:
+        console.print(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance {check['tolerance']:.4g} "
+                      f"{check['unit']})")
+    return 0
+
+
+def cmd_stages(args) -> int:
+    from .pipeline import KIND_ORDER, load_stage
+
+    kinds = [args.kind] if args.kind else list(KIND_ORDER)
+    for kind in kinds:
+        print(f"{kind}:")
+        for name in KIND_ORDER[kind]:
+            stage = load_stage(name)
+            if stage.run is None:
+                text = "not available yet"
+            elif kind not in stage.kinds:
+                text = f"does nothing for {kind} surveys"
+            else:
+                text = stage.summary
+            print(f"  {name:<10} {text}")
+    return 0
+
+
+def cmd_demo(args) -> int:
+    try:
+        from .demo import make_demo
+    except ModuleNotFoundError:
+        raise ConfigError("demo scenarios are not available in this version of potfield") from None
+    path = make_demo(args.kind, Path(args.directory), readings=args.readings, seed=args.seed)
+    print(f"wrote the {args.kind} demo survey to {path} (truth in {Path(path) / 'truth'})")
+    return 0
+
+
+def cmd_report(args) -> int:
+    try:
+        from .qc.report import rebuild_report
+    except ModuleNotFoundError:
+        raise ConfigError("the report is not available in this version of potfield") from None
+    path = rebuild_report(Path(args.directory))
+    print(f"wrote {path}")
+    return 0
+
+
+def cmd_batch(args) -> int:
+    try:
+        from .batch import run_batch
+    except ModuleNotFoundError:
+        raise ConfigError("batch processing is not available in this version of potfield") from None
+    failures = run_batch([Path(d) for d in args.directories], workers=args.workers,
+                         scheduler=args.scheduler, force=args.force)
+    return 1 if failures else 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="potfield", description="Potential-field survey processing.")
+    parser.add_argument("--version", action="version", version=f"potfield {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("new", help="create a survey folder with a commented survey.toml")
+    p.add_argument("directory")
+    p.add_argument("--kind", required=True, choices=["magnetic", "gravity", "observatory"])
+    p.set_defaults(func=cmd_new)
+
+    p = sub.add_parser("check", help="validate config and inputs without processing")
+    p.add_argument("directory")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("run", help="run the stages of a survey")
+    p.add_argument("directory")
+    p.add_argument("--until", metavar="STAGE", help="stop after this stage")
+    p.add_argument("--only", metavar="STAGE", help="run only this stage (earlier ones must be up to date)")
+    p.add_argument("--from", dest="start", metavar="STAGE", help="start at this stage")
+    p.add_argument("--force", action="store_true", help="recompute even unchanged stages")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("stages", help="list the stages of each survey kind")
+    p.add_argument("--kind", choices=["magnetic", "gravity", "observatory"])
+    p.set_defaults(func=cmd_stages)
+
+    p = sub.add_parser("demo", help="write a demo survey with known truth")
+    p.add_argument("kind", choices=["magnetic", "gravity", "observatory"])
+    p.add_argument("directory")
+    p.add_argument("--readings", type=int, default=None, help="magnetic: number of readings")
+    p.add_argument("--seed", type=int, default=0)
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("report", help="rebuild out/report.html from out/ without recomputing")
+    p.add_argument("directory")
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("batch", help="process many survey folders in parallel on Dask")
+    p.add_argument("directories", nargs="+")
+    p.add_argument("--workers", type=int, default=2)
+    p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
+    p.add_argument("--force", action="store_true")
+    p.set_defaults(func=cmd_batch)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except PotfieldError as err:
+        print(f"potfield: error: {err}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("potfield: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

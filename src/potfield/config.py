@@ -1,0 +1,482 @@
+"""survey.toml: the schema, its defaults and validation with helpful one-line messages.
+
+One schema for every survey kind. Each table of the file is one pydantic model below; unknown keys
+are refused with the nearest valid key suggested, wrong types name the key and the expected type.
+Stage sections hold the options of one stage each; a stage reads only its own section (plus
+``survey``), and the pipeline hashes exactly that to decide whether the stage must re-run.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from .errors import ConfigError
+
+#: Canonical column names an input column can be mapped to (design.md, "Readings table").
+CANONICAL_COLUMNS = (
+    "time",
+    "date",
+    "longitude",
+    "latitude",
+    "easting",
+    "northing",
+    "height",
+    "line",
+    "line_type",
+    "total_field",
+    "mag_north",
+    "mag_east",
+    "mag_down",
+    "reading",
+    "station",
+    "instrument_height",
+    "loop",
+    "elevation",
+)
+
+#: Units accepted per physical quantity, with the factor to potfield's internal unit.
+UNIT_FACTORS = {
+    "magnetic": {"nT": 1.0, "uT": 1000.0, "pT": 0.001, "gamma": 1.0},
+    "gravity": {"mGal": 1.0, "um/s^2": 0.1, "gu": 0.1, "m/s^2": 1.0e5, "cu": 1.0},
+    "length": {"m": 1.0, "ft": 0.3048, "km": 1000.0},
+}
+#: Which quantity each canonical column measures (for unit conversion).
+COLUMN_QUANTITY = {
+    "total_field": "magnetic",
+    "mag_north": "magnetic",
+    "mag_east": "magnetic",
+    "mag_down": "magnetic",
+    "reading": "gravity",
+    "height": "length",
+    "instrument_height": "length",
+    "elevation": "length",
+    "easting": "length",
+    "northing": "length",
+}
+
+KINDS = ("magnetic", "gravity", "observatory")
+
+
+class Section(BaseModel):
+    """Base of every section: unknown keys are errors, assignments are validated."""
+
+    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+
+
+class SurveySection(Section):
+    name: str = "unnamed survey"
+    kind: Literal["magnetic", "gravity", "observatory"]
+    #: CRS of the input coordinates: "EPSG:4326" (default), an EPSG code or a PROJ string.
+    crs: str = "EPSG:4326"
+    #: CRS of easting/northing in outputs; "auto" = UTM zone of the survey centroid.
+    output_crs: str = "auto"
+    #: Height reference of the input heights: "ellipsoid" or "geoid" (then geoid_undulation).
+    height_reference: Literal["ellipsoid", "geoid"] = "ellipsoid"
+    #: Geoid undulation N (m) added to geoid heights to make them ellipsoidal (h = H + N).
+    geoid_undulation: float = 0.0
+    #: Spec profile name (configs/specs/NAME.toml) or a path relative to the survey folder.
+    spec: str = "auto"
+    #: Overrides of single spec values: {"noise_fourth_difference_nT" = 0.2, ...}
+    spec_overrides: dict[str, float] = Field(default_factory=dict)
+
+
+class TimeSection(Section):
+    #: "iso" (ISO 8601 in the time column), "date_seconds" (date column + seconds of day in the
+    #: time column) or "decimal_hours" (hours of day in the time column + date column or `date`).
+    format: Literal["iso", "date_seconds", "decimal_hours"] = "iso"
+    #: Date for decimal_hours / date_seconds when the file has no date column (YYYY-MM-DD).
+    date: str | None = None
+
+
+class InputSection(Section):
+    #: Files or glob patterns relative to the survey folder.
+    files: list[str] = Field(default_factory=lambda: ["raw/*.csv"])
+    #: "auto", ",", ";", "whitespace" or "\t".
+    delimiter: str = "auto"
+    #: Lines to skip at the top of each file before the header line.
+    skip_rows: int = 0
+    #: Values that mean "missing" in the input, besides empty fields.
+    missing_values: list[str] = Field(default_factory=lambda: ["*", "NaN", "nan", "-99999", "99999"])
+    #: Canonical name -> the input file's column name.
+    columns: dict[str, str] = Field(default_factory=dict)
+    #: Canonical name -> unit of that input column.
+    units: dict[str, str] = Field(default_factory=dict)
+    time: TimeSection = Field(default_factory=TimeSection)
+
+    @field_validator("columns")
+    @classmethod
+    def _known_columns(cls, value: dict[str, str]) -> dict[str, str]:
+        for key in value:
+            if key not in CANONICAL_COLUMNS:
+                raise ValueError(_unknown(key, CANONICAL_COLUMNS, "canonical column"))
+        return value
+
+    @field_validator("units")
+    @classmethod
+    def _known_units(cls, value: dict[str, str]) -> dict[str, str]:
+        for key, unit in value.items():
+            if key not in COLUMN_QUANTITY:
+                raise ValueError(_unknown(key, tuple(COLUMN_QUANTITY), "column with a unit"))
+            allowed = UNIT_FACTORS[COLUMN_QUANTITY[key]]
+            if unit not in allowed:
+                raise ValueError(
+                    f"unit '{unit}' for {key} is not known; use one of {', '.join(allowed)}"
+                )
+        return value
+
+
+class LinesSection(Section):
+    #: Names of the tie lines (as they appear in the line column).
+    tie_lines: list[str] = Field(default_factory=list)
+    #: Alternatively: line names matching this regular expression are tie lines.
+    tie_pattern: str | None = None
+    #: Alternatively: numeric line names >= this value are tie lines (common practice: 9000+).
+    tie_min: float | None = None
+    #: When there is no line column: start a new line when the time gap exceeds this (s).
+    split_gap_s: float = 60.0
+
+
+class CleanSection(Section):
+    #: Spike test: rolling median window (samples) and threshold in robust sigmas (MAD * 1.4826).
+    spike_window: int = 11
+    spike_threshold: float = 6.0
+    #: Minimum absolute spike size (field units) so a quiet line is not over-flagged.
+    spike_min: float = 0.0
+    #: Time gap (s) above which the reading after the gap is flagged; 0 = from sampling (5x median).
+    max_time_gap_s: float = 0.0
+    #: Distance gap (m) along line above which the reading after the gap is flagged; 0 = 5x median.
+    max_distance_gap_m: float = 0.0
+    #: Heights outside [min, max] (m) are flagged; None = no limit.
+    height_min: float | None = None
+    height_max: float | None = None
+    #: Fourth difference normalised by 16 (so a spike of A gives 6A/16) when true.
+    fourth_difference_normalised: bool = False
+
+
+class BaseStation(Section):
+    #: Name of the base (used in checks, tables and messages).
+    name: str
+    #: File (relative to the survey folder): delimited text or IAGA-2002 (.min/.sec/.iaga).
+    file: str
+    #: "auto" (IAGA-2002 when the first line is an IAGA-2002 'Format' record), "delimited", "iaga2002".
+    format: Literal["auto", "delimited", "iaga2002"] = "auto"
+    #: Position of the base (deg); None = from the IAGA-2002 header (required for delimited
+    #: files when two or more bases are combined or the time offset is estimated).
+    longitude: float | None = None
+    latitude: float | None = None
+    #: For delimited base files: canonical name -> file column (time, total_field, date).
+    columns: dict[str, str] = Field(default_factory=dict)
+    #: Unit of the base total_field column (nT, uT, pT, gamma).
+    units: dict[str, str] = Field(default_factory=dict)
+    #: Delimiter of a delimited file: "auto", ",", ";", "whitespace" or "\t".
+    delimiter: str = "auto"
+    #: Lines to skip at the top of a delimited file before its header line.
+    skip_rows: int = 0
+    #: Values meaning "missing" in a delimited file, besides empty fields.
+    missing_values: list[str] = Field(default_factory=lambda: ["*", "NaN", "nan", "-99999", "99999"])
+    #: Time format of a delimited file (as [input.time]).
+    time: TimeSection = Field(default_factory=TimeSection)
+    #: Seconds added to the base file's times to bring its clock to UTC (e.g. -3600 for a logger
+    #: kept on UTC+1).
+    time_offset_s: float = 0.0
+
+
+class DiurnalSection(Section):
+    #: false = the diurnal stage passes the table through unchanged.
+    enabled: bool = True
+    #: Base magnetometers ([[diurnal.bases]] tables).
+    bases: list[BaseStation] = Field(default_factory=list)
+    #: Interpolation of the base record to the readings' times.
+    interpolation: Literal["linear", "cubic", "nearest"] = "linear"
+    #: "median" (over the survey), "value" (datum_value) or "time" (base value at datum_time).
+    #: With several bases the datum is set on the first base; the others are tied to it by
+    #: their median level difference over the survey.
+    datum: Literal["median", "value", "time"] = "median"
+    #: Datum (nT) for datum = "value".
+    datum_value: float | None = None
+    #: Datum time (ISO 8601, UTC) for datum = "time".
+    datum_time: str | None = None
+    #: Two or more bases: "nearest" or "distance" (inverse-distance weights).
+    combine: Literal["nearest", "distance"] = "nearest"
+    #: Exponent p of the inverse-distance weights d**-p (combine = "distance").
+    distance_power: float = 2.0
+    #: Base gaps longer than this (s) flag the readings inside them.
+    max_gap_s: float = 10.0
+    #: Base spike test: running median window (samples), threshold (robust sigmas) and the
+    #: smallest departure (nT) called a spike; spikes are removed from the base record.
+    spike_window: int = 11
+    spike_threshold: float = 6.0
+    spike_min_nT: float = 0.5
+    #: Time offset estimate: survey readings within this distance (m) of a base are
+    #: cross-correlated with it after a running-mean high-pass of highpass_s seconds, for lags
+    #: up to offset_max_lag_s.
+    offset_radius_m: float = 2000.0
+    offset_highpass_s: float = 60.0
+    offset_max_lag_s: float = 30.0
+
+
+class GravityBase(Section):
+    #: Station id of the base, as written in the station column of the readings.
+    station: str
+    #: Absolute gravity at the base (mGal).
+    gravity: float
+    #: Weight in the network adjustment; None = fixed.
+    sigma_mgal: float | None = None
+
+
+class DriftSection(Section):
+    #: Calibration (interval) table for counter units: file with columns counter, mgal, factor.
+    calibration_file: str | None = None
+    #: Correct the Earth tide (Longman 1959) before the drift.
+    tide: bool = True
+    #: Gravimetric factor 1 + h2 - 3/2 k2 applied to the rigid-Earth tide (common practice 1.16).
+    gravimetric_factor: float = 1.16
+    #: "linear" (per loop, first/last base), "piecewise" (through every base repeat) or "network".
+    method: Literal["linear", "piecewise", "network"] = "network"
+    #: Absolute gravity bases ([[drift.bases]] tables: station, gravity, optional sigma_mgal).
+    bases: list[GravityBase] = Field(default_factory=list)
+    #: Instrument height correction gradient (mGal/m; common practice 0.3086).
+    free_air_gradient: float = 0.3086
+    #: Tare: an abrupt step; times (ISO) at which a tare is allowed in the network adjustment.
+    tares: list[str] = Field(default_factory=list)
+    #: How readings are grouped into loops: "auto" (the loop column, else the line column, else
+    #: the UTC day), "loop", "line" or "day".
+    loops: Literal["auto", "loop", "line", "day"] = "auto"
+    #: A priori standard deviation of one reading (mGal) for the network weights (common
+    #: practice for a spring gravimeter: 0.01).
+    reading_sigma_mgal: float = Field(0.01, gt=0)
+
+
+class ReferenceSection(Section):
+    #: Magnetic: evaluate IGRF at each reading's time, or at this fixed date (YYYY-MM-DD).
+    igrf_date: str | None = None
+    #: Gravity: normal-gravity ellipsoid.
+    ellipsoid: Literal["WGS84", "GRS80"] = "WGS84"
+    #: Gravity: reduction density (kg/m^3) for the Bouguer and terrain corrections.
+    density: float = Field(2670.0, gt=0)
+    #: Gravity: Bouguer correction as an infinite "slab" or a spherical "cap" to 166.735 km.
+    bouguer: Literal["slab", "cap"] = "cap"
+    #: Gravity: add the atmospheric correction (Hinze et al. 2005) to the free-air anomaly.
+    atmospheric: bool = True
+    #: Gravity: "first" (0.3086 mGal/m) or "second" order free-air correction in the anomaly.
+    free_air_order: Literal["first", "second"] = "first"
+    #: DEM for the terrain correction (NetCDF, GeoTIFF or x,y,z table), relative to the survey
+    #: folder, and its CRS (overrides the CRS in the file; needed when the file has none).
+    dem_file: str | None = None
+    dem_crs: str | None = None
+    #: Height datum of the DEM: "geoid" (orthometric; survey.geoid_undulation is added) or
+    #: "ellipsoid".
+    dem_height_reference: Literal["geoid", "ellipsoid"] = "geoid"
+    #: Terrain correction outer radius (m) and radius of the full-resolution inner zone (m).
+    terrain_radius_m: float = Field(166_700.0, gt=0)
+    terrain_inner_radius_m: float = Field(2_000.0, ge=0)
+    #: Coarser (block-averaged) DEM zones keep cell size <= distance / this ratio.
+    terrain_far_ratio: float = Field(8.0, gt=0)
+    #: Lower far prisms by d^2/(2R) (Earth curvature; terrain relative to the spherical cap).
+    terrain_curvature: bool = True
+    #: Warn when more than this fraction of the terrain disc around a station lacks DEM cover.
+    terrain_missing_tolerance: float = Field(0.01, ge=0, le=1)
+
+
+class LevelSection(Section):
+    #: Level lines at all; false copies the value into anomaly_levelled with zero correction.
+    enabled: bool = True
+    #: Traverse-line correction model: "constant", "linear" or "quadratic" in time.
+    traverse_model: Literal["constant", "linear", "quadratic"] = "constant"
+    #: Minimum crossovers per line for its own correction; fewer keeps the line's level.
+    min_crossovers: int = Field(default=2, ge=1)
+    #: Crossovers with |height difference| above this (m) are dropped (common practice).
+    max_height_difference_m: float = 30.0
+    #: Huber threshold of the robust (IRLS) fits, in robust sigmas (1.4826 x MAD); 0 = plain LS.
+    huber_threshold: float = Field(default=1.5, ge=0.0)
+    #: Longest gap (m) between consecutive readings still joined into one track segment when
+    #: searching crossovers; 0 = 5 x the median reading interval (common practice).
+    max_segment_m: float = Field(default=0.0, ge=0.0)
+    #: Micro-levelling of the grid (directional filter, Minty 1991), applied by the grid stage.
+    micro_levelling: bool = False
+    #: Across-line cut-off wavelength of the micro-levelling high-pass, in line spacings (2-4).
+    micro_cutoff_spacings: float = Field(default=3.0, gt=0.0)
+    #: Largest micro-levelling correction (field units, nT or mGal); larger values are clipped.
+    micro_max_amplitude: float = Field(default=2.0, gt=0.0)
+    #: Along-line cut-off wavelength of the micro-levelling low-pass, in line spacings.
+    micro_along_spacings: float = Field(default=20.0, gt=0.0)
+
+
+class GridSection(Section):
+    #: Cell size (m); 0 = a quarter of the nominal line spacing (common practice).
+    spacing_m: float = 0.0
+    #: Block size for the block reduction (m); 0 = the cell size.
+    block_m: float = 0.0
+    #: Height of the grid (m, ellipsoidal); None = median reading height. "drape" follows data.
+    height: float | str | None = None
+    #: Search for source depth (multiples of block size) and damping by blocked CV.
+    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 6.0])
+    dampings: list[float] = Field(default_factory=lambda: [1e-3, 1e-1, 1e1])
+    cv_folds: int = 4
+    #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
+    mask_distance_m: float = 0.0
+    tiled: bool = False
+    tile_size_m: float = 0.0
+
+
+#: Products the derive stage can make (potfield.stages.derive).
+DERIVE_PRODUCTS = ("rtp", "dz1", "dz2", "dx", "dy", "thg", "tga", "tilt", "upward")
+
+
+class DeriveSection(Section):
+    #: Grids to derive from the main grid: rtp (magnetic only), dz1, dz2 (vertical derivatives,
+    #: z down), dx, dy (easting/northing derivatives), thg (total horizontal gradient), tga (total
+    #: gradient amplitude), tilt (tilt angle, degrees), upward (continued up by upward_m).
+    products: list[str] = Field(default_factory=lambda: list(DERIVE_PRODUCTS))
+    #: Upward-continuation distance (m, > 0) of the "upward" product.
+    upward_m: float = Field(500.0, gt=0)
+    #: FFT padding per side as a fraction of the grid size (>= 0.25; common practice).
+    pad_fraction: float = Field(0.5, ge=0.25, le=4.0)
+    #: Padding: "reflect" (mirror about the edges) or "edge" (repeat edge values), + cosine taper.
+    pad_mode: Literal["reflect", "edge"] = "reflect"
+    #: Horizontal derivatives: "central" (central differences) or "fft" (wavenumber domain).
+    horizontal_method: Literal["central", "fft"] = "central"
+    #: Reduction to pole: "auto" (pseudo-inclination when |I| < rtp_threshold_deg, else plain),
+    #: "plain" (Baranov) or "pseudo" (MacLeod et al. 1993).
+    rtp: Literal["auto", "plain", "pseudo"] = "auto"
+    #: |I| (degrees) below which rtp = "auto" uses the pseudo-inclination filter.
+    rtp_threshold_deg: float = Field(30.0, ge=0, le=90)
+    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = rtp_threshold_deg.
+    pseudo_inclination_deg: float | None = Field(None, ge=-90, le=90)
+    #: Also continue upward by predicting the grid stage's equivalent-source model (when it has one).
+    upward_by_model: bool = True
+
+    @field_validator("products")
+    @classmethod
+    def _known_products(cls, value: list[str]) -> list[str]:
+        for name in value:
+            if name not in DERIVE_PRODUCTS:
+                raise ValueError(_unknown(name, DERIVE_PRODUCTS, "derive product"))
+        return value
+
+
+class SeparateSection(Section):
+    method: Literal["upward", "two_layer", "both"] = "both"
+    regional_height_m: float = 2000.0
+    deep_depth_m: float | None = None
+    shallow_depth_m: float | None = None
+    #: Observatory: spherical-harmonic degree of the internal and external potentials.
+    internal_degree: int = 1
+    external_degree: int = 1
+    damping: float = 0.0
+
+
+class ReportSection(Section):
+    geotiff: bool = False
+    title: str | None = None
+    dpi: int = 110
+
+
+class SurveyConfig(Section):
+    """The whole survey.toml."""
+
+    survey: SurveySection
+    input: InputSection = Field(default_factory=InputSection)
+    lines: LinesSection = Field(default_factory=LinesSection)
+    clean: CleanSection = Field(default_factory=CleanSection)
+    diurnal: DiurnalSection = Field(default_factory=DiurnalSection)
+    drift: DriftSection = Field(default_factory=DriftSection)
+    reference: ReferenceSection = Field(default_factory=ReferenceSection)
+    level: LevelSection = Field(default_factory=LevelSection)
+    grid: GridSection = Field(default_factory=GridSection)
+    derive: DeriveSection = Field(default_factory=DeriveSection)
+    separate: SeparateSection = Field(default_factory=SeparateSection)
+    report: ReportSection = Field(default_factory=ReportSection)
+
+    @property
+    def kind(self) -> str:
+        return self.survey.kind
+
+    def section_hash(self, *names: str) -> str:
+        """SHA-256 of the named sections (always including ``survey`` and ``input``)."""
+        payload = {n: getattr(self, n).model_dump(mode="json") for n in ("survey", "input", *names)}
+        return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest()
+
+    def full_hash(self) -> str:
+        return hashlib.sha256(
+            json.dumps(self.model_dump(mode="json"), sort_keys=True).encode()
+        ).hexdigest()
+
+
+def _unknown(key: str, valid, what: str) -> str:
+    close = difflib.get_close_matches(key, list(valid), n=1, cutoff=0.5)
+    hint = f"did you mean '{close[0]}'?" if close else f"valid: {', '.join(valid)}"
+    return f"unknown {what} '{key}'; {hint}"
+
+
+def _model_at(model: type[BaseModel], loc: tuple) -> type[BaseModel] | None:
+    """The pydantic model class that owns the field at ``loc[:-1]``."""
+    current: Any = model
+    for part in loc[:-1]:
+        if isinstance(part, int):
+            continue
+        field = getattr(current, "model_fields", {}).get(part)
+        if field is None:
+            return None
+        ann = field.annotation
+        # unwrap list[Model] / Model | None
+        candidates = [ann, *getattr(ann, "__args__", ())]
+        nxt = None
+        for cand in candidates:
+            for sub in (cand, *getattr(cand, "__args__", ())):
+                if isinstance(sub, type) and issubclass(sub, BaseModel):
+                    nxt = sub
+        if nxt is None:
+            return None
+        current = nxt
+    return current
+
+
+def _format_validation(err: ValidationError, path: Path) -> str:
+    first = err.errors()[0]
+    loc = tuple(first["loc"])
+    key = ".".join(str(p) for p in loc)
+    kind = first["type"]
+    if kind == "extra_forbidden":
+        owner = _model_at(SurveyConfig, loc)
+        valid = list(owner.model_fields) if owner else []
+        return f"{path}: {_unknown(str(loc[-1]), valid, 'key')} (in [{'.'.join(str(p) for p in loc[:-1]) or 'top level'}])"
+    if kind == "missing":
+        return f"{path}: key '{key}' is required (fix: add it to survey.toml)"
+    if kind == "value_error":
+        msg = str(first.get("ctx", {}).get("error", first["msg"]))
+        return f"{path}: key '{key}': {msg}"
+    expected = first["msg"].replace("Input should be", "expected").replace("input should be", "expected")
+    got = first.get("input")
+    return f"{path}: key '{key}' has the wrong type or value ({got!r}); {expected}"
+
+
+def parse_config(data: dict, path: Path | str = "survey.toml") -> SurveyConfig:
+    """Validate a survey.toml already parsed into a dict."""
+    path = Path(path)
+    try:
+        return SurveyConfig.model_validate(data)
+    except ValidationError as err:
+        raise ConfigError(_format_validation(err, path)) from None
+
+
+def load_config(path: Path | str) -> SurveyConfig:
+    """Read and validate survey.toml; every problem is a :class:`ConfigError` of one line."""
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(
+            f"{path}: no survey.toml here",
+            fix="run 'potfield new DIR --kind magnetic|gravity|observatory' or point at a survey folder",
+        )
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(f"{path}: not valid TOML ({err})", fix="correct the syntax at that line") from None
+    return parse_config(data, path)

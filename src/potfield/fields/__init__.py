@@ -1,0 +1,1 @@
+"""Physics on arrays: reference fields, corrections, continuation, equivalent sources, separation, levelling, noise."""

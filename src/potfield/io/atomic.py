@@ -1,0 +1,67 @@
+"""Atomic output: write to a temporary name in the same folder, then rename over the target."""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+
+
+@contextmanager
+def atomic_path(path: Path | str):
+    """Yield a temporary path beside ``path``; on success it is renamed to ``path``."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def write_text(path: Path | str, text: str) -> Path:
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(path)
+
+
+def write_bytes(path: Path | str, data: bytes) -> Path:
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(data)
+    return Path(path)
+
+
+def _json_default(value):
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    return str(value)
+
+
+def write_json(path: Path | str, data) -> Path:
+    return write_text(path, json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n")
+
+
+def write_csv(path: Path | str, table, **kwargs) -> Path:
+    """CSV with ISO 8601 UTC times and full float precision (round-trip exact)."""
+    kwargs.setdefault("index", False)
+    kwargs.setdefault("float_format", "%.10g")
+    with atomic_path(path) as tmp:
+        table.to_csv(tmp, date_format="%Y-%m-%dT%H:%M:%S.%fZ", **kwargs)
+    return Path(path)
+
+
+def write_parquet(path: Path | str, table) -> Path:
+    with atomic_path(path) as tmp:
+        table.to_parquet(tmp, index=False)
+    return Path(path)

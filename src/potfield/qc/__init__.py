@@ -1,0 +1,1 @@
+"""Quality control: spec profiles, checks, maps and the report."""

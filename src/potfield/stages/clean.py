@@ -1,0 +1,126 @@
+"""clean stage: flag (never delete) spikes, time and distance gaps, duplicated timestamps and
+heights outside the allowed band; report per-line noise as the fourth-difference envelope.
+
+Flags are boolean ``flag_*`` columns; flagged readings stay in the table and later fits skip
+them (:func:`potfield.stages.base.usable`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from ..fields.noise import fourth_difference, line_noise, robust_spikes
+from .base import Check, Stage, StageContext, StageOutput
+
+#: The measured value(s) cleaned per survey kind.
+VALUE_COLUMNS = {
+    "magnetic": ("total_field", "mag_north", "mag_east", "mag_down"),
+    "gravity": (),  # station readings: no along-line spike test (a loop is not a profile)
+    "observatory": ("mag_north", "mag_east", "mag_down", "total_field"),
+}
+
+
+def _gap_flags(values: np.ndarray, groups: np.ndarray, limit: float) -> tuple[np.ndarray, float]:
+    """Flag the reading after a step larger than ``limit`` (0: 5 x the median step)."""
+    step = np.full(values.size, np.nan)
+    if values.size > 1:
+        step[1:] = np.diff(values)
+        step[1:][groups[1:] != groups[:-1]] = np.nan
+    positive = step[np.isfinite(step) & (step > 0)]
+    if limit <= 0:
+        limit = 5.0 * float(np.median(positive)) if positive.size else np.inf
+    return np.nan_to_num(step, nan=0.0) > limit, limit
+
+
+def run(ctx: StageContext) -> StageOutput:
+    cfg = ctx.config.clean
+    table = ctx.table.copy()
+    groups = pd.factorize(table["line"])[0]
+    seconds = table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
+    metrics: dict = {}
+    checks: list[Check] = []
+    notes: list[str] = []
+
+    # Duplicated timestamps within a line (the second and later copies are flagged).
+    key = pd.DataFrame({"g": groups, "t": seconds})
+    table["flag_duplicate_time"] = key.duplicated(keep="first").to_numpy()
+
+    # Gaps in time and distance.
+    if ctx.config.kind != "gravity":
+        table["flag_time_gap"], time_limit = _gap_flags(seconds, groups, cfg.max_time_gap_s)
+        metrics["time_gap_limit_s"] = time_limit
+        if ctx.config.kind == "magnetic":
+            table["flag_distance_gap"], dist_limit = _gap_flags(table["distance"].to_numpy(), groups,
+                                                                cfg.max_distance_gap_m)
+            metrics["distance_gap_limit_m"] = dist_limit
+
+    # Heights outside the band.
+    if "height" in table and (cfg.height_min is not None or cfg.height_max is not None):
+        h = table["height"].to_numpy()
+        low = -np.inf if cfg.height_min is None else cfg.height_min
+        high = np.inf if cfg.height_max is None else cfg.height_max
+        table["flag_height"] = ~((h >= low) & (h <= high))
+
+    # Spikes and fourth-difference noise on each measured value.
+    noise_tables = []
+    spike_any = np.zeros(len(table), dtype=bool)
+    for name in VALUE_COLUMNS[ctx.config.kind]:
+        if name not in table:
+            continue
+        values = table[name].to_numpy(dtype=float)
+        spikes, _ = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold, cfg.spike_min)
+        spike_any |= spikes
+        d4 = fourth_difference(values, groups, normalised=cfg.fourth_difference_normalised)
+        column = "fourth_difference" if name == "total_field" else f"fourth_difference_{name}"
+        table[column] = d4
+        # The noise envelope excludes the spikes (they are reported as flags) and their neighbours.
+        near_spike = np.convolve(spikes.astype(float), np.ones(5), mode="same") > 0
+        d4n = fourth_difference(values, groups, normalised=True)
+        envelope = line_noise(d4n, groups, usable=~near_spike)
+        envelope.columns = [f"{c}_{name}" if name != "total_field" else c for c in envelope.columns]
+        noise_tables.append(envelope)
+    if VALUE_COLUMNS[ctx.config.kind]:
+        table["flag_spike"] = spike_any
+
+    flags = [c for c in table.columns if c.startswith("flag_")]
+    counts = {c: int(table[c].sum()) for c in flags}
+    metrics["flag_counts"] = counts
+    metrics["flagged_readings"] = int(table[flags].any(axis=1).sum()) if flags else 0
+
+    # Per-line table.
+    lines = table.groupby(groups, sort=False).agg(
+        line=("line", "first"), line_type=("line_type", "first"), readings=("line", "size"),
+        start=("time", "first"), end=("time", "last"))
+    for c in flags:
+        lines[c.replace("flag_", "flagged_")] = table.groupby(groups, sort=False)[c].sum().to_numpy()
+    for envelope in noise_tables:
+        lines = lines.join(envelope)
+    lines = lines.reset_index(drop=True)
+
+    if "fourth_difference_p95" in lines:
+        tol, source = ctx.tolerance("noise_fourth_difference_nT", 0.1)
+        worst = float(np.nanmax(lines["fourth_difference_p95"])) if len(lines) else np.nan
+        bad = lines.loc[lines["fourth_difference_p95"] > tol, "line"].tolist()
+        checks.append(Check.at_most(
+            "noise: 95th percentile of |fourth difference / 16| (worst line)", worst, tol, "nT", source,
+            detail=f"{len(bad)} line(s) above tolerance" + (f": {', '.join(map(str, bad[:8]))}" if bad else "")))
+        metrics["noise_p95_worst_nT"] = worst
+    spike_frac = float(spike_any.mean()) if len(table) else 0.0
+    tol, source = ctx.tolerance("max_flagged_fraction", 0.02)
+    checks.append(Check.at_most("fraction of readings flagged", metrics["flagged_readings"] / max(len(table), 1),
+                                tol, "", source))
+    notes.append(f"{metrics['flagged_readings']:,} of {len(table):,} readings flagged "
+                 f"({', '.join(f'{k[5:]}: {v}' for k, v in counts.items() if v) or 'none'}); "
+                 f"spikes {spike_frac:.3%}")
+    return StageOutput(table=table, metrics=metrics, tables={"clean_lines": lines}, checks=checks,
+                       notes=notes)
+
+
+STAGE = Stage(
+    name="clean",
+    summary="flag spikes (rolling median + MAD), time/distance gaps, duplicate times and heights "
+    "out of band; per-line fourth-difference noise",
+    run=run,
+    sections=("clean",),
+)

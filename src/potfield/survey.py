@@ -1,0 +1,162 @@
+"""A survey folder: survey.toml, raw/ (read-only inputs), out/ (everything potfield writes).
+
+::
+
+    SURVEY/
+      survey.toml
+      raw/            the user's files; potfield never writes here
+      truth/          demo surveys only: the true components (never read by the pipeline)
+      out/
+        tables/       readings.csv (the residual table), crossovers.csv, lines.csv, checks.csv ...
+        grids/        *.nc (NetCDF-CF), *.tif when asked
+        maps/         *.png
+        cache/        per-stage tables (parquet) for skipping unchanged stages
+        report.html
+        manifest.json
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+import os
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+from .config import SurveyConfig, load_config
+from .errors import ConfigError, InputDataError, SurveyLockedError
+
+
+def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        while block := handle.read(chunk):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+@dataclass
+class Survey:
+    root: Path
+
+    def __post_init__(self):
+        self.root = Path(self.root).resolve()
+
+    # --- layout -------------------------------------------------------------------------------
+    @property
+    def config_path(self) -> Path:
+        return self.root / "survey.toml"
+
+    @property
+    def raw(self) -> Path:
+        return self.root / "raw"
+
+    @property
+    def out(self) -> Path:
+        return self.root / "out"
+
+    @property
+    def tables(self) -> Path:
+        return self.out / "tables"
+
+    @property
+    def grids(self) -> Path:
+        return self.out / "grids"
+
+    @property
+    def maps(self) -> Path:
+        return self.out / "maps"
+
+    @property
+    def cache(self) -> Path:
+        return self.out / "cache"
+
+    @property
+    def manifest_path(self) -> Path:
+        return self.out / "manifest.json"
+
+    @property
+    def report_path(self) -> Path:
+        return self.out / "report.html"
+
+    def make_out(self) -> None:
+        for path in (self.tables, self.grids, self.maps, self.cache):
+            path.mkdir(parents=True, exist_ok=True)
+
+    # --- config and inputs -------------------------------------------------------------------
+    def load_config(self) -> SurveyConfig:
+        if not self.root.is_dir():
+            raise ConfigError(f"{self.root}: no such survey folder", fix="check the path")
+        return load_config(self.config_path)
+
+    def resolve(self, relative: str) -> Path:
+        """A path given in survey.toml, relative to the survey folder."""
+        path = Path(relative)
+        return path if path.is_absolute() else self.root / path
+
+    def input_files(self, config: SurveyConfig) -> list[Path]:
+        """The files matched by ``[input] files``, sorted; an error when none match."""
+        found: list[Path] = []
+        for pattern in config.input.files:
+            full = str(self.resolve(pattern))
+            matches = sorted(Path(p) for p in glob.glob(full))
+            if not matches:
+                if any(ch in pattern for ch in "*?["):
+                    raise InputDataError(
+                        f"no file matches '{pattern}'",
+                        file=self.config_path, key="input.files",
+                        fix="put the survey files in raw/ or correct the pattern",
+                    )
+                raise InputDataError("file not found", file=self.resolve(pattern),
+                                     key="input.files", fix="check the file name in survey.toml")
+            found.extend(matches)
+        # unique, keep order
+        seen, unique = set(), []
+        for path in found:
+            if path not in seen:
+                seen.add(path)
+                unique.append(path)
+        return unique
+
+    # --- lock -----------------------------------------------------------------------------------
+    @contextmanager
+    def lock(self):
+        """Exclusive lock on the survey's out/ so two runs cannot write it at once."""
+        self.out.mkdir(parents=True, exist_ok=True)
+        path = self.out / ".lock"
+        try:
+            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+        except FileExistsError:
+            pid = _read_pid(path)
+            if pid is not None and not _alive(pid):
+                path.unlink(missing_ok=True)  # stale lock of a dead run
+                fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+            else:
+                raise SurveyLockedError(
+                    f"{self.root}: another potfield run (pid {pid}) is processing this survey",
+                    fix=f"wait for it to finish, or delete {path} if no run is active",
+                ) from None
+        try:
+            os.write(fd, str(os.getpid()).encode())
+            os.close(fd)
+            yield
+        finally:
+            path.unlink(missing_ok=True)
+
+
+def _read_pid(path: Path) -> int | None:
+    try:
+        return int(path.read_text().strip() or "0") or None
+    except (OSError, ValueError):
+        return None
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
