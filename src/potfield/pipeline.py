@@ -154,12 +154,36 @@ def write_table_csv(path: Path, table: pd.DataFrame) -> Path:
 
     from .io.atomic import atomic_path
 
-    frame = table.copy()
-    if "time" in frame:
-        frame["time"] = pd.to_datetime(frame["time"]).dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    import pyarrow.compute as pc
+
+    arrow = pa.Table.from_pandas(table, preserve_index=False)
+    if "time" in arrow.column_names:
+        index = arrow.column_names.index("time")
+        text = pc.strftime(arrow.column(index), format="%Y-%m-%dT%H:%M:%SZ")
+        arrow = arrow.set_column(index, "time", text)
     with atomic_path(path) as tmp:
-        pacsv.write_csv(pa.Table.from_pandas(frame, preserve_index=False), tmp)
+        pacsv.write_csv(arrow, tmp)
     return path
+
+
+#: Text columns stored dictionary-encoded in the cache (fast to write), restored as object.
+CACHE_TEXT = ("line", "line_type", "source_file", "station", "loop")
+
+
+def write_cache_table(path: Path, table: pd.DataFrame) -> Path:
+    frame = table.copy(deep=False)
+    for name in CACHE_TEXT:
+        if name in frame and frame[name].dtype == object:
+            frame[name] = frame[name].astype("category")
+    return write_parquet(path, frame)
+
+
+def read_cache_table(path: Path) -> pd.DataFrame:
+    table = pd.read_parquet(path)
+    for name in CACHE_TEXT:
+        if name in table and isinstance(table[name].dtype, pd.CategoricalDtype):
+            table[name] = table[name].astype(object)
+    return table
 
 
 def run_survey(root: Path | str, *, until: str | None = None, only: str | None = None,
@@ -221,7 +245,7 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                         f"stage '{name}' has no up-to-date result to start '{selected[0]}' from",
                         fix=f"run 'potfield run {survey.root}' (or with --until {selected[0]}) first")
                 if cached.get("table"):
-                    table = pd.read_parquet(cache_file)
+                    table = read_cache_table(cache_file)
                 state[name] = cached.get("state", {})
                 for g in cached.get("grids", []):
                     grids[g] = survey.grids / f"{g}.nc"
@@ -300,7 +324,7 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
     crs = state.get("ingest", {}).get("crs") or output.state.get("crs")
     state[name] = output.state
     if output.table is not None:
-        write_parquet(survey.cache / f"{name}.parquet", output.table)
+        write_cache_table(survey.cache / f"{name}.parquet", output.table)
     for table_name, frame in output.tables.items():
         write_csv(survey.tables / f"{table_name}.csv", frame)
     for grid_name, grid in output.grids.items():

@@ -1,0 +1,65 @@
+"""`make bench`: run every bench_*() function of benchmarks/bench_*.py and write JSON results.
+
+Usage: python benchmarks/run.py [TOPIC ...]   (e.g. `ingest igrf`; default: all)
+Results: benchmarks/results/<topic>.json and benchmarks/results/summary.md.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import platform
+import sys
+import time
+import traceback
+from datetime import datetime, timezone
+from pathlib import Path
+
+HERE = Path(__file__).parent
+RESULTS = HERE / "results"
+
+
+def main(argv: list[str]) -> int:
+    RESULTS.mkdir(exist_ok=True)
+    wanted = set(argv)
+    files = sorted(HERE.glob("bench_*.py"))
+    failures = 0
+    summary = ["| benchmark | result |", "|---|---|"]
+    for path in files:
+        topic = path.stem.removeprefix("bench_")
+        if wanted and topic not in wanted:
+            continue
+        spec = importlib.util.spec_from_file_location(path.stem, path)
+        module = importlib.util.module_from_spec(spec)
+        sys.path.insert(0, str(HERE))
+        spec.loader.exec_module(module)
+        for name in sorted(n for n in dir(module) if n.startswith("bench_")):
+            print(f"== {topic}.{name}", flush=True)
+            started = time.perf_counter()
+            try:
+                result = getattr(module, name)()
+                status = "ok"
+            except Exception:  # a benchmark failure must not hide the others
+                result = {"error": traceback.format_exc()}
+                status = "error"
+                failures += 1
+            record = {
+                "benchmark": f"{topic}.{name}",
+                "status": status,
+                "seconds_total": round(time.perf_counter() - started, 3),
+                "machine": {"python": platform.python_version(), "processor": platform.machine(),
+                            "cpus": __import__("os").cpu_count()},
+                "date": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                "result": result,
+            }
+            out = RESULTS / f"{topic}.{name}.json"
+            out.write_text(json.dumps(record, indent=2, default=str) + "\n")
+            brief = result.get("summary", status) if isinstance(result, dict) else status
+            summary.append(f"| {topic}.{name} | {brief} |")
+            print(json.dumps(record["result"], indent=1, default=str)[:3000], flush=True)
+    (RESULTS / "summary.md").write_text("\n".join(summary) + "\n")
+    return 1 if failures else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))
