@@ -18,7 +18,8 @@ from .io.atomic import atomic_path
 def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed: int = 0,
                     lon0: float = 138.0, lat0: float = -33.0, spacing_m: float = 200.0,
                     rate_hz: float = 10.0, speed_ms: float = 60.0) -> pd.DataFrame:
-    """Lines of readings with the template's column names (LINE, UTC, LON, LAT, HEIGHT, TMI)."""
+    """Lines of readings with the template's column names (LINE, UTC, LON, LAT, HEIGHT, TMI):
+    the IGRF-14 main field plus a smooth anomaly, a slow drift, noise and spikes."""
     rng = np.random.default_rng(seed)
     total_lines = lines + ties
     per_line = max(readings // total_lines, 5)
@@ -55,6 +56,11 @@ def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed
             "TMI": field,
         }))
     table = pd.concat(frames, ignore_index=True)
+    from .fields.igrf import igrf
+
+    main = igrf(table["LON"].to_numpy(), table["LAT"].to_numpy(), table["HEIGHT"].to_numpy(),
+                table["UTC"].to_numpy()).total
+    table["TMI"] = table["TMI"].to_numpy() - 50_000.0 + main
     spikes = rng.choice(len(table), size=max(len(table) // 5000, 1), replace=False)
     table.loc[spikes, "TMI"] += rng.choice([-1, 1], spikes.size) * 25.0
     # a time gap of 5 s inside the first line

@@ -11,6 +11,16 @@ from pathlib import Path
 import numpy as np
 
 
+def _file_mode() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+#: Permissions of a normally created file (mkstemp makes 0600 files).
+FILE_MODE = _file_mode()
+
+
 @contextmanager
 def atomic_path(path: Path | str):
     """Yield a temporary path beside ``path``; on success it is renamed to ``path``."""
@@ -21,6 +31,7 @@ def atomic_path(path: Path | str):
     tmp = Path(tmp)
     try:
         yield tmp
+        os.chmod(tmp, FILE_MODE)
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

@@ -77,6 +77,8 @@ class StageContext:
     #: Grids written by earlier stages: name -> DataArray (loaded lazily by the runner).
     grids: dict[str, "xr.DataArray"] = field(default_factory=dict)
     progress: Callable[[str], None] = lambda message: None
+    #: The run's manifest so far (stage entries of earlier stages); used by the report stage.
+    manifest: dict[str, Any] = field(default_factory=dict)
 
     def tolerance(self, name: str, default: float, source: str = "common practice") -> tuple[float, str]:
         """The spec value ``name`` (profile, then survey.toml override), or ``default``."""
