@@ -214,10 +214,11 @@ class DiurnalSection(Section):
     spike_window: int = 11
     spike_threshold: float = 6.0
     spike_min_nT: float = 0.5
-    #: Time offset estimate: survey readings within this distance (m) of a base are
-    #: cross-correlated with it after a running-mean high-pass of highpass_s seconds, for lags
-    #: up to offset_max_lag_s.
-    offset_radius_m: float = 2000.0
+    #: Time offset estimate: survey readings within this distance (m) of a base (e.g. static
+    #: records beside it before and after a flight) are cross-correlated with it after a
+    #: running-mean high-pass of offset_highpass_s seconds, for lags up to offset_max_lag_s;
+    #: passes shorter than offset_highpass_s are left out.
+    offset_radius_m: float = 500.0
     offset_highpass_s: float = 60.0
     offset_max_lag_s: float = 30.0
 
@@ -227,8 +228,15 @@ class GravityBase(Section):
     station: str
     #: Absolute gravity at the base (mGal).
     gravity: float
-    #: Weight in the network adjustment; None = fixed.
-    sigma_mgal: float | None = None
+    #: Standard deviation (mGal) of the base value, weighting it in the network adjustment;
+    #: None = held fixed.
+    sigma_mgal: float | None = Field(None, gt=0)
+
+    @field_validator("station", mode="before")
+    @classmethod
+    def _station_text(cls, value):
+        # a numeric station id (station = 101) means the same as "101"
+        return str(value) if isinstance(value, int) and not isinstance(value, bool) else value
 
 
 class DriftSection(Section):
@@ -246,8 +254,8 @@ class DriftSection(Section):
     free_air_gradient: float = 0.3086
     #: Tare: an abrupt step; times (ISO) at which a tare is allowed in the network adjustment.
     tares: list[str] = Field(default_factory=list)
-    #: How readings are grouped into loops: "auto" (the loop column, else the line column, else
-    #: the UTC day), "loop", "line" or "day".
+    #: How readings are grouped into loops: "auto" (the loop column, else a mapped line column,
+    #: else the local solar day at the mean longitude), "loop", "line" or "day".
     loops: Literal["auto", "loop", "line", "day"] = "auto"
     #: A priori standard deviation of one reading (mGal) for the network weights (common
     #: practice for a spring gravimeter: 0.01).
@@ -255,7 +263,8 @@ class DriftSection(Section):
 
 
 class ReferenceSection(Section):
-    #: Magnetic: evaluate IGRF at each reading's time, or at this fixed date (YYYY-MM-DD).
+    #: Magnetic and observatory: evaluate IGRF-14 at each reading's time (unset, the default),
+    #: or at this one fixed date for all readings ("YYYY-MM-DD", UTC; 1900-01-01 .. 2030-01-01).
     igrf_date: str | None = None
     #: Gravity: normal-gravity ellipsoid.
     ellipsoid: Literal["WGS84", "GRS80"] = "WGS84"
@@ -283,6 +292,9 @@ class ReferenceSection(Section):
     terrain_curvature: bool = True
     #: Warn when more than this fraction of the terrain disc around a station lacks DEM cover.
     terrain_missing_tolerance: float = Field(0.01, ge=0, le=1)
+    #: True: readings stand on the ground, so a reading's own DEM cell takes the reading height
+    #: (ground surveys); false: keep the DEM value there (airborne readings above the terrain).
+    terrain_readings_on_ground: bool = True
 
 
 class LevelSection(Section):
@@ -290,6 +302,9 @@ class LevelSection(Section):
     enabled: bool = True
     #: Traverse-line correction model: "constant", "linear" or "quadratic" in time.
     traverse_model: Literal["constant", "linear", "quadratic"] = "constant"
+    #: "two_step" (ties to each other, then traverse lines to the ties; common practice) or
+    #: "network" (all lines solved together in one least-squares network).
+    method: Literal["two_step", "network"] = "two_step"
     #: Minimum crossovers per line for its own correction; fewer keeps the line's level.
     min_crossovers: int = Field(default=2, ge=1)
     #: Crossovers with |height difference| above this (m) are dropped (common practice).
@@ -297,7 +312,7 @@ class LevelSection(Section):
     #: Huber threshold of the robust (IRLS) fits, in robust sigmas (1.4826 x MAD); 0 = plain LS.
     huber_threshold: float = Field(default=1.5, ge=0.0)
     #: Longest gap (m) between consecutive readings still joined into one track segment when
-    #: searching crossovers; 0 = 5 x the median reading interval (common practice).
+    #: searching crossovers; 0 = 5 x the median distance between readings (common practice).
     max_segment_m: float = Field(default=0.0, ge=0.0)
     #: Micro-levelling of the grid (directional filter, Minty 1991), applied by the grid stage.
     micro_levelling: bool = False
@@ -348,7 +363,8 @@ class DeriveSection(Section):
     rtp: Literal["auto", "plain", "pseudo"] = "auto"
     #: |I| (degrees) below which rtp = "auto" uses the pseudo-inclination filter.
     rtp_threshold_deg: float = Field(30.0, ge=0, le=90)
-    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = rtp_threshold_deg.
+    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = rtp_threshold_deg
+    #: (or |I| when steeper).
     pseudo_inclination_deg: float | None = Field(None, ge=-90, le=90)
     #: Also continue upward by predicting the grid stage's equivalent-source model (when it has one).
     upward_by_model: bool = True

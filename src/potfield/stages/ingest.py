@@ -162,7 +162,12 @@ def assign_lines(table: pd.DataFrame, config: SurveyConfig) -> pd.DataFrame:
         elif "loop" in table:
             table["line"] = table["loop"].astype(str)
         elif config.kind == "gravity":
-            table["line"] = pd.Series(table["time"]).dt.strftime("%Y-%m-%d").to_numpy()
+            # One line per local solar day (UTC + mean longitude / 15 h): a field day is not cut
+            # at UTC midnight far from Greenwich.
+            shift = np.timedelta64(int(np.nanmean(table["longitude"]) / 15.0 * 3600), "s") \
+                if "longitude" in table else np.timedelta64(0, "s")
+            local = pd.Series(table["time"].to_numpy() + shift)
+            table["line"] = local.dt.strftime("%Y-%m-%d").to_numpy()
         else:
             # A new line at every time gap longer than split_gap_s (within each file).
             t = table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
@@ -250,7 +255,7 @@ def run(ctx: StageContext) -> StageOutput:
     if config.kind == "observatory":
         from ..io.iaga2002 import observatory_table
 
-        table = observatory_table(files)
+        table = observatory_table(files, geoid_undulation=config.survey.geoid_undulation)
         in_crs = parse_crs(config.survey.crs, "survey.crs")
         _check_range(table, "latitude", -90, 90, "check the station's Geodetic Latitude header")
         table, out_crs = georeference(table, config) if in_crs.is_geographic else (table, in_crs)

@@ -1,0 +1,233 @@
+"""derive stage: continuation and derived products of the main grid.
+
+Glue only: picks the grid stage's main grid (``anomaly`` for magnetics, ``bouguer_anomaly`` for
+gravity), its equivalent-source model when there is one (to fill masked cells before the FFT and
+to continue upward exactly), and calls :mod:`potfield.fields.transforms` for each product in
+``[derive] products``. Every product is an output grid masked like the input.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import StageError
+from ..fields import transforms as tf
+from .base import Stage, StageContext, StageOutput
+
+#: Main-grid names by survey kind, in order of preference.
+#: How masked cells were filled (potfield.fields.transforms.fill_masked "fill" attribute).
+FILL_TEXT = {"none": "none", "smooth fill": "smooth fill", "filler": "equivalent-source prediction",
+             "filler + smooth fill": "equivalent-source prediction + smooth fill"}
+MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
+
+
+def _main_grid(ctx: StageContext):
+    order = MAIN_GRIDS.get(ctx.config.kind, ("anomaly", "bouguer_anomaly"))
+    for name in order:
+        if name in ctx.grids:
+            return name, ctx.grids[name]
+    raise StageError(
+        f"no '{order[0]}' grid from the grid stage (grids present: {', '.join(ctx.grids) or 'none'})",
+        fix="run the grid stage first, e.g. 'potfield run SURVEY --from grid'",
+    )
+
+
+def _grid_height(ctx: StageContext, grid):
+    """Height (m) of the grid surface: an ``upward`` coordinate, the grid stage's record, the
+    grid's ``height`` attribute or a numeric ``[grid] height``; None when unknown."""
+    if "upward" in grid.coords:
+        return np.asarray(grid["upward"].transpose(*[d for d in ("northing", "easting")
+                                                     if d in grid["upward"].dims]).values, dtype=float)
+    record = ctx.state.get("grid", {})
+    for key in ("height", "height_m", "grid_height"):
+        value = record.get(key)
+        if isinstance(value, (int, float)) and math.isfinite(value):
+            return float(value)
+    for value in (grid.attrs.get("height"), ctx.config.grid.height):
+        if isinstance(value, (int, float, np.floating)) and math.isfinite(float(value)):
+            return float(value)
+    return None
+
+
+def _load_model(ctx: StageContext, out: StageOutput):
+    """The grid stage's equivalent-source model, or None (with a note saying why)."""
+    path = ctx.state.get("grid", {}).get("model_path")
+    if not path:
+        out.notes.append("no equivalent-source model from the grid stage: masked cells filled by "
+                         "a smooth fill before the FFT")
+        return None
+    path = Path(path)
+    if not path.is_absolute():
+        path = ctx.survey.resolve(str(path))
+    if not path.is_file():
+        out.warnings.append(f"equivalent-source model {path} is missing: masked cells filled by a "
+                            "smooth fill instead (re-run the grid stage to restore it)")
+        return None
+    from ..fields.eqsources import load_model
+
+    return load_model(path)
+
+
+def run(ctx: StageContext) -> StageOutput:
+    """Derive the products of ``[derive] products`` from the grid stage's main grid.
+
+    Parameters
+    ----------
+    ctx : StageContext
+        Needs ``ctx.grids["anomaly"]`` (magnetic) or ``["bouguer_anomaly"]`` (gravity); for
+        ``rtp`` also ``ctx.state["reference"]["inclination"/"declination"]`` (degrees, at the
+        centroid) and, to turn the declination to grid north, ``ctx.state["ingest"]["crs"]`` and
+        ``["centroid"]``; optionally ``ctx.state["grid"]["model_path"]`` (equivalent-source
+        model) and the grid height.
+
+    Returns
+    -------
+    StageOutput
+        One grid per product named ``<main grid>_<product>`` (plus ``_upward_model`` when the
+        model continued the field), masked like the input; metrics and state say which RTP
+        filter was used.
+
+    References
+    ----------
+    See :mod:`potfield.fields.transforms` (Blakely 1995; Baranov 1957; MacLeod, Jones and Dai
+    1993; Nabighian 1972; Roest et al. 1992; Miller and Singh 1994; Dampney 1969).
+    """
+    cfg = ctx.config.derive
+    out = StageOutput()
+    name, grid = _main_grid(ctx)
+    grid = grid.transpose("northing", "easting")
+    products = list(dict.fromkeys(cfg.products))
+    common = dict(pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
+
+    model = _load_model(ctx, out)
+    height = _grid_height(ctx, grid) if model is not None else None
+    if model is not None and height is None:
+        out.warnings.append("the grid's height is unknown (no 'upward' coordinate or grid-stage "
+                            "height): the equivalent-source model is not used; smooth fill instead")
+        model = None
+    valid = np.isfinite(grid.values)
+    masked = int((~valid).sum())
+    source, fill_text = grid, "none"
+    if masked:
+        filler = None
+        if model is not None:  # the model's prediction on the full grid fills masked cells
+            easting, northing = np.meshgrid(grid.easting.values, grid.northing.values)
+            upward = np.broadcast_to(np.asarray(height, dtype=float), easting.shape)
+            filler = model.predict((easting, northing, upward))
+        # fill once for every product; each result is masked again in add()
+        source = tf.fill_masked(grid, filler=filler)
+        fill_text = FILL_TEXT[source.attrs["fill"]]
+        out.notes.append(f"{masked} masked cells of '{name}' filled by {fill_text} before the FFT "
+                         "and masked again after")
+    out.metrics.update({"input_grid": name, "masked_cells": masked, "fill": fill_text})
+    made: dict[str, str] = {}
+
+    def add(product: str, result) -> None:
+        key = f"{name}_{product}"
+        result = result.copy(data=np.where(valid, result.values, np.nan)).rename(key)
+        if masked:
+            result.attrs["history"] += f"; masked cells filled ({fill_text}) and masked again"
+        out.grids[key] = result
+        made[product] = key
+
+    if "rtp" in products:
+        if ctx.config.kind != "magnetic":
+            out.notes.append("rtp skipped: reduction to the pole applies to magnetic surveys only")
+        else:
+            ref = ctx.state.get("reference", {})
+            inc, dec = ref.get("inclination"), ref.get("declination")
+            if inc is None or dec is None:
+                raise StageError(
+                    "the reference stage recorded no inclination/declination for the reduction "
+                    "to the pole",
+                    key="derive.products",
+                    fix="run the reference stage first, or remove 'rtp' from [derive] products",
+                )
+            ingest = ctx.state.get("ingest", {})
+            crs, centroid = ingest.get("crs"), ingest.get("centroid")
+            dec_true = float(dec)
+            if crs and centroid:  # the filter works on grid axes: declination from grid north
+                dec, true_north = tf.grid_declination(dec_true, crs, float(centroid[0]),
+                                                      float(centroid[1]))
+                out.metrics["rtp_true_north_deg"] = true_north
+                out.notes.append(f"declination {dec_true:.2f} deg from true north is {dec:.2f} deg "
+                                 "from grid north (meridian convergence)")
+            else:
+                out.notes.append("no output CRS/centroid from ingest: declination used as if "
+                                 "grid north were true north")
+            pseudo = cfg.pseudo_inclination_deg
+            if pseudo is None:
+                pseudo = tf.default_pseudo_inclination(inc, cfg.rtp_threshold_deg)
+            rtp = tf.reduction_to_pole(source, float(inc), float(dec), method=cfg.rtp,
+                                       pseudo_inclination=pseudo,
+                                       auto_threshold=cfg.rtp_threshold_deg, **common)
+            add("rtp", rtp)
+            method = rtp.attrs["rtp_method"]
+            out.metrics.update({"rtp_method": method, "rtp_inclination_deg": float(inc),
+                                "rtp_declination_deg": dec_true,
+                                "rtp_grid_declination_deg": float(dec)})
+            text = (f"reduction to the pole: {method} filter at I {float(inc):.2f}, "
+                    f"D {float(dec):.2f} deg (grid)")
+            if method == "pseudo":
+                out.metrics["rtp_pseudo_inclination_deg"] = rtp.attrs["pseudo_inclination"]
+                text += (f", amplitude inclination {rtp.attrs['pseudo_inclination']:.1f} deg "
+                         "(MacLeod et al. 1993)")
+            out.notes.append(text)
+
+    for order in (1, 2):
+        if f"dz{order}" in products:
+            add(f"dz{order}", tf.vertical_derivative(source, order, **common))
+    if "dx" in products or "dy" in products:
+        dx, dy = tf.horizontal_derivatives(source, cfg.horizontal_method, **common)
+        if "dx" in products:
+            add("dx", dx)
+        if "dy" in products:
+            add("dy", dy)
+    if "thg" in products:
+        add("thg", tf.total_horizontal_gradient(source, cfg.horizontal_method, **common))
+    if "tga" in products:
+        add("tga", tf.total_gradient_amplitude(source, cfg.horizontal_method, **common))
+    if "tilt" in products:
+        add("tilt", tf.tilt_angle(source, cfg.horizontal_method, **common))
+    if "upward" in products:
+        up = tf.upward_continuation(source, cfg.upward_m, **common)
+        add("upward", up)
+        if model is not None and cfg.upward_by_model:
+            exact = tf.model_upward_continuation(model.predict, grid, cfg.upward_m, height)
+            add("upward_model", exact)
+            diff = (up.values - exact.values)[np.isfinite(exact.values)]
+            rms = float(np.sqrt(np.mean(diff**2))) if diff.size else float("nan")
+            out.metrics["upward_fft_minus_model_rms"] = rms
+            out.notes.append(f"upward continuation by {cfg.upward_m:g} m: FFT and equivalent-source "
+                             f"results differ by {rms:.3g} {grid.attrs.get('units', '')} RMS "
+                             "(edge effects of the FFT and the model's fit)")
+    out.metrics["products"] = len(made)
+    out.state = {"input_grid": name, "products": made, "fill": out.metrics["fill"],
+                 "upward_m": float(cfg.upward_m)}
+    for key in ("rtp_method", "rtp_pseudo_inclination_deg"):
+        if key in out.metrics:
+            out.state[key] = out.metrics[key]
+    return out
+
+
+def _run(ctx: StageContext) -> StageOutput:
+    """Run with numerical warnings from the transforms collected into the stage's warnings."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", UserWarning)
+        result = run(ctx)
+    result.warnings.extend(str(w.message) for w in caught if issubclass(w.category, UserWarning))
+    return result
+
+
+STAGE = Stage(
+    name="derive",
+    summary="derived grids: reduction to the pole, vertical and horizontal derivatives, total "
+    "horizontal gradient, total gradient amplitude, tilt angle and upward continuation",
+    run=_run,
+    sections=("derive", "grid"),
+    kinds=("magnetic", "gravity"),
+)

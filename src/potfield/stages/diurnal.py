@@ -1,0 +1,345 @@
+"""diurnal stage: remove the time-varying external field recorded at base magnetometers.
+
+Reads the base records listed under ``[[diurnal.bases]]`` (delimited text mapped like the survey
+files, or IAGA-2002), removes their spikes, interpolates them to the readings' times, subtracts
+the datum and combines several bases. Adds ``diurnal`` (nT removed: ``total_field - diurnal`` is
+the corrected field) and ``flag_base_gap``. The physics is in :mod:`potfield.fields.diurnal`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from ..errors import ConfigError, InputDataError
+from ..fields.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
+                              estimate_time_offset, great_circle_distance, interpolate_base,
+                              station_difference)
+from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
+from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
+from .base import Check, Stage, StageContext, StageOutput, usable
+
+#: Most rows of the ``base_record`` table (all bases together), for plots.
+BASE_RECORD_ROWS = 20_000
+#: Smallest correlation for which a time-offset estimate is reported as a check.
+MIN_OFFSET_CORRELATION = 0.5
+
+
+@dataclass
+class BaseRecord:
+    """One base station's record as read (times sorted, UTC)."""
+
+    name: str
+    path: object
+    time: np.ndarray
+    value: np.ndarray
+    longitude: float | None
+    latitude: float | None
+    key: str
+
+
+def _time_text(t) -> str:
+    return str(pd.Timestamp(t).floor("s")).replace(" ", "T")
+
+
+def _span_text(start, end) -> str:
+    return f"{_time_text(start)} to {_time_text(end)}"
+
+
+def read_base(base, survey, index: int) -> BaseRecord:
+    """Read one ``[[diurnal.bases]]`` entry into times (datetime64[ns], UTC) and total field (nT).
+
+    Delimited files go through the same reader, time formats and units as the survey files
+    (:mod:`potfield.io.delimited`); IAGA-2002 files give F (or, without a scalar F, the vector
+    intensity) and, unless the config sets them, the base position from their header. The
+    base's ``time_offset_s`` is added to its times.
+    """
+    key = f"diurnal.bases[{index}]"
+    path = survey.resolve(base.file)
+    if not path.is_file():
+        raise InputDataError("base station file not found", file=path, key=f"{key}.file",
+                             fix="check the file name under [[diurnal.bases]]")
+    fmt = base.format
+    if fmt == "auto":
+        fmt = "iaga2002" if looks_like_iaga2002(path) else "delimited"
+    lon, lat = base.longitude, base.latitude
+    if fmt == "iaga2002":
+        record = read_iaga2002(path)
+        times = record.data["time"].to_numpy(dtype="datetime64[ns]")
+        value = record.data["total_field"].to_numpy(dtype=float)
+        if not np.isfinite(value).any():
+            # no scalar F: the vector intensity carries the same external variation
+            value = np.sqrt(record.data["mag_north"] ** 2 + record.data["mag_east"] ** 2
+                            + record.data["mag_down"] ** 2).to_numpy(dtype=float)
+        if lon is None and np.isfinite(record.header.get("longitude", np.nan)):
+            lon = ((float(record.header["longitude"]) + 180.0) % 360.0) - 180.0
+        if lat is None and np.isfinite(record.header.get("latitude", np.nan)):
+            lat = float(record.header["latitude"])
+    else:
+        for name in ("time", "total_field"):
+            if name not in base.columns:
+                raise ConfigError(f"no base file column is mapped to '{name}'",
+                                  key=f"{key}.columns.{name}",
+                                  fix=f'add {name} = "<column>" under [diurnal.bases.columns]')
+        if base.time.format != "iso" and "date" not in base.columns and not base.time.date:
+            raise ConfigError(f"time format '{base.time.format}' needs a date",
+                              key=f"{key}.time.date",
+                              fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
+        frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
+                               skip_rows=base.skip_rows, missing_values=base.missing_values)
+        times = parse_time(frame, base.time, path)
+        value = convert_units(to_numeric(frame, "total_field", path), "total_field", base.units)
+    if base.time_offset_s:
+        times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
+    order = np.argsort(times, kind="stable")
+    times, value = times[order], np.asarray(value, dtype=float)[order]
+    if times.size == 0 or not np.isfinite(value).any():
+        raise InputDataError("base record has no usable total-field value", file=path,
+                             fix="check the file and its column mapping")
+    return BaseRecord(base.name, path, times, value, lon, lat, key)
+
+
+def _datums(ctx, bases, cleaned, span) -> list[float]:
+    """Datum of each base: the first by the configured mode, the others tied by level."""
+    cfg = ctx.config.diurnal
+    good = [(b.time[c.good], b.value[c.good]) for b, c in zip(bases, cleaned)]
+    medians = [base_datum(t, v, "median", span=span) for t, v in good]
+    t0, v0 = good[0]
+    if cfg.datum == "median":
+        first = medians[0]
+    elif cfg.datum == "value":
+        if cfg.datum_value is None:
+            raise ConfigError("datum = 'value' needs datum_value (nT)", key="diurnal.datum_value",
+                              fix="set datum_value under [diurnal] or use datum = 'median'")
+        first = float(cfg.datum_value)
+    else:
+        if not cfg.datum_time:
+            raise ConfigError("datum = 'time' needs datum_time", key="diurnal.datum_time",
+                              fix='set datum_time = "YYYY-MM-DDThh:mm:ssZ" under [diurnal]')
+        try:
+            stamp = pd.Timestamp(cfg.datum_time)
+        except (ValueError, TypeError):
+            raise ConfigError(f"cannot read datum_time '{cfg.datum_time}'", key="diurnal.datum_time",
+                              fix="use ISO 8601, e.g. 2024-05-01T10:00:00Z") from None
+        if stamp.tzinfo is not None:
+            stamp = stamp.tz_convert("UTC").tz_localize(None)
+        try:
+            first = base_datum(t0, v0, "time", at_time=np.datetime64(stamp.to_datetime64(), "ns"))
+        except ValueError:
+            raise ConfigError(f"datum_time {cfg.datum_time} is outside the record of base "
+                              f"'{bases[0].name}' ({_span_text(t0[0], t0[-1])})",
+                              key="diurnal.datum_time", fix="choose a time inside the base record") from None
+    return [first + (m - medians[0]) for m in medians]
+
+
+def _base_record_table(bases, cleaned) -> pd.DataFrame:
+    """Each cleaned base record in at most BASE_RECORD_ROWS / n bins (mean, min, max)."""
+    limit = max(BASE_RECORD_ROWS // len(bases), 1)
+    parts = []
+    for b, c in zip(bases, cleaned):
+        n = b.time.size
+        size = int(np.ceil(n / limit))
+        bins = np.arange(n) // size
+        clean = np.where(c.good, b.value, np.nan)
+        frame = pd.DataFrame({"bin": bins, "time": b.time, "total_field": clean,
+                              "spike": c.spike, "missing": c.missing})
+        grouped = frame.groupby("bin")
+        part = pd.DataFrame({
+            "base": b.name,
+            "time": grouped["time"].first().to_numpy(),
+            "total_field": grouped["total_field"].mean().to_numpy(),
+            "total_field_min": grouped["total_field"].min().to_numpy(),
+            "total_field_max": grouped["total_field"].max().to_numpy(),
+            "samples": grouped["time"].size().to_numpy(),
+            "spikes": grouped["spike"].sum().to_numpy(),
+            "missing": grouped["missing"].sum().to_numpy(),
+        })
+        parts.append(part)
+    return pd.concat(parts, ignore_index=True)
+
+
+def run(ctx: StageContext) -> StageOutput:
+    """Apply the diurnal correction of ``[diurnal]`` to the readings.
+
+    Parameters
+    ----------
+    ctx : StageContext
+        ``ctx.table`` with ``time``, ``longitude``, ``latitude`` (and ``total_field`` for the
+        time-offset estimate).
+
+    Returns
+    -------
+    StageOutput
+        The table with ``diurnal`` (nT; ``total_field - diurnal`` is corrected) and
+        ``flag_base_gap``; tables ``diurnal_lines`` and ``base_record``; checks of the chord
+        deviation (15 s, 60 s), the clock offset and the difference between bases.
+
+    Notes
+    -----
+    Method: base record cleaned (Hampel identifier; Hampel 1974, J. Am. Stat. Assoc. 69:383),
+    interpolated to the readings, minus a datum, combined over bases by nearest or
+    inverse-distance weights (Shepard 1968); the correction itself as in Reford (1980),
+    Geophysics 45:1640. See :mod:`potfield.fields.diurnal`.
+    """
+    cfg = ctx.config.diurnal
+    if not cfg.enabled:
+        return StageOutput(notes=["diurnal correction disabled ([diurnal] enabled = false)"])
+    if not cfg.bases:
+        return StageOutput(notes=["no base station given: diurnal correction not applied"])
+    table = ctx.table.copy()
+    reading_time = table["time"].to_numpy(dtype="datetime64[ns]")
+    span = (reading_time.min(), reading_time.max())
+    notes: list[str] = []
+    warnings: list[str] = []
+    checks: list[Check] = []
+    metrics: dict = {"bases": len(cfg.bases)}
+
+    names = [b.name for b in cfg.bases]
+    for i, name in enumerate(names):
+        if name in names[:i]:
+            raise ConfigError(f"base name '{name}' is used twice", key=f"diurnal.bases[{i}].name",
+                              fix="give every [[diurnal.bases]] its own name")
+    bases = [read_base(b, ctx.survey, i) for i, b in enumerate(cfg.bases)]
+    for b in bases:
+        if b.time[-1] < span[0] or b.time[0] > span[1]:
+            raise InputDataError(
+                f"base record of '{b.name}' ({_span_text(b.time[0], b.time[-1])}) does not overlap "
+                f"the survey readings ({_span_text(*span)})", file=b.path,
+                fix="check the base file, its time format/date and time_offset_s (UTC clocks)",
+            )
+    ctx.progress(f"cleaning {len(bases)} base record(s)")
+    cleaned = [clean_base(b.time, b.value, window=cfg.spike_window, threshold=cfg.spike_threshold,
+                          min_spike=cfg.spike_min_nT, max_gap_s=cfg.max_gap_s) for b in bases]
+    datums = _datums(ctx, bases, cleaned, span)
+
+    corrections, flags = [], []
+    for b, c, d in zip(bases, cleaned, datums):
+        values, flag = interpolate_base(b.time[c.good], b.value[c.good], reading_time,
+                                        cfg.interpolation, cfg.max_gap_s)
+        corrections.append(values - d)
+        flags.append(flag)
+        outside = int(((reading_time < b.time[c.good][0]) | (reading_time > b.time[c.good][-1])).sum())
+        if outside:
+            warnings.append(f"{outside:,} readings lie outside the record of base '{b.name}' "
+                            f"({_span_text(b.time[0], b.time[-1])})")
+        metrics[f"base_{b.name}"] = {
+            "samples": int(b.time.size), "spikes": int(c.spike.sum()), "missing": int(c.missing.sum()),
+            "gaps": int(len(c.gaps)), "datum_nT": float(d), "start": str(b.time[0]), "end": str(b.time[-1]),
+        }
+
+    distances = None  # (n_bases, n_readings) m, when every base has a position
+    if all(b.longitude is not None and b.latitude is not None for b in bases):
+        lon, lat = table["longitude"].to_numpy(float), table["latitude"].to_numpy(float)
+        distances = np.stack([great_circle_distance(b.longitude, b.latitude, lon, lat) for b in bases])
+    if len(bases) == 1:
+        diurnal, gap = corrections[0], flags[0]
+    else:
+        if distances is None:
+            missing = next(b for b in bases if b.longitude is None or b.latitude is None)
+            raise ConfigError(f"base '{missing.name}' has no position; two or more bases are combined "
+                              "by distance", key=f"{missing.key}.longitude",
+                              fix="set longitude and latitude of every base under [[diurnal.bases]]")
+        diurnal, gap, weights = combine_bases(np.stack(corrections), np.stack(flags), distances,
+                                              cfg.combine, cfg.distance_power)
+        for b, w in zip(bases, weights):
+            metrics[f"base_{b.name}"]["mean_weight"] = float(w.mean())
+    table["diurnal"] = diurnal
+    table["flag_base_gap"] = gap
+
+    # --- checks --------------------------------------------------------------------------------
+    tol15, src15 = ctx.tolerance("diurnal_chord_15s_nT", 0.5)
+    tol60, src60 = ctx.tolerance("diurnal_chord_60s_nT", 3.0)
+    margin = np.timedelta64(60, "s")
+    for b, c in zip(bases, cleaned):
+        inside = c.good & (b.time >= span[0] - margin) & (b.time <= span[1] + margin)
+        for window, tol, src in ((15.0, tol15, src15), (60.0, tol60, src60)):
+            chord = chord_deviation(b.time[inside], b.value[inside], window)
+            if np.isfinite(chord.max):
+                worst = b.time[inside][0] + np.timedelta64(int(round(chord.start * 1e9)), "ns")
+                checks.append(Check.at_most(
+                    f"diurnal chord {window:g} s ({b.name})", chord.max, tol, "nT", src,
+                    detail=f"largest deviation from a {window:g} s chord, window starting "
+                           f"{_time_text(worst)}"))
+    offset_tol, offset_src = ctx.tolerance("diurnal_time_offset_s", 1.0, "project default")
+    if distances is not None and "total_field" in table:
+        fit = usable(table) & np.isfinite(table["total_field"].to_numpy(float))
+        for b, c, dist in zip(bases, cleaned, distances):
+            near = fit & (dist <= cfg.offset_radius_m)
+            if near.sum() < 30:
+                notes.append(f"time offset to base '{b.name}' not estimated: {int(near.sum())} usable "
+                             f"readings within {cfg.offset_radius_m:g} m of it")
+                continue
+            order = np.argsort(reading_time[near], kind="stable")
+            result = estimate_time_offset(b.time[c.good], b.value[c.good], reading_time[near][order],
+                                          table["total_field"].to_numpy(float)[near][order],
+                                          highpass_s=cfg.offset_highpass_s, max_lag_s=cfg.offset_max_lag_s)
+            metrics[f"base_{b.name}"]["time_offset_s"] = float(result.lag_s)
+            metrics[f"base_{b.name}"]["time_offset_correlation"] = float(result.correlation)
+            if not np.isfinite(result.correlation) or result.correlation < MIN_OFFSET_CORRELATION:
+                notes.append(f"time offset to base '{b.name}' not determined: correlation "
+                             f"{result.correlation:.2f} of the short-period variations is too low")
+                continue
+            checks.append(Check.at_most(
+                f"diurnal time offset ({b.name})", abs(result.lag_s), offset_tol, "s", offset_src,
+                detail=f"survey clock minus base clock {result.lag_s:+.2f} s from {result.n} readings "
+                       f"within {cfg.offset_radius_m:g} m, correlation {result.correlation:.2f}"))
+    diff_tol, diff_src = ctx.tolerance("diurnal_station_difference_nT", 5.0, "project default")
+    for i in range(len(bases)):
+        for j in range(i + 1, len(bases)):
+            a, b = bases[i], bases[j]
+            ca, cb = cleaned[i], cleaned[j]
+            ina = ca.good & (a.time >= span[0]) & (a.time <= span[1])
+            stats = station_difference(a.time[ina], a.value[ina], b.time[cb.good], b.value[cb.good],
+                                       cfg.max_gap_s)
+            metrics[f"station_difference_{a.name}_{b.name}"] = stats
+            if stats["n"]:
+                checks.append(Check.at_most(
+                    f"diurnal station difference ({a.name} - {b.name})", stats["max_abs"], diff_tol,
+                    "nT", diff_src,
+                    detail=f"largest departure of the difference from its median "
+                           f"{stats['level_difference']:.2f} nT; std {stats['std']:.2f} nT"))
+
+    # --- tables, metrics, notes ----------------------------------------------------------------
+    grouped = table.groupby("line", sort=False)
+    lines = pd.DataFrame({
+        "readings": grouped.size(),
+        "diurnal_mean": grouped["diurnal"].mean(),
+        "diurnal_min": grouped["diurnal"].min(),
+        "diurnal_max": grouped["diurnal"].max(),
+        "flag_base_gap": grouped["flag_base_gap"].sum(),
+    }).reset_index()
+    flagged = int(gap.sum())
+    metrics.update({"readings_flag_base_gap": flagged, "diurnal_min_nT": float(np.nanmin(diurnal)),
+                    "diurnal_max_nT": float(np.nanmax(diurnal)), "interpolation": cfg.interpolation,
+                    "datum": cfg.datum})
+    names = ", ".join(f"'{b.name}'" for b in bases)
+    notes.insert(0, f"diurnal correction from base(s) {names} ({cfg.interpolation} interpolation, "
+                    f"datum {cfg.datum}): {np.nanmin(diurnal):.2f} to {np.nanmax(diurnal):.2f} nT")
+    if flagged:
+        warnings.append(f"{flagged:,} readings flagged in base gaps longer than {cfg.max_gap_s:g} s "
+                        "or outside the base record (flag_base_gap)")
+    state = {
+        "bases": [{"name": b.name, "file": str(b.path), "longitude": b.longitude, "latitude": b.latitude,
+                   "datum_nT": float(d)} for b, d in zip(bases, datums)],
+        "interpolation": cfg.interpolation,
+        "datum": cfg.datum,
+    }
+    return StageOutput(table=table, metrics=metrics, state=state,
+                       tables={"diurnal_lines": lines, "base_record": _base_record_table(bases, cleaned)},
+                       checks=checks, notes=notes, warnings=warnings)
+
+
+def _inputs(config, survey):
+    return [survey.resolve(b.file) for b in config.diurnal.bases]
+
+
+STAGE = Stage(
+    name="diurnal",
+    summary="remove the external field variation recorded at base magnetometers (diurnal correction)",
+    run=run,
+    sections=("diurnal",),
+    inputs=_inputs,
+    kinds=("magnetic",),
+)

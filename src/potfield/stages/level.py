@@ -1,0 +1,291 @@
+"""level stage: tie-line levelling of line surveys (glue; the maths is potfield.fields.leveling).
+
+Two-step levelling (Luyendyk 1997; ``[level] method = "two_step"``, the default): crossovers of
+traverse lines with tie lines (and of tie lines with each other) are found, the tie lines are
+levelled to each other with one constant each (mean tie correction zero: the survey keeps the
+average level of its ties), then every traverse line is levelled to the adjusted ties with a
+robust constant or low-order polynomial in time. ``method = "network"`` solves all lines at once
+(Yarger, Robertson and Wentland 1978) with the same datum.
+
+Adds ``level_correction`` (the value added; 0 where nothing was corrected) and ``anomaly_levelled``
+(value + correction). The value levelled is ``anomaly`` (magnetic) or ``bouguer_anomaly``
+(gravity); for uniformity the levelled result is called ``anomaly_levelled`` for both kinds.
+Surveys without tie lines pass through with zero correction and a note.
+
+The grid stage micro-levels with :func:`micro_level_table` when ``[level] micro_levelling`` is on.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from ..errors import StageError
+from ..fields import leveling
+from .base import Check, Stage, StageContext, StageOutput, usable
+
+#: Value columns that can be levelled, in order of preference.
+VALUE_COLUMNS = ("anomaly", "bouguer_anomaly")
+
+
+def _value_column(table: pd.DataFrame) -> str:
+    for name in VALUE_COLUMNS:
+        if name in table.columns:
+            return name
+    raise StageError(
+        f"the readings table has none of the columns {', '.join(VALUE_COLUMNS)} to level",
+        key="level",
+        fix="run the reference stage before level (potfield run SURVEY --from reference)",
+    )
+
+
+def _unit(config) -> str:
+    return "mGal" if config.kind == "gravity" else "nT"
+
+
+def _passthrough(table: pd.DataFrame, value: str, note: str, metrics=None) -> StageOutput:
+    table = table.copy()
+    table["level_correction"] = 0.0
+    table["anomaly_levelled"] = table[value].to_numpy(dtype=float)
+    return StageOutput(table=table, notes=[note], metrics=dict(metrics or {}),
+                       state={"value_column": value, "levelled": False})
+
+
+def _rms(values) -> float:
+    values = np.asarray(values, dtype=float)
+    values = values[np.isfinite(values)]
+    return float(np.sqrt(np.mean(values ** 2))) if values.size else float("nan")
+
+
+def run(ctx: StageContext) -> StageOutput:
+    """Level the lines of ``ctx.table``; see the module docstring."""
+    if ctx.table is None:
+        raise StageError("no readings table", key="level", fix="run the ingest stage first")
+    cfg = ctx.config.level
+    table = ctx.table
+    value = _value_column(table)
+    note_gravity = (" (gravity: anomaly_levelled holds the levelled bouguer_anomaly)"
+                    if value == "bouguer_anomaly" else "")
+    if not cfg.enabled:
+        return _passthrough(table, value, "levelling disabled ([level] enabled = false): "
+                            "anomaly_levelled = " + value + note_gravity)
+    if "line" not in table.columns or "line_type" not in table.columns:
+        return _passthrough(table, value, "no line column: nothing to level; anomaly_levelled = "
+                            + value + note_gravity)
+    is_tie = table["line_type"].astype(str).to_numpy() == "tie"
+    if not is_tie.any() or is_tie.all():
+        what = "no tie lines" if not is_tie.any() else "no traverse lines"
+        return _passthrough(table, value, f"{what} (line_type): levelling skipped, zero "
+                            f"correction; anomaly_levelled = {value}{note_gravity}",
+                            {"crossovers": 0})
+
+    ctx.progress("finding crossovers")
+    lines = table["line"].astype(str).to_numpy()
+    values = table[value].to_numpy(dtype=float)
+    time = table["time"].to_numpy() if "time" in table.columns else None
+    height = table["height"].to_numpy(dtype=float) if "height" in table.columns else None
+    flagged = ~usable(table)
+    crossovers = leveling.find_crossovers(
+        table["easting"].to_numpy(float), table["northing"].to_numpy(float), lines, is_tie,
+        values, time, height, flagged=flagged,
+        max_segment_length=cfg.max_segment_m or None, tie_tie=True)
+    huber = cfg.huber_threshold if cfg.huber_threshold > 0 else None
+    tie_names = list(pd.unique(lines[is_tie]))
+    traverse_names = list(pd.unique(lines[~is_tie]))
+    if crossovers.empty:
+        out = _passthrough(table, value, "no traverse line crosses a tie line: levelling skipped, "
+                           "zero correction" + note_gravity, {"crossovers": 0})
+        out.warnings.append("no crossovers found: check line_type and the tie-line settings in [lines]")
+        out.tables["crossovers"] = crossovers
+        return out
+
+    ctx.progress(f"levelling {len(tie_names)} tie and {len(traverse_names)} traverse lines "
+                 f"on {len(crossovers)} crossovers")
+    if cfg.method == "network":
+        ties, adjust = leveling.adjust_network(
+            crossovers, model=cfg.traverse_model, lines=traverse_names, ties=tie_names,
+            huber_threshold=huber, min_crossovers=cfg.min_crossovers,
+            max_height_difference=cfg.max_height_difference_m)
+    else:
+        ties = leveling.adjust_ties(crossovers, tie_names, huber_threshold=huber,
+                                    max_height_difference=cfg.max_height_difference_m)
+        adjust = leveling.adjust_lines(crossovers, ties.corrections, model=cfg.traverse_model,
+                                       lines=traverse_names, huber_threshold=huber,
+                                       min_crossovers=cfg.min_crossovers,
+                                       max_height_difference=cfg.max_height_difference_m)
+
+    correction = adjust.evaluate(lines, time)
+    correction[is_tie] = pd.Series(lines[is_tie]).map(ties.corrections).fillna(0.0).to_numpy()
+    out = table.copy()
+    out["level_correction"] = correction
+    out["anomaly_levelled"] = values + correction
+
+    # Crossover table with the misclosure after levelling.
+    kind = crossovers["kind"].to_numpy()
+    cx = crossovers.copy()
+    corr_line = np.where(kind == "traverse-tie",
+                         adjust.evaluate(cx["line"].to_numpy(), cx["time_line"].to_numpy()),
+                         cx["line"].map(ties.corrections).fillna(0.0).to_numpy())
+    corr_tie = cx["tie"].map(ties.corrections).fillna(0.0).to_numpy()
+    cx["correction_line"] = corr_line
+    cx["correction_tie"] = corr_tie
+    cx["difference_levelled"] = cx["difference"].to_numpy() + corr_line - corr_tie
+    used = leveling.usable_crossovers(crossovers, None, cfg.max_height_difference_m)
+    cx["used"] = used
+    cx["weight"] = np.where(kind == "traverse-tie", adjust.weights, ties.weights)
+
+    rms_before = _rms(cx["difference"][used])
+    rms_after = _rms(cx["difference_levelled"][used])
+    unit = _unit(ctx.config)
+    line_table = _line_table(out, cx, used, adjust, ties, traverse_names, tie_names,
+                             cfg.min_crossovers)
+    warnings = [f"line {row.line}: {row.warning}" for row in line_table.itertuples()
+                if row.warning]
+    if len(warnings) > 10:
+        warnings = warnings[:10] + [f"... and {len(warnings) - 10} more (see tables/lines.csv)"]
+    if not used.any():
+        warnings.insert(0, f"none of the {len(cx)} crossovers is usable (all flagged or above "
+                        f"max_height_difference_m = {cfg.max_height_difference_m} m): lines "
+                        "keep their level")
+    if ctx.config.kind == "gravity":
+        tol, source = ctx.tolerance("crossover_rms_mGal", 1.0, "common practice (from memory)")
+    else:
+        tol, source = ctx.tolerance("crossover_rms_nT", 1.0)
+    checks = [Check.at_most("crossover RMS after levelling", rms_after, tol, unit, source,
+                            f"{int(used.sum())} crossovers, {rms_before:.3g} {unit} before")]
+    ratio = rms_before / rms_after if rms_after > 0 else float("inf")
+    metrics = {
+        "value_column": value,
+        "crossovers": int(len(cx)),
+        "crossovers_used": int(used.sum()),
+        "crossover_rms_before": rms_before,
+        "crossover_rms_after": rms_after,
+        "crossover_rms_ratio": ratio,
+        "traverse_model": cfg.traverse_model,
+        "method": cfg.method,
+        "unlevelled_lines": len(adjust.unlevelled),
+    }
+    notes = [f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: RMS misclosure "
+             f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({cfg.method.replace('_', '-')}, "
+             f"{cfg.traverse_model} per traverse line; datum: mean tie correction 0)"
+             f"{note_gravity}"]
+    state = {
+        "value_column": value,
+        "levelled": True,
+        "crossover_rms_before": rms_before,
+        "crossover_rms_after": rms_after,
+        "tie_corrections": {str(k): float(v) for k, v in ties.corrections.items()},
+        "unlevelled_lines": list(adjust.unlevelled),
+    }
+    return StageOutput(table=out, metrics=metrics, state=state,
+                       tables={"crossovers": cx, "lines": line_table}, checks=checks,
+                       notes=notes, warnings=warnings)
+
+
+def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers):
+    stats = table.groupby(table["line"].astype(str), sort=False)["level_correction"].agg(
+        ["mean", "min", "max"])
+    rows = []
+    both = pd.concat([
+        pd.DataFrame({"line": cx["line"].astype(str), "before": cx["difference"],
+                      "after": cx["difference_levelled"], "used": used}),
+        pd.DataFrame({"line": cx["tie"].astype(str), "before": cx["difference"],
+                      "after": cx["difference_levelled"], "used": used}),
+    ])
+    both = both[both["used"]]
+    per_line = both.groupby("line")
+    rms_before = per_line["before"].apply(_rms)
+    rms_after = per_line["after"].apply(_rms)
+    count = per_line.size()
+    for name, kind in [(n, "traverse") for n in traverse_names] + [(n, "tie") for n in tie_names]:
+        warning = ""
+        if kind == "traverse":
+            deg = int(adjust.degree.get(name, -1))
+            if name in adjust.unlevelled:
+                warning = (f"only {int(adjust.counts.get(name, 0))} usable crossover(s) "
+                           f"(< min_crossovers = {min_crossovers}): level kept")
+            elif deg < leveling.MODEL_DEGREE[adjust.model]:
+                warning = f"too few crossovers for a {adjust.model} correction: degree {deg} used"
+        elif ties.method.get(name, "none") == "none":
+            warning = "no usable crossover: tie level kept"
+        rows.append({
+            "line": name,
+            "type": kind,
+            "crossovers": int(count.get(name, 0)),
+            "correction_mean": float(stats["mean"].get(name, np.nan)),
+            "correction_min": float(stats["min"].get(name, np.nan)),
+            "correction_max": float(stats["max"].get(name, np.nan)),
+            "crossover_rms_before": float(rms_before.get(name, np.nan)),
+            "crossover_rms_after": float(rms_after.get(name, np.nan)),
+            "warning": warning,
+        })
+    return pd.DataFrame(rows)
+
+
+def micro_level_table(table: pd.DataFrame, grid, line_spacing: float, config_level) -> np.ndarray:
+    """Per-reading micro-levelling corrections (Minty 1991), for the grid stage.
+
+    Call this with the grid made from the levelled readings when ``[level] micro_levelling`` is
+    true; add the returned array to the gridded value column (e.g. ``anomaly_levelled``) and grid
+    again. The corrugation of ``grid`` is estimated by :func:`potfield.fields.leveling.micro_level`
+    (high-pass across the traverse lines with cut-off ``micro_cutoff_spacings * line_spacing``,
+    low-pass along them with cut-off ``micro_along_spacings * line_spacing``, clipped to
+    ``+-micro_max_amplitude``), sampled at every reading (bilinear), low-passed along each line
+    with the same along-line cut-off, and negated.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        Readings with ``easting``, ``northing``, ``line``, optional ``line_type`` (the line
+        direction is the mean direction of the traverse lines) and ``distance`` (else it is
+        computed from the coordinates).
+    grid : xarray.DataArray
+        The gridded levelled values (``northing``, ``easting`` dimensions, regular spacing).
+    line_spacing : float
+        Nominal traverse line spacing (m), e.g. ``ctx.state["ingest"]["line_spacing_m"]``.
+    config_level : potfield.config.LevelSection
+        The ``[level]`` section.
+
+    Returns
+    -------
+    numpy.ndarray, shape (len(table),)
+        Correction to ADD to each reading (field units); 0 for readings outside the grid.
+
+    References
+    ----------
+    Minty, B. R. S. (1991). Simple micro-levelling for aeromagnetic data. Exploration
+    Geophysics 22:591-592.
+    """
+    if not line_spacing or not np.isfinite(line_spacing) or line_spacing <= 0:
+        raise StageError(f"micro-levelling needs a positive line spacing, got {line_spacing}",
+                         key="level.micro_levelling",
+                         fix="set [level] micro_levelling = false for surveys without regular lines")
+    east = table["easting"].to_numpy(float)
+    north = table["northing"].to_numpy(float)
+    lines = table["line"].astype(str).to_numpy()
+    trav = (table["line_type"].astype(str).to_numpy() != "tie") if "line_type" in table \
+        else np.ones(len(table), dtype=bool)
+    direction = leveling.line_azimuth(east[trav], north[trav], lines[trav])
+    along = config_level.micro_along_spacings * line_spacing
+    corrugation = leveling.micro_level(
+        grid, direction, line_spacing, config_level.micro_cutoff_spacings,
+        config_level.micro_max_amplitude, along_wavelength=along)
+    sampled = leveling.sample_grid(corrugation, east, north)
+    if "distance" in table:
+        distance = table["distance"].to_numpy(float)
+    else:
+        step = np.hypot(np.diff(east, prepend=east[:1]), np.diff(north, prepend=north[:1]))
+        step[np.r_[True, lines[1:] != lines[:-1]]] = 0.0
+        distance = pd.Series(step).groupby(lines).cumsum().to_numpy()
+    smooth = leveling.lowpass_along_lines(sampled, lines, distance, along)
+    return -np.nan_to_num(smooth, nan=0.0)
+
+
+STAGE = Stage(
+    name="level",
+    summary="tie-line levelling: crossovers, ties to each other, traverse lines to ties (robust)",
+    run=run,
+    sections=("level", "lines"),
+    inputs=None,
+    kinds=("magnetic", "gravity"),
+)
