@@ -207,6 +207,7 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             "config_hash": config.full_hash(),
             "packages": package_versions(),
             "inputs": {},
+            "spec": {k: list(v) for k, v in spec.items()},
             "stages": dict(old_stages),
         }
         checksums: dict[str, str] = {}
@@ -255,7 +256,8 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                 continue
             say(f"{name}: running")
             ctx = StageContext(config=config, survey=survey, table=table, state=state, spec=spec,
-                               grids=_LazyGrids(grids), progress=lambda m, n=name: say(f"{name}: {m}"))
+                               grids=_LazyGrids(grids), progress=lambda m, n=name: say(f"{n}: {m}"),
+                               manifest=manifest)
             started = time.perf_counter()
             output = stage.run(ctx)
             if not isinstance(output, StageOutput):
@@ -267,6 +269,7 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             for g in entry["grids"]:
                 grids[g] = survey.grids / f"{g}.nc"
             manifest["stages"][name] = entry
+            write_json(survey.manifest_path, manifest)  # a later failure keeps this stage's record
             records.append(StageRecord(name, "done", seconds, output.notes, output.warnings))
             say(f"{name}: done in {seconds:.1f} s")
         # Drop records of stages after the last one that ran in this order: they are stale.
@@ -292,6 +295,11 @@ class _LazyGrids(dict):
 
     def __contains__(self, key):
         return key in self._paths
+
+    @property
+    def paths(self) -> dict:
+        """Grid name -> file path (grids written by earlier stages)."""
+        return dict(self._paths)
 
     def __getitem__(self, key):
         if not dict.__contains__(self, key):

@@ -177,3 +177,22 @@ def test_error_wrong_unit(magnetic_survey, capsys):
 
 def test_error_new_over_existing(magnetic_survey, capsys):
     assert "already exists" in _error(capsys, ["new", str(magnetic_survey), "--kind", "gravity"])
+
+
+def test_manifest_keeps_finished_stages_when_a_later_one_fails(magnetic_survey, capsys):
+    # --until reference finishes; then a broken [reference] date makes the next run fail there,
+    # and the manifest must still hold the stages that finished before it.
+    assert main(["run", str(magnetic_survey), "--until", "clean"]) == 0
+    _edit(magnetic_survey, "[reference]\n", "[reference]\nigrf_date = \"1850-01-01\"\n")
+    msg = _error(capsys, ["run", str(magnetic_survey), "--until", "reference"])
+    assert "1900" in msg
+    manifest = json.loads((magnetic_survey / "out" / "manifest.json").read_text())
+    assert manifest["stages"]["clean"]["status"] == "done"
+
+
+def test_from_reuses_earlier_stages(magnetic_survey, capsys):
+    assert main(["run", str(magnetic_survey), "--until", "clean"]) == 0
+    capsys.readouterr()
+    assert main(["run", str(magnetic_survey), "--from", "clean", "--until", "clean"]) == 0
+    out = capsys.readouterr().out
+    assert "clean: unchanged, reused" in out and "ingest" not in out.split("clean")[0]
