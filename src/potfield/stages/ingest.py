@@ -18,7 +18,7 @@ import pyproj
 from ..config import SurveyConfig
 from ..errors import CRSError, InputDataError, format_rows
 from ..io.delimited import TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
-from .base import Stage, StageContext, StageOutput
+from .base import Check, Stage, StageContext, StageOutput
 
 NUMERIC_COLUMNS = ("longitude", "latitude", "easting", "northing", "height", "total_field",
                    "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation")
@@ -205,7 +205,8 @@ def line_geometry(table: pd.DataFrame) -> dict:
     0-180 deg); the spacing is the median gap between sorted perpendicular offsets of the line
     centroids (common practice).
     """
-    result = {"line_direction_deg": None, "line_spacing_m": None, "tie_spacing_m": None}
+    result = {"line_direction_deg": None, "line_spacing_m": None, "tie_spacing_m": None,
+              "line_spacing_max_deviation": None}
     if len(table) < 2:
         return result
     grouped = table.groupby("line", sort=False)
@@ -232,6 +233,9 @@ def line_geometry(table: pd.DataFrame) -> dict:
                 gaps = gaps[gaps > 1.0]
                 if gaps.size:
                     result[key] = float(np.median(gaps))
+                    if kind == "traverse":
+                        result["line_spacing_max_deviation"] = float(
+                            np.max(np.abs(gaps - result[key])) / result[key])
     if result["line_spacing_m"] is None:
         # Station surveys: median nearest-neighbour distance between distinct positions.
         from scipy.spatial import cKDTree
@@ -296,9 +300,16 @@ def run(ctx: StageContext) -> StageOutput:
         "line_spacing_m": geometry["line_spacing_m"],
         "tie_spacing_m": geometry["tie_spacing_m"],
     }
+    checks = []
+    if geometry.get("line_spacing_max_deviation") is not None:
+        tol, source = ctx.tolerance("line_spacing_tolerance_fraction", 0.25)
+        checks.append(Check.at_most(
+            "line spacing: largest deviation of adjacent traverse lines from nominal (fraction)",
+            geometry["line_spacing_max_deviation"], tol, "", source,
+            detail=f"nominal {geometry['line_spacing_m']:.0f} m from line centroids"))
     notes = [f"{len(table):,} readings from {len(files)} file(s) on {table['line'].nunique()} line(s); "
              f"output CRS {out_crs.name}"]
-    return StageOutput(table=table, metrics=metrics, state=state, notes=notes)
+    return StageOutput(table=table, metrics=metrics, state=state, notes=notes, checks=checks)
 
 
 def _inputs(config, survey):
