@@ -315,13 +315,16 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     heading_e = np.where(is_tie, 0.0, direction)
     heading_n = np.where(is_tie, direction, 0.0)
     speed = SPEED + wind[0] * heading_e + wind[1] * heading_n + geo.normal(0.0, 0.8, n_lines)
-    counts = np.floor(side / (speed / RATE_HZ)).astype(np.int64) + 1
+    # Every line runs one traverse spacing past the area on both ends, so the outermost
+    # traverses cross every tie even with track wander (common practice).
+    margin = LINE_SPACING
+    counts = np.floor((side + 2 * margin) / (speed / RATE_HZ)).astype(np.int64) + 1
     total = int(counts.sum())
     line_idx = np.repeat(np.arange(n_lines), counts)
     starts = np.r_[0, np.cumsum(counts)[:-1]]
     k = np.arange(total) - starts[line_idx]
     along = speed[line_idx] * k / RATE_HZ  # m from the line start
-    coord_along = np.where(direction[line_idx] > 0, -side / 2 + along, side / 2 - along)
+    coord_along = np.where(direction[line_idx] > 0, -side / 2 - margin + along, side / 2 + margin - along)
     wander = common.fourier_wander(geo, line_idx, along, n_lines, 9.0, (3200.0, 1300.0, 520.0))
     cross = offsets[line_idx] + wander
     tie_r = is_tie[line_idx]
