@@ -172,9 +172,23 @@ def write_table(path: Path, frame: pd.DataFrame, decimals: dict[str, int] | None
     return write_csv(path, frame, float_format=None, lineterminator="\n")
 
 
+def _round_floats(value, digits: int = 9):
+    """Round every float to ``digits`` significant digits, so last-bit differences of parallel
+    numerical kernels never change the file."""
+    if isinstance(value, dict):
+        return {k: _round_floats(v, digits) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_round_floats(v, digits) for v in value]
+    if isinstance(value, (float, np.floating)):
+        return float(f"{float(value):.{digits}g}")
+    if isinstance(value, np.ndarray):
+        return _round_floats(value.tolist(), digits)
+    return value
+
+
 def write_params(path: Path, params: dict) -> Path:
-    """Scenario parameters as JSON with sorted keys."""
-    return write_json(path, params)
+    """Scenario parameters as JSON with sorted keys and floats rounded to 9 significant digits."""
+    return write_json(path, _round_floats(params))
 
 
 def write_readme(path: Path, text: str) -> Path:
