@@ -20,7 +20,7 @@ All data are invented (fictional area, see :mod:`potfield.demo.common`). The sce
 * the meter reading (mGal on the meter's own level) = g_true - instrument height x 0.3086 mGal/m
   (common practice free-air gradient) + the Earth tide the meter sees (Longman 1959, J. Geophys.
   Res. 64:2351, potfield.fields.tides.longman_gravity with factor 1.16) - a meter offset + drift
-  (linear per day, 0.02-0.05 mGal/h) + one tare (0.08 mGal) + noise (8 uGal); converted to
+  (linear per day, 0.015-0.035 mGal/h) + one tare (0.08 mGal) + noise (8 uGal); converted to
   counter units through the inverse of the calibration (interval) table in raw/ (Hinze, von
   Frese and Saad 2013, Gravity and Magnetic Exploration, CUP);
 * recorded station heights carry realistic errors (a few cm, a few up to 0.1 m).
@@ -360,7 +360,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     tide = longman_gravity(lon[occ_station], lat[occ_station], h_true[occ_station], times,
                            GRAVIMETRIC_FACTOR)
     n_days = int(occ_day.max()) + 1
-    rates = meter.uniform(0.02, 0.05, n_days)  # mGal/h
+    rates = meter.uniform(0.015, 0.035, n_days)  # mGal/h (a well-behaved meter, inside spec)
     day_offsets = meter.normal(0.0, 0.3, n_days)
     day_start = np.array([occ_sec[occ_day == d].min() for d in range(n_days)])
     drift = day_offsets[occ_day] + rates[occ_day] * (occ_sec - day_start[occ_day]) / 3600.0
@@ -573,7 +573,7 @@ rising to the east.
 
 ## What to look at in the results
 
-- The network adjustment should find drift rates of 0.02-0.05 mGal/h and the 0.08 mGal tare;
+- The network adjustment should find drift rates of 0.015-0.035 mGal/h and the 0.08 mGal tare;
   station gravity should match truth `g_true` to about 0.01-0.02 mGal.
 - The complete Bouguer anomaly should match `bouguer_anomaly_true` to about 0.01 mGal plus two
   known effects: the recorded height errors (about 0.2 mGal per metre), and the topography
