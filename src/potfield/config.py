@@ -193,6 +193,11 @@ class DiurnalSection(Section):
     enabled: bool = True
     #: Base magnetometers ([[diurnal.bases]] tables).
     bases: list[BaseStation] = Field(default_factory=list)
+    #: Remote reference when there is no base: the coefficient table of an observatory-network
+    #: run (its out/tables/coefficients.csv), evaluated at every reading by
+    #: potfield.fields.separation.external_field_at. The station table beside it
+    #: (station_residuals.csv, with longitude/latitude) names the nearest station in the caution.
+    remote_reference: str | None = None
     #: Interpolation of the base record to the readings' times.
     interpolation: Literal["linear", "cubic", "nearest"] = "linear"
     #: "median" (over the survey), "value" (datum_value) or "time" (base value at datum_time).
@@ -334,9 +339,14 @@ class GridSection(Section):
     #: Search for source depth (multiples of block size) and damping by blocked CV.
     depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 6.0])
     dampings: list[float] = Field(default_factory=lambda: [1e-3, 1e-1, 1e1])
+    #: Number of folds of the blocked K-fold cross-validation.
     cv_folds: int = 4
     #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
     mask_distance_m: float = 0.0
+    #: Equivalent-source solver: "auto" (dense up to 4000 sources, else FFT lattice), "dense"
+    #: (sources beneath the blocks) or "fft" (lattice layer, conjugate gradients).
+    method: Literal["auto", "dense", "fft"] = "auto"
+    #: Tiled gridding of very large surveys (potfield.fields.tiles) and the tile size (m).
     tiled: bool = False
     tile_size_m: float = 0.0
 
@@ -379,14 +389,35 @@ class DeriveSection(Section):
 
 
 class SeparateSection(Section):
+    #: Regional/residual method(s): "upward" (upward continuation, Jacobsen 1987), "two_layer"
+    #: (deep + shallow equivalent sources) or "both"; the readings' regional/residual columns come
+    #: from the first one ("upward" for "both").
     method: Literal["upward", "two_layer", "both"] = "both"
-    regional_height_m: float = 2000.0
-    deep_depth_m: float | None = None
-    shallow_depth_m: float | None = None
+    #: Upward-continuation height (m) of the regional field.
+    regional_height_m: float = Field(2000.0, gt=0)
+    #: Two-layer: depth (m) of the deep layer below the grid surface; None = regional_height_m.
+    deep_depth_m: float | None = Field(None, gt=0)
+    #: Two-layer: depth (m) of the shallow layer; None = 3 x the spacing of the fitted data.
+    shallow_depth_m: float | None = Field(None, gt=0)
+    #: Two-layer: wavelength (m) shared equally by the layers (sets the shallow damping);
+    #: None = 3 x regional_height_m.
+    crossover_wavelength_m: float | None = Field(None, gt=0)
+    #: Two-layer: damping of the deep layer, and of the shallow one (None = from the crossover).
+    deep_damping: float = Field(1e-3, ge=0)
+    shallow_damping: float | None = Field(None, ge=0)
+    #: Two-layer: most grid cells used in the joint fit (the grid is decimated to this; the dense
+    #: solve costs about N^2 memory).
+    two_layer_max_data: int = Field(3000, ge=100, le=20000)
+    #: FFT padding per side (fraction of the grid size, >= 0.25) and mode ("edge" or "reflect").
+    pad_fraction: float = Field(1.0, ge=0.25, le=4.0)
+    pad_mode: Literal["edge", "reflect"] = "edge"
+    #: Vector data on a plane: the side ("external" or "internal") given the uniform part.
+    uniform_part: Literal["external", "internal"] = "external"
     #: Observatory: spherical-harmonic degree of the internal and external potentials.
-    internal_degree: int = 1
-    external_degree: int = 1
-    damping: float = 0.0
+    internal_degree: int = Field(1, ge=0, le=10)
+    external_degree: int = Field(1, ge=0, le=10)
+    #: Observatory: Tikhonov damping of the Gauss-coefficient fit (0 = none; > 0 for sparse networks).
+    damping: float = Field(0.0, ge=0)
 
 
 class ReportSection(Section):

@@ -187,6 +187,8 @@ def run(ctx: StageContext) -> StageOutput:
     if not cfg.enabled:
         return StageOutput(notes=["diurnal correction disabled ([diurnal] enabled = false)"])
     if not cfg.bases:
+        if cfg.remote_reference:
+            return _remote_reference(ctx)
         return StageOutput(notes=["no base station given: diurnal correction not applied"])
     table = ctx.table.copy()
     reading_time = table["time"].to_numpy(dtype="datetime64[ns]")
@@ -331,8 +333,49 @@ def run(ctx: StageContext) -> StageOutput:
                        checks=checks, notes=notes, warnings=warnings)
 
 
+def _remote_reference(ctx: StageContext) -> StageOutput:
+    """Diurnal correction from an observatory network's fitted external field (no local base)."""
+    from ..fields.separation import external_field_at, remote_reference_caution
+
+    cfg = ctx.config.diurnal
+    path = ctx.survey.resolve(cfg.remote_reference)
+    if not path.is_file():
+        raise InputDataError("remote-reference coefficient table not found", file=path,
+                             key="diurnal.remote_reference",
+                             fix="run the observatory network first and point at its out/tables/coefficients.csv")
+    coefficients = pd.read_csv(path)
+    table = ctx.table.copy()
+    variation = external_field_at(coefficients, table["longitude"].to_numpy(), table["latitude"].to_numpy(),
+                                  table["height"].to_numpy(), table["time"].to_numpy(dtype="datetime64[ns]"))
+    missing = ~np.isfinite(variation)
+    if missing.all():
+        raise InputDataError("the remote-reference coefficients do not cover the survey's times",
+                             file=path, key="diurnal.remote_reference",
+                             fix="use a network run that spans the survey days")
+    datum = float(np.nanmedian(variation)) if cfg.datum == "median" else float(cfg.datum_value or 0.0)
+    table["diurnal"] = np.where(missing, 0.0, variation - datum)
+    table["flag_base_gap"] = missing
+    stations_path = path.with_name("station_residuals.csv")
+    lon_c, lat_c = float(table["longitude"].mean()), float(table["latitude"].mean())
+    warnings = []
+    if stations_path.is_file():
+        stations = pd.read_csv(stations_path)
+        if {"station", "longitude", "latitude"} <= set(stations.columns):
+            warnings.append(remote_reference_caution(stations, lon_c, lat_c))
+    if not warnings:
+        warnings.append("Diurnal correction from a remote reference (observatory network model), "
+                        "not a local base: check the levelling misclosures before relying on it.")
+    return StageOutput(table=table, warnings=warnings,
+                       metrics={"method": "remote reference", "datum_nT": datum,
+                                "readings_without_reference": int(missing.sum())},
+                       notes=[f"diurnal correction from {cfg.remote_reference} (remote reference)"])
+
+
 def _inputs(config, survey):
-    return [survey.resolve(b.file) for b in config.diurnal.bases]
+    files = [survey.resolve(b.file) for b in config.diurnal.bases]
+    if not config.diurnal.bases and config.diurnal.remote_reference:
+        files.append(survey.resolve(config.diurnal.remote_reference))
+    return files
 
 
 STAGE = Stage(
