@@ -1,0 +1,267 @@
+"""grid stage: harmonic gridding of the best value column with equivalent sources.
+
+Glue only: picks the value column, block-reduces the usable readings, chooses source depth and
+damping by blocked cross-validation, fits :func:`potfield.fields.eqsources.fit_equivalent_sources`,
+predicts a masked regular grid at constant height (or on a drape surface), adds the residual at
+every reading, saves the fitted sources for later stages, and optionally micro-levels and grids
+again. Methods: Dampney (1969) Geophysics 34:39; Cordell (1992) Geophysics 57:629; Soler and Uieda
+(2021) GJI 227:1768; Takahashi, Oliveira and Barbosa (2020) Geophysics 85(6):G129.
+"""
+
+from __future__ import annotations
+
+import importlib
+import math
+
+import numpy as np
+import pandas as pd
+
+from ..errors import ConfigError, StageError
+from ..fields import eqsources as eqs
+from ..io.grids import make_grid
+from .base import Stage, StageContext, StageOutput, usable
+
+#: Value columns in order of preference.
+VALUE_COLUMNS = ("anomaly_levelled", "anomaly", "bouguer_anomaly")
+#: Fewest block-reduced data for a blocked cross-validation; fewer use the middle of the search.
+MIN_CV_DATA = 40
+
+
+def _value_column(table: pd.DataFrame) -> str:
+    for name in VALUE_COLUMNS:
+        if name in table.columns:
+            return name
+    raise StageError(f"the readings table has none of the columns {', '.join(VALUE_COLUMNS)}",
+                     key="grid", fix="run the reference (and level) stages before the grid stage")
+
+
+def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing):
+    """Cell size (m) and how it was chosen."""
+    cfg = ctx.config.grid
+    if cfg.spacing_m > 0:
+        return float(cfg.spacing_m), "[grid] spacing_m"
+    if line_spacing:
+        # Common practice: a quarter to a fifth of the line spacing.
+        return float(line_spacing) / 4.0, "a quarter of the line spacing"
+    e = table["easting"].to_numpy(float)[ok]
+    n = table["northing"].to_numpy(float)[ok]
+    if ctx.config.kind == "gravity" or "distance" not in table.columns:
+        return eqs.median_spacing(e, n), "median nearest-neighbour distance of the stations"
+    dist = table["distance"].to_numpy(float)[ok]
+    lines = table["line"].astype(str).to_numpy()[ok]
+    step = np.abs(np.diff(dist))[lines[1:] == lines[:-1]]
+    step = step[step > 0]
+    return 5.0 * float(np.median(step)), "5 x the median along-line sample distance"
+
+
+def _grid_height(ctx, heights):
+    value = ctx.config.grid.height
+    if value is None:
+        return float(np.median(heights)), "median reading height"
+    if isinstance(value, str):
+        if value.strip().lower() == "drape":
+            return "drape", "drape (the readings' heights)"
+        try:
+            return float(value), "[grid] height"
+        except ValueError:
+            raise ConfigError(f"grid height '{value}' is neither a number nor 'drape'",
+                              key="grid.height",
+                              fix="give a height in metres, 'drape', or remove the key") from None
+    return float(value), "[grid] height"
+
+
+def _drape_surface(e, n, h, grid_e, grid_n):
+    """Heights of the readings interpolated on the grid (mean of the 10 nearest readings)."""
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(np.column_stack([e, n]))
+    _, idx = tree.query(np.column_stack([grid_e.ravel(), grid_n.ravel()]), k=min(10, e.size))
+    return h[idx].reshape(idx.shape[0], -1).mean(axis=1).reshape(grid_e.shape)
+
+
+def _grid(model, region, spacing, height, data_e, data_n, data_h, mask_distance, name, units,
+          long_name, history):
+    import verde as vd
+
+    grid_e, grid_n = vd.grid_coordinates(region, spacing=spacing, adjust="region")
+    if height == "drape":
+        upward = _drape_surface(data_e, data_n, data_h, grid_e, grid_n)
+    else:
+        upward = np.full(grid_e.shape, float(height))
+    keep = vd.distance_mask((data_e, data_n), maxdist=mask_distance, coordinates=(grid_e, grid_n))
+    values = np.full(grid_e.shape, np.nan)
+    if keep.any():
+        values[keep] = model.predict((grid_e[keep], grid_n[keep], upward[keep]))
+    grid = make_grid(grid_e[0], grid_n[:, 0], values, name=name, units=units, long_name=long_name,
+                     history=history)
+    if height == "drape":
+        grid = grid.assign_coords(upward=(("northing", "easting"), upward))
+    else:
+        grid.attrs["height"] = float(height)
+    return grid
+
+
+def _fit(e, n, h, d, cfg, block, line_spacing, progress):
+    """Block-reduce, cross-validate depth and damping, fit on all blocks."""
+    import verde as vd
+
+    reducer = vd.BlockReduce(np.median, spacing=block, drop_coords=False)
+    (be, bn, bh), bd = reducer.filter((e, n, h), d)
+    be, bn, bh, bd = (np.asarray(a, dtype=float).ravel() for a in (be, bn, bh, bd))
+    depths = [float(f) * block for f in cfg.depth_factors]
+    dampings = [float(x) for x in cfg.dampings]
+    extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
+    if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
+        # CV blocks: 10 cells, but at least 3 x the largest depth and at most a quarter of the
+        # survey so every fold holds several blocks (common practice).
+        cv_spacing = min(max(10.0 * block, 3.0 * max(depths)), extent / 4.0)
+        progress(f"grid: cross-validating {len(depths)} depths x {len(dampings)} dampings "
+                 f"on {bd.size} blocks")
+        scores, best = eqs.cross_validate(be, bn, bh, bd, depths=depths, dampings=dampings,
+                                          block_size=block, method=cfg.method,
+                                          folds=cfg.cv_folds, cv_spacing=cv_spacing)
+    else:
+        scores = pd.DataFrame(columns=["depth", "damping", "r2", "rms"])
+        best = {"depth": depths[len(depths) // 2], "damping": dampings[len(dampings) // 2],
+                "r2": float("nan"), "rms": float("nan")}
+    progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
+    model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
+                                       damping=best["damping"], block_size=block,
+                                       method=cfg.method)
+    return model, scores, best, bd.size
+
+
+def run(ctx: StageContext) -> StageOutput:
+    """Grid the value column; see the module docstring."""
+    table = ctx.table
+    if table is None or len(table) == 0:
+        raise StageError("no readings to grid", key="grid", fix="run the ingest stage first")
+    cfg = ctx.config.grid
+    column = _value_column(table)
+    for name in ("easting", "northing", "height"):
+        if name not in table.columns:
+            raise StageError(f"the readings table has no '{name}' column", key="grid",
+                             fix="run the ingest stage first")
+    values = table[column].to_numpy(float)
+    e_all = table["easting"].to_numpy(float)
+    n_all = table["northing"].to_numpy(float)
+    h_all = table["height"].to_numpy(float)
+    ok = usable(table) & np.isfinite(values) & np.isfinite(e_all) & np.isfinite(n_all) \
+        & np.isfinite(h_all)
+    if ok.sum() < 10:
+        raise StageError(f"only {int(ok.sum())} usable readings of '{column}' to grid",
+                         key="grid", fix="check the flags of the clean stage or add data")
+    ingest = ctx.state.get("ingest", {})
+    line_spacing = ingest.get("line_spacing_m")
+    line_spacing = float(line_spacing) if line_spacing and math.isfinite(line_spacing) else None
+    spacing, spacing_why = _cell_size(ctx, table, ok, line_spacing)
+    if not (spacing > 0 and math.isfinite(spacing)):
+        raise StageError("cannot derive a cell size from the data", key="grid.spacing_m",
+                         fix="set [grid] spacing_m to the cell size in metres")
+    block = float(cfg.block_m) if cfg.block_m > 0 else spacing
+    e, n, h, d = e_all[ok], n_all[ok], h_all[ok], values[ok]
+    height, height_why = _grid_height(ctx, h)
+    if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.depth_factors) * block:
+        raise ConfigError(f"grid height {height} m is below the equivalent sources",
+                          key="grid.height", fix="grid at or above the readings' heights")
+    mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
+        2.0 * (line_spacing if line_spacing else 4.0 * spacing)
+    gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
+    name = "bouguer_anomaly" if gravity else "anomaly"
+    units = "mGal" if gravity else "nT"
+    long_name = "Bouguer anomaly" if column == "bouguer_anomaly" else (
+        "gravity anomaly" if gravity else "total-field magnetic anomaly")
+    region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
+
+    out = StageOutput()
+    model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress)
+    history = (f"equivalent sources ({model.method}) of '{column}': depth {best['depth']:.1f} m, "
+               f"damping {best['damping']:g}, blocks {block:g} m")
+    grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name,
+                 history)
+
+    result = table.copy()
+    micro_note = None
+    if ctx.config.level.micro_levelling:
+        micro_level_table = None
+        for module in ("potfield.fields.leveling", "potfield.stages.level"):
+            try:
+                micro_level_table = getattr(importlib.import_module(module), "micro_level_table")
+                break
+            except (ImportError, AttributeError):
+                continue
+        if micro_level_table is None or not line_spacing:
+            micro_note = ("micro-levelling skipped: " + ("no line spacing" if micro_level_table
+                                                          else "micro_level_table not available"))
+        else:
+            correction = np.asarray(micro_level_table(table, grid, line_spacing, ctx.config.level),
+                                    dtype=float)
+            result["micro_level_correction"] = correction
+            result[f"{column}_micro"] = values + correction
+            d = (values + correction)[ok]
+            model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing,
+                                                 ctx.progress)
+            history += "; micro-levelled (Minty 1991) and gridded again"
+            grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units,
+                         long_name, history)
+            values = values + correction
+            column = f"{column}_micro"
+            micro_note = "micro-levelled (Minty 1991) and gridded again"
+    if micro_note:
+        out.notes.append(micro_note)
+
+    finite_pos = np.isfinite(e_all) & np.isfinite(n_all) & np.isfinite(h_all)
+    predicted = np.full(len(table), np.nan)
+    predicted[finite_pos] = model.predict((e_all[finite_pos], n_all[finite_pos],
+                                           h_all[finite_pos]))
+    result["grid_residual"] = values - predicted
+    resid_rms = float(np.sqrt(np.nanmean(result["grid_residual"].to_numpy(float)[ok] ** 2)))
+
+    model_path = ctx.survey.cache / "eqs_model.npz"
+    eqs.save_model(model_path, model)
+
+    out.table = result
+    out.grids[name] = grid
+    out.tables["grid_cv"] = scores
+    out.state = {
+        "column": column,
+        "grid": name,
+        "method": model.method,
+        "depth": float(best["depth"]),
+        "damping": float(best["damping"]),
+        "block_m": block,
+        "spacing_m": spacing,
+        "height": None if height == "drape" else float(height),
+        "drape": height == "drape",
+        "region": list(region),
+        "mask_distance_m": float(mask_distance),
+        "model_path": str(model_path),
+        "units": units,
+    }
+    out.metrics = {
+        "grid_method": model.method,
+        "grid_cells": int(grid.size),
+        "grid_blocks": int(n_blocks),
+        "grid_sources": model.n_sources,
+        "grid_spacing_m": spacing,
+        "grid_depth_m": float(best["depth"]),
+        "grid_damping": float(best["damping"]),
+        "grid_cv_r2": float(best["r2"]),
+        "grid_cv_rms": float(best["rms"]),
+        "grid_residual_rms": resid_rms,
+    }
+    out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
+                     f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
+                     f"({height_why}), {model.method} equivalent sources, CV R2 "
+                     f"{best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
+    return out
+
+
+STAGE = Stage(
+    name="grid",
+    summary="harmonic gridding with equivalent sources (blocked CV of depth and damping)",
+    run=run,
+    sections=("grid", "level"),
+    inputs=None,
+    kinds=("magnetic", "gravity"),
+)

@@ -1,0 +1,417 @@
+"""separate stage: separation of sources.
+
+Glue only; the methods are in :mod:`potfield.fields.separation` and
+:mod:`potfield.fields.spherical`.
+
+Magnetic and gravity surveys (needs the grid stage's ``anomaly`` or ``bouguer_anomaly`` grid)
+    Regional and residual by upward continuation to ``[separate] regional_height_m`` (Jacobsen
+    1987; by predicting the grid stage's equivalent-source model at the higher surface when
+    there is one, else by FFT) and/or by two equivalent-source layers (the deep layer is the
+    regional). Grids ``regional_upward``, ``residual_upward``, ``regional_two_layer``,
+    ``residual_two_layer``; columns ``regional`` and ``residual`` (from the first method) at
+    each reading. With vector columns ``mag_north``, ``mag_east``, ``mag_down`` (magnetic
+    surveys), the components are gridded and split into the parts of sources below and above
+    the survey plane (Weaver 1964; Porath, Oldenburg and Gough 1970): grids and columns
+    ``internal_north`` ... ``external_down``. Without a grid the stage passes through with a note.
+
+Observatory surveys
+    Gauss coefficients of the internal and external potentials at every epoch from the
+    stations' disturbance (``disturbance_north/east/down`` of the reference stage) (Gauss 1839;
+    Chapman and Bartels 1940; Olsen, Glassmeier and Jia 2010): tables ``coefficients`` and
+    ``station_residuals``, columns ``sep_internal_*``, ``sep_external_*``, ``sep_residual_*``,
+    the induced/external ratio g10/q10 and a residual check.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import StageError
+from ..fields import separation as sep
+from .base import Check, Stage, StageContext, StageOutput, usable
+
+#: Main grids by survey kind, in order of preference.
+MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
+#: Value columns (the field that was gridded) by survey kind, in order of preference.
+VALUE_COLUMNS = {"magnetic": ("anomaly_levelled", "anomaly"),
+                 "gravity": ("anomaly_levelled", "bouguer_anomaly", "anomaly")}
+VECTOR = ("mag_north", "mag_east", "mag_down")
+COMPONENTS = ("north", "east", "down")
+
+
+# ----------------------------------------------------------------------------------------------
+# observatory networks
+# ----------------------------------------------------------------------------------------------
+def _disturbance(table: pd.DataFrame, comp: str) -> np.ndarray:
+    column = f"disturbance_{comp}"
+    if column in table.columns:
+        return table[column].to_numpy(dtype=float)
+    if f"mag_{comp}" in table.columns and f"igrf_{comp}" in table.columns:
+        return table[f"mag_{comp}"].to_numpy(dtype=float) - table[f"igrf_{comp}"].to_numpy(dtype=float)
+    raise StageError(
+        f"the readings table has no '{column}' column (nor mag_{comp} and igrf_{comp})",
+        key="input.columns",
+        fix="map the stations' X, Y, Z columns to mag_north, mag_east, mag_down and run the "
+            "reference stage before separate")
+
+
+def run_observatory(ctx: StageContext) -> StageOutput:
+    """Internal/external separation on the sphere for an observatory network.
+
+    Parameters
+    ----------
+    ctx : StageContext
+        Table with ``station``, ``time``, ``longitude``, ``latitude``, ``height`` and
+        ``disturbance_north/east/down`` (observed minus IGRF-14, reference stage).
+
+    Returns
+    -------
+    StageOutput
+
+    References
+    ----------
+    Gauss (1839); Chapman and Bartels (1940), Geomagnetism, Oxford; Olsen, Glassmeier and Jia
+    (2010), Space Sci. Rev. 152:135.
+    """
+    cfg = ctx.config.separate
+    table = ctx.table
+    if table is None:
+        raise StageError("no readings table", fix="run the ingest stage first")
+    for name in ("time", "longitude", "latitude", "height"):
+        if name not in table.columns:
+            raise StageError(f"the readings table has no '{name}' column", key="input.columns",
+                             fix=f"map a column to '{name}' in survey.toml")
+    station_col = "station" if "station" in table.columns else "line"
+    values = {c: _disturbance(table, c) for c in COMPONENTS}
+    ok = usable(table)
+    for c in COMPONENTS:
+        values[c] = np.where(ok, values[c], np.nan)
+    st_codes, st_names = pd.factorize(table[station_col].astype(str), sort=True)
+    t_codes, t_unique = pd.factorize(table["time"], sort=True)
+    n_t, n_s = len(t_unique), len(st_names)
+    positions = (pd.DataFrame({"station": st_codes, "longitude": table["longitude"].to_numpy(float),
+                               "latitude": table["latitude"].to_numpy(float),
+                               "height": table["height"].to_numpy(float)})
+                 .groupby("station").median().sort_index())
+    arrays = {}
+    for c in COMPONENTS:
+        grid = np.full((n_t, n_s), np.nan)
+        grid[t_codes, st_codes] = values[c]
+        arrays[c] = grid
+    ctx.progress(f"Gauss coefficients at {n_t} epochs from {n_s} stations")
+    fit = sep.fit_gauss_coefficients(
+        arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
+        positions["latitude"].to_numpy(), positions["height"].to_numpy(),
+        internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
+        damping=cfg.damping, stations=list(st_names))
+    out = StageOutput(table=table.copy())
+    new = out.table
+    for k, c in enumerate(COMPONENTS):
+        new[f"sep_internal_{c}"] = fit.internal[k][t_codes, st_codes]
+        new[f"sep_external_{c}"] = fit.external[k][t_codes, st_codes]
+        new[f"sep_residual_{c}"] = fit.residual[k][t_codes, st_codes]
+    out.tables["coefficients"] = sep.coefficient_table(np.asarray(t_unique, dtype="datetime64[ns]"), fit)
+
+    rows = {"station": list(st_names), "longitude": positions["longitude"].to_numpy(),
+            "latitude": positions["latitude"].to_numpy(), "height": positions["height"].to_numpy()}
+    for k, c in enumerate(COMPONENTS):
+        res = fit.residual[k]
+        count = np.isfinite(res).sum(axis=0)
+        with np.errstate(invalid="ignore"):
+            rows[f"rms_{c}"] = np.sqrt(np.nansum(res**2, axis=0) / np.maximum(count, 1))
+            rows[f"mean_{c}"] = np.nansum(res, axis=0) / np.maximum(count, 1)
+        rows[f"rms_{c}"][count == 0] = np.nan
+        rows[f"mean_{c}"][count == 0] = np.nan
+        rows[f"epochs_{c}"] = count
+    out.tables["station_residuals"] = pd.DataFrame(rows)
+
+    metrics = {"stations": int(n_s), "epochs": int(n_t), "groups": fit.groups,
+               "unsolved_epochs": fit.unsolved_epochs, "condition_number": fit.condition,
+               "internal_degree": cfg.internal_degree, "external_degree": cfg.external_degree,
+               "damping": cfg.damping}
+    all_res = []
+    for k, c in enumerate(COMPONENTS):
+        res = fit.residual[k][np.isfinite(fit.residual[k])]
+        metrics[f"residual_rms_{c}_nT"] = float(np.sqrt(np.mean(res**2))) if res.size else float("nan")
+        all_res.append(res)
+    all_res = np.concatenate(all_res)
+    overall = float(np.sqrt(np.mean(all_res**2))) if all_res.size else float("nan")
+    metrics["residual_rms_nT"] = overall
+    state = {"coefficients": fit.names, "internal_degree": cfg.internal_degree,
+             "external_degree": cfg.external_degree,
+             "stations": {str(s): {"longitude": float(positions["longitude"].iloc[i]),
+                                   "latitude": float(positions["latitude"].iloc[i]),
+                                   "height": float(positions["height"].iloc[i])}
+                          for i, s in enumerate(st_names)}}
+    if "g10" in fit.names and "q10" in fit.names:
+        ratio = sep.induction_ratio(fit.coefficient("g10"), fit.coefficient("q10"))
+        metrics.update({"induction_ratio_g10_q10": ratio["ratio"],
+                        "induction_offset_g10_nT": ratio["offset"],
+                        "induction_correlation": ratio["correlation"]})
+        state["induction_ratio_g10_q10"] = ratio["ratio"]
+        out.notes.append(f"induced/external ratio g10/q10 = {ratio['ratio']:.3f} (regression over "
+                         f"{ratio['epochs']} epochs, correlation {ratio['correlation']:.3f})")
+    tol, source = ctx.tolerance("separation_residual_rms_nT", 5.0)
+    out.checks.append(Check.at_most(
+        "separation_residual_rms_nT", overall, tol, "nT", source,
+        detail=f"RMS of station residuals after the degree {cfg.internal_degree} internal + "
+               f"degree {cfg.external_degree} external fit (non-potential part, noise, higher "
+               "degrees)"))
+    if fit.unsolved_epochs:
+        out.warnings.append(f"{fit.unsolved_epochs} epoch(s) had too few stations to resolve the "
+                            "coefficients: NaN in the coefficients table")
+    out.notes.append(f"{len(fit.names)} Gauss coefficients at {n_t} epochs ({fit.groups} station "
+                     f"set(s)); residual RMS {overall:.2f} nT")
+    out.metrics, out.state = metrics, state
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# survey grids
+# ----------------------------------------------------------------------------------------------
+def _main_grid(ctx: StageContext):
+    for name in MAIN_GRIDS.get(ctx.config.kind, ("anomaly",)):
+        if name in ctx.grids:
+            return name, ctx.grids[name].transpose("northing", "easting")
+    return None, None
+
+
+def _grid_height(ctx: StageContext, grid):
+    if "upward" in grid.coords:
+        return np.asarray(grid["upward"].transpose("northing", "easting").values, dtype=float)
+    record = ctx.state.get("grid", {})
+    for key in ("height", "height_m", "grid_height"):
+        value = record.get(key)
+        if isinstance(value, (int, float)) and math.isfinite(value):
+            return float(value)
+    for value in (grid.attrs.get("height"), ctx.config.grid.height):
+        if isinstance(value, (int, float, np.floating)) and math.isfinite(float(value)):
+            return float(value)
+    return None
+
+
+def _load_model(ctx: StageContext, out: StageOutput):
+    path = ctx.state.get("grid", {}).get("model_path")
+    if not path:
+        return None
+    path = Path(path)
+    if not path.is_absolute():
+        path = ctx.survey.resolve(str(path))
+    if not path.is_file():
+        out.warnings.append(f"equivalent-source model {path} is missing: regional by FFT instead")
+        return None
+    from ..fields.eqsources import load_model
+
+    return load_model(path)
+
+
+def _sample(grid, easting, northing) -> np.ndarray:
+    """Bilinear values of a grid at points (NaN outside)."""
+    import xarray as xr
+
+    e = xr.DataArray(np.asarray(easting, dtype=float), dims="p")
+    n = xr.DataArray(np.asarray(northing, dtype=float), dims="p")
+    return np.asarray(grid.interp(easting=e, northing=n, method="linear").values, dtype=float)
+
+
+def _value_column(ctx: StageContext, table: pd.DataFrame) -> str | None:
+    record = ctx.state.get("grid", {})
+    for key in ("column", "value_column", "source_column"):
+        if record.get(key) in table.columns:
+            return record[key]
+    for name in VALUE_COLUMNS.get(ctx.config.kind, ("anomaly",)):
+        if name in table.columns:
+            return name
+    return None
+
+
+def _decimate(grid, limit: int):
+    """Every ``step``-th cell of a grid so that at most ``limit`` finite cells remain."""
+    finite = int(np.isfinite(grid.values).sum())
+    step = max(1, int(math.ceil(math.sqrt(finite / limit))))
+    return grid.isel(northing=slice(None, None, step), easting=slice(None, None, step)), step
+
+
+def _two_layer(ctx, grid, height, out):
+    cfg = ctx.config.separate
+    small, step = _decimate(grid, cfg.two_layer_max_data)
+    ee, nn = np.meshgrid(small.easting.values, small.northing.values)
+    if np.ndim(height) == 2:
+        uu = np.asarray(height)[::step, ::step]
+    else:
+        uu = np.full(ee.shape, float(height))
+    spacing = float(abs(small.easting.values[1] - small.easting.values[0]))
+    deep = cfg.deep_depth_m or cfg.regional_height_m
+    shallow = cfg.shallow_depth_m or 3.0 * spacing
+    if shallow >= deep:
+        raise StageError(
+            f"the two-layer shallow depth {shallow:g} m is not above the deep depth {deep:g} m",
+            key="separate.shallow_depth_m", fix="set shallow_depth_m below deep_depth_m")
+    crossover = cfg.crossover_wavelength_m or 3.0 * cfg.regional_height_m
+    ctx.progress(f"two-layer equivalent sources on {int(np.isfinite(small.values).sum())} cells")
+    model = sep.fit_two_layer((ee, nn, uu), small.values, deep_depth=deep, shallow_depth=shallow,
+                              deep_damping=cfg.deep_damping, shallow_damping=cfg.shallow_damping,
+                              crossover_wavelength=crossover)
+    EE, NN = np.meshgrid(grid.easting.values, grid.northing.values)
+    UU = np.broadcast_to(np.asarray(height, dtype=float), EE.shape)
+    values = np.where(np.isfinite(grid.values), model.predict_regional((EE, NN, UU)), np.nan)
+    units = grid.attrs.get("units", "")
+    regional = grid.copy(data=values).rename("regional_two_layer")
+    regional.attrs = {"units": units, "long_name": "regional field: deep equivalent-source layer",
+                      "history": grid.attrs.get("history", "") + f"; two-layer equivalent sources "
+                                 f"(deep {deep:g} m, shallow {shallow:g} m, crossover {crossover:g} m)"}
+    residual = (grid - regional).rename("residual_two_layer")
+    residual.attrs = {"units": units, "long_name": "residual field: field minus the deep layer",
+                      "history": regional.attrs["history"] + "; residual = field - regional"}
+    out.metrics.update({"two_layer_deep_depth_m": deep, "two_layer_shallow_depth_m": shallow,
+                        "two_layer_crossover_m": crossover, "two_layer_fit_rms": model.rms,
+                        "two_layer_decimation": step, "two_layer_shallow_damping": model.shallow_damping})
+    return model, regional, residual
+
+
+def _vector(ctx, table, grid, height, out):
+    """Grid the vector components and split them into internal and external parts."""
+    from ..fields.eqsources import fit_equivalent_sources
+
+    cfg = ctx.config.separate
+    ok = usable(table)
+    e, n, u = (table[c].to_numpy(dtype=float) for c in ("easting", "northing", "height"))
+    EE, NN = np.meshgrid(grid.easting.values, grid.northing.values)
+    UU = np.broadcast_to(np.asarray(height, dtype=float), EE.shape)
+    spacing = float(abs(grid.easting.values[1] - grid.easting.values[0]))
+    mask = np.isfinite(grid.values)
+    record = ctx.state.get("grid", {})  # the grid stage's cross-validated depth and damping
+    depth = record.get("depth") if isinstance(record.get("depth"), (int, float)) else "default"
+    damping = record.get("damping") if isinstance(record.get("damping"), (int, float)) else 1e-3
+    grids = []
+    for comp in COMPONENTS:  # three components
+        v = table[f"mag_{comp}"].to_numpy(dtype=float)
+        keep = ok & np.isfinite(v) & np.isfinite(e) & np.isfinite(n) & np.isfinite(u)
+        if keep.sum() < 10:
+            raise StageError(f"only {int(keep.sum())} usable readings have mag_{comp}",
+                             key=f"input.columns.mag_{comp}",
+                             fix="check the vector columns of the input files")
+        model = fit_equivalent_sources(e[keep], n[keep], u[keep], v[keep], depth=depth,
+                                       damping=damping, block_size=spacing)
+        values = np.where(mask, model.predict((EE, NN, UU)), np.nan)
+        grids.append(grid.copy(data=values).rename(f"mag_{comp}"))
+    parts = sep.separate_vector_plane(*grids, uniform=cfg.uniform_part,
+                                      pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
+    new = out.table
+    for name, part in parts.items():
+        out.grids[name] = part
+        new[name] = _sample(part, e, n)
+        vals = part.values[np.isfinite(part.values)]
+        out.metrics[f"{name}_rms_nT"] = float(np.sqrt(np.mean((vals - vals.mean()) ** 2))) if vals.size else float("nan")
+    out.notes.append("vector components gridded by equivalent sources and split into the fields "
+                     f"of sources below and above the survey (uniform part to the "
+                     f"{cfg.uniform_part} side; grid north taken as true north)")
+
+
+def run_grids(ctx: StageContext) -> StageOutput:
+    """Regional/residual (and vector internal/external) separation of a survey's grid.
+
+    Parameters
+    ----------
+    ctx : StageContext
+        ``ctx.grids["anomaly"]`` (magnetic) or ``["bouguer_anomaly"]`` (gravity) from the grid
+        stage, ``ctx.state["grid"]`` (``model_path``, ``height``), the readings table.
+
+    Returns
+    -------
+    StageOutput
+
+    References
+    ----------
+    Jacobsen (1987), Geophysics 52:1138; Dampney (1969), Geophysics 34:39; Cordell (1992),
+    Geophysics 57:629; Weaver (1964), Z. Geophys. 30:29; Porath, Oldenburg and Gough (1970),
+    Geophys. J. R. Astr. Soc. 19:237.
+    """
+    cfg = ctx.config.separate
+    table = ctx.table
+    name, grid = _main_grid(ctx)
+    if grid is None:
+        return StageOutput(notes=["no grid from the grid stage (not available or nothing gridded): "
+                                  "separation skipped"])
+    out = StageOutput(table=None if table is None else table.copy())
+    present = [c for c in VECTOR if table is not None and c in table.columns]
+    if ctx.config.kind == "magnetic" and 0 < len(present) < 3:
+        missing = [c for c in VECTOR if c not in present]
+        raise StageError(
+            f"vector separation needs mag_north, mag_east and mag_down; {', '.join(missing)} "
+            "missing from the readings table", key="input.columns",
+            fix="map all three vector columns in [input.columns], or none")
+    model = _load_model(ctx, out)
+    height = _grid_height(ctx, grid)
+    if model is not None and height is None:
+        out.warnings.append("grid height unknown: regional by FFT, not by the equivalent-source model")
+        model = None
+    methods = ["upward", "two_layer"] if cfg.method == "both" else [cfg.method]
+    if "two_layer" in methods and height is None:
+        height = 0.0
+        out.warnings.append("grid height unknown: the two-layer fit assumes the grid at 0 m")
+    results = {}
+    if "upward" in methods:
+        regional, residual = sep.regional_upward(grid, cfg.regional_height_m, model=model,
+                                                 grid_height=height, pad_fraction=cfg.pad_fraction,
+                                                 pad_mode=cfg.pad_mode)
+        out.grids["regional_upward"], out.grids["residual_upward"] = regional, residual
+        results["upward"] = regional
+        out.metrics["upward_method"] = regional.attrs["separation_method"]
+    if "two_layer" in methods:
+        two, regional, residual = _two_layer(ctx, grid, height, out)
+        out.grids["regional_two_layer"], out.grids["residual_two_layer"] = regional, residual
+        results["two_layer"] = two
+    for key in list(out.grids):
+        vals = out.grids[key].values
+        vals = vals[np.isfinite(vals)]
+        out.metrics[f"{key}_rms"] = float(np.sqrt(np.mean(vals**2))) if vals.size else float("nan")
+
+    column = _value_column(ctx, table) if table is not None else None
+    if column is not None and all(c in table.columns for c in ("easting", "northing", "height")):
+        e, n, u = (table[c].to_numpy(dtype=float) for c in ("easting", "northing", "height"))
+        first = methods[0]
+        if first == "upward" and model is not None:
+            regional = model.predict((e, n, u + cfg.regional_height_m))
+        elif first == "upward":  # continue the filled grid so readings in masked cells get a value
+            from ..fields.transforms import fill_masked
+
+            full = fill_masked(grid) if np.isnan(grid.values).any() else grid
+            regional = _sample(sep.regional_upward(full, cfg.regional_height_m,
+                                                   pad_fraction=cfg.pad_fraction,
+                                                   pad_mode=cfg.pad_mode)[0], e, n)
+        else:
+            regional = results["two_layer"].predict_regional((e, n, u))
+        out.table["regional"] = regional
+        out.table["residual"] = table[column].to_numpy(dtype=float) - regional
+        out.notes.append(f"regional/residual columns from the {first} method applied to '{column}'")
+    else:
+        out.notes.append("no value column or coordinates in the table: regional/residual columns "
+                         "not added")
+    if len(present) == 3 and table is not None:
+        _vector(ctx, table, grid, height if height is not None else 0.0, out)
+    out.state = {"input_grid": name, "methods": methods,
+                 "regional_height_m": cfg.regional_height_m, "value_column": column,
+                 "grids": sorted(out.grids)}
+    out.notes.append(f"regional/residual of '{name}' by {', '.join(methods)}")
+    return out
+
+
+def run(ctx: StageContext) -> StageOutput:
+    """The separate stage: observatory networks on the sphere, survey grids on the plane."""
+    if ctx.config.kind == "observatory":
+        return run_observatory(ctx)
+    return run_grids(ctx)
+
+
+STAGE = Stage(
+    name="separate",
+    summary="separation of sources: regional/residual (upward continuation, two-layer "
+    "equivalent sources), internal/external parts on the plane and on the sphere",
+    run=run,
+    sections=("separate", "grid"),
+)

@@ -1,0 +1,47 @@
+"""Grid writers: NetCDF-CF with the CRS and GeoTIFF, both read back by independent readers
+(xarray/h5netcdf, rioxarray/GDAL)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyproj
+import rioxarray
+import xarray as xr
+
+from potfield.io.grids import make_grid, read_netcdf, write_geotiff, write_netcdf
+
+
+def _grid():
+    east = np.arange(500_000.0, 500_000.0 + 10 * 100, 100)
+    north = np.arange(6_400_000.0, 6_400_000.0 + 8 * 100, 100)[::-1]  # descending on purpose
+    values = np.add.outer(north - north.min(), (east - east.min()) * 0.01)
+    return make_grid(east, north, values, name="anomaly", units="nT", long_name="test field")
+
+
+def test_make_grid_sorts_ascending():
+    grid = _grid()
+    assert np.all(np.diff(grid.northing.values) > 0)
+    # the value at the highest northing row is the largest (no north-south flip)
+    assert grid.values[-1, 0] > grid.values[0, 0]
+
+
+def test_netcdf_cf_roundtrip(tmp_path):
+    grid = _grid()
+    path = write_netcdf(tmp_path / "a.nc", grid, "EPSG:32755")
+    with xr.open_dataset(path) as ds:
+        assert ds.attrs["Conventions"] == "CF-1.8"
+        crs = pyproj.CRS.from_cf(ds["crs"].attrs)  # CF grid mapping readable by pyproj
+        assert crs.to_epsg() == 32755
+        assert ds["easting"].attrs["standard_name"] == "projection_x_coordinate"
+    back = read_netcdf(path)
+    np.testing.assert_array_equal(back.values, grid.values)
+
+
+def test_geotiff_is_north_up_with_crs(tmp_path):
+    grid = _grid()
+    path = write_geotiff(tmp_path / "a.tif", grid, "EPSG:32755")
+    raster = rioxarray.open_rasterio(path).squeeze()
+    assert raster.rio.crs.to_epsg() == 32755
+    assert raster.y.values[0] > raster.y.values[-1]  # first row is the northernmost (GIS order)
+    np.testing.assert_allclose(raster.values[0], grid.values[-1])
+    np.testing.assert_allclose(raster.x.values, grid.easting.values)
