@@ -128,3 +128,16 @@ def test_grid_stage_micro_levelling(tmp_path):
     assert any("micro-levelled" in note for note in out.notes)
     line = out.table.line == "L005"
     assert out.table.loc[line, "micro_level_correction"].mean() < 0.0
+
+
+def test_cv_window_keeps_a_central_square_of_blocks():
+    from potfield.stages.grid import _cv_window
+
+    e, n = np.meshgrid(np.arange(300.0), np.arange(200.0))
+    e, n = e.ravel(), n.ravel()
+    h = np.zeros_like(e)
+    we, wn, _, wd = _cv_window(e, n, h, e + n, limit=400)
+    assert wd.size == 400
+    # a 20 x 20 square about the centre (149.5, 99.5): max-norm radius about 10 cells
+    assert np.max(np.maximum(np.abs(we - 149.5), np.abs(wn - 99.5))) <= 11
+    np.testing.assert_array_equal(wd, we + wn)  # rows stay together

@@ -869,3 +869,39 @@ def load_model(path) -> EquivalentSourceModel:
         coefs = np.array(npz["coefs"])
     return EquivalentSourceModel(method, points, coefs, scale, depth, damping, block, region,
                                  lattice, node_index)
+
+
+def block_median(easting, northing, upward, data, spacing: float, region=None):
+    """Median of the coordinates and the data in square blocks (vectorised, O(N log N)).
+
+    The same reduction as ``verde.BlockReduce(numpy.median, spacing, drop_coords=False)``
+    (Uieda 2018, JOSS 3:957): every coordinate and the data are replaced by their medians in
+    each block of side ``spacing`` counted from the region's south-west corner. One stable sort
+    per array replaces verde's per-block Python-level grouping, which dominated the grid stage
+    at a million readings.
+
+    Returns
+    -------
+    (easting, northing, upward), data : numpy arrays, one value per occupied block, ordered by
+    block (rows south to north, columns west to east).
+    """
+    e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in (easting, northing, upward, data))
+    if region is None:
+        region = (e.min(), e.max(), n.min(), n.max())
+    west, east, south, north = region
+    ncol = int(np.floor((east - west) / spacing)) + 1
+    col = np.clip(np.floor((e - west) / spacing).astype(np.int64), 0, ncol - 1)
+    row = np.floor((n - south) / spacing).astype(np.int64)
+    key = row * ncol + col
+    out = []
+    starts = counts = None
+    for values in (e, n, u, d):
+        order = np.lexsort((values, key))
+        ks, vs = key[order], values[order]
+        if starts is None:
+            starts = np.r_[0, np.flatnonzero(np.diff(ks)) + 1]
+            counts = np.diff(np.r_[starts, ks.size])
+        lower = starts + (counts - 1) // 2
+        upper = starts + counts // 2
+        out.append(0.5 * (vs[lower] + vs[upper]))
+    return (out[0], out[1], out[2]), out[3]

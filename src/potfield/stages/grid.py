@@ -101,13 +101,24 @@ def _grid(model, region, spacing, height, data_e, data_n, data_h, mask_distance,
     return grid
 
 
-def _fit(e, n, h, d, cfg, block, line_spacing, progress):
-    """Block-reduce, cross-validate depth and damping, fit on all blocks."""
-    import verde as vd
+#: Largest number of blocks the depth/damping search runs on; bigger surveys search on a central
+#: window of this many blocks (same data density, so the best relative depth carries over).
+MAX_CV_BLOCKS = 20_000
 
-    reducer = vd.BlockReduce(np.median, spacing=block, drop_coords=False)
-    (be, bn, bh), bd = reducer.filter((e, n, h), d)
-    be, bn, bh, bd = (np.asarray(a, dtype=float).ravel() for a in (be, bn, bh, bd))
+
+def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
+    """The ``limit`` blocks nearest (in the max-norm) to the centre of the blocks."""
+    if d.size <= limit:
+        return e, n, h, d
+    ce, cn = np.median(e), np.median(n)
+    distance = np.maximum(np.abs(e - ce), np.abs(n - cn))
+    keep = np.argpartition(distance, limit - 1)[:limit]
+    return e[keep], n[keep], h[keep], d[keep]
+
+
+def _fit(e, n, h, d, cfg, block, line_spacing, progress):
+    """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
+    (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     depths = [float(f) * block for f in cfg.depth_factors]
     dampings = [float(x) for x in cfg.dampings]
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
@@ -117,7 +128,10 @@ def _fit(e, n, h, d, cfg, block, line_spacing, progress):
         cv_spacing = min(max(10.0 * block, 3.0 * max(depths)), extent / 4.0)
         progress(f"grid: cross-validating {len(depths)} depths x {len(dampings)} dampings "
                  f"on {bd.size} blocks")
-        scores, best = eqs.cross_validate(be, bn, bh, bd, depths=depths, dampings=dampings,
+        ce, cn, ch, cd = _cv_window(be, bn, bh, bd)
+        if cd.size < bd.size:
+            progress(f"grid: cross-validating on a central window of {cd.size} of {bd.size} blocks")
+        scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing)
     else:
