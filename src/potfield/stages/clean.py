@@ -119,7 +119,7 @@ def run(ctx: StageContext) -> StageOutput:
 
 STAGE = Stage(
     name="clean",
-    summary="flag spikes (rolling median + MAD), time/distance gaps, duplicate times and heights "
+    summary="flag spikes (rolling median, robust noise scale), time/distance gaps, duplicate times and heights "
     "out of band; per-line fourth-difference noise",
     run=run,
     sections=("clean",),
