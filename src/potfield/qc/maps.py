@@ -163,12 +163,17 @@ def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110) 
         if flagged.any():
             ax.scatter(table["easting"][flagged], table["northing"][flagged], marker="x", c="red", s=14,
                        linewidths=0.8, label=f"flagged ({int(flagged.sum())})")
-    if "station" in table and not many:
+    if "station" in table and (not many or table["station"].nunique() <= 60):
         stations = table.groupby("station")[["easting", "northing"]].first()
+        if many:  # a station network: the readings repeat at a few points
+            ax.scatter(stations["easting"], stations["northing"], marker="^", s=40, c="black",
+                       zorder=5, label="stations")
         for name, row in stations.iloc[:: max(len(stations) // 60, 1)].iterrows():
-            ax.annotate(str(name), (row.easting, row.northing), fontsize=5, alpha=0.7)
+            ax.annotate(str(name), (row.easting, row.northing), fontsize=5 if not many else 8,
+                        alpha=0.8, xytext=(3, 3), textcoords="offset points")
     if ax.get_legend_handles_labels()[0]:
-        ax.legend(loc="lower right", fontsize=7, markerscale=4)
+        network = "station" in table and many and table["station"].nunique() <= 60
+        ax.legend(loc="best", fontsize=7, markerscale=1 if network else 4)
     map_axes(ax, crs_name, f"Survey tracks coloured by line ({len(names)} lines)")
     return save(fig, path, dpi)
 

@@ -63,13 +63,15 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
     if table is not None and len(table):
         _fig(figures, "ingest", "Survey tracks and flagged readings",
              maps.plot_tracks(table, out / "tracks.png", crs_name, dpi))
-        _fig(figures, "ingest", "Data coverage",
-             maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi))
+        if config.kind != "observatory":  # a distance map means nothing for a world-wide network
+            _fig(figures, "ingest", "Data coverage",
+                 maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi))
         if config.kind == "magnetic" and "height" in table and table["height"].notna().any():
             _fig(figures, "ingest", "Height deviation",
                  maps.plot_height_deviation(table, out / "height_deviation.png", crs_name,
                                             tol("drape_tolerance_m"), dpi))
-        if "fourth_difference" in table and np.isfinite(table["fourth_difference"]).any():
+        if (config.kind != "observatory" and "fourth_difference" in table
+                and np.isfinite(table["fourth_difference"]).any()):
             _fig(figures, "clean", "Fourth-difference noise profiles",
                  maps.plot_noise_profiles(table, out / "noise_profiles.png",
                                           tolerance=tol("noise_fourth_difference_nT"), dpi=dpi))
