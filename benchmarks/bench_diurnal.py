@@ -3,14 +3,14 @@ IAGA-2002 read/write of a one-day 1 s file."""
 
 from __future__ import annotations
 
-import resource
 import tempfile
-import time
 import tracemalloc
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
+from _common import peak_rss_mb, timed
 
 T0 = np.datetime64("2024-05-01T00:00:00", "ns")
 
@@ -22,16 +22,6 @@ def _external(t):
 
 def _stamp(seconds):
     return T0 + np.round(np.asarray(seconds) * 1e9).astype("int64").astype("timedelta64[ns]")
-
-
-def _peak_rss_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-
-
-def _timed(fn, *args, **kwargs):
-    started = time.perf_counter()
-    result = fn(*args, **kwargs)
-    return result, time.perf_counter() - started
 
 
 def bench_diurnal_correction(sizes=(10_000, 100_000, 1_000_000)):
@@ -50,11 +40,11 @@ def bench_diurnal_correction(sizes=(10_000, 100_000, 1_000_000)):
         tb = np.arange(0.0, duration + 600.0)
         base = 48_000.0 + _external(tb)
         geology = 30.0 * np.sin(tr / 40.0)
-        _, clean_s = _timed(clean_base, tb, base)
-        (_, _), linear_s = _timed(interpolate_base, _stamp(tb), base, _stamp(tr), "linear")
-        (_, _), cubic_s = _timed(interpolate_base, _stamp(tb), base, _stamp(tr), "cubic")
-        _, chord15_s = _timed(chord_deviation, tb, base, 15.0)
-        _, chord60_s = _timed(chord_deviation, tb, base, 60.0)
+        _, clean_s = timed(clean_base, tb, base)
+        (_, _), linear_s = timed(interpolate_base, _stamp(tb), base, _stamp(tr), "linear")
+        (_, _), cubic_s = timed(interpolate_base, _stamp(tb), base, _stamp(tr), "cubic")
+        _, chord15_s = timed(chord_deviation, tb, base, 15.0)
+        _, chord60_s = timed(chord_deviation, tb, base, 60.0)
         lines = 10
         table = pd.DataFrame({
             "time": _stamp(tr), "longitude": 138.0 + 0.01 * (np.arange(n) * lines // n),
@@ -71,7 +61,7 @@ def bench_diurnal_correction(sizes=(10_000, 100_000, 1_000_000)):
                 {"name": "B", "file": "raw/base.csv", "longitude": 138.0, "latitude": -33.0,
                  "columns": {"time": "UTC", "total_field": "MAG"}}]}})
             ctx = StageContext(config=config, survey=Survey(root), table=table)
-            out, stage_s = _timed(STAGE.run, ctx)
+            out, stage_s = timed(STAGE.run, ctx)
             tracemalloc.start()
             STAGE.run(ctx)
             _, peak = tracemalloc.get_traced_memory()
@@ -83,7 +73,7 @@ def bench_diurnal_correction(sizes=(10_000, 100_000, 1_000_000)):
             "clean_base_s": round(clean_s, 4), "interpolate_linear_s": round(linear_s, 4),
             "interpolate_cubic_s": round(cubic_s, 4), "chord_15s_s": round(chord15_s, 4),
             "chord_60s_s": round(chord60_s, 4), "stage_total_s": round(stage_s, 3),
-            "stage_peak_traced_mb": round(peak / 2**20, 1), "peak_rss_mb": round(_peak_rss_mb(), 1),
+            "stage_peak_traced_mb": round(peak / 2**20, 1), "peak_rss_mb": round(peak_rss_mb(), 1),
             "max_error_vs_analytic_nT": float(np.ptp(error)),
         })
         print(rows[-1], flush=True)
@@ -102,8 +92,8 @@ def bench_iaga2002_day():
               "elevation": 1600.0}
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "ben20240501vsec.sec"
-        _, write_s = _timed(write_iaga2002, path, frame, header)
-        record, read_s = _timed(read_iaga2002, path)
+        _, write_s = timed(write_iaga2002, path, frame, header)
+        record, read_s = timed(read_iaga2002, path)
         size = path.stat().st_size
     error = float(np.max(np.abs(record.data["mag_north"].to_numpy() - frame["mag_north"].to_numpy())))
     result = {"records": int(t.size), "bytes": size, "write_s": round(write_s, 3),

@@ -9,22 +9,12 @@
 
 from __future__ import annotations
 
-import resource
-import time
 import tracemalloc
 
 import numpy as np
 import pandas as pd
 
-
-def _peak_rss_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-
-
-def _timed(fn, *args, **kwargs):
-    started = time.perf_counter()
-    result = fn(*args, **kwargs)
-    return result, time.perf_counter() - started
+from _common import peak_rss_mb, timed
 
 
 def bench_normal_gravity(sizes=(100_000, 1_000_000)):
@@ -37,16 +27,16 @@ def bench_normal_gravity(sizes=(100_000, 1_000_000)):
     for n in sizes:
         lat, h = rng.uniform(-90, 90, n), rng.uniform(0, 5000, n)
         tracemalloc.start()
-        ours, seconds = _timed(normal_gravity, lat, h, "WGS84")
+        ours, seconds = timed(normal_gravity, lat, h, "WGS84")
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
         ref = boule.WGS84.normal_gravity((None, lat, h))
-        _, cap_seconds = _timed(bouguer_cap, h)
+        _, cap_seconds = timed(bouguer_cap, h)
         rows.append({"points": n, "seconds": round(seconds, 4),
                      "bouguer_cap_seconds": round(cap_seconds, 4),
                      "peak_traced_mb": round(peak / 2**20, 1),
                      "max_abs_diff_vs_boule_mgal": float(np.max(np.abs(ours - ref)))})
-    return {"rows": rows, "peak_rss_mb": round(_peak_rss_mb(), 1),
+    return {"rows": rows, "peak_rss_mb": round(peak_rss_mb(), 1),
             "summary": f"{rows[-1]['points']} points in {rows[-1]['seconds']} s, "
                        f"{rows[-1]['max_abs_diff_vs_boule_mgal']:.1e} mGal vs boule"}
 
@@ -61,7 +51,7 @@ def bench_tides(sizes=(100_000, 1_000_000)):
         times = pd.date_range("2024-01-01", periods=n, freq="10s")
         lon, lat, h = np.full(n, 10.0), np.full(n, 45.0), np.full(n, 100.0)
         tracemalloc.start()
-        ours, seconds = _timed(longman_gravity, lon, lat, h, times.values, 1.1575)
+        ours, seconds = timed(longman_gravity, lon, lat, h, times.values, 1.1575)
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
         k = min(n, 20_000)  # tidegravity loops in Python over datetimes: compare a subset
@@ -71,7 +61,7 @@ def bench_tides(sizes=(100_000, 1_000_000)):
         rows.append({"readings": n, "seconds": round(seconds, 4),
                      "peak_traced_mb": round(peak / 2**20, 1),
                      "max_abs_diff_vs_tidegravity_mgal": float(diff)})
-    return {"rows": rows, "peak_rss_mb": round(_peak_rss_mb(), 1),
+    return {"rows": rows, "peak_rss_mb": round(peak_rss_mb(), 1),
             "summary": f"{rows[-1]['readings']} readings in {rows[-1]['seconds']} s, "
                        f"{rows[-1]['max_abs_diff_vs_tidegravity_mgal']:.1e} mGal vs tidegravity"}
 
@@ -100,7 +90,7 @@ def bench_terrain(station_counts=(10, 100, 400)):
         x, y = rng.uniform(-3000, 3000, n), rng.uniform(-3000, 3000, n)
         h = np.asarray(dem.interp(easting=xr_points(x), northing=xr_points(y)).values)
         tracemalloc.start()
-        result, seconds = _timed(terrain_correction, x, y, h, dem, radius=15_000.0,
+        result, seconds = timed(terrain_correction, x, y, h, dem, radius=15_000.0,
                                  inner_radius=2_000.0)
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
@@ -114,7 +104,7 @@ def bench_terrain(station_counts=(10, 100, 400)):
     big = _synthetic_dem(90.0, 170_000.0)
     x, y = rng.uniform(-3000, 3000, 100), rng.uniform(-3000, 3000, 100)
     h = np.asarray(big.interp(easting=xr_points(x), northing=xr_points(y)).values)
-    full, full_seconds = _timed(terrain_correction, x, y, h, big, radius=166_700.0,
+    full, full_seconds = timed(terrain_correction, x, y, h, big, radius=166_700.0,
                                 inner_radius=2_000.0)
     rows.append({"stations": 100, "dem_cells": int(big.size), "radius_m": 166_700.0,
                  "zones_m": [s for s, _ in full.zone_spacings],
@@ -126,14 +116,14 @@ def bench_terrain(station_counts=(10, 100, 400)):
     x, y = rng.uniform(-2000, 2000, 10), rng.uniform(-2000, 2000, 10)
     h = np.asarray(dem.interp(easting=xr_points(x), northing=xr_points(y)).values)
     zoned = terrain_correction(x, y, h, dem, radius=8_000.0, inner_radius=2_000.0).correction
-    fine, fine_seconds = _timed(terrain_correction, x, y, h, dem, radius=8_000.0,
+    fine, fine_seconds = timed(terrain_correction, x, y, h, dem, radius=8_000.0,
                                 inner_radius=8_000.0)
     zone_error = float(np.max(np.abs(zoned - fine.correction)))
     # curvature: flat terrain, a point 1500 m above it, to 166.7 km, against the cap
     e = np.arange(-170_000.0, 170_000.0, 500.0) + 250.0
     flat = make_grid(e, e, np.zeros((e.size, e.size)), name="elevation", units="m",
                      long_name="flat")
-    cap, cap_seconds = _timed(terrain_correction, [0.0], [0.0], [1500.0], flat,
+    cap, cap_seconds = timed(terrain_correction, [0.0], [0.0], [1500.0], flat,
                               radius=166_735.0, ground=np.nan)
     cap_error = float(abs(cap.correction[0] - bouguer_cap(1500.0)))
     return {
@@ -142,7 +132,7 @@ def bench_terrain(station_counts=(10, 100, 400)):
         "zone_pyramid_mean_correction_mgal": float(np.mean(fine.correction)),
         "all_fine_seconds_10_stations": round(fine_seconds, 3),
         "cap_1500m_abs_error_mgal": cap_error, "cap_seconds": round(cap_seconds, 3),
-        "peak_rss_mb": round(_peak_rss_mb(), 1),
+        "peak_rss_mb": round(peak_rss_mb(), 1),
         "summary": f"{rows[-2]['ms_per_station']} ms/station (30 m DEM, 15 km radius), "
                    f"{rows[-1]['ms_per_station']} ms/station (90 m DEM, 166.7 km); zones "
                    f"{zone_error:.3f} mGal off all-fine; cap {cap_error:.3f} mGal off",

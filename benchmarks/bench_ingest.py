@@ -2,16 +2,13 @@
 
 from __future__ import annotations
 
-import resource
 import tempfile
 import time
 from pathlib import Path
 
 import pandas as pd
 
-
-def _peak_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+from _common import peak_rss_mb
 
 
 def bench_ingest_clean(sizes=(10_000, 100_000, 1_000_000)):
@@ -37,7 +34,7 @@ def bench_ingest_clean(sizes=(10_000, 100_000, 1_000_000)):
             pd.read_csv(csv, engine="pyarrow")
             arrow_engine = time.perf_counter() - t0
         rows.append({"readings": n, "seconds_ingest_clean_total": round(seconds, 3), "stages": stages,
-                     "peak_rss_mb": round(_peak_mb(), 1), "read_csv_c_s": round(c_engine, 3),
+                     "peak_rss_mb": round(peak_rss_mb(), 1), "read_csv_c_s": round(c_engine, 3),
                      "read_csv_pyarrow_s": round(arrow_engine, 3)})
         print(rows[-1], flush=True)
     last = rows[-1]

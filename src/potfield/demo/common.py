@@ -191,6 +191,57 @@ def write_params(path: Path, params: dict) -> Path:
     return write_json(path, _round_floats(params))
 
 
+def survey_folders(directory) -> tuple[Path, Path, Path]:
+    """Create a demo survey folder and its ``raw/`` and ``truth/`` subfolders.
+
+    Parameters
+    ----------
+    directory : str or Path
+        Survey folder (created with its parents if missing).
+
+    Returns
+    -------
+    tuple of Path
+        ``(directory, raw, truth)``.
+    """
+    directory = Path(directory)
+    raw, truth = directory / "raw", directory / "truth"
+    raw.mkdir(parents=True, exist_ok=True)
+    truth.mkdir(parents=True, exist_ok=True)
+    return directory, raw, truth
+
+
+def survey_tables(title: str, kind: str, survey_file: str) -> str:
+    """The ``[survey]`` and ``[input]`` tables of a demo survey.toml in the invented area.
+
+    Parameters
+    ----------
+    title : str
+        What the demo is, in the survey name (e.g. ``"ground gravity"``).
+    kind : str
+        Survey kind (``"magnetic"`` or ``"gravity"``).
+    survey_file : str
+        Name of the comma-delimited readings file under ``raw/``.
+
+    Returns
+    -------
+    str
+        TOML text (no final newline).
+    """
+    return "\n".join([
+        "[survey]",
+        f'name = "{AREA_NAME} {title} demo (invented data)"',
+        f'kind = "{kind}"',
+        'crs = "EPSG:4326"',
+        f'output_crs = "{OUTPUT_CRS}"',
+        'height_reference = "ellipsoid"',
+        "",
+        "[input]",
+        f'files = ["raw/{survey_file}"]',
+        'delimiter = ","',
+    ])
+
+
 def write_readme(path: Path, text: str) -> Path:
     return write_text(path, text.strip() + "\n")
 

@@ -287,10 +287,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
 
     from ..fields.tides import longman_gravity
 
-    directory = Path(directory)
-    raw, truth = directory / "raw", directory / "truth"
-    raw.mkdir(parents=True, exist_ok=True)
-    truth.mkdir(parents=True, exist_ok=True)
+    directory, raw, truth = common.survey_folders(directory)
     fwd, inv = common.transformers()
     e0, n0 = common.centre_projected()
     geo = rng_for(seed, "grav-geometry")
@@ -484,16 +481,7 @@ def _survey_toml(base_g: dict, tare_iso: str) -> str:
 # Made by potfield.demo.make_demo("gravity"); the true components are in truth/ (never read by
 # the pipeline).
 
-[survey]
-name = "{common.AREA_NAME} ground gravity demo (invented data)"
-kind = "gravity"
-crs = "EPSG:4326"
-output_crs = "{common.OUTPUT_CRS}"
-height_reference = "ellipsoid"
-
-[input]
-files = ["raw/{SURVEY_FILE}"]
-delimiter = ","
+{common.survey_tables("ground gravity", "gravity", SURVEY_FILE)}
 
 [input.columns]
 station = "STN"

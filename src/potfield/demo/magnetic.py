@@ -290,10 +290,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
 
         raise ConfigError(f"--readings {readings} is outside {MIN_READINGS:,}..{MAX_READINGS:,}",
                           fix="choose a number of readings in that range")
-    directory = Path(directory)
-    raw, truth = directory / "raw", directory / "truth"
-    raw.mkdir(parents=True, exist_ok=True)
-    truth.mkdir(parents=True, exist_ok=True)
+    directory, raw, truth = common.survey_folders(directory)
     fwd, inv = common.transformers()
     e0, n0 = common.centre_projected()
 
@@ -594,16 +591,7 @@ def _survey_toml(base_lon: float, base_lat: float, obs_files: list[str]) -> str:
 # Made by potfield.demo.make_demo("magnetic"); the true components are in truth/ (never read
 # by the pipeline).
 
-[survey]
-name = "{common.AREA_NAME} airborne magnetic demo (invented data)"
-kind = "magnetic"
-crs = "EPSG:4326"
-output_crs = "{common.OUTPUT_CRS}"
-height_reference = "ellipsoid"
-
-[input]
-files = ["raw/{SURVEY_FILE}"]
-delimiter = ","
+{common.survey_tables("airborne magnetic", "magnetic", SURVEY_FILE)}
 
 [input.columns]
 line = "LINE"

@@ -239,10 +239,7 @@ def make_observatory(directory: Path, seed: int = 0) -> Path:
     from ..io.atomic import write_text
     from ..io.iaga2002 import write_iaga2002
 
-    directory = Path(directory)
-    raw, truth = directory / "raw", directory / "truth"
-    raw.mkdir(parents=True, exist_ok=True)
-    truth.mkdir(parents=True, exist_ok=True)
+    directory, raw, truth = common.survey_folders(directory)
     minutes = np.arange(DAYS * 1440, dtype=float)
     times = FIRST_DAY + (minutes * 60e9).astype("int64").astype("timedelta64[ns]")
     ext = external_coefficients(rng_for(seed, "obs-external"), minutes)

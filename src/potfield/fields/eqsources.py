@@ -114,6 +114,27 @@ def _stencil_base(frac, n, order):
     return base
 
 
+@numba.njit(cache=True)
+def _point_stencil(ei, ni, ui, zl, x0, y0, dx, nx, ny, order):
+    """Lattice coordinates, stencil origin and Lagrange weights of one point.
+
+    Returns ``(fx, fy, bx, by, wx, wy, wz)``: the point's fractional lattice column and row, the
+    first column and row of its ``order`` x ``order`` stencil, and the interpolation weights
+    along easting (``order``), northing (``order``) and height (one per level of ``zl``).
+    """
+    wx = np.empty(order)
+    wy = np.empty(order)
+    wz = np.empty(zl.size)
+    fx = (ei - x0) / dx
+    fy = (ni - y0) / dx
+    bx = _stencil_base(fx, nx, order)
+    by = _stencil_base(fy, ny, order)
+    _lagrange_unit(fx - bx, order, wx)
+    _lagrange_unit(fy - by, order, wy)
+    _lagrange_nodes(ui, zl, wz)
+    return fx, fy, bx, by, wx, wy, wz
+
+
 @numba.njit(parallel=True, cache=True)
 def _direct_sum(e, n, u, se, sn, su, coefs, scale, out):
     """out_i = sum_j coefs_j * scale / |x_i - s_j| (exact forward sum)."""
@@ -144,16 +165,8 @@ def _interp_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, rows, cols, vals):
     per = nlev * order * order
     nodes = nx * ny
     for i in numba.prange(e.size):
-        wx = np.empty(order)
-        wy = np.empty(order)
-        wz = np.empty(nlev)
-        fx = (e[i] - x0) / dx
-        fy = (n[i] - y0) / dx
-        bx = _stencil_base(fx, nx, order)
-        by = _stencil_base(fy, ny, order)
-        _lagrange_unit(fx - bx, order, wx)
-        _lagrange_unit(fy - by, order, wy)
-        _lagrange_nodes(u[i], zl, wz)
+        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
+                                                    order)
         k = i * per
         for lev in range(nlev):
             for a in range(order):
@@ -196,16 +209,8 @@ def _near_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, zs, scale, hal
     width = 2 * half + 1
     per = width * width
     for i in numba.prange(e.size):
-        wx = np.empty(order)
-        wy = np.empty(order)
-        wz = np.empty(nlev)
-        fx = (e[i] - x0) / dx
-        fy = (n[i] - y0) / dx
-        bx = _stencil_base(fx, nx, order)
-        by = _stencil_base(fy, ny, order)
-        _lagrange_unit(fx - bx, order, wx)
-        _lagrange_unit(fy - by, order, wy)
-        _lagrange_nodes(u[i], zl, wz)
+        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
+                                                    order)
         ix = int(np.floor(fx + 0.5))
         iy = int(np.floor(fy + 0.5))
         k = i * per
@@ -229,16 +234,8 @@ def _predict_lattice(e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, zs, 
     """Interpolate the level grids to points and add the exact near field on the fly."""
     nlev, ny, nx = levels.shape
     for i in numba.prange(e.size):
-        wx = np.empty(order)
-        wy = np.empty(order)
-        wz = np.empty(nlev)
-        fx = (e[i] - x0) / dx
-        fy = (n[i] - y0) / dx
-        bx = _stencil_base(fx, nx, order)
-        by = _stencil_base(fy, ny, order)
-        _lagrange_unit(fx - bx, order, wx)
-        _lagrange_unit(fy - by, order, wy)
-        _lagrange_nodes(u[i], zl, wz)
+        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
+                                                    order)
         val = 0.0
         for lev in range(nlev):
             acc = 0.0
@@ -674,6 +671,28 @@ class _LatticeProblem:
             info={"levels": int(self.zl.size)})
 
 
+def _source_count(n_data, region, block_size):
+    """Upper estimate of the number of sources: one per datum, or at most one per block.
+
+    Parameters
+    ----------
+    n_data : int
+        Number of data.
+    region : tuple of float
+        ``(west, east, south, north)`` of the data (m).
+    block_size : float or None
+        Block size (m) of block-averaged sources; None (or 0) for one source per datum.
+
+    Returns
+    -------
+    int
+    """
+    if not block_size:
+        return n_data
+    span = max(region[1] - region[0], block_size) * max(region[3] - region[2], block_size)
+    return min(n_data, int(span / block_size ** 2) + 1)
+
+
 def _choose_method(method, n_data, block_size, e, n):
     if method not in ("auto", "dense", "fft"):
         raise ValueError(f"unknown method '{method}'; use 'auto', 'dense' or 'fft'")
@@ -738,10 +757,7 @@ def fit_equivalent_sources(easting, northing, upward, data, weights=None, depth=
     if not depth > 0:
         raise ValueError("depth must be positive")
     damping = float(damping or 0.0)
-    n_est = d.size
-    if block_size:
-        span = max(region[1] - region[0], block_size) * max(region[3] - region[2], block_size)
-        n_est = min(d.size, int(span / block_size ** 2) + 1)
+    n_est = _source_count(d.size, region, block_size)
     chosen = _choose_method(method, n_est, block_size, e, n)
     if chosen == "dense":
         points, coefs, info = _fit_dense(e, n, u, d, w, depth, damping, block_size)
@@ -804,10 +820,7 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
         fold_scores = {float(damp): [] for damp in dampings}
         for train, test in splits:
             region = (e[train].min(), e[train].max(), n[train].min(), n[train].max())
-            n_est = train.size
-            if block_size:
-                span = max(region[1] - region[0], spacing) * max(region[3] - region[2], spacing)
-                n_est = min(train.size, int(span / spacing ** 2) + 1)
+            n_est = _source_count(train.size, region, spacing if block_size else None)
             chosen = _choose_method(method, n_est, block_size, e, n)
             if chosen == "fft":
                 problem = _LatticeProblem(e[train], n[train], u[train], w[train], depth, spacing)

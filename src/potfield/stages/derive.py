@@ -8,15 +8,14 @@ to continue upward exactly), and calls :mod:`potfield.fields.transforms` for eac
 
 from __future__ import annotations
 
-import math
 import warnings
-from pathlib import Path
 
 import numpy as np
 
 from ..errors import StageError
 from ..fields import transforms as tf
 from .base import Stage, StageContext, StageOutput
+from .gridmodel import grid_height, load_grid_model
 
 #: Main-grid names by survey kind, in order of preference.
 #: How masked cells were filled (potfield.fields.transforms.fill_masked "fill" attribute).
@@ -34,42 +33,6 @@ def _main_grid(ctx: StageContext):
         f"no '{order[0]}' grid from the grid stage (grids present: {', '.join(ctx.grids) or 'none'})",
         fix="run the grid stage first, e.g. 'potfield run SURVEY --from grid'",
     )
-
-
-def _grid_height(ctx: StageContext, grid):
-    """Height (m) of the grid surface: an ``upward`` coordinate, the grid stage's record, the
-    grid's ``height`` attribute or a numeric ``[grid] height``; None when unknown."""
-    if "upward" in grid.coords:
-        return np.asarray(grid["upward"].transpose(*[d for d in ("northing", "easting")
-                                                     if d in grid["upward"].dims]).values, dtype=float)
-    record = ctx.state.get("grid", {})
-    for key in ("height", "height_m", "grid_height"):
-        value = record.get(key)
-        if isinstance(value, (int, float)) and math.isfinite(value):
-            return float(value)
-    for value in (grid.attrs.get("height"), ctx.config.grid.height):
-        if isinstance(value, (int, float, np.floating)) and math.isfinite(float(value)):
-            return float(value)
-    return None
-
-
-def _load_model(ctx: StageContext, out: StageOutput):
-    """The grid stage's equivalent-source model, or None (with a note saying why)."""
-    path = ctx.state.get("grid", {}).get("model_path")
-    if not path:
-        out.notes.append("no equivalent-source model from the grid stage: masked cells filled by "
-                         "a smooth fill before the FFT")
-        return None
-    path = Path(path)
-    if not path.is_absolute():
-        path = ctx.survey.resolve(str(path))
-    if not path.is_file():
-        out.warnings.append(f"equivalent-source model {path} is missing: masked cells filled by a "
-                            "smooth fill instead (re-run the grid stage to restore it)")
-        return None
-    from ..fields.eqsources import load_model
-
-    return load_model(path)
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -103,8 +66,12 @@ def run(ctx: StageContext) -> StageOutput:
     products = list(dict.fromkeys(cfg.products))
     common = dict(pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
 
-    model = _load_model(ctx, out)
-    height = _grid_height(ctx, grid) if model is not None else None
+    model = load_grid_model(
+        ctx, out, missing="masked cells filled by a smooth fill instead (re-run the grid stage to "
+                          "restore it)",
+        absent="no equivalent-source model from the grid stage: masked cells filled by a smooth "
+               "fill before the FFT")
+    height = grid_height(ctx, grid) if model is not None else None
     if model is not None and height is None:
         out.warnings.append("the grid's height is unknown (no 'upward' coordinate or grid-stage "
                             "height): the equivalent-source model is not used; smooth fill instead")

@@ -25,7 +25,6 @@ Observatory surveys
 from __future__ import annotations
 
 import math
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -33,6 +32,7 @@ import pandas as pd
 from ..errors import StageError
 from ..fields import separation as sep
 from .base import Check, Stage, StageContext, StageOutput, usable
+from .gridmodel import grid_height, load_grid_model
 
 #: Main grids by survey kind, in order of preference.
 MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
@@ -180,35 +180,6 @@ def _main_grid(ctx: StageContext):
     return None, None
 
 
-def _grid_height(ctx: StageContext, grid):
-    if "upward" in grid.coords:
-        return np.asarray(grid["upward"].transpose("northing", "easting").values, dtype=float)
-    record = ctx.state.get("grid", {})
-    for key in ("height", "height_m", "grid_height"):
-        value = record.get(key)
-        if isinstance(value, (int, float)) and math.isfinite(value):
-            return float(value)
-    for value in (grid.attrs.get("height"), ctx.config.grid.height):
-        if isinstance(value, (int, float, np.floating)) and math.isfinite(float(value)):
-            return float(value)
-    return None
-
-
-def _load_model(ctx: StageContext, out: StageOutput):
-    path = ctx.state.get("grid", {}).get("model_path")
-    if not path:
-        return None
-    path = Path(path)
-    if not path.is_absolute():
-        path = ctx.survey.resolve(str(path))
-    if not path.is_file():
-        out.warnings.append(f"equivalent-source model {path} is missing: regional by FFT instead")
-        return None
-    from ..fields.eqsources import load_model
-
-    return load_model(path)
-
-
 def _sample(grid, easting, northing) -> np.ndarray:
     """Bilinear values of a grid at points (NaN outside)."""
     import xarray as xr
@@ -345,8 +316,8 @@ def run_grids(ctx: StageContext) -> StageOutput:
             f"vector separation needs mag_north, mag_east and mag_down; {', '.join(missing)} "
             "missing from the readings table", key="input.columns",
             fix="map all three vector columns in [input.columns], or none")
-    model = _load_model(ctx, out)
-    height = _grid_height(ctx, grid)
+    model = load_grid_model(ctx, out, missing="regional by FFT instead")
+    height = grid_height(ctx, grid)
     if model is not None and height is None:
         out.warnings.append("grid height unknown: regional by FFT, not by the equivalent-source model")
         model = None
