@@ -19,12 +19,27 @@ HERE = Path(__file__).parent
 RESULTS = HERE / "results"
 
 
+def write_summary() -> None:
+    """summary.md from every result file (so a run of one topic keeps the others' rows)."""
+    rows = ["| benchmark | status | date | result |", "|---|---|---|---|"]
+    for path in sorted(RESULTS.glob("*.json")):
+        try:
+            record = json.loads(path.read_text())
+        except (OSError, json.JSONDecodeError):
+            continue
+        if "benchmark" not in record:
+            continue
+        result = record.get("result", {})
+        brief = result.get("summary", "") if isinstance(result, dict) else ""
+        rows.append(f"| {record['benchmark']} | {record.get('status', '')} | {record.get('date', '')} | {brief} |")
+    (RESULTS / "summary.md").write_text("\n".join(rows) + "\n")
+
+
 def main(argv: list[str]) -> int:
     RESULTS.mkdir(exist_ok=True)
     wanted = set(argv)
     files = sorted(HERE.glob("bench_*.py"))
     failures = 0
-    summary = ["| benchmark | result |", "|---|---|"]
     for path in files:
         topic = path.stem.removeprefix("bench_")
         if wanted and topic not in wanted:
@@ -54,10 +69,8 @@ def main(argv: list[str]) -> int:
             }
             out = RESULTS / f"{topic}.{name}.json"
             out.write_text(json.dumps(record, indent=2, default=str) + "\n")
-            brief = result.get("summary", status) if isinstance(result, dict) else status
-            summary.append(f"| {topic}.{name} | {brief} |")
             print(json.dumps(record["result"], indent=1, default=str)[:3000], flush=True)
-    (RESULTS / "summary.md").write_text("\n".join(summary) + "\n")
+    write_summary()
     return 1 if failures else 0
 
 
