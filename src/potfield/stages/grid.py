@@ -119,6 +119,16 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 def _fit(e, n, h, d, cfg, block, line_spacing, progress):
     """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
+    scores, best = _search(be, bn, bh, bd, cfg, block, progress)
+    progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
+    model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
+                                       damping=best["damping"], block_size=block,
+                                       method=cfg.method)
+    return model, scores, best, bd.size
+
+
+def _search(be, bn, bh, bd, cfg, block, progress):
+    """Depth and damping by blocked CV (on a central window of large surveys)."""
     depths = [float(f) * block for f in cfg.depth_factors]
     dampings = [float(x) for x in cfg.dampings]
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
@@ -138,11 +148,7 @@ def _fit(e, n, h, d, cfg, block, line_spacing, progress):
         scores = pd.DataFrame(columns=["depth", "damping", "r2", "rms"])
         best = {"depth": depths[len(depths) // 2], "damping": dampings[len(dampings) // 2],
                 "r2": float("nan"), "rms": float("nan")}
-    progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
-    model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
-                                       damping=best["damping"], block_size=block,
-                                       method=cfg.method)
-    return model, scores, best, bd.size
+    return scores, best
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -187,6 +193,9 @@ def run(ctx: StageContext) -> StageOutput:
         "gravity anomaly" if gravity else "total-field magnetic anomaly")
     region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
 
+    if cfg.tiled:
+        return _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why,
+                          height, height_why, region, mask_distance, name, units, long_name)
     out = StageOutput()
     model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress)
     history = (f"equivalent sources ({model.method}) of '{column}': depth {best['depth']:.1f} m, "
@@ -268,6 +277,66 @@ def run(ctx: StageContext) -> StageOutput:
                      f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
                      f"({height_why}), {model.method} equivalent sources, CV R2 "
                      f"{best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
+    return out
+
+
+#: Target number of blocks per tile when [grid] tile_size_m is 0 (a window this size fits in
+#: well under a gigabyte with the FFT lattice solver).
+TILE_BLOCKS = 40_000
+
+
+def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why, height,
+               height_why, region, mask_distance, name, units, long_name) -> StageOutput:
+    """Tiled gridding (potfield.fields.tiles): the depth and damping come from the CV search on
+    a central window, every tile is fitted on its own as a Dask task and the tiles are blended.
+    There is no single model, so no per-reading grid residual and no model for later stages."""
+    import verde as vd
+
+    from ..fields.tiles import fit_tiled
+
+    cfg = ctx.config.grid
+    if height == "drape":
+        raise ConfigError("tiled gridding needs a constant grid height", key="grid.height",
+                          fix="set [grid] height to a number (m) or set tiled = false")
+    (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
+    scores, best = _search(be, bn, bh, bd, cfg, block, ctx.progress)
+    area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
+    tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
+        20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
+    ctx.progress(f"grid: tiled fit, tiles of {tile:.0f} m")
+    # the same nodes as the whole-survey grid (verde adjust="region")
+    ge, gn = vd.grid_coordinates(region, spacing=spacing, adjust="region")
+    nodes = (float(ge.min()), float(ge.max()), float(gn.min()), float(gn.max()))
+    result = fit_tiled(be, bn, bh, bd, region=nodes, spacing=spacing, height=float(height),
+                       tile_size=tile, depth=best["depth"], damping=best["damping"],
+                       block_size=block, method=cfg.method, name=name, units=units,
+                       long_name=long_name)
+    grid = result.grid
+    ge, gn = np.meshgrid(grid.easting.values, grid.northing.values)
+    keep = vd.distance_mask((e, n), maxdist=mask_distance, coordinates=(ge, gn))
+    grid = grid.where(keep)
+    grid.attrs.update({"units": units, "long_name": long_name, "height": float(height),
+                       "history": f"tiled equivalent sources of '{column}': tiles {tile:.0f} m, "
+                                  f"depth {best['depth']:.1f} m, damping {best['damping']:g}"})
+    out = StageOutput(table=table.copy())
+    out.table["grid_residual"] = np.nan
+    out.grids[name] = grid
+    out.tables["grid_cv"] = scores
+    out.tables["grid_tiles"] = result.tiles
+    out.state = {"column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
+                 "damping": float(best["damping"]), "block_m": block, "spacing_m": spacing,
+                 "height": float(height), "drape": False, "region": list(region),
+                 "mask_distance_m": float(mask_distance), "model_path": None, "units": units,
+                 "tile_size_m": float(tile)}
+    out.metrics = {"grid_method": "tiled", "grid_tiles": int(len(result.tiles)),
+                   "grid_tile_size_m": float(tile), "grid_cells": int(grid.size),
+                   "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
+                   "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
+                   "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"])}
+    out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
+                     f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
+                     f"{tile:.0f} m blended; grid residual per reading not computed in tiled mode "
+                     "(no single model)")
     return out
 
 
