@@ -244,3 +244,27 @@ def test_partial_vector_columns_are_an_error(tmp_path):
         STAGE.run(_ctx(tmp_path, "magnetic", table=table.drop(columns=["mag_east", "mag_down"]),
                        grids={"anomaly": grid}, state={"grid": {"height": 0.0}},
                        separate={"method": "upward"}))
+
+
+def test_two_layer_defaults_on_a_coarse_grid_move_the_deep_layer():
+    # A grid so coarse that 3 cells (the default shallow depth) exceed regional_height_m: with
+    # both depths left to their defaults the stage warns and keeps the deep layer below.
+    import xarray as xr
+
+    from potfield.config import parse_config
+    from potfield.stages.base import StageContext, StageOutput
+    from potfield.stages.separate import _two_layer
+    from potfield.survey import Survey
+
+    e = np.arange(0.0, 20_001.0, 1000.0)
+    n = np.arange(0.0, 15_001.0, 1000.0)
+    ee, nn = np.meshgrid(e, n)
+    values = 50 * np.exp(-((ee - 9000) ** 2 + (nn - 7000) ** 2) / 4e7)
+    grid = xr.DataArray(values, coords={"northing": n, "easting": e}, dims=("northing", "easting"),
+                        name="anomaly", attrs={"units": "nT"})
+    config = parse_config({"survey": {"kind": "magnetic"}, "separate": {"regional_height_m": 2000.0}})
+    ctx = StageContext(config=config, survey=Survey("/tmp"), table=None)
+    out = StageOutput()
+    _, regional, residual = _two_layer(ctx, grid, 100.0, out)
+    assert any("deep layer was moved to 6000 m" in w for w in out.warnings)
+    np.testing.assert_allclose((regional + residual).values, values, atol=1e-9)

@@ -218,6 +218,15 @@ def _two_layer(ctx, grid, height, out):
     spacing = float(abs(small.easting.values[1] - small.easting.values[0]))
     deep = cfg.deep_depth_m or cfg.regional_height_m
     shallow = cfg.shallow_depth_m or 3.0 * spacing
+    if shallow >= deep and not (cfg.deep_depth_m or cfg.shallow_depth_m):
+        # both defaults: a large grid decimated to two_layer_max_data cells has coarse cells, so
+        # its shallow layer (3 cells deep) sinks below the regional height; keep the deep layer
+        # twice as deep and say so
+        out.warnings.append(
+            f"two-layer split: the decimated grid's {spacing:g} m cells put the shallow layer at "
+            f"{shallow:g} m, below regional_height_m; the deep layer was moved to {2 * shallow:g} m "
+            "(set [separate] deep_depth_m and shallow_depth_m, or raise two_layer_max_data)")
+        deep = 2.0 * shallow
     if shallow >= deep:
         raise StageError(
             f"the two-layer shallow depth {shallow:g} m is not above the deep depth {deep:g} m",
