@@ -99,7 +99,7 @@ def rolling_median(values, groups, window: int) -> np.ndarray:
 
 
 def robust_spikes(values, groups, window: int = 11, threshold: float = 6.0,
-                  minimum: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+                  minimum: float = 0.0, fourth=None) -> tuple[np.ndarray, np.ndarray]:
     """Flag spikes as large departures from a rolling median, in robust standard deviations.
 
     The departure r = T - median_window(T) is compared with ``threshold`` x sigma, where the
@@ -118,7 +118,9 @@ def robust_spikes(values, groups, window: int = 11, threshold: float = 6.0,
     x = np.asarray(values, dtype=float)
     g = np.asarray(groups)
     departure = x - rolling_median(x, g, window)
-    d4 = pd.Series(np.abs(fourth_difference(x, g)))
+    if fourth is None:  # the caller may pass the (un-normalised) fourth difference it has
+        fourth = fourth_difference(x, g)
+    d4 = pd.Series(np.abs(np.asarray(fourth, dtype=float)))
     sigma = 1.4826 * d4.groupby(g, sort=False).transform("median").to_numpy() / np.sqrt(70.0)
     sigma = np.nan_to_num(sigma, nan=0.0)
     floor = max(minimum, 1e-12)  # a perfectly smooth line must not flag everything

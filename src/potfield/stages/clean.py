@@ -69,14 +69,16 @@ def run(ctx: StageContext) -> StageOutput:
         if name not in table:
             continue
         values = table[name].to_numpy(dtype=float)
-        spikes, _ = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold, cfg.spike_min)
+        raw = fourth_difference(values, groups)  # computed once: spikes, column and noise
+        spikes, _ = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold,
+                                  cfg.spike_min, fourth=raw)
         spike_any |= spikes
-        d4 = fourth_difference(values, groups, normalised=cfg.fourth_difference_normalised)
+        d4n = raw / 16.0
+        d4 = d4n if cfg.fourth_difference_normalised else raw
         column = "fourth_difference" if name == "total_field" else f"fourth_difference_{name}"
         table[column] = d4
         # The noise envelope excludes the spikes (they are reported as flags) and their neighbours.
         near_spike = np.convolve(spikes.astype(float), np.ones(5), mode="same") > 0
-        d4n = fourth_difference(values, groups, normalised=True)
         envelope = line_noise(d4n, groups, usable=~near_spike)
         envelope.columns = [f"{c}_{name}" if name != "total_field" else c for c in envelope.columns]
         noise_tables.append(envelope)
