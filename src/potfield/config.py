@@ -337,7 +337,7 @@ class GridSection(Section):
     #: Height of the grid (m, ellipsoidal); None = median reading height. "drape" follows data.
     height: float | str | None = None
     #: Search for source depth (multiples of block size) and damping by blocked CV.
-    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 6.0])
+    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0])
     dampings: list[float] = Field(default_factory=lambda: [1e-3, 1e-1, 1e1])
     #: Number of folds of the blocked K-fold cross-validation.
     cv_folds: int = 4

@@ -71,11 +71,26 @@ __all__ = [
 #: DENSE_LIMIT^2 float64 = 128 MB at 4000).
 DENSE_LIMIT = 4000
 #: Half-width (lattice cells) of the exact near field around each datum in the FFT route.
+#: Measured on a draped airborne survey against the direct sum: the whole operator is within
+#: 7e-6 (4 cells; 1.5e-5 with 3 cells, 7e-5 with 2) of the exact kernel, relative RMS; 4 cells
+#: also keep the worst case (noise-fitted coefficients, points 3.6 spacings above the layer)
+#: below 5e-4 of the peak, where 3 cells give 7.5e-4.
 NEAR_CELLS = 4
+#: Height above the layer (lattice spacings) from which predictions skip the near field: there
+#: the order-6 interpolation of the 1/r kernel errs by 3e-5 of one source's peak (measured).
+NEAR_FREE_HEIGHT = 6.0
 #: Order (nodes per axis) of the horizontal Lagrange interpolation from the lattice.
 INTERP_ORDER = 6
 #: Number of readings x sources below which predictions use the exact direct sum.
 DIRECT_LIMIT = 2.0e8
+#: Source depth per lattice spacing of the FFT route: the lattice is never finer than the
+#: blocks and never coarser than depth / DEPTH_PER_SPACING (Dampney 1969, Geophysics 34:39:
+#: a layer 2.5 to 6 grid spacings deep represents the field without aliasing). Deep layers get
+#: proportionally fewer sources: fewer unknowns, smaller FFTs, fewer height levels.
+DEPTH_PER_SPACING = 3.0
+#: Floor of the preconditioner's shift, relative to its largest eigenvalue estimate (tuned on
+#: airborne line data at depths of 2.5-16 block sizes; 10-100 x the damping of 0.1 there).
+PRECOND_FLOOR = 2.0e-7
 
 
 # ------------------------------------------------------------------------------------------------
@@ -159,22 +174,88 @@ def _dense_jacobian(e, n, u, se, sn, su, scale, jac):
 
 
 @numba.njit(parallel=True, cache=True)
-def _interp_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, rows, cols, vals):
-    """Sparse interpolation weights from the (level, northing, easting) lattice to points."""
-    nlev = zl.size
-    per = nlev * order * order
-    nodes = nx * ny
+def _stencils(e, n, u, zl, x0, y0, dx, nx, ny, order, base, wx, wy, wz):
+    """Stencil origin (column, row) and Lagrange weights of every point, stored compactly."""
     for i in numba.prange(e.size):
-        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
-                                                    order)
-        k = i * per
+        _, _, bx, by, px, py, pz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
+        base[i, 0] = bx
+        base[i, 1] = by
+        wx[i] = px
+        wy[i] = py
+        wz[i] = pz
+
+
+@numba.njit(parallel=True, cache=True)
+def _gather(levels, base, wx, wy, wz, sw, out):
+    """out_i = sw_i * (interpolation of the level grids at point i)."""
+    nlev = levels.shape[0]
+    order = wx.shape[1]
+    for i in numba.prange(base.shape[0]):
+        bx = base[i, 0]
+        by = base[i, 1]
+        val = 0.0
         for lev in range(nlev):
+            acc = 0.0
             for a in range(order):
+                row = 0.0
                 for b in range(order):
-                    rows[k] = i
-                    cols[k] = lev * nodes + (by + a) * nx + (bx + b)
-                    vals[k] = wz[lev] * wy[a] * wx[b]
-                    k += 1
+                    row += wx[i, b] * levels[lev, by + a, bx + b]
+                acc += wy[i, a] * row
+            val += wz[i, lev] * acc
+        out[i] = sw[i] * val
+
+
+@numba.njit(parallel=True, cache=True)
+def _scatter(r, base, wx, wy, wz, sw, buffers):
+    """Adjoint of :func:`_gather`: buffers[t] += interpolation weights * sw_i r_i, one buffer
+    per chunk of points (no write races); the caller sums the buffers."""
+    chunks = buffers.shape[0]
+    nlev = buffers.shape[1]
+    order = wx.shape[1]
+    size = base.shape[0]
+    step = (size + chunks - 1) // chunks
+    for t in numba.prange(chunks):
+        buf = buffers[t]
+        buf[:] = 0.0
+        for i in range(t * step, min(size, (t + 1) * step)):
+            bx = base[i, 0]
+            by = base[i, 1]
+            ri = sw[i] * r[i]
+            for lev in range(nlev):
+                rl = ri * wz[i, lev]
+                for a in range(order):
+                    ra = rl * wy[i, a]
+                    for b in range(order):
+                        buf[lev, by + a, bx + b] += ra * wx[i, b]
+
+
+@numba.njit(parallel=True, cache=True)
+def _near_gather(cols, vals, c, out):
+    """out_i += sum_k vals[i, k] c[cols[i, k]] (fixed-width near-field rows; col -1 = none)."""
+    for i in numba.prange(cols.shape[0]):
+        acc = 0.0
+        for k in range(cols.shape[1]):
+            j = cols[i, k]
+            if j >= 0:
+                acc += vals[i, k] * c[j]
+        out[i] += acc
+
+
+@numba.njit(parallel=True, cache=True)
+def _near_scatter(cols, vals, r, buffers):
+    """Adjoint of :func:`_near_gather` into one buffer per chunk of rows."""
+    chunks = buffers.shape[0]
+    size = cols.shape[0]
+    step = (size + chunks - 1) // chunks
+    for t in numba.prange(chunks):
+        buf = buffers[t]
+        buf[:] = 0.0
+        for i in range(t * step, min(size, (t + 1) * step)):
+            ri = r[i]
+            for k in range(cols.shape[1]):
+                j = cols[i, k]
+                if j >= 0:
+                    buf[j] += vals[i, k] * ri
 
 
 @numba.njit(cache=True)
@@ -202,30 +283,28 @@ def _near_value(ei, ni, ui, sx, sy, zs, zl, wz, wy, wx, bx, by, x0, y0, dx, orde
 
 
 @numba.njit(parallel=True, cache=True)
-def _near_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, zs, scale, half, rows, cols,
+def _near_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, zs, scale, half, sw, cols,
                   vals):
-    """Sparse near-field correction (exact minus interpolated kernel) for nearby sources."""
-    nlev = zl.size
-    width = 2 * half + 1
-    per = width * width
+    """Near-field correction (exact minus interpolated kernel, times sw_i) of the sources in the
+    (2 half + 1)^2 cells around every point; one fixed-width row per point, column -1 = empty."""
     for i in numba.prange(e.size):
         fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
                                                     order)
         ix = int(np.floor(fx + 0.5))
         iy = int(np.floor(fy + 0.5))
-        k = i * per
+        k = 0
         for q in range(iy - half, iy + half + 1):
             for p in range(ix - half, ix + half + 1):
                 j = -1
                 if q >= 0 and q < ny and p >= 0 and p < nx:
                     j = src_id[q, p]
-                rows[k] = i
-                cols[k] = j
+                cols[i, k] = j
                 if j >= 0:
-                    vals[k] = _near_value(e[i], n[i], u[i], x0 + p * dx, y0 + q * dx, zs, zl, wz,
-                                          wy, wx, bx, by, x0, y0, dx, order, scale)
+                    vals[i, k] = sw[i] * _near_value(e[i], n[i], u[i], x0 + p * dx, y0 + q * dx,
+                                                     zs, zl, wz, wy, wx, bx, by, x0, y0, dx,
+                                                     order, scale)
                 else:
-                    vals[k] = 0.0
+                    vals[i, k] = 0.0
                 k += 1
 
 
@@ -245,6 +324,9 @@ def _predict_lattice(e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, zs, 
                     row += wx[b] * levels[lev, by + a, bx + b]
                 acc += wy[a] * row
             val += wz[lev] * acc
+        if u[i] - zs >= NEAR_FREE_HEIGHT * dx:
+            out[i] = val  # high above the layer the lattice interpolation alone is exact enough
+            continue
         ix = int(np.floor(fx + 0.5))
         iy = int(np.floor(fy + 0.5))
         for q in range(max(iy - half, 0), min(iy + half + 1, ny)):
@@ -279,12 +361,14 @@ def _levels(zmin: float, zmax: float, dx: float) -> np.ndarray:
     The number grows with the height range relative to the lattice spacing so that the smooth
     far field (sources at least ~3.5 cells away) is interpolated to better than 1e-4 relative
     (Chebyshev nodes avoid the Runge oscillation; Trefethen 2013, Approximation Theory and
-    Approximation Practice, SIAM).
+    Approximation Practice, SIAM). Measured on a draped survey (heights spanning 3.4 lattice
+    spacings): one level per spacing (at least three) gives the whole operator 8e-6 relative
+    error against the direct sum, as does 1.5 per spacing; 0.5 per spacing gives 7e-4.
     """
     span = zmax - zmin
     if span <= 1e-6 * dx:
         return np.array([0.5 * (zmin + zmax)])
-    count = int(np.clip(np.ceil(1.5 * span / dx) + 1, 2, 10))
+    count = int(np.clip(np.ceil(span / dx) + 1, 3, 10))
     k = np.arange(count)
     # Chebyshev points of the second kind (include both ends).
     nodes = 0.5 * (zmin + zmax) - 0.5 * span * np.cos(np.pi * k / (count - 1))
@@ -561,28 +645,22 @@ class _LatticeProblem:
         self.conv = _Convolver(lat, self.zl, self.zs, self.scale, single=True)
         nd = e.size
         nlev = self.zl.size
-        per = nlev * INTERP_ORDER ** 2
-        rows = np.empty(nd * per, dtype=np.int64)
-        cols = np.empty(nd * per, dtype=np.int64)
-        vals = np.empty(nd * per)
-        _interp_entries(e, n, u, self.zl, lat.x0, lat.y0, spacing, lat.nx, lat.ny, INTERP_ORDER,
-                        rows, cols, vals)
-        vals *= np.repeat(self.sw, per)
-        shape = (nd, nlev * lat.nx * lat.ny)
-        self.interp = scipy.sparse.csr_matrix((vals, (rows, cols)), shape=shape)
-        self.interp_t = self.interp.T.tocsr()
-        del rows, cols, vals
-        per = (2 * NEAR_CELLS + 1) ** 2
-        rows = np.empty(nd * per, dtype=np.int64)
-        cols = np.empty(nd * per, dtype=np.int64)
-        vals = np.empty(nd * per)
+        # Interpolation from the lattice levels to the data: stencil origins and weights only
+        # (O(N) memory); applied by numba gather/scatter kernels.
+        self.base = np.empty((nd, 2), dtype=np.int64)
+        self.wx = np.empty((nd, INTERP_ORDER))
+        self.wy = np.empty((nd, INTERP_ORDER))
+        self.wz = np.empty((nd, nlev))
+        _stencils(e, n, u, self.zl, lat.x0, lat.y0, spacing, lat.nx, lat.ny, INTERP_ORDER,
+                  self.base, self.wx, self.wy, self.wz)
+        width = (2 * NEAR_CELLS + 1) ** 2
+        self.near_cols = np.empty((nd, width), dtype=np.int32)
+        # single precision: the correction entries are needed to ~1e-6, not 1e-16
+        self.near_vals = np.empty((nd, width), dtype=np.float32)
         _near_entries(e, n, u, self.zl, lat.x0, lat.y0, spacing, lat.nx, lat.ny, INTERP_ORDER,
-                      self.src_id, self.zs, self.scale, NEAR_CELLS, rows, cols, vals)
-        keep = cols >= 0
-        vals = vals[keep] * self.sw[rows[keep]]
-        self.near = scipy.sparse.csr_matrix((vals, (rows[keep], cols[keep])),
-                                            shape=(nd, self.node_index.size))
-        self.near_t = self.near.T.tocsr()
+                      self.src_id, self.zs, self.scale, NEAR_CELLS, self.sw, self.near_cols,
+                      self.near_vals)
+        self.chunks = max(1, numba.get_num_threads())
 
     @property
     def n_sources(self):
@@ -594,22 +672,57 @@ class _LatticeProblem:
         grid = np.zeros(lat.ny * lat.nx)
         grid[self.node_index] = c
         levels = self.conv.forward(grid.reshape(lat.ny, lat.nx))
-        return self.interp @ levels.reshape(-1) + self.near @ c
+        out = np.empty(self.e.size)
+        _gather(levels, self.base, self.wx, self.wy, self.wz, self.sw, out)
+        _near_gather(self.near_cols, self.near_vals, np.ascontiguousarray(c, dtype=float), out)
+        return out
 
     def adjoint(self, r):
         """A^T W^1/2 r."""
         lat = self.lattice
-        grids = (self.interp_t @ r).reshape(self.zl.size, lat.ny, lat.nx)
+        r = np.ascontiguousarray(r, dtype=float)
+        buffers = np.empty((self.chunks, self.zl.size, lat.ny, lat.nx))
+        _scatter(r, self.base, self.wx, self.wy, self.wz, self.sw, buffers)
+        grids = buffers.sum(axis=0)
+        del buffers
         out = self.conv.adjoint(grids).reshape(-1)[self.node_index]
-        return out + self.near_t @ r
+        near = np.empty((self.chunks, self.node_index.size))
+        _near_scatter(self.near_cols, self.near_vals, r, near)
+        return out + near.sum(axis=0)
 
-    def solve(self, d, damping, tol=1e-4, maxiter=400, z0=None):
-        """CGLS for min |W^1/2 (d - A c)|^2 + damping |c|^2.
+    def _preconditioner(self, damping):
+        """Circulant approximation of the damped normal matrix, inverted in the wavenumber
+        domain: ``M^-1 = F^-1 diag(1 / (rho |K(k)|^2 + mu)) F`` on the source lattice, with
+        ``K`` the layer's spectrum at the level nearest the median data height and ``rho`` the
+        data per source (Chan and Ng 1996, SIAM Review 38:427, circulant preconditioners for
+        Toeplitz systems). ``mu`` is the damping, floored at PRECOND_FLOOR x the largest
+        eigenvalue estimate: the data lie on lines, not on the lattice, so the circulant model
+        of the normal matrix is rough and must not amplify the poorly sampled wavenumbers."""
+        lev = int(np.argmin(np.abs(self.zl - np.median(self.u))))
+        power = (self.e.size / self.n_sources) * np.abs(self.conv.spectra[lev]) ** 2
+        mu = max(float(damping), PRECOND_FLOOR * float(power.max()))
+        return (1.0 / (power + mu)).astype(self.conv.rtype)
 
-        CGLS runs on the stacked operator [W^1/2 A; sqrt(damping) I] (Hestenes and Stiefel 1952,
-        J. Res. NBS 49:409; Paige and Saunders 1982, ACM TOMS 8:43). A circulant right
-        preconditioner cancelling the 1/|k| growth of the layer's spectrum was tried and gave no
-        gain in iterations: the count is set by the small singular values, i.e. by the damping.
+    def _apply_preconditioner(self, inverse, s):
+        lat = self.lattice
+        grid = np.zeros(lat.ny * lat.nx, dtype=self.conv.rtype)
+        grid[self.node_index] = s
+        spec = scipy.fft.rfft2(grid.reshape(lat.ny, lat.nx), s=self.conv.shape, workers=-1)
+        spec *= inverse
+        out = scipy.fft.irfft2(spec, s=self.conv.shape, workers=-1)[:lat.ny, :lat.nx]
+        return out.reshape(-1)[self.node_index].astype(float)
+
+    def solve(self, d, damping, tol=3e-4, maxiter=500, z0=None):
+        """Preconditioned CGLS for min |W^1/2 (d - A c)|^2 + damping |c|^2.
+
+        Conjugate gradients on the damped normal equations, run on the stacked operator
+        [W^1/2 A; sqrt(damping) I] (CGLS: Hestenes and Stiefel 1952, J. Res. NBS 49:409; Paige
+        and Saunders 1982, ACM TOMS 8:43) with the circulant preconditioner of
+        :meth:`_preconditioner` (Bjorck 1996, Numerical Methods for Least Squares Problems,
+        SIAM, sec. 7.4). Measured on a 156,000-block airborne survey: the objective reached in
+        800 plain iterations is reached in about 150 preconditioned ones. Stops when the
+        preconditioned gradient norm ``sqrt(s^T M^-1 s)`` falls below ``tol`` times its value for
+        ``c = 0``.
 
         Returns
         -------
@@ -618,6 +731,7 @@ class _LatticeProblem:
         """
         root = np.sqrt(max(damping, 0.0))
         b = self.sw * d
+        inverse = self._preconditioner(damping)
 
         def forward(z):
             return self.forward(z), root * z
@@ -632,15 +746,16 @@ class _LatticeProblem:
             q1, q2 = forward(z)
             r1, r2 = b - q1, -q2
         s = adjoint(r1, r2)
-        gamma = float(s @ s)
+        t = self._apply_preconditioner(inverse, s)
+        gamma = float(s @ t)
         if z0 is None:
             gamma0 = gamma
         else:
             s0 = adjoint(b, np.zeros(self.n_sources))
-            gamma0 = float(s0 @ s0)
-        p = s.copy()
+            gamma0 = float(s0 @ self._apply_preconditioner(inverse, s0))
+        p = t.copy()
         it = 0
-        if gamma0 == 0.0:
+        if gamma0 <= 0.0:
             return z, z, {"iterations": 0, "converged": True}
         while it < maxiter and gamma > (tol ** 2) * gamma0:
             q1, q2 = forward(p)
@@ -652,12 +767,13 @@ class _LatticeProblem:
             r1 -= alpha * q1
             r2 -= alpha * q2
             s = adjoint(r1, r2)
-            gamma_new = float(s @ s)
-            p = s + (gamma_new / gamma) * p
+            t = self._apply_preconditioner(inverse, s)
+            gamma_new = float(s @ t)
+            p = t + (gamma_new / gamma) * p
             gamma = gamma_new
             it += 1
         info = {"iterations": it, "converged": bool(gamma <= (tol ** 2) * gamma0),
-                "relative_gradient": float(np.sqrt(gamma / gamma0))}
+                "relative_gradient": float(np.sqrt(max(gamma, 0.0) / gamma0))}
         return z.copy(), z, info
 
     def model(self, coefs, damping, region):
@@ -669,6 +785,12 @@ class _LatticeProblem:
             damping=float(damping), block_size=lat.dx, region=region,
             lattice=(lat.x0, lat.y0, lat.dx, lat.nx, lat.ny), node_index=self.node_index,
             info={"levels": int(self.zl.size)})
+
+
+def source_spacing(depth, block_size) -> float:
+    """Lattice spacing (m) of the FFT route for a layer ``depth`` deep over ``block_size`` blocks:
+    ``max(block_size, depth / DEPTH_PER_SPACING)`` (Dampney 1969)."""
+    return max(float(block_size), float(depth) / DEPTH_PER_SPACING)
 
 
 def _source_count(n_data, region, block_size):
@@ -730,8 +852,9 @@ def fit_equivalent_sources(easting, northing, upward, data, weights=None, depth=
     damping : float
         Damping of the dimensionless objective (module docstring); 0 = none.
     block_size : float, optional
-        Block size / source lattice spacing (m). Required for ``"fft"`` (default: the median
-        nearest-neighbour distance); for ``"dense"`` it places one source per block at the block
+        Block size (m). For ``"fft"`` the finest source lattice spacing: the lattice spacing
+        is :func:`source_spacing` (``max(block_size, depth / 3)``; default block size: the
+        median nearest-neighbour distance); for ``"dense"`` it places one source per block at the block
         median position (Soler and Uieda 2021), None = one source per datum (Cordell 1992).
     method : {"auto", "dense", "fft"}
         ``"auto"``: dense up to :data:`DENSE_LIMIT` sources, else FFT.
@@ -763,7 +886,7 @@ def fit_equivalent_sources(easting, northing, upward, data, weights=None, depth=
         points, coefs, info = _fit_dense(e, n, u, d, w, depth, damping, block_size)
         return EquivalentSourceModel("dense", points, coefs, depth, depth, damping,
                                      float(block_size or 0.0), region, info=info)
-    spacing = float(block_size) if block_size else median_spacing(e, n)
+    spacing = source_spacing(depth, block_size if block_size else median_spacing(e, n))
     problem = _LatticeProblem(e, n, u, w, depth, spacing)
     coefs, _, info = problem.solve(d, damping, tol=tol, maxiter=maxiter)
     model = problem.model(coefs, damping, region)
@@ -823,7 +946,8 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
             n_est = _source_count(train.size, region, spacing if block_size else None)
             chosen = _choose_method(method, n_est, block_size, e, n)
             if chosen == "fft":
-                problem = _LatticeProblem(e[train], n[train], u[train], w[train], depth, spacing)
+                problem = _LatticeProblem(e[train], n[train], u[train], w[train], depth,
+                                          source_spacing(depth, spacing))
             z = None
             for damp in sorted(fold_scores, reverse=True):
                 if chosen == "fft":
