@@ -1,6 +1,7 @@
 """`make bench`: run every bench_*() function of benchmarks/bench_*.py and write JSON results.
 
-Usage: python benchmarks/run.py [TOPIC ...]   (e.g. `ingest igrf`; default: all)
+Usage: python benchmarks/run.py [TOPIC | TOPIC.FUNCTION ...]
+       (e.g. `ingest igrf` or `grid.bench_grid_vs_harmonica_demo`; default: all)
 Results: benchmarks/results/<topic>.json and benchmarks/results/summary.md.
 """
 
@@ -42,13 +43,16 @@ def main(argv: list[str]) -> int:
     failures = 0
     for path in files:
         topic = path.stem.removeprefix("bench_")
-        if wanted and topic not in wanted:
+        functions = {w.split(".", 1)[1] for w in wanted if w.startswith(topic + ".")}
+        if wanted and topic not in wanted and not functions:
             continue
         spec = importlib.util.spec_from_file_location(path.stem, path)
         module = importlib.util.module_from_spec(spec)
         sys.path.insert(0, str(HERE))
         spec.loader.exec_module(module)
         for name in sorted(n for n in dir(module) if n.startswith("bench_")):
+            if functions and topic not in wanted and name not in functions:
+                continue
             print(f"== {topic}.{name}", flush=True)
             started = time.perf_counter()
             try:

@@ -69,6 +69,16 @@ def test_only_needs_earlier_stages(magnetic_survey, capsys):
     assert "no up-to-date result" in msg and "ingest" in msg
 
 
+def test_only_with_force_recomputes_only_that_stage(magnetic_survey, capsys):
+    # Common practice for staged processing: --force redoes the chosen stage, it does not
+    # invalidate the up-to-date stages it starts from.
+    assert main(["run", str(magnetic_survey), "--until", "clean"]) == 0
+    capsys.readouterr()
+    assert main(["run", str(magnetic_survey), "--only", "clean", "--force"]) == 0
+    out = capsys.readouterr().out
+    assert "clean: done" in out and "ingest: running" not in out
+
+
 def test_stages_lists_every_kind(capsys):
     assert main(["stages"]) == 0
     out = capsys.readouterr().out

@@ -158,3 +158,13 @@ def test_tiled_grid_agrees_with_whole(tmp_path):
     # fit, and the windows overlap by at least 2 source depths (Soler and Uieda 2021)
     assert np.sqrt(np.nanmean(diff**2)) < 0.03 * np.nanstd(a.values[core])
     assert tiled.table["grid_residual"].isna().all()
+
+
+def test_cv_blocks_are_one_line_spacing():
+    # Common practice: hold out blocks about as large as the gaps the grid must bridge (the
+    # line spacing for line surveys), at most a quarter of the survey so every fold has blocks.
+    from potfield.stages.grid import _cv_spacing
+
+    assert _cv_spacing(50.0, [125.0, 400.0], 200.0, 40_000.0) == 200.0
+    assert _cv_spacing(50.0, [125.0, 400.0], None, 40_000.0) == 1200.0  # stations: 3 x depth
+    assert _cv_spacing(50.0, [125.0], 200.0, 400.0) == 100.0
