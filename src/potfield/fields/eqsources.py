@@ -665,6 +665,7 @@ class _LatticeProblem:
                       self.src_id, self.zs, self.scale, NEAR_CELLS, self.sw, self.near_cols,
                       self.near_vals)
         self.chunks = max(1, numba.get_num_threads())
+        self._normals = None  # local normal matrices of the preconditioner, built on first use
 
     @property
     def n_sources(self):
@@ -700,7 +701,20 @@ class _LatticeProblem:
         ``J^T W J + damping I`` with the exact kernel between its sources and the data within
         PRECOND_MARGIN lattice cells of it is Cholesky-factored once (additive Schwarz without
         overlap; Smith, Bjorstad and Gropp 1996, Domain Decomposition, Cambridge UP, ch. 1).
-        Returns a list of ``(source indices, Cholesky factor)``."""
+        The local normal matrices are computed once and kept, so a search over dampings only
+        refactors them. Returns a list of ``(source indices, Cholesky factor)``."""
+        if self._normals is None:
+            self._normals = self._local_normals()
+        blocks = []
+        for src, normal in self._normals:
+            shifted = normal.copy()
+            shifted[np.diag_indices_from(shifted)] += max(float(damping), 1e-12 * (
+                float(np.trace(normal)) / max(src.size, 1) + 1.0))
+            blocks.append((src, scipy.linalg.cho_factor(shifted, check_finite=False)))
+        return blocks
+
+    def _local_normals(self):
+        """``(source indices, J^T W J)`` of every preconditioner window."""
         lat = self.lattice
         iy, ix = np.divmod(self.node_index, lat.nx)
         se, sn = lat.x0 + ix * lat.dx, lat.y0 + iy * lat.dx
@@ -731,10 +745,7 @@ class _LatticeProblem:
             _dense_jacobian(self.e[data], self.n[data], self.u[data], se[src], sn[src], su[src],
                             self.scale, jac)
             jac *= self.sw[data, None]
-            normal = jac.T @ jac
-            normal[np.diag_indices_from(normal)] += max(float(damping), 1e-12 * (
-                float(np.trace(normal)) / max(src.size, 1) + 1.0))
-            blocks.append((src, scipy.linalg.cho_factor(normal, check_finite=False)))
+            blocks.append((src, jac.T @ jac))
         return blocks
 
     @staticmethod
