@@ -157,7 +157,13 @@ def test_tiled_grid_agrees_with_whole(tmp_path):
     # bound 3 % of the field's spread: each tile sees less of the dipole's tails than the whole
     # fit, and the windows overlap by at least 2 source depths (Soler and Uieda 2021)
     assert np.sqrt(np.nanmean(diff**2)) < 0.03 * np.nanstd(a.values[core])
-    assert tiled.table["grid_residual"].isna().all()
+    # The blended model evaluated at every reading: residuals as small as the whole fit's
+    # (the readings are an exact dipole field, so both are interpolation error only).
+    rw = whole.table["grid_residual"].to_numpy(float)
+    rt = tiled.table["grid_residual"].to_numpy(float)
+    assert np.isfinite(rt).all()
+    assert np.sqrt(np.mean(rt**2)) < 2.0 * np.sqrt(np.mean(rw**2)) + 1e-3 * np.nanstd(a.values)
+    assert tiled.metrics["grid_residual_rms"] < 2.0 * whole.metrics["grid_residual_rms"] + 0.01
 
 
 def test_cv_blocks_are_one_line_spacing():

@@ -257,17 +257,22 @@ class TiledGrid:
     tiles : pandas.DataFrame
         One row per tile: row, col, core and fit-window limits, data, sources, method, CG
         iterations, whether it was fitted.
+    predicted : numpy.ndarray or None
+        Blended prediction at the points given as ``at`` (NaN outside every fitted window);
+        None when not asked for.
     """
 
     grid: xr.DataArray
     residual: np.ndarray | None
     tiles: pd.DataFrame = field(default_factory=pd.DataFrame)
+    predicted: np.ndarray | None = None
 
 
 def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_size,
               overlap=None, depth="default", damping=1e-3, block_size=None, weights=None,
               method="auto", client=None, scheduler="threads", max_pending=None,
-              residuals=False, name="field", units="", long_name="equivalent-source grid (tiled)") -> TiledGrid:
+              residuals=False, at=None, name="field", units="",
+              long_name="equivalent-source grid (tiled)") -> TiledGrid:
     """Grid scattered potential-field data by tiled, blended equivalent sources on Dask.
 
     Parameters
@@ -308,6 +313,10 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         copied only when it is submitted). Default: 2 x the Client's threads, or 2 x the CPUs.
     residuals : bool
         Also evaluate the blended model at the data and return ``data - prediction``.
+    at : tuple of 3 arrays, optional
+        Other points ``(easting, northing, upward)`` (e.g. every raw reading) at which the
+        blended model is evaluated (``TiledGrid.predicted``); with ``at``, ``residuals`` is
+        ignored.
     name, units, long_name : str
         Attributes of the returned grid.
 
@@ -362,15 +371,30 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
     wgy = axis_weights(grid_n, by, ramp)
 
     idx = np.flatnonzero(good)
-    # Sort the usable data by easting once: each window's selection is then a slice + mask.
-    order = idx[np.argsort(e[idx], kind="stable")]
-    e_sorted = e[order]
+    # Points sorted by easting once: each window's selection is then a slice + mask.
 
-    def select(win):
-        fw, fe, fs, fn = win.fit
-        lo, hi = np.searchsorted(e_sorted, [fw, fe], side="left")
-        cand = order[lo:hi]
-        return cand[(n[cand] >= fs) & (n[cand] <= fn)]
+    def selector(east, north, index):
+        """Indices (from ``index``) of the points inside a window's fit region."""
+        ordered = index[np.argsort(east[index], kind="stable")]
+        sorted_east = east[ordered]
+
+        def select(win):
+            fw, fe, fs, fn = win.fit
+            lo, hi = np.searchsorted(sorted_east, [fw, fe], side="left")
+            cand = ordered[lo:hi]
+            return cand[(north[cand] >= fs) & (north[cand] <= fn)]
+        return select
+
+    select = selector(e, n, idx)
+    # where the blended model is evaluated besides the grid: other points, or the data
+    if at is not None:
+        pe, pn, pu = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(*at[:3]))
+        select_points = selector(pe, pn, np.flatnonzero(np.isfinite(pe) & np.isfinite(pn)
+                                                        & np.isfinite(pu)))
+    else:
+        pe, pn, pu = e, n, u
+        select_points = select
+    evaluate = residuals or at is not None
 
     plans, rows = [], []
     for win in windows:  # loop over tiles: cheap bookkeeping only, no data copied yet
@@ -387,9 +411,9 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
 
     total = np.zeros(ge2.shape)
     wsum = np.zeros(ge2.shape)
-    if residuals:
-        pred = np.zeros(d.size)
-        pred_w = np.zeros(d.size)
+    if evaluate:
+        pred = np.zeros(pe.size)
+        pred_w = np.zeros(pe.size)
     pending_points: dict[int, tuple] = {}
 
     def arguments(k):
@@ -397,13 +421,14 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         win, ys, xs, _ = plans[k]
         sel = select(win)
         points = None
-        if residuals:
-            wp = (tile_axis_weight(e[sel], bx, win.col, ramp)
-                  * tile_axis_weight(n[sel], by, win.row, ramp))
+        if evaluate:
+            sel_p = select_points(win)
+            wp = (tile_axis_weight(pe[sel_p], bx, win.col, ramp)
+                  * tile_axis_weight(pn[sel_p], by, win.row, ramp))
             keep = wp > 0
-            pts_idx = sel[keep]
+            pts_idx = sel_p[keep]
             pending_points[k] = (pts_idx, wp[keep])
-            points = (e[pts_idx], n[pts_idx], u[pts_idx])
+            points = (pe[pts_idx], pn[pts_idx], pu[pts_idx])
         return (e[sel], n[sel], u[sel], d[sel], None if w is None else w[sel],
                 grid_e[xs], grid_n[ys], np.ascontiguousarray(heights[ys, xs]), points)
 
@@ -413,7 +438,7 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         wt = wgy[win.row, ys][:, None] * wgx[win.col, xs][None, :]
         total[ys, xs] += wt * sub
         wsum[ys, xs] += wt
-        if residuals:
+        if evaluate:
             pts_idx, wp = pending_points.pop(k)
             pred[pts_idx] += wp * at_points  # indices are unique within a window
             pred_w[pts_idx] += wp
@@ -459,12 +484,15 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
     grid.attrs.update({"tile_size_m": tile_size, "overlap_m": overlap, "depth_m": depth,
                        "damping": float(damping), "block_size_m": block_size,
                        "windows": len(plans)})
-    residual = None
-    if residuals:
-        residual = np.full(d.size, np.nan)
+    residual = predicted = None
+    if evaluate:
+        predicted = np.full(pe.size, np.nan)
         ok = pred_w > 1e-12
-        residual[ok] = d[ok] - pred[ok] / pred_w[ok]
-    return TiledGrid(grid=grid, residual=residual, tiles=pd.DataFrame(rows))
+        predicted[ok] = pred[ok] / pred_w[ok]
+        if at is None:
+            residual = d - predicted
+            predicted = None
+    return TiledGrid(grid=grid, residual=residual, tiles=pd.DataFrame(rows), predicted=predicted)
 
 
 def grid_tiled(easting, northing, upward, data, *, region, spacing, height, tile_size,

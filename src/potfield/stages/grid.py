@@ -308,8 +308,9 @@ TILE_BLOCKS = 40_000
 def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why, height,
                height_why, region, mask_distance, name, units, long_name) -> StageOutput:
     """Tiled gridding (potfield.fields.tiles): the depth and damping come from the CV search on
-    a central window, every tile is fitted on its own as a Dask task and the tiles are blended.
-    There is no single model, so no per-reading grid residual and no model for later stages."""
+    a central window, every tile is fitted on its own as a Dask task and the tiles are blended;
+    the blended model is also evaluated at every reading for the grid residual. There is no
+    single model, so none is saved for later stages."""
     import verde as vd
 
     from ..fields.tiles import fit_tiled
@@ -329,10 +330,11 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     # the same nodes as the whole-survey grid (verde adjust="region")
     ge, gn = vd.grid_coordinates(region, spacing=spacing, adjust="region")
     nodes = (float(ge.min()), float(ge.max()), float(gn.min()), float(gn.max()))
+    e_all, n_all, h_all = (table[c].to_numpy(float) for c in ("easting", "northing", "height"))
     result = fit_tiled(be, bn, bh, bd, region=nodes, spacing=spacing, height=float(height),
                        tile_size=tile, depth=best["depth"], damping=best["damping"],
                        block_size=block, method=cfg.method, name=name, units=units,
-                       long_name=long_name)
+                       long_name=long_name, at=(e_all, n_all, h_all))
     grid = result.grid
     ge, gn = np.meshgrid(grid.easting.values, grid.northing.values)
     keep = vd.distance_mask((e, n), maxdist=mask_distance, coordinates=(ge, gn))
@@ -341,7 +343,8 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                        "history": f"tiled equivalent sources of '{column}': tiles {tile:.0f} m, "
                                   f"depth {best['depth']:.1f} m, damping {best['damping']:g}"})
     out = StageOutput(table=table.copy())
-    out.table["grid_residual"] = np.nan
+    out.table["grid_residual"] = values - result.predicted
+    resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
     out.grids[name] = grid
     out.tables["grid_cv"] = scores
     out.tables["grid_tiles"] = result.tiles
@@ -354,11 +357,11 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                    "grid_tile_size_m": float(tile), "grid_cells": int(grid.size),
                    "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
                    "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
-                   "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"])}
+                   "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
+                   "grid_residual_rms": resid_rms}
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
-                     f"{tile:.0f} m blended; grid residual per reading not computed in tiled mode "
-                     "(no single model)")
+                     f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}")
     return out
 
 
