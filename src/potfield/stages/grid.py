@@ -215,7 +215,8 @@ def run(ctx: StageContext) -> StageOutput:
 
     if cfg.tiled:
         return _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why,
-                          height, height_why, region, mask_distance, name, units, long_name)
+                          height, height_why, region, mask_distance, name, units, long_name,
+                          line_spacing)
     out = StageOutput()
     model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress)
     history = (f"equivalent sources ({model.method}) of '{column}': depth {best['depth']:.1f} m, "
@@ -306,7 +307,8 @@ TILE_BLOCKS = 40_000
 
 
 def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why, height,
-               height_why, region, mask_distance, name, units, long_name) -> StageOutput:
+               height_why, region, mask_distance, name, units, long_name,
+               line_spacing) -> StageOutput:
     """Tiled gridding (potfield.fields.tiles): the depth and damping come from the CV search on
     a central window, every tile is fitted on its own as a Dask task and the tiles are blended;
     the blended model is also evaluated at every reading for the grid residual. There is no
@@ -320,8 +322,6 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
         raise ConfigError("tiled gridding needs a constant grid height", key="grid.height",
                           fix="set [grid] height to a number (m) or set tiled = false")
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
-    line_spacing = ctx.state.get("ingest", {}).get("line_spacing_m")
-    line_spacing = float(line_spacing) if line_spacing and math.isfinite(line_spacing) else None
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, ctx.progress)
     area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
     tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
