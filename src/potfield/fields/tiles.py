@@ -456,7 +456,9 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         nxt = 0
         while nxt < len(plans) or futures:  # loop over tiles, at most max_pending in flight
             while nxt < len(plans) and len(futures) < max_pending:
-                arrays = active.scatter(list(arguments(nxt)), direct=False)
+                # hash=False: windows in one grid column share identical coordinate arrays;
+                # content-hashed keys would be shared and freed under another window's task
+                arrays = active.scatter(list(arguments(nxt)), direct=False, hash=False)
                 future = active.submit(_fit_window, *arrays, fit_kwargs, pure=False)
                 futures[future] = nxt
                 queue.add(future)
