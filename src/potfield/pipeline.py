@@ -238,7 +238,8 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             cached = old_stages.get(name, {})
             cache_file = survey.cache / f"{name}.parquet"
             # --force recomputes the selected stages only; earlier ones must still be up to date
-            is_cached = (not (force and name in selected) and cached.get("key") == key and cached.get("status") == "done"
+            is_cached = (not (force and name in selected) and cached.get("key") == key
+                         and cached.get("status") == "done"
                          and (not cached.get("table") or cache_file.is_file())
                          and all((survey.grids / f"{g}.nc").is_file() for g in cached.get("grids", [])))
             if name not in selected or is_cached:
