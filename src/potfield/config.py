@@ -338,7 +338,7 @@ class GridSection(Section):
     height: float | str | None = None
     #: Search for source depth (multiples of block size) and damping by blocked CV.
     depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0])
-    dampings: list[float] = Field(default_factory=lambda: [1e-3, 1e-1, 1e1])
+    dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1])
     #: Number of folds of the blocked K-fold cross-validation.
     cv_folds: int = 4
     #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
@@ -346,6 +346,12 @@ class GridSection(Section):
     #: Equivalent-source solver: "auto" (dense up to 4000 sources, else FFT lattice), "dense"
     #: (sources beneath the blocks) or "fft" (lattice layer, conjugate gradients).
     method: Literal["auto", "dense", "fft"] = "auto"
+    #: Source layer: "relative" (every source the chosen depth below the readings around it, so
+    #: the layer follows a draped survey; Cordell 1992) or "constant" (one horizontal plane).
+    depth_type: Literal["relative", "constant"] = "relative"
+    #: Stopping tolerance of the lattice solver in the final fit (relative norm of the
+    #: preconditioned normal-equation residual); the search uses a looser one.
+    tolerance: float = Field(1e-5, gt=0, lt=1)
     #: Tiled gridding of very large surveys (potfield.fields.tiles) and the tile size (m).
     tiled: bool = False
     tile_size_m: float = 0.0

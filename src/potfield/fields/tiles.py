@@ -272,7 +272,7 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
               overlap=None, depth="default", damping=1e-3, block_size=None, weights=None,
               method="auto", client=None, scheduler="threads", max_pending=None,
               residuals=False, at=None, name="field", units="",
-              long_name="equivalent-source grid (tiled)") -> TiledGrid:
+              long_name="equivalent-source grid (tiled)", fit_options=None) -> TiledGrid:
     """Grid scattered potential-field data by tiled, blended equivalent sources on Dask.
 
     Parameters
@@ -319,6 +319,9 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         ignored.
     name, units, long_name : str
         Attributes of the returned grid.
+    fit_options : dict, optional
+        Further keywords of every window's fit (``depth_type``, ``tol``, ``ceiling``, ...; see
+        :func:`potfield.fields.eqsources.fit_equivalent_sources`).
 
     Returns
     -------
@@ -355,8 +358,8 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         raise ValueError(f"overlap ({overlap:g} m) must be >= 0 and smaller than tile_size "
                          f"({tile_size:g} m)")
     block_size = float(spacing) if block_size is None else float(block_size)
-    fit_kwargs = {"depth": depth, "damping": float(damping), "block_size": block_size,
-                  "method": method}
+    fit_kwargs = {**(fit_options or {}), "depth": depth, "damping": float(damping),
+                  "block_size": block_size, "method": method}
 
     ge2, gn2 = vd.grid_coordinates(tuple(region), spacing=spacing)
     grid_e, grid_n = ge2[0], gn2[:, 0]

@@ -116,14 +116,23 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
     return e[keep], n[keep], h[keep], d[keep]
 
 
-def _fit(e, n, h, d, cfg, block, line_spacing, progress):
+def _fit_options(cfg, height, depth):
+    """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
+    constant height, a ceiling half a depth below the grid (a relative layer beneath high
+    ground must not reach up to a grid flown lower)."""
+    ceiling = None if height == "drape" else float(height) - 0.5 * float(depth)
+    return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance), "ceiling": ceiling}
+
+
+def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
     """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress)
     progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
     model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
                                        damping=best["damping"], block_size=block,
-                                       method=cfg.method)
+                                       method=cfg.method,
+                                       **_fit_options(cfg, height, best["depth"]))
     return model, scores, best, bd.size
 
 
@@ -144,9 +153,9 @@ def _cv_spacing(block, depths, line_spacing, extent):
 
 
 #: Stopping tolerance of the solver during the depth/damping search, looser than the final
-#: fit's (the solver's default, 1e-4) to keep the search cheap; all candidates are compared at
-#: the same tolerance.
-CV_TOL = 1e-3
+#: fit's ([grid] tolerance, 1e-5) to keep the search cheap; all candidates are compared at the
+#: same tolerance (at 1e-3 the smaller dampings were not reached and all scored alike).
+CV_TOL = 1e-4
 
 
 def _search(be, bn, bh, bd, cfg, block, line_spacing, progress):
@@ -164,9 +173,9 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress):
         scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing,
-                                          tol=CV_TOL)
+                                          tol=CV_TOL, depth_type=cfg.depth_type)
     else:
-        scores = pd.DataFrame(columns=["depth", "damping", "r2", "rms"])
+        scores = pd.DataFrame(columns=["depth", "damping", "r2", "r2_se", "rms", "chosen"])
         best = {"depth": depths[len(depths) // 2], "damping": dampings[len(dampings) // 2],
                 "r2": float("nan"), "rms": float("nan")}
     return scores, best
@@ -219,9 +228,10 @@ def run(ctx: StageContext) -> StageOutput:
                           height, height_why, region, mask_distance, name, units, long_name,
                           line_spacing)
     out = StageOutput()
-    model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress)
-    history = (f"equivalent sources ({model.method}) of '{column}': depth {best['depth']:.1f} m, "
-               f"damping {best['damping']:g}, blocks {block:g} m")
+    model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress,
+                                         height)
+    history = (f"equivalent sources ({model.method}, {cfg.depth_type} depth) of '{column}': "
+               f"depth {best['depth']:.1f} m, damping {best['damping']:g}, blocks {block:g} m")
     grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name,
                  history)
 
@@ -245,7 +255,7 @@ def run(ctx: StageContext) -> StageOutput:
             result[f"{column}_micro"] = values + correction
             d = (values + correction)[ok]
             model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing,
-                                                 ctx.progress)
+                                                 ctx.progress, height)
             history += "; micro-levelled (Minty 1991) and gridded again"
             grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units,
                          long_name, history)
@@ -272,6 +282,7 @@ def run(ctx: StageContext) -> StageOutput:
         "column": column,
         "grid": name,
         "method": model.method,
+        "depth_type": cfg.depth_type,
         "depth": float(best["depth"]),
         "damping": float(best["damping"]),
         "block_m": block,
@@ -295,6 +306,8 @@ def run(ctx: StageContext) -> StageOutput:
         "grid_cv_rms": float(best["rms"]),
         "grid_residual_rms": resid_rms,
     }
+    if model.info.get("iterations") is not None:
+        out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
                      f"({height_why}), {model.method} equivalent sources, CV R2 "
@@ -335,7 +348,8 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     result = fit_tiled(be, bn, bh, bd, region=nodes, spacing=spacing, height=float(height),
                        tile_size=tile, depth=best["depth"], damping=best["damping"],
                        block_size=block, method=cfg.method, name=name, units=units,
-                       long_name=long_name, at=(e_all, n_all, h_all))
+                       long_name=long_name, at=(e_all, n_all, h_all),
+                       fit_options=_fit_options(cfg, height, best["depth"]))
     grid = result.grid
     ge, gn = np.meshgrid(grid.easting.values, grid.northing.values)
     keep = vd.distance_mask((e, n), maxdist=mask_distance, coordinates=(ge, gn))
