@@ -14,18 +14,27 @@ Two solvers share one objective and one damping convention:
     and the damped normal equations are solved directly. For small problems (a few thousand
     data), e.g. ground gravity stations.
 ``"fft"``
-    One source per occupied block of a regular lattice, on a horizontal plane ``depth`` below the
-    median data height: the convolutional equivalent layer of Takahashi, Oliveira and Barbosa
-    (2020), generalised to data at scattered positions and heights. The source-to-lattice part of
-    the Jacobian is block-Toeplitz with Toeplitz blocks and is applied with FFTs on a few height
-    levels; the data are reached from the lattice by Lagrange interpolation (horizontal and
-    vertical), and the near field of every datum is replaced by the exact kernel (a
-    pre-corrected FFT, Phillips and White 1997, IEEE Trans. CAD 16:1059). The lattice spacing
-    follows the depth (``max(block, depth / 3)``, Dampney 1969). The damped least-squares
-    problem is solved matrix-free by conjugate gradients on the normal equations (CGLS; Hestenes
-    and Stiefel 1952, J. Res. NBS 49:409; Paige and Saunders 1982, ACM TOMS 8:43), preconditioned
-    by block Jacobi on windows of ~300 sources (exact local normal matrices). Cost per iteration
-    O(G log G + N) for G lattice nodes and N data; memory O(N + 300 S) for S sources.
+    One source per occupied node of a regular lattice: the convolutional equivalent layer of
+    Takahashi, Oliveira and Barbosa (2020), generalised to data at scattered positions and
+    heights and to sources that follow the survey's drape. By default (``depth_type=
+    "relative"``) each source sits ``depth`` below the median height of the data in its cell,
+    capped at half the depth below the lowest datum nearby, so the layer keeps one depth
+    beneath a draped survey (Cordell 1992 places each source a fixed depth below its datum);
+    ``"constant"`` puts all sources on one horizontal plane ``depth`` below the median data
+    height. The lattice-to-lattice part of the Jacobian is block-Toeplitz with Toeplitz blocks
+    between a few horizontal source planes and data height levels (sources are spread over the
+    planes by Lagrange weights in height) and is applied with real FFTs in double precision;
+    the data are reached from the levels by Lagrange interpolation (horizontal and vertical),
+    and the near field of every datum is replaced by the exact kernel of each source (a
+    pre-corrected FFT, Phillips and White 1997, IEEE Trans. CAD 16:1059); the FFT kernel is
+    zero at the adjacent nodes, which only the exact near field reaches. The lattice spacing
+    follows the depth (``max(block, depth / 4)``, Dampney 1969). The damped least-squares
+    problem is solved matrix-free by conjugate gradients on the normal equations (CGLS;
+    Hestenes and Stiefel 1952, J. Res. NBS 49:409; Paige and Saunders 1982, ACM TOMS 8:43),
+    preconditioned by overlapping additive Schwarz on windows of ~300 sources widened by 3 nodes
+    (exact local normal matrices, Cholesky-factored once per damping; Smith, Bjorstad and Gropp 1996,
+    Domain Decomposition, Cambridge). Cost per iteration O(G log G + N) for G lattice nodes
+    and N data; memory O(N + 300 S) for S sources.
 
 The objective, with weights normalised to mean 1 and the dimensionless kernel ``depth / r`` (so
 the coefficients carry the data's unit and the damping is scale-free)::
@@ -281,6 +290,37 @@ def _near_scatter(cols, vals, r, buffers):
                 j = cols[i, k]
                 if j >= 0:
                     buf[j] += vals[i, k] * ri
+
+
+@numba.njit(parallel=True, cache=True)
+def _schwarz_apply(s, src, src_off, fac, fac_off, buffers):
+    """buffers[t] += sum over the windows of chunk t of R_i^T M_i^-1 R_i s, by forward and back
+    substitution with the Cholesky factors ``M_i = L_i L_i^T`` (lower triangles packed by rows
+    from ``fac[fac_off[i]]``) of the windows' sources ``src[src_off[i]:src_off[i+1]]``; one
+    buffer per chunk of windows (no write races); the caller sums the buffers."""
+    chunks = buffers.shape[0]
+    for t in numba.prange(chunks):
+        buf = buffers[t]
+        buf[:] = 0.0
+        start, stop = _chunk(t, chunks, src_off.size - 1)
+        for b in range(start, stop):
+            lo = src_off[b]
+            m = src_off[b + 1] - lo
+            y = np.empty(m)
+            for i in range(m):  # L y = s
+                row = fac_off[b] + i * (i + 1) // 2
+                acc = s[src[lo + i]]
+                for k in range(i):
+                    acc -= fac[row + k] * y[k]
+                y[i] = acc / fac[row + i]
+            for i in range(m - 1, -1, -1):  # L^T x = y, row by row of L
+                row = fac_off[b] + i * (i + 1) // 2
+                xi = y[i] / fac[row + i]
+                y[i] = xi
+                for k in range(i):
+                    y[k] -= fac[row + k] * xi
+            for i in range(m):
+                buf[src[lo + i]] += y[i]
 
 
 @numba.njit(cache=True)
@@ -786,6 +826,41 @@ def source_heights(u, groups, cells, shape, depth, depth_type="relative", ceilin
     return heights, float(depth)
 
 
+class _Schwarz:
+    """Additive Schwarz preconditioner ``sum_i R_i^T M_i^-1 R_i`` from the windows' normal
+    matrices ``[(sources, J^T W J), ...]`` and a damping: the Cholesky factors of ``M_i = J^T W
+    J + damping I`` are packed (lower triangles by rows) in one array and applied by a parallel
+    numba kernel, about 40 % faster than a LAPACK solve per window (memory-bound: one pass over
+    the packed triangles each way). Substitution, not explicit inverses: at small dampings the
+    windows are ill-conditioned and an explicit inverse cost 20 % more iterations. Symmetric
+    positive definite, as conjugate gradients need."""
+
+    def __init__(self, normals, damping, n_sources, chunks):
+        sizes = np.array([src.size for src, _ in normals], dtype=np.int64)
+        self.src_off = np.concatenate([[0], np.cumsum(sizes)])
+        self.fac_off = np.concatenate([[0], np.cumsum(sizes * (sizes + 1) // 2)])
+        self.src = np.concatenate([src for src, _ in normals]).astype(np.int64)
+        self.fac = np.empty(int(self.fac_off[-1]))
+        self.n_sources, self.chunks = int(n_sources), int(chunks)
+        for k, (src, normal) in enumerate(normals):
+            shifted = normal.copy()
+            shifted[np.diag_indices_from(shifted)] += max(float(damping), 1e-12 * (
+                float(np.trace(normal)) / max(src.size, 1) + 1.0))
+            factor = scipy.linalg.cholesky(shifted, lower=True, check_finite=False)
+            self.fac[self.fac_off[k]:self.fac_off[k + 1]] = factor[np.tril_indices(src.size)]
+
+    @property
+    def windows(self):
+        """Source indices of every window."""
+        return [self.src[a:b] for a, b in zip(self.src_off[:-1], self.src_off[1:])]
+
+    def apply(self, s):
+        buffers = np.empty((self.chunks, self.n_sources))
+        _schwarz_apply(np.ascontiguousarray(s, dtype=float), self.src, self.src_off, self.fac,
+                       self.fac_off, buffers)
+        return buffers.sum(axis=0)
+
+
 class _LatticeProblem:
     """Damped least-squares problem of the FFT route; built once, solved for many dampings."""
 
@@ -869,19 +944,13 @@ class _LatticeProblem:
         """Additive Schwarz preconditioner of the damped normal matrix: the lattice is cut into
         square tiles of about PRECOND_SOURCES sources; each window holds a tile's sources and
         those within PRECOND_OVERLAP nodes of it, and its normal matrix ``J^T W J + damping I``
-        (exact kernel, the data within PRECOND_MARGIN nodes of the window) is Cholesky-factored
-        once (Smith, Bjorstad and Gropp 1996, Domain Decomposition, Cambridge UP, ch. 1). The
-        local normal matrices are computed once and kept, so a search over dampings only
-        refactors them. Returns a list of ``(source indices, Cholesky factor)``."""
+        (exact kernel, the data within PRECOND_MARGIN nodes of the window) is factored once
+        (Cholesky; Smith, Bjorstad and Gropp 1996, Domain Decomposition, Cambridge UP, ch. 1).
+        The local normal matrices are computed once and kept, so a search over dampings only
+        refactors them. Returns a :class:`_Schwarz`."""
         if self._normals is None:
             self._normals = self._local_normals()
-        blocks = []
-        for src, normal in self._normals:
-            shifted = normal.copy()
-            shifted[np.diag_indices_from(shifted)] += max(float(damping), 1e-12 * (
-                float(np.trace(normal)) / max(src.size, 1) + 1.0))
-            blocks.append((src, scipy.linalg.cho_factor(shifted, check_finite=False)))
-        return blocks
+        return _Schwarz(self._normals, damping, self.n_sources, self.chunks)
 
     def _local_normals(self):
         """``(source indices, J^T W J)`` of every preconditioner window."""
@@ -911,19 +980,12 @@ class _LatticeProblem:
                 blocks.append((src, jac.T @ jac))
         return blocks
 
-    @staticmethod
-    def _apply_preconditioner(blocks, s):
-        out = np.zeros_like(s)
-        for src, factor in blocks:
-            out[src] += scipy.linalg.cho_solve(factor, s[src], check_finite=False)
-        return out
-
     def solve(self, d, damping, tol=1e-4, maxiter=500, z0=None):
         """Preconditioned CGLS for min |W^1/2 (d - A c)|^2 + damping |c|^2.
 
         Conjugate gradients on the damped normal equations, run on the stacked operator
         [W^1/2 A; sqrt(damping) I] (CGLS: Hestenes and Stiefel 1952, J. Res. NBS 49:409; Paige
-        and Saunders 1982, ACM TOMS 8:43) with the block-Jacobi preconditioner of
+        and Saunders 1982, ACM TOMS 8:43) with the additive Schwarz preconditioner of
         :meth:`_preconditioner` (Bjorck 1996, Numerical Methods for Least Squares Problems,
         SIAM, sec. 7.4). Stops when the preconditioned gradient norm ``sqrt(s^T M^-1 s)`` falls
         below ``tol`` times its value for ``c = 0``.
@@ -950,13 +1012,13 @@ class _LatticeProblem:
             q1, q2 = forward(z)
             r1, r2 = b - q1, -q2
         s = adjoint(r1, r2)
-        t = self._apply_preconditioner(blocks, s)
+        t = blocks.apply(s)
         gamma = float(s @ t)
         if z0 is None:
             gamma0 = gamma
         else:
             s0 = adjoint(b, np.zeros(self.n_sources))
-            gamma0 = float(s0 @ self._apply_preconditioner(blocks, s0))
+            gamma0 = float(s0 @ blocks.apply(s0))
         p = t.copy()
         it = 0
         if gamma0 <= 0.0:
@@ -971,7 +1033,7 @@ class _LatticeProblem:
             r1 -= alpha * q1
             r2 -= alpha * q2
             s = adjoint(r1, r2)
-            t = self._apply_preconditioner(blocks, s)
+            t = blocks.apply(s)
             gamma_new = float(s @ t)
             p = t + (gamma_new / gamma) * p
             gamma = gamma_new
@@ -1063,7 +1125,7 @@ def fit_equivalent_sources(easting, northing, upward, data, weights=None, depth=
         Damping of the dimensionless objective (module docstring); 0 = none.
     block_size : float, optional
         Block size (m). For ``"fft"`` the finest source lattice spacing: the lattice spacing
-        is :func:`source_spacing` (``max(block_size, depth / 3)``; default block size: the
+        is :func:`source_spacing` (``max(block_size, depth / 4)``; default block size: the
         median nearest-neighbour distance); for ``"dense"`` it places one source per block at the block
         median position (Soler and Uieda 2021), None = one source per datum (Cordell 1992).
     method : {"auto", "dense", "fft"}
