@@ -112,13 +112,16 @@ DEPTH_PER_SPACING = 4.0
 #: Additive Schwarz preconditioner of the lattice solver: tiles of about PRECOND_SOURCES
 #: sources, each window widened by PRECOND_OVERLAP nodes on every side, and the data within
 #: PRECOND_MARGIN nodes of a window in its local normal matrix. Measured on the 1e6-reading demo
-#: (117,000 training blocks, 45,000 sources at 400 m, damping 1e-5, stop 1e-5): without overlap
-#: 799 iterations (margin 6) or 536 (margin 14; wider margins no better); with an overlap of 2-4
-#: nodes 144-258 iterations (3 nodes and margin 10: 179, 32 s in all). A coarse correction by
-#: window aggregates saved only 5 %; 4x larger windows without overlap 7-15 %.
+#: (117,000 training blocks, 400 m deep; stop 1e-5). At damping 1e-5 and 45,000 sources (flat
+#: layer): without overlap 799 iterations (margin 6) or 536 (margin 14); with an overlap of 2-4
+#: nodes 144-258. At damping 1e-6 and 59,000 sources (drape-following layer), overlap 3:
+#: margin 10, 14, 18, 24, 32, 48 took 341, 282, 251, 236, 208, 197 iterations and 80, 74, 65,
+#: 67, 59, 65 s in all (the local normal matrices cost 5 s at margin 10, 12 s at 32, 18 s at
+#: 48). A coarse correction by window aggregates saved only 5 %; 4x larger windows without
+#: overlap 7-15 %.
 PRECOND_SOURCES = 300
 PRECOND_OVERLAP = 3
-PRECOND_MARGIN = 10
+PRECOND_MARGIN = 32
 
 
 # ------------------------------------------------------------------------------------------------
@@ -977,7 +980,9 @@ class _LatticeProblem:
                 _dense_jacobian(self.e[data], self.n[data], self.u[data], se[src], sn[src],
                                 su[src], self.scale, jac)
                 jac *= self.sw[data, None]
-                blocks.append((src, jac.T @ jac))
+                # J^T J by a symmetric rank-k update: half the work of a general product
+                lower = scipy.linalg.blas.dsyrk(1.0, jac, trans=1, lower=1)
+                blocks.append((src, lower + np.tril(lower, -1).T))
         return blocks
 
     def solve(self, d, damping, tol=1e-4, maxiter=500, z0=None):
