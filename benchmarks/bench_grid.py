@@ -215,8 +215,10 @@ def bench_grid_vs_harmonica_demo(readings=1_000_000, seed=1, gb_damping=1e-4, fo
     start = time.perf_counter()
     _, best = grid_stage._search(*tc, bd[train], cfg, block, line_spacing, lambda m: None)
     search_s = time.perf_counter() - start
+    height = float(np.median(bh[train]))  # the stage's default grid height
     model = eqs.fit_equivalent_sources(*tc, bd[train], depth=best["depth"],
-                                       damping=best["damping"], block_size=block)
+                                       damping=best["damping"], block_size=block,
+                                       **grid_stage._fit_options(cfg, height, best["depth"]))
     seconds = time.perf_counter() - start
     score("potfield_grid_stage", model, seconds,
           {"search_s": round(search_s, 1), "depth_m": best["depth"], "damping": best["damping"],

@@ -350,8 +350,10 @@ class GridSection(Section):
     #: the layer follows a draped survey; Cordell 1992) or "constant" (one horizontal plane).
     depth_type: Literal["relative", "constant"] = "relative"
     #: Stopping tolerance of the lattice solver in the final fit (relative norm of the
-    #: preconditioned normal-equation residual); the search uses a looser one.
-    tolerance: float = Field(1e-5, gt=0, lt=1)
+    #: preconditioned normal-equation residual); the search uses a looser one. On the
+    #: 1e6-reading demo 2e-5 scored as 1e-5 on held-out blocks (R2 0.9999862 vs 0.9999865) in
+    #: 172 instead of 208 iterations; 4e-5 lost accuracy (0.9999830).
+    tolerance: float = Field(2e-5, gt=0, lt=1)
     #: Tiled gridding of very large surveys (potfield.fields.tiles) and the tile size (m).
     tiled: bool = False
     tile_size_m: float = 0.0

@@ -153,7 +153,7 @@ def _cv_spacing(block, depths, line_spacing, extent):
 
 
 #: Stopping tolerance of the solver during the depth/damping search, looser than the final
-#: fit's ([grid] tolerance, 1e-5) to keep the search cheap; all candidates are compared at the
+#: fit's ([grid] tolerance, 2e-5) to keep the search cheap; all candidates are compared at the
 #: same tolerance (at 1e-3 the smaller dampings were not reached and all scored alike).
 CV_TOL = 1e-4
 
