@@ -212,10 +212,11 @@ def bench_grid_vs_harmonica_demo(readings=1_000_000, seed=1, gb_damping=1e-4, fo
                                damping=1e-3, block_size=block, method="fft", maxiter=3)
     hm.EquivalentSourcesGB(damping=gb_damping, depth=4 * block, random_state=seed).fit(
         tuple(c[few] for c in tc), bd[train][few])
-    start = time.perf_counter()
-    _, best = grid_stage._search(*tc, bd[train], cfg, block, line_spacing, lambda m: None)
-    search_s = time.perf_counter() - start
     height = float(np.median(bh[train]))  # the stage's default grid height
+    start = time.perf_counter()
+    _, best = grid_stage._search(*tc, bd[train], cfg, block, line_spacing, lambda m: None,
+                                 height)
+    search_s = time.perf_counter() - start
     model = eqs.fit_equivalent_sources(*tc, bd[train], depth=best["depth"],
                                        damping=best["damping"], block_size=block,
                                        **grid_stage._fit_options(cfg, height, best["depth"]))

@@ -735,7 +735,7 @@ def _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type="relative",
     if depth_type == "constant":
         su = np.full(se.size, _constant_plane(u, depth, ceiling))
     else:
-        su = su - depth if ceiling is None else np.minimum(su - depth, float(ceiling))
+        su = _capped(su - depth, ceiling)
     jac = np.empty((e.size, se.size))
     _dense_jacobian(e, n, u, se, sn, su, float(depth), jac)
     sw = np.sqrt(w)
@@ -779,11 +779,25 @@ def _group_median(values, groups, count):
     return 0.5 * (sorted_values[starts + (sizes - 1) // 2] + sorted_values[starts + sizes // 2])
 
 
+def _capped(heights, ceiling):
+    """Source heights not above ``ceiling`` (m; None = no cap)."""
+    return heights if ceiling is None else np.minimum(heights, float(ceiling))
+
+
+def layer_ceiling(grid_height, depth):
+    """Highest source height (m) under a grid at constant ``grid_height`` for a layer ``depth``
+    deep: half the depth below the grid, so a layer following high ground never reaches up to
+    a grid flown lower (None for a drape grid, ``grid_height`` None or "drape")."""
+    if grid_height is None or grid_height == "drape":
+        return None
+    return float(grid_height) - 0.5 * float(depth)
+
+
 def _constant_plane(u, depth, ceiling=None):
     """Height of a constant-depth layer: ``depth`` below the median data height and at least
     ``depth / 2`` below every datum (and not above ``ceiling``)."""
-    plane = min(float(np.median(u)) - depth, float(u.min()) - 0.5 * depth)
-    return plane if ceiling is None else min(plane, float(ceiling))
+    return float(_capped(min(float(np.median(u)) - depth, float(u.min()) - 0.5 * depth),
+                         ceiling))
 
 
 def source_heights(u, groups, cells, shape, depth, depth_type="relative", ceiling=None):
@@ -827,10 +841,7 @@ def source_heights(u, groups, cells, shape, depth, depth_type="relative", ceilin
     floor[cells] = lowest
     floor = scipy.ndimage.minimum_filter(floor, size=2 * NEAR_CELLS + 1, mode="constant",
                                          cval=np.inf)[cells]
-    heights = np.minimum(heights, floor - 0.5 * depth)
-    if ceiling is not None:
-        heights = np.minimum(heights, float(ceiling))
-    return heights, float(depth)
+    return _capped(np.minimum(heights, floor - 0.5 * depth), ceiling), float(depth)
 
 
 class _Schwarz:
@@ -880,8 +891,8 @@ class _LatticeProblem:
         self.lattice = lat
         ix = np.rint((e - lat.x0) / spacing).astype(np.int64)
         iy = np.rint((n - lat.y0) / spacing).astype(np.int64)
-        flat = iy * lat.nx + ix
-        self.node_index, groups = np.unique(flat, return_inverse=True)
+        self.data_node = iy * lat.nx + ix  # lattice node nearest to every datum
+        self.node_index, groups = np.unique(self.data_node, return_inverse=True)
         src_id = np.full(lat.ny * lat.nx, -1, dtype=np.int64)
         src_id[self.node_index] = np.arange(self.node_index.size)
         self.src_id = src_id.reshape(lat.ny, lat.nx)
@@ -967,9 +978,8 @@ class _LatticeProblem:
         width = max(4, int(round(np.sqrt(PRECOND_SOURCES * np.ptp(ix + 1) * np.ptp(iy + 1)
                                          / max(self.n_sources, 1)))))
         sources = _NodeIndex(self.node_index, lat.nx)  # node_index is sorted: rows, then columns
-        dix = np.clip(np.rint((self.e - lat.x0) / lat.dx).astype(np.int64), 0, lat.nx - 1)
-        diy = np.clip(np.rint((self.n - lat.y0) / lat.dx).astype(np.int64), 0, lat.ny - 1)
-        data_nodes = _NodeIndex(diy * lat.nx + dix, lat.nx)
+        diy, dix = np.divmod(self.data_node, lat.nx)
+        data_nodes = _NodeIndex(self.data_node, lat.nx)
         over, margin = PRECOND_OVERLAP, PRECOND_OVERLAP + PRECOND_MARGIN
         full = PRECOND_OVERLAP + PRECOND_FULL
         blocks = []
@@ -1208,7 +1218,7 @@ def _scores(obs, pred, w):
 
 def cross_validate(easting, northing, upward, data, weights=None, *, depths, dampings,
                    block_size=None, method="auto", folds=4, cv_spacing=None, random_state=0,
-                   tol=3e-4, maxiter=500, depth_type="relative"):
+                   tol=3e-4, maxiter=500, depth_type="relative", grid_height=None):
     """Blocked K-fold cross-validation of depth and damping.
 
     Data are grouped in square blocks of ``cv_spacing`` (default 10 x block size or 10 x median
@@ -1220,6 +1230,9 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
     ----------
     depths, dampings : sequences of float
         The search grid (depth in m).
+    grid_height : float, optional
+        Height (m) of a constant-height grid the layer must stay below: each depth is scored
+        with the ceiling :func:`layer_ceiling` that its final fit gets.
     Other parameters as :func:`fit_equivalent_sources`.
 
     Returns
@@ -1245,6 +1258,7 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
     splits = list(kfold.split(np.column_stack([e, n])))
     rows = []
     for depth in depths:
+        ceiling = layer_ceiling(grid_height, depth)
         fold_scores = {float(damp): [] for damp in dampings}
         for train, test in splits:
             region = (e[train].min(), e[train].max(), n[train].min(), n[train].max())
@@ -1252,7 +1266,7 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
             chosen = _choose_method(method, n_est, block_size, e, n)
             if chosen == "fft":
                 problem = _LatticeProblem(e[train], n[train], u[train], w[train], depth,
-                                          source_spacing(depth, spacing), depth_type)
+                                          source_spacing(depth, spacing), depth_type, ceiling)
             z = None
             for damp in sorted(fold_scores, reverse=True):
                 if chosen == "fft":
@@ -1262,7 +1276,7 @@ def cross_validate(easting, northing, upward, data, weights=None, *, depths, dam
                     model = fit_equivalent_sources(e[train], n[train], u[train], d[train],
                                                    w[train], depth=depth, damping=damp,
                                                    block_size=block_size, method="dense",
-                                                   depth_type=depth_type)
+                                                   depth_type=depth_type, ceiling=ceiling)
                 pred = model.predict((e[test], n[test], u[test]))
                 fold_scores[damp].append(_scores(d[test], pred, w[test]))
             if chosen == "fft":

@@ -118,16 +118,15 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 
 def _fit_options(cfg, height, depth):
     """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
-    constant height, a ceiling half a depth below the grid (a relative layer beneath high
-    ground must not reach up to a grid flown lower)."""
-    ceiling = None if height == "drape" else float(height) - 0.5 * float(depth)
-    return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance), "ceiling": ceiling}
+    constant height, the layer's ceiling (:func:`potfield.fields.eqsources.layer_ceiling`)."""
+    return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance),
+            "ceiling": eqs.layer_ceiling(height, depth)}
 
 
 def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
     """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
-    scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress)
+    scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height)
     progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
     model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
                                        damping=best["damping"], block_size=block,
@@ -158,8 +157,9 @@ def _cv_spacing(block, depths, line_spacing, extent):
 CV_TOL = 1e-4
 
 
-def _search(be, bn, bh, bd, cfg, block, line_spacing, progress):
-    """Depth and damping by blocked CV (on a central window of large surveys)."""
+def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
+    """Depth and damping by blocked CV (on a central window of large surveys), each depth
+    scored with the ceiling its final fit gets under a grid at constant ``height``."""
     depths = [float(f) * block for f in cfg.depth_factors]
     dampings = [float(x) for x in cfg.dampings]
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
@@ -173,7 +173,8 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress):
         scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing,
-                                          tol=CV_TOL, depth_type=cfg.depth_type)
+                                          tol=CV_TOL, depth_type=cfg.depth_type,
+                                          grid_height=height)
     else:
         scores = pd.DataFrame(columns=["depth", "damping", "r2", "r2_se", "rms", "chosen"])
         best = {"depth": depths[len(depths) // 2], "damping": dampings[len(dampings) // 2],
@@ -336,7 +337,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
         raise ConfigError("tiled gridding needs a constant grid height", key="grid.height",
                           fix="set [grid] height to a number (m) or set tiled = false")
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
-    scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, ctx.progress)
+    scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, ctx.progress, height)
     area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
     tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
         20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
