@@ -26,7 +26,7 @@ def _stamp(seconds):
 
 def bench_diurnal_correction(sizes=(10_000, 100_000, 1_000_000)):
     from potfield.config import parse_config
-    from potfield.fields.diurnal import chord_deviation, clean_base, interpolate_base
+    from potfield.fields.magnetic.diurnal import chord_deviation, clean_base, interpolate_base
     from potfield.stages.base import StageContext
     from potfield.stages.diurnal import STAGE
     from potfield.survey import Survey

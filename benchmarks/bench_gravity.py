@@ -20,7 +20,7 @@ from _common import peak_rss_mb, timed
 def bench_normal_gravity(sizes=(100_000, 1_000_000)):
     import boule
 
-    from potfield.fields.gravity import bouguer_cap, normal_gravity
+    from potfield.fields.gravity.reductions import bouguer_cap, normal_gravity
 
     rows = []
     rng = np.random.default_rng(0)
@@ -44,7 +44,7 @@ def bench_normal_gravity(sizes=(100_000, 1_000_000)):
 def bench_tides(sizes=(100_000, 1_000_000)):
     import tidegravity
 
-    from potfield.fields.tides import longman_gravity
+    from potfield.fields.gravity.tides import longman_gravity
 
     rows = []
     for n in sizes:
@@ -77,8 +77,8 @@ def _synthetic_dem(spacing, half_width):
 
 
 def bench_terrain(station_counts=(10, 100, 400)):
-    from potfield.fields.gravity import bouguer_cap
-    from potfield.fields.terrain import terrain_correction
+    from potfield.fields.gravity.reductions import bouguer_cap
+    from potfield.fields.gravity.terrain import terrain_correction
     from potfield.io.grids import make_grid
 
     dem = _synthetic_dem(30.0, 20_000.0)

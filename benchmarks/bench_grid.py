@@ -78,7 +78,7 @@ def bench_grid(sizes=(1e4, 1e5, 1e6), gb_max=1e5, spline_max=1e4, seed=0):
     import harmonica as hm
     import verde as vd
 
-    from potfield.fields import eqsources as eqs
+    from potfield.fields.harmonic import eqsources as eqs
 
     warnings.simplefilter("ignore")
     results = []
@@ -160,7 +160,7 @@ def bench_grid_vs_harmonica_demo(readings=1_000_000, seed=1, gb_damping=1e-4, fo
 
     from potfield.config import GridSection
     from potfield.demo import make_demo
-    from potfield.fields import eqsources as eqs
+    from potfield.fields.harmonic import eqsources as eqs
     from potfield.pipeline import read_cache_table, run_survey
     from potfield.stages import grid as grid_stage
     from potfield.stages.base import usable

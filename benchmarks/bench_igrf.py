@@ -1,4 +1,4 @@
-"""IGRF-14 synthesis: potfield.fields.igrf against ppigrf (speed, peak memory, accuracy).
+"""IGRF-14 synthesis: potfield.fields.magnetic.igrf against ppigrf (speed, peak memory, accuracy).
 
 Points are uniform on the sphere, heights 0-20 km, one decimal-year date per point (2020-2025).
 ppigrf takes one date per call, so it is timed with a single date (handed over as the datetime
@@ -74,7 +74,7 @@ def bench_igrf(sizes=(10_000, 100_000, 1_000_000), ppigrf_max: int = 100_000, re
     ``repeat``), ppigrf seconds (measured or scaled), the speed-up, peak traced memory of both,
     and the largest absolute difference (nT) of X, Y, Z, F where ppigrf ran.
     """
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
 
     igrf(0.0, 0.0, 0.0, 2020.0)  # compile (or load the cached kernel) before timing
     rows = []

@@ -14,7 +14,7 @@ import tracemalloc
 
 import numpy as np
 
-from potfield.fields.leveling import adjust_lines, adjust_ties, find_crossovers, micro_level
+from potfield.fields.lines.leveling import adjust_lines, adjust_ties, find_crossovers, micro_level
 
 
 def synthetic_tracks(n_readings=1_000_000, n_lines=200, spacing=100.0, seed=0):

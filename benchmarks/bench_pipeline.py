@@ -437,13 +437,13 @@ def _dipole_survey(side, line_spacing, step, seed=0):
 
 def bench_tiled_grid(side=30_000.0, line_spacing=200.0, step=20.0, spacing=100.0,
                      tile_size=10_000.0, overlap=2_000.0, depth=400.0, damping=1e-3):
-    """Tiled (potfield.fields.tiles, Dask threads) against one whole equivalent-source fit on
+    """Tiled (potfield.fields.harmonic.tiles, Dask threads) against one whole equivalent-source fit on
     a synthetic line survey over 60 dipoles; both against harmonica's forward model at the grid
     nodes (reference library), RMS relative to the field's standard deviation, 1 km inside."""
     import numpy as np
 
-    from potfield.fields.eqsources import fit_equivalent_sources
-    from potfield.fields.tiles import fit_tiled
+    from potfield.fields.harmonic.eqsources import fit_equivalent_sources
+    from potfield.fields.harmonic.tiles import fit_tiled
 
     e, n, u, d, tfa = _dipole_survey(side, line_spacing, step)
     region = (0.0, side, 0.0, side)

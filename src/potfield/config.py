@@ -195,7 +195,7 @@ class DiurnalSection(Section):
     bases: list[BaseStation] = Field(default_factory=list)
     #: Remote reference when there is no base: the coefficient table of an observatory-network
     #: run (its out/tables/coefficients.csv), evaluated at every reading by
-    #: potfield.fields.separation.external_field_at. The station table beside it
+    #: potfield.fields.harmonic.separation.external_field_at. The station table beside it
     #: (station_residuals.csv, with longitude/latitude) names the nearest station in the caution.
     remote_reference: str | None = None
     #: Interpolation of the base record to the readings' times.
@@ -354,7 +354,7 @@ class GridSection(Section):
     #: 1e6-reading demo 2e-5 scored as 1e-5 on held-out blocks (R2 0.9999862 vs 0.9999865) in
     #: 172 instead of 208 iterations; 4e-5 lost accuracy (0.9999830).
     tolerance: float = Field(2e-5, gt=0, lt=1)
-    #: Tiled gridding of very large surveys (potfield.fields.tiles) and the tile size (m).
+    #: Tiled gridding of very large surveys (potfield.fields.harmonic.tiles) and the tile size (m).
     tiled: bool = False
     tile_size_m: float = 0.0
 

@@ -56,7 +56,7 @@ def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed
             "TMI": field,
         }))
     table = pd.concat(frames, ignore_index=True)
-    from .fields.igrf import igrf
+    from .fields.magnetic.igrf import igrf
 
     main = igrf(table["LON"].to_numpy(), table["LAT"].to_numpy(), table["HEIGHT"].to_numpy(),
                 table["UTC"].to_numpy()).total

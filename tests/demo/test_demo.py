@@ -143,7 +143,7 @@ def test_magnetic_geometry_is_a_realistic_survey(mag):
 def test_magnetic_igrf_is_potfield_igrf_and_agrees_with_ppigrf(mag):
     import ppigrf
 
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
 
     _, raw, truth, _ = mag
     idx = np.linspace(0, len(raw) - 1, 7).astype(int)
@@ -164,7 +164,7 @@ def test_magnetic_total_field_anomaly_of_a_small_body_is_the_dipole_projection()
     projected on F_hat, and harmonica.dipole_magnetic (reference library)."""
     import harmonica as hm
 
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
 
     field = igrf(145.6, -32.4, 300.0, np.datetime64("2024-11-19"))
     inc, dec, F = float(field.inclination), float(field.declination), float(field.total)
@@ -208,7 +208,7 @@ def test_magnetic_external_field_is_regional_and_of_realistic_size(mag):
     # a full day of the daily variation spans 20-40 nT in total field (common practice for a
     # mid-latitude solar-quiet day; the assignment's range)
     sec = np.arange(-86400.0, 0.0, 60.0) + 86400.0
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
 
     f = igrf(common.CENTRE_LON, common.CENTRE_LAT, 300.0, np.datetime64("2024-11-19T00:00"))
     n_, e_, d_ = magnetic.external_vector(sec, common.CENTRE_LON,
@@ -218,7 +218,7 @@ def test_magnetic_external_field_is_regional_and_of_realistic_size(mag):
 
 
 def test_magnetic_observatory_file_holds_igrf_plus_external(mag):
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
     from potfield.io.iaga2002 import read_iaga2002
 
     folder, _, _, params = mag
@@ -263,7 +263,7 @@ def grav(regenerated):
 
 
 def test_gravity_readings_decompose_and_calibrate(grav):
-    from potfield.fields.gravnet import apply_calibration
+    from potfield.fields.gravity.network import apply_calibration
 
     folder, raw, truth, stations, params = grav
     assert 200 <= params["stations"] <= 400
@@ -343,14 +343,14 @@ def test_gravity_topography_kernel_against_disc_formula_and_harmonica():
     # On the curved Earth the plateau (a spherical cap to 166.7 km) differs from the slab by the
     # curvature (Bullard B) term, about 1.5 mGal at 1500 m (LaFehr 1991, Geophysics 56:1179;
     # references.md); the cap pulls MORE than the slab here because the far masses drop below
-    # the station's horizon. potfield.fields.gravity.bouguer_cap (LaFehr's closed form, another
+    # the station's horizon. potfield.fields.gravity.reductions.bouguer_cap (LaFehr's closed form, another
     # engineer's code) gives the same value.
     flat15 = np.full_like(flat, 1500.0)
     curved = gravity.topography_gravity(np.array([0.0]), np.array([0.0]), np.array([1500.0]),
                                         cells, cells, flat15, 1500.0)[0]
     slab = 2 * np.pi * gravity.G * 2670.0 * 1500.0 * 1e5
     assert curved - slab == pytest.approx(1.5, abs=0.3)
-    from potfield.fields.gravity import bouguer_cap
+    from potfield.fields.gravity.reductions import bouguer_cap
 
     assert curved == pytest.approx(float(bouguer_cap(1500.0)), abs=0.1)
     # Rough terrain within 3 km is summed with the prism formula: compare with harmonica.
@@ -414,7 +414,7 @@ def test_observatory_rotation_matches_ppigrf():
 
     lat = np.array([57.8, -29.6, 12.7])
     h = np.array([240.0, 1180.0, 560.0])
-    from potfield.fields.igrf import geodetic_to_geocentric
+    from potfield.fields.magnetic.igrf import geodetic_to_geocentric
 
     r, lat_c = geodetic_to_geocentric(lat, h)
     br, bt = np.array([-40000.0, 20000.0, 5000.0]), np.array([-12000.0, -9000.0, -30000.0])
@@ -434,7 +434,7 @@ def obs(regenerated):
 
 
 def test_observatory_files_hold_the_true_components(obs):
-    from potfield.fields.igrf import igrf
+    from potfield.fields.magnetic.igrf import igrf
     from potfield.io.iaga2002 import observatory_table
 
     folder, coef, st = obs

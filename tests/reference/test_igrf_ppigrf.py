@@ -19,7 +19,7 @@ import pytest
 
 ppigrf = pytest.importorskip("ppigrf")
 
-from potfield.fields.igrf import (  # noqa: E402
+from potfield.fields.magnetic.igrf import (  # noqa: E402
     coefficients,
     decimal_year,
     igrf,

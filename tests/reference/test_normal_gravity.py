@@ -1,4 +1,4 @@
-"""Normal gravity (potfield.fields.gravity.normal_gravity) against published values and boule."""
+"""Normal gravity (potfield.fields.gravity.reductions.normal_gravity) against published values and boule."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from potfield.errors import ConfigError, PotfieldError
-from potfield.fields.gravity import normal_gravity
+from potfield.fields.gravity.reductions import normal_gravity
 
 LATS = np.linspace(-90.0, 90.0, 37)
 

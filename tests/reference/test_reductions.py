@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from potfield.fields.gravity import (G, atmospheric_correction, bouguer_cap, bouguer_slab,
+from potfield.fields.gravity.reductions import (G, atmospheric_correction, bouguer_cap, bouguer_slab,
                                      free_air_correction)
 
 

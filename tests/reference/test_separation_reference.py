@@ -19,10 +19,10 @@ import pandas as pd
 import pytest
 import scipy.fft
 
-from potfield.fields import spherical as sp
-from potfield.fields import transforms as tf
-from potfield.fields.igrf import geodetic_to_geocentric
-from potfield.fields.separation import (
+from potfield.fields.harmonic import spherical as sp
+from potfield.fields.harmonic import transforms as tf
+from potfield.fields.magnetic.igrf import geodetic_to_geocentric
+from potfield.fields.harmonic.separation import (
     fit_gauss_coefficients,
     fit_two_layer,
     induction_ratio,

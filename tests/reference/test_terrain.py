@@ -1,4 +1,4 @@
-"""Terrain correction (potfield.fields.terrain) against harmonica prisms and closed-form
+"""Terrain correction (potfield.fields.gravity.terrain) against harmonica prisms and closed-form
 cylinder/ring attractions, and DEM reading (potfield.io.dem) with pyproj as reference."""
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ import pytest
 import xarray as xr
 
 from potfield.errors import CRSError, InputDataError, PotfieldError
-from potfield.fields.gravity import G, bouguer_cap
-from potfield.fields.terrain import terrain_correction
+from potfield.fields.gravity.reductions import G, bouguer_cap
+from potfield.fields.gravity.terrain import terrain_correction
 from potfield.io.dem import read_dem
 from potfield.io.grids import make_grid, write_geotiff, write_netcdf
 
@@ -100,7 +100,7 @@ def test_flat_terrain_below_a_raised_point_is_a_disc():
 
 def test_curvature_makes_flat_terrain_a_spherical_cap():
     # with the curvature drop d^2/(2R), a point at H above flat terrain at sea level feels the
-    # spherical cap to 166.7 km (LaFehr 1991 / potfield.fields.gravity.bouguer_cap, which is
+    # spherical cap to 166.7 km (LaFehr 1991 / potfield.fields.gravity.reductions.bouguer_cap, which is
     # checked against LaFehr's closed form and a numerical integral in test_reductions.py);
     # without it, the flat disc (Telford et al. 1990). Measured 0.007 mGal off the cap.
     z, s = _square(340, 1000.0)

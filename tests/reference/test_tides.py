@@ -1,4 +1,4 @@
-"""Earth tide (potfield.fields.tides, Longman 1959) against the tidegravity reference library and
+"""Earth tide (potfield.fields.gravity.tides, Longman 1959) against the tidegravity reference library and
 physical checks.
 
 pygtide (a wrapper of ETERNA PREDICT) would be a second, independent tide program, but it does
@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 from potfield.errors import ModelRangeError
-from potfield.fields.tides import longman_components, longman_correction, longman_gravity
+from potfield.fields.gravity.tides import longman_components, longman_correction, longman_gravity
 
 tidegravity = pytest.importorskip("tidegravity")
 

@@ -15,7 +15,7 @@ import harmonica as hm
 import numpy as np
 import pytest
 
-from potfield.fields import transforms as tf
+from potfield.fields.harmonic import transforms as tf
 from potfield.io.grids import make_grid
 
 G = 6.6743e-11  # CODATA 2018

@@ -137,7 +137,7 @@ def test_config_rejects_unknown_product_and_small_padding():
 
 
 def test_equivalent_source_model_fills_and_continues_upward(tmp_path):
-    eqs = pytest.importorskip("potfield.fields.eqsources")
+    eqs = pytest.importorskip("potfield.fields.harmonic.eqsources")
     fit_equivalent_sources, save_model = eqs.fit_equivalent_sources, eqs.save_model
 
     rng = np.random.default_rng(3)

@@ -1,5 +1,5 @@
 """Remote reference: a survey without a base takes its diurnal correction from an observatory
-network's fitted external field (potfield.fields.separation.external_field_at)."""
+network's fitted external field (potfield.fields.harmonic.separation.external_field_at)."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pytest
 
 from potfield.config import parse_config
 from potfield.errors import InputDataError
-from potfield.fields.igrf import igrf
+from potfield.fields.magnetic.igrf import igrf
 from potfield.stages import diurnal
 from potfield.stages.base import StageContext
 from potfield.survey import Survey

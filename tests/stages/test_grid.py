@@ -9,7 +9,7 @@ import pytest
 
 from potfield.config import parse_config
 from potfield.errors import ConfigError, StageError
-from potfield.fields.eqsources import load_model
+from potfield.fields.harmonic.eqsources import load_model
 from potfield.stages.base import StageContext
 from potfield.stages.grid import STAGE
 from potfield.survey import Survey

@@ -1,4 +1,4 @@
-"""Tests of the level stage (glue around potfield.fields.leveling)."""
+"""Tests of the level stage (glue around potfield.fields.lines.leveling)."""
 
 from __future__ import annotations
 

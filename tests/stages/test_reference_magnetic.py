@@ -12,7 +12,7 @@ import pytest
 
 from potfield.config import parse_config
 from potfield.errors import ConfigError, InputDataError, ModelRangeError, StageError
-from potfield.fields.igrf import decimal_year, igrf
+from potfield.fields.magnetic.igrf import decimal_year, igrf
 from potfield.stages.base import StageContext
 from potfield.stages.reference_magnetic import run_magnetic
 from potfield.survey import Survey

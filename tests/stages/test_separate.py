@@ -10,8 +10,8 @@ import pytest
 
 from potfield.config import parse_config
 from potfield.errors import InputDataError, PotfieldError, StageError
-from potfield.fields.eqsources import fit_equivalent_sources, save_model
-from potfield.fields.igrf import geodetic_to_geocentric
+from potfield.fields.harmonic.eqsources import fit_equivalent_sources, save_model
+from potfield.fields.magnetic.igrf import geodetic_to_geocentric
 from potfield.io.grids import make_grid
 from potfield.stages.base import StageContext
 from potfield.stages.separate import STAGE
@@ -222,7 +222,7 @@ def test_vector_columns_give_internal_external_parts(tmp_path):
         for comp in ("north", "east", "down"):
             assert f"{side}_{comp}" in out.grids and f"{side}_{comp}" in out.table.columns
     # a field wholly from below (harmonica dipole, reference library): the internal down part
-    # follows it within the gridding error (equivalent sources of potfield.fields.eqsources,
+    # follows it within the gridding error (equivalent sources of potfield.fields.harmonic.eqsources,
     # read off as internal + external = gridded data) plus 3 % of the peak in the middle of the
     # grid (FFT; measured 0.1 %), and the external part stays below 3 % (measured 0.05 %)
     inner = (slice(8, -8), slice(8, -8))

@@ -19,7 +19,7 @@ All data are invented (fictional area, see :mod:`potfield.demo.common`). The sce
   atmosphere's mass) + topography + bodies + regional;
 * the meter reading (mGal on the meter's own level) = g_true - instrument height x 0.3086 mGal/m
   (common practice free-air gradient) + the Earth tide the meter sees (Longman 1959, J. Geophys.
-  Res. 64:2351, potfield.fields.tides.longman_gravity with factor 1.16) - a meter offset + drift
+  Res. 64:2351, potfield.fields.gravity.tides.longman_gravity with factor 1.16) - a meter offset + drift
   (linear per day, 0.015-0.035 mGal/h) + one tare (0.08 mGal) + noise (8 uGal); converted to
   counter units through the inverse of the calibration (interval) table in raw/ (Hinze, von
   Frese and Saad 2013, Gravity and Magnetic Exploration, CUP);
@@ -285,7 +285,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     """
     import boule
 
-    from ..fields.tides import longman_gravity
+    from ..fields.gravity.tides import longman_gravity
 
     directory, raw, truth = common.survey_folders(directory)
     fwd, inv = common.transformers()

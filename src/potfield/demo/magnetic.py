@@ -12,7 +12,7 @@ All data are invented (fictional area, see :mod:`potfield.demo.common`). The sce
   in harmonica; Fatiando a Terra Project 2024, harmonica 0.7): a dipping dyke (a stack of
   prisms shifted down dip), an intrusive plug with remanent magnetisation and a faulted
   basement (a coarse layer of prisms), magnetised by induction in the IGRF direction
-  (potfield.fields.igrf) and observed as the total-field anomaly ``b . F_hat`` (Blakely 1995,
+  (potfield.fields.magnetic.igrf) and observed as the total-field anomaly ``b . F_hat`` (Blakely 1995,
   Potential Theory in Gravity and Magnetic Applications, CUP, eq. 12.1);
 * the main field: IGRF-14 at every reading's position and time (IAGA Working Group V-MOD 2024);
 * an external field: a solar-quiet-like daily variation in local time (Chapman and Bartels
@@ -152,7 +152,7 @@ def project_on(field, north, east, down):
 
     Parameters
     ----------
-    field : potfield.fields.igrf.IGRFField
+    field : potfield.fields.magnetic.igrf.IGRFField
         Main field (north, east, down, total).
     north, east, down : array
         The small vector (nT).
@@ -282,7 +282,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     Path
         The survey folder.
     """
-    from ..fields.igrf import igrf
+    from ..fields.magnetic.igrf import igrf
 
     readings = DEFAULT_READINGS if readings is None else int(readings)
     if not MIN_READINGS <= readings <= MAX_READINGS:
@@ -527,7 +527,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
         "truth_columns": {
             "source_file/source_row": "file name and line number in it (header = line 1)",
             "crustal_anomaly": "b . F_hat of the prism model (nT)",
-            "igrf_total": "IGRF-14 total intensity at the reading (nT, potfield.fields.igrf)",
+            "igrf_total": "IGRF-14 total intensity at the reading (nT, potfield.fields.magnetic.igrf)",
             "external": "external variation projected on F_hat (nT)",
             "level_error": "constant per-line level error (nT)",
             "noise": "sensor noise incl. rounding to 0.001 nT (nT)",
@@ -545,7 +545,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
 def write_observatory_days(raw: Path, windows, events: dict, seed: int) -> list[str]:
     """IAGA-2002 one-minute XYZF files (one per UTC day of the survey) at the distant
     fictional observatory: IGRF-14 plus the same regional external variation."""
-    from ..fields.igrf import igrf
+    from ..fields.magnetic.igrf import igrf
     from ..io.iaga2002 import write_iaga2002
 
     first = FIRST_FLIGHT.astype("datetime64[D]")

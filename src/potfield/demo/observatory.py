@@ -3,7 +3,7 @@
 All data are invented: the stations, their names and three-letter codes are fictional (the
 IAGA-2002 comment records say so). The scenario, for three days of one-minute values:
 
-* main field: IGRF-14 at each station (potfield.fields.igrf; IAGA Working Group V-MOD 2024);
+* main field: IGRF-14 at each station (potfield.fields.magnetic.igrf; IAGA Working Group V-MOD 2024);
 * external field from time-varying external Gauss coefficients of degree 1 and 2: a storm-like
   ring-current variation in q10 (sudden commencement, main phase, recovery), a daily variation
   fixed to the Sun in q11/s11, q21/s21 and q22/s22 (the Sun-fixed pattern rotates westward over
@@ -162,7 +162,7 @@ def spherical_to_geodetic(br, bt, bp, latitude, height):
     """Rotate geocentric (B_r, B_theta, B_phi) to geodetic north, east, down (Langel 1987,
     Geomagnetism vol. 1, eqs. 51-53; references.md: X = X_s cos psi + Z_s sin psi,
     Z = -X_s sin psi + Z_s cos psi, psi = geodetic - geocentric latitude)."""
-    from ..fields.igrf import geodetic_to_geocentric
+    from ..fields.magnetic.igrf import geodetic_to_geocentric
 
     _, lat_c = geodetic_to_geocentric(latitude, height)
     psi = np.radians(np.asarray(latitude, dtype=float) - lat_c)
@@ -235,7 +235,7 @@ def make_observatory(directory: Path, seed: int = 0) -> Path:
     -------
     Path
     """
-    from ..fields.igrf import coefficients, decimal_year, geodetic_to_geocentric, igrf
+    from ..fields.magnetic.igrf import coefficients, decimal_year, geodetic_to_geocentric, igrf
     from ..io.atomic import write_text
     from ..io.iaga2002 import write_iaga2002
 
@@ -326,7 +326,7 @@ def make_observatory(directory: Path, seed: int = 0) -> Path:
             "stations_truth.csv": "per station and minute: external, induced and non-potential "
                                   "parts (nT, geodetic north/east/down); the file values = "
                                   "main + their sum + noise, main = IGRF-14 at the station "
-                                  "(potfield.fields.igrf.igrf at the header's latitude, "
+                                  "(potfield.fields.magnetic.igrf.igrf at the header's latitude, "
                                   "longitude and elevation as ellipsoidal height); gap = 1 where "
                                   "written as 99999",
         },
@@ -381,7 +381,7 @@ Made by `potfield demo observatory` (`potfield.demo.make_demo("observatory", ...
   induced).
 - `truth/stations_truth.csv`: per station and minute the external, induced and non-potential
   parts (geodetic north, east, down, nT); the main field is IGRF-14 at the station
-  (`potfield.fields.igrf.igrf`, elevation taken as ellipsoidal height).
+  (`potfield.fields.magnetic.igrf.igrf`, elevation taken as ellipsoidal height).
 - `truth/parameters.json`: stations, storm parameters, ratios, noise.
 
 ## What to look at in the results

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..fields.noise import fourth_difference, line_noise, robust_spikes
+from ..fields.lines.noise import fourth_difference, line_noise, robust_spikes
 from .base import Check, Stage, StageContext, StageOutput
 
 #: The measured value(s) cleaned per survey kind.

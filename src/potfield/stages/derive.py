@@ -2,7 +2,7 @@
 
 Glue only: picks the grid stage's main grid (``anomaly`` for magnetics, ``bouguer_anomaly`` for
 gravity), its equivalent-source model when there is one (to fill masked cells before the FFT and
-to continue upward exactly), and calls :mod:`potfield.fields.transforms` for each product in
+to continue upward exactly), and calls :mod:`potfield.fields.harmonic.transforms` for each product in
 ``[derive] products``. Every product is an output grid masked like the input.
 """
 
@@ -13,12 +13,12 @@ import warnings
 import numpy as np
 
 from ..errors import StageError
-from ..fields import transforms as tf
+from ..fields.harmonic import transforms as tf
 from .base import Stage, StageContext, StageOutput
 from .gridmodel import grid_height, load_grid_model
 
 #: Main-grid names by survey kind, in order of preference.
-#: How masked cells were filled (potfield.fields.transforms.fill_masked "fill" attribute).
+#: How masked cells were filled (potfield.fields.harmonic.transforms.fill_masked "fill" attribute).
 FILL_TEXT = {"none": "none", "smooth fill": "smooth fill", "filler": "equivalent-source prediction",
              "filler + smooth fill": "equivalent-source prediction + smooth fill"}
 MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
@@ -56,7 +56,7 @@ def run(ctx: StageContext) -> StageOutput:
 
     References
     ----------
-    See :mod:`potfield.fields.transforms` (Blakely 1995; Baranov 1957; MacLeod, Jones and Dai
+    See :mod:`potfield.fields.harmonic.transforms` (Blakely 1995; Baranov 1957; MacLeod, Jones and Dai
     1993; Nabighian 1972; Roest et al. 1992; Miller and Singh 1994; Dampney 1969).
     """
     cfg = ctx.config.derive

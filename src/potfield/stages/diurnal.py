@@ -3,7 +3,7 @@
 Reads the base records listed under ``[[diurnal.bases]]`` (delimited text mapped like the survey
 files, or IAGA-2002), removes their spikes, interpolates them to the readings' times, subtracts
 the datum and combines several bases. Adds ``diurnal`` (nT removed: ``total_field - diurnal`` is
-the corrected field) and ``flag_base_gap``. The physics is in :mod:`potfield.fields.diurnal`.
+the corrected field) and ``flag_base_gap``. The physics is in :mod:`potfield.fields.magnetic.diurnal`.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError
-from ..fields.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
+from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                               estimate_time_offset, great_circle_distance, interpolate_base,
                               station_difference)
 from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
@@ -181,7 +181,7 @@ def run(ctx: StageContext) -> StageOutput:
     Method: base record cleaned (Hampel identifier; Hampel 1974, J. Am. Stat. Assoc. 69:383),
     interpolated to the readings, minus a datum, combined over bases by nearest or
     inverse-distance weights (Shepard 1968); the correction itself as in Reford (1980),
-    Geophysics 45:1640. See :mod:`potfield.fields.diurnal`.
+    Geophysics 45:1640. See :mod:`potfield.fields.magnetic.diurnal`.
     """
     cfg = ctx.config.diurnal
     if not cfg.enabled:
@@ -335,7 +335,7 @@ def run(ctx: StageContext) -> StageOutput:
 
 def _remote_reference(ctx: StageContext) -> StageOutput:
     """Diurnal correction from an observatory network's fitted external field (no local base)."""
-    from ..fields.separation import external_field_at, remote_reference_caution
+    from ..fields.harmonic.separation import external_field_at, remote_reference_caution
 
     cfg = ctx.config.diurnal
     path = ctx.survey.resolve(cfg.remote_reference)

@@ -5,7 +5,7 @@ Columns added, in the order applied (all mGal)::
 
     reading_mgal                  reading after the calibration table (= reading when in mGal)
     instrument_height_correction  + free_air_gradient * instrument_height (sensor -> mark)
-    tide                          tide correction ADDED (Longman 1959, potfield.fields.tides)
+    tide                          tide correction ADDED (Longman 1959, potfield.fields.gravity.tides)
     drift                         time-varying drift (and tares) REMOVED
     loop_offset                   reading level of the loop REMOVED (ties it to the bases)
     gravity                       reading_mgal + instrument_height_correction + tide
@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError, StageError, format_rows
-from ..fields import gravnet
+from ..fields.gravity import network as gravnet
 from .base import Check, Stage, StageContext, StageOutput, usable
 
 #: Default spec values (common practice for ground gravity loops with spring gravimeters).
@@ -177,7 +177,7 @@ def _tide(ctx: StageContext, table: pd.DataFrame) -> np.ndarray:
     if missing:
         raise StageError(f"the tide correction needs {', '.join(missing)}", key="drift.tide",
                          fix="map the coordinates in [input.columns] or set [drift] tide = false")
-    from ..fields.tides import longman_correction
+    from ..fields.gravity.tides import longman_correction
 
     height = table["height"].to_numpy(dtype=float) if "height" in table else np.zeros(len(table))
     return np.asarray(longman_correction(

@@ -1,7 +1,7 @@
 """grid stage: harmonic gridding of the best value column with equivalent sources.
 
 Glue only: picks the value column, block-reduces the usable readings, chooses source depth and
-damping by blocked cross-validation, fits :func:`potfield.fields.eqsources.fit_equivalent_sources`,
+damping by blocked cross-validation, fits :func:`potfield.fields.harmonic.eqsources.fit_equivalent_sources`,
 predicts a masked regular grid at constant height (or on a drape surface), adds the residual at
 every reading, saves the fitted sources for later stages, and optionally micro-levels and grids
 again. Methods: Dampney (1969) Geophysics 34:39; Cordell (1992) Geophysics 57:629; Soler and Uieda
@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, StageError
-from ..fields import eqsources as eqs
+from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
 from .base import Stage, StageContext, StageOutput, usable
 
@@ -118,7 +118,7 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 
 def _fit_options(cfg, height, depth):
     """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
-    constant height, the layer's ceiling (:func:`potfield.fields.eqsources.layer_ceiling`)."""
+    constant height, the layer's ceiling (:func:`potfield.fields.harmonic.eqsources.layer_ceiling`)."""
     return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance),
             "ceiling": eqs.layer_ceiling(height, depth)}
 
@@ -240,7 +240,7 @@ def run(ctx: StageContext) -> StageOutput:
     micro_note = None
     if ctx.config.level.micro_levelling:
         micro_level_table = None
-        for module in ("potfield.fields.leveling", "potfield.stages.level"):
+        for module in ("potfield.fields.lines.leveling", "potfield.stages.level"):
             try:
                 micro_level_table = getattr(importlib.import_module(module), "micro_level_table")
                 break
@@ -324,13 +324,13 @@ TILE_BLOCKS = 40_000
 def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why, height,
                height_why, region, mask_distance, name, units, long_name,
                line_spacing) -> StageOutput:
-    """Tiled gridding (potfield.fields.tiles): the depth and damping come from the CV search on
+    """Tiled gridding (potfield.fields.harmonic.tiles): the depth and damping come from the CV search on
     a central window, every tile is fitted on its own as a Dask task and the tiles are blended;
     the blended model is also evaluated at every reading for the grid residual. There is no
     single model, so none is saved for later stages."""
     import verde as vd
 
-    from ..fields.tiles import fit_tiled
+    from ..fields.harmonic.tiles import fit_tiled
 
     cfg = ctx.config.grid
     if height == "drape":

@@ -70,7 +70,7 @@ def load_grid_model(ctx: StageContext, out: StageOutput, *, missing: str,
 
     Returns
     -------
-    potfield.fields.eqsources.EquivalentSourceModel or None
+    potfield.fields.harmonic.eqsources.EquivalentSourceModel or None
     """
     path = ctx.state.get("grid", {}).get("model_path")
     if not path:
@@ -83,6 +83,6 @@ def load_grid_model(ctx: StageContext, out: StageOutput, *, missing: str,
     if not path.is_file():
         out.warnings.append(f"equivalent-source model {path} is missing: {missing}")
         return None
-    from ..fields.eqsources import load_model
+    from ..fields.harmonic.eqsources import load_model
 
     return load_model(path)

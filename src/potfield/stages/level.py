@@ -1,4 +1,4 @@
-"""level stage: tie-line levelling of line surveys (glue; the maths is potfield.fields.leveling).
+"""level stage: tie-line levelling of line surveys (glue; the maths is potfield.fields.lines.leveling).
 
 Two-step levelling (Luyendyk 1997; ``[level] method = "two_step"``, the default): crossovers of
 traverse lines with tie lines (and of tie lines with each other) are found, the tie lines are
@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import StageError
-from ..fields import leveling
+from ..fields.lines import leveling
 from .base import Check, Stage, StageContext, StageOutput, usable
 
 #: Value columns that can be levelled, in order of preference.
@@ -227,7 +227,7 @@ def micro_level_table(table: pd.DataFrame, grid, line_spacing: float, config_lev
 
     Call this with the grid made from the levelled readings when ``[level] micro_levelling`` is
     true; add the returned array to the gridded value column (e.g. ``anomaly_levelled``) and grid
-    again. The corrugation of ``grid`` is estimated by :func:`potfield.fields.leveling.micro_level`
+    again. The corrugation of ``grid`` is estimated by :func:`potfield.fields.lines.leveling.micro_level`
     (high-pass across the traverse lines with cut-off ``micro_cutoff_spacings * line_spacing``,
     low-pass along them with cut-off ``micro_along_spacings * line_spacing``, clipped to
     ``+-micro_max_amplitude``), sampled at every reading (bilinear), low-passed along each line

@@ -1,6 +1,6 @@
 """Gravity part of the reference stage: normal gravity, atmospheric, free-air, Bouguer and terrain.
 
-Glue only: the physics is in :mod:`potfield.fields.gravity` and :mod:`potfield.fields.terrain`.
+Glue only: the physics is in :mod:`potfield.fields.gravity.reductions` and :mod:`potfield.fields.gravity.terrain`.
 Called by :mod:`potfield.stages.reference` (which defines the stage) for gravity surveys.
 
 Columns added (mGal unless stated):
@@ -34,7 +34,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import StageError
-from ..fields.gravity import (atmospheric_correction, bouguer_cap, bouguer_slab,
+from ..fields.gravity.reductions import (atmospheric_correction, bouguer_cap, bouguer_slab,
                               free_air_correction, normal_gravity)
 from .base import Check, StageContext, StageOutput, usable
 
@@ -62,7 +62,7 @@ def _gravity_column(ctx: StageContext, table, notes):
 
 def _terrain(ctx: StageContext, table, height, notes, warnings, checks, state):
     cfg = ctx.config.reference
-    from ..fields.terrain import terrain_correction
+    from ..fields.gravity.terrain import terrain_correction
     from ..io.dem import read_dem
 
     crs = (ctx.state.get("ingest") or {}).get("crs")

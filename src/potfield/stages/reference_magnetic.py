@@ -1,6 +1,6 @@
 """Magnetic and observatory part of the reference stage: the IGRF-14 main field.
 
-Glue only: the synthesis is :func:`potfield.fields.igrf.igrf`. Called by
+Glue only: the synthesis is :func:`potfield.fields.magnetic.igrf.igrf`. Called by
 :mod:`potfield.stages.reference` (which defines the stage) for magnetic and observatory surveys.
 
 Magnetic surveys, columns added (nT):
@@ -43,7 +43,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError, ModelRangeError, StageError
-from ..fields.igrf import FIRST_YEAR, LAST_YEAR, MODEL_NAME, decimal_year, igrf
+from ..fields.magnetic.igrf import FIRST_YEAR, LAST_YEAR, MODEL_NAME, decimal_year, igrf
 from .base import StageContext, StageOutput, usable
 
 #: Columns this module creates, by survey kind.
@@ -167,7 +167,7 @@ def _stats(prefix: str, values: np.ndarray) -> dict:
 def run_magnetic(ctx: StageContext) -> StageOutput:
     """Remove the IGRF-14 main field (magnetic and observatory surveys).
 
-    Evaluates :func:`potfield.fields.igrf.igrf` (IAGA Working Group V-MOD 2024, IGRF-14) at
+    Evaluates :func:`potfield.fields.magnetic.igrf.igrf` (IAGA Working Group V-MOD 2024, IGRF-14) at
     every reading, per reading's time or at ``reference.igrf_date``, and adds the model and
     the residual columns described in the module docstring.
 

@@ -1,7 +1,7 @@
 """separate stage: separation of sources.
 
-Glue only; the methods are in :mod:`potfield.fields.separation` and
-:mod:`potfield.fields.spherical`.
+Glue only; the methods are in :mod:`potfield.fields.harmonic.separation` and
+:mod:`potfield.fields.harmonic.spherical`.
 
 Magnetic and gravity surveys (needs the grid stage's ``anomaly`` or ``bouguer_anomaly`` grid)
     Regional and residual by upward continuation to ``[separate] regional_height_m`` (Jacobsen
@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import StageError
-from ..fields import separation as sep
+from ..fields.harmonic import separation as sep
 from .base import Check, Stage, StageContext, StageOutput, usable
 from .gridmodel import grid_height, load_grid_model
 
@@ -255,7 +255,7 @@ def _two_layer(ctx, grid, height, out):
 
 def _vector(ctx, table, grid, height, out):
     """Grid the vector components and split them into internal and external parts."""
-    from ..fields.eqsources import fit_equivalent_sources
+    from ..fields.harmonic.eqsources import fit_equivalent_sources
 
     cfg = ctx.config.separate
     ok = usable(table)
@@ -358,7 +358,7 @@ def run_grids(ctx: StageContext) -> StageOutput:
         if first == "upward" and model is not None:
             regional = model.predict((e, n, u + cfg.regional_height_m))
         elif first == "upward":  # continue the filled grid so readings in masked cells get a value
-            from ..fields.transforms import fill_masked
+            from ..fields.harmonic.transforms import fill_masked
 
             full = fill_masked(grid) if np.isnan(grid.values).any() else grid
             regional = _sample(sep.regional_upward(full, cfg.regional_height_m,

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import ModelRangeError
+from ...errors import ModelRangeError
 
 #: Constants of Longman (1959), cgs units. The gravitational constant is CODATA 2018.
 _MU = 6.6743e-8  # G, cm^3 g^-1 s^-2

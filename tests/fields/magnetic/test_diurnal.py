@@ -1,4 +1,4 @@
-"""potfield.fields.diurnal: interpolation, cleaning, datum, several bases, chord deviation and
+"""potfield.fields.magnetic.diurnal: interpolation, cleaning, datum, several bases, chord deviation and
 time offset, checked against numpy/scipy/pyproj, hand-computed cases and an analytic external
 variation."""
 
@@ -10,7 +10,7 @@ import scipy.interpolate
 import scipy.ndimage
 import scipy.signal
 
-from potfield.fields.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
+from potfield.fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                                      diurnal_correction, estimate_time_offset, find_gaps,
                                      great_circle_distance, interpolate_base, running_median,
                                      station_difference)

@@ -1,4 +1,4 @@
-"""Tests of potfield.fields.gravnet: calibration, instrument height, loop drift, network adjustment.
+"""Tests of potfield.fields.gravity.network: calibration, instrument height, loop drift, network adjustment.
 
 Outside references used: hand arithmetic of the interval-table rule (common practice for spring
 gravimeters), the normal free-air gradient from boule's closed-form normal gravity (Li and Goetze
@@ -14,7 +14,7 @@ import pandas as pd
 import pytest
 
 from potfield.errors import PotfieldError
-from potfield.fields import gravnet as gn
+from potfield.fields.gravity import network as gn
 
 T0 = np.datetime64("2024-03-05T08:00:00", "ns")
 

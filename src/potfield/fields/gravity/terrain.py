@@ -32,7 +32,7 @@ Earth curvature
 Beyond a few km the Earth's surface falls away from the station's tangent plane by about
 d^2 / (2 R) (2.2 km at 166.7 km). With ``curvature=True`` the top and bottom of every prism are
 lowered by that amount, so the terrain correction is taken relative to a spherical shell (the
-Bouguer cap of :func:`potfield.fields.gravity.bouguer_cap`), not a flat slab. The tilt of the
+Bouguer cap of :func:`potfield.fields.gravity.reductions.bouguer_cap`), not a flat slab. The tilt of the
 local vertical (d/R, 1.5 degrees at 166.7 km) is neglected. Flat-Earth terrain
 (``curvature=False``) is adequate within about 20 km (common practice); beyond about 100 km the
 curvature drop is larger than most relief and must be applied.

@@ -1,4 +1,4 @@
-"""Unit tests of potfield.fields.transforms: padding, filling, masks, orientation, attributes,
+"""Unit tests of potfield.fields.harmonic.transforms: padding, filling, masks, orientation, attributes,
 errors. The physics against outside references is in tests/reference/test_transforms_analytic.py.
 """
 
@@ -9,7 +9,7 @@ import pytest
 import xarray as xr
 
 from potfield.errors import InputDataError, PotfieldError
-from potfield.fields import transforms as tf
+from potfield.fields.harmonic import transforms as tf
 from potfield.io.grids import make_grid
 
 G = 6.6743e-11  # CODATA 2018

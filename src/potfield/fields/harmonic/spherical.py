@@ -20,14 +20,14 @@ frame differs by the angle ``psi`` between the geodetic and geocentric latitudes
 Coefficient order (that of IGRF tables): ``g10, g11, h11, g20, g21, h21, g22, h22, ...``; the
 external ones ``q10, q11, s11, ...`` in the same slots. Everything is linear in the coefficients:
 :func:`design_matrices` gives the matrices whose product with a coefficient vector is the field,
-which is what least-squares separation needs (potfield.fields.separation).
+which is what least-squares separation needs (potfield.fields.harmonic.separation).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from .igrf import REFERENCE_RADIUS_M, geodetic_to_geocentric
+from ..magnetic.igrf import REFERENCE_RADIUS_M, geodetic_to_geocentric
 
 __all__ = [
     "coefficient_index",

@@ -1,4 +1,4 @@
-"""potfield.fields.igrf: coefficients, dates, ranges, broadcasting and field definitions."""
+"""potfield.fields.magnetic.igrf: coefficients, dates, ranges, broadcasting and field definitions."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from potfield.errors import InputDataError, ModelRangeError, PotfieldError
-from potfield.fields.igrf import (
+from potfield.fields.magnetic.igrf import (
     coefficients,
     decimal_year,
     geodetic_to_geocentric,

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import ConfigError
+from ...errors import ConfigError
 
 #: Newtonian constant of gravitation, m^3 kg^-1 s^-2 (CODATA 2018).
 G = 6.6743e-11

@@ -1,4 +1,4 @@
-"""Unit tests of potfield.fields.separation and potfield.fields.spherical: closed forms,
+"""Unit tests of potfield.fields.harmonic.separation and potfield.fields.harmonic.spherical: closed forms,
 algebraic properties and user-input errors (the checks against reference libraries are in
 tests/reference/test_separation_reference.py)."""
 
@@ -9,9 +9,9 @@ import pandas as pd
 import pytest
 
 from potfield.errors import InputDataError, PotfieldError
-from potfield.fields import spherical as sp
-from potfield.fields.igrf import igrf
-from potfield.fields.separation import (
+from potfield.fields.harmonic import spherical as sp
+from potfield.fields.magnetic.igrf import igrf
+from potfield.fields.harmonic.separation import (
     coefficient_table,
     external_field_at,
     fit_gauss_coefficients,

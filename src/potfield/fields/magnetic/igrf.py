@@ -31,7 +31,7 @@ from typing import NamedTuple
 import numba
 import numpy as np
 
-from ..errors import InputDataError, ModelRangeError
+from ...errors import InputDataError, ModelRangeError
 
 __all__ = [
     "IGRFField",

@@ -1010,7 +1010,7 @@ def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max
     """
     import xarray as xr
 
-    from ..io.grids import ascending
+    from ...io.grids import ascending
 
     # Ascending coordinates: with a descending axis the oblique filter would be mirrored.
     grid = ascending(grid.transpose("northing", "easting"))

@@ -1,4 +1,4 @@
-"""Tests of potfield.fields.leveling: crossovers, tie and line adjustment, micro-levelling."""
+"""Tests of potfield.fields.lines.leveling: crossovers, tie and line adjustment, micro-levelling."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from potfield.fields import leveling as lv
+from potfield.fields.lines import leveling as lv
 
 
 # --------------------------------------------------------------------------------------------

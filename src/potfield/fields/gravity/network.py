@@ -2,7 +2,7 @@
 
 A relative gravimeter measures gravity differences. Its reading (counter units for a spring
 meter) is turned into milligals with the meter's calibration (interval) table, brought from the
-sensor down to the station mark, freed of the Earth tide (``potfield.fields.tides``) and then of
+sensor down to the station mark, freed of the Earth tide (``potfield.fields.gravity.tides``) and then of
 the instrument drift, which is found from repeated occupations of bases and stations. The final
 values are tied to absolute gravity at one or more bases.
 
@@ -39,7 +39,7 @@ import scipy.linalg
 import scipy.sparse
 import scipy.sparse.csgraph
 
-from ..errors import InputDataError
+from ...errors import InputDataError
 
 __all__ = [
     "FREE_AIR_GRADIENT",

@@ -2,7 +2,7 @@
 
 The survey region is cut into a regular array of rectangular *cores*. Each core is widened by
 ``overlap`` on every side into a *fit window*; the equivalent sources of every window are fitted
-independently (:func:`potfield.fields.eqsources.fit_equivalent_sources`) as Dask tasks, and each
+independently (:func:`potfield.fields.harmonic.eqsources.fit_equivalent_sources`) as Dask tasks, and each
 window predicts the output grid only where its blending weight is non-zero: its core widened by
 ``overlap / 2``. The outer half of the overlap therefore holds data that steady the window's fit
 but whose edge-affected predictions are never used.
@@ -41,7 +41,7 @@ import pandas as pd
 import xarray as xr
 from scipy.spatial import cKDTree
 
-from ..io.grids import make_grid
+from ...io.grids import make_grid
 
 __all__ = [
     "TiledGrid",
@@ -296,7 +296,7 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         Source depth (m), the same for all windows; ``"default"`` is 4.5 x the mean
         nearest-neighbour distance of all the data (Soler and Uieda 2021).
     damping : float
-        Damping (see :func:`potfield.fields.eqsources.fit_equivalent_sources`).
+        Damping (see :func:`potfield.fields.harmonic.eqsources.fit_equivalent_sources`).
     block_size : float, optional
         Source block / lattice spacing (m); default ``spacing``.
     weights : array, optional
@@ -321,7 +321,7 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         Attributes of the returned grid.
     fit_options : dict, optional
         Further keywords of every window's fit (``depth_type``, ``tol``, ``ceiling``, ...; see
-        :func:`potfield.fields.eqsources.fit_equivalent_sources`).
+        :func:`potfield.fields.harmonic.eqsources.fit_equivalent_sources`).
 
     Returns
     -------

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from potfield.fields.noise import fourth_difference, robust_spikes
+from potfield.fields.lines.noise import fourth_difference, robust_spikes
 
 
 def test_cubic_gives_zero():

@@ -1,4 +1,4 @@
-"""Equivalent-source gridding (potfield.fields.eqsources) against fields forward-modelled by an
+"""Equivalent-source gridding (potfield.fields.harmonic.eqsources) against fields forward-modelled by an
 independent library (harmonica 0.7 prisms and point masses)."""
 
 from __future__ import annotations
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import verde as vd
 
-from potfield.fields import eqsources as eqs
+from potfield.fields.harmonic import eqsources as eqs
 
 G = 6.6743e-11  # CODATA 2018 gravitational constant (m^3 kg^-1 s^-2)
 
@@ -248,7 +248,7 @@ def test_block_median_matches_verde():
     # multiple of the spacing both put every point in the same block).
     import verde as vd
 
-    from potfield.fields.eqsources import block_median
+    from potfield.fields.harmonic.eqsources import block_median
 
     rng = np.random.default_rng(7)
     e = rng.uniform(0, 1000, 5000)

@@ -65,7 +65,7 @@ import scipy.linalg
 import xarray as xr
 from scipy.spatial import cKDTree
 
-from ..io.atomic import atomic_path
+from ...io.atomic import atomic_path
 
 __all__ = [
     "EquivalentSourceModel",

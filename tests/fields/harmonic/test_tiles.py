@@ -1,4 +1,4 @@
-"""Tiled equivalent-source gridding (potfield.fields.tiles).
+"""Tiled equivalent-source gridding (potfield.fields.harmonic.tiles).
 
 The field is forward-modelled with harmonica's dipoles (the reference library; Fatiando a Terra
 Project, harmonica 0.7, ``dipole_magnetic``) and observed as the total-field anomaly b . F_hat
@@ -13,8 +13,8 @@ import pytest
 
 harmonica = pytest.importorskip("harmonica")
 
-from potfield.fields.eqsources import fit_equivalent_sources  # noqa: E402
-from potfield.fields.tiles import (  # noqa: E402
+from potfield.fields.harmonic.eqsources import fit_equivalent_sources  # noqa: E402
+from potfield.fields.harmonic.tiles import (  # noqa: E402
     axis_weights,
     blend_weights,
     cosine_step,
@@ -31,7 +31,7 @@ HEIGHT = 300.0  # grid height (m)
 DEPTH = 600.0  # source depth (m): about 2 x the line spacing (Dampney 1969: 2.5-6 x spacing)
 DAMPING = 1e-3
 TILE = 6_000.0
-OVERLAP = 2_000.0  # > 2 x depth (module docstring of potfield.fields.tiles)
+OVERLAP = 2_000.0  # > 2 x depth (module docstring of potfield.fields.harmonic.tiles)
 INCLINATION, DECLINATION = -60.0, 10.0
 
 

@@ -40,7 +40,7 @@ import scipy.fft
 import scipy.linalg
 import xarray as xr
 
-from ..errors import InputDataError
+from ...errors import InputDataError
 from . import spherical
 from . import transforms as tf
 
@@ -91,11 +91,11 @@ def regional_upward(grid: xr.DataArray, height: float, *, model=None, grid_heigh
     height : float
         Continuation distance (m, > 0).
     model : object with ``predict((easting, northing, upward))``, optional
-        Equivalent-source model of the same field (e.g. from potfield.fields.eqsources).
+        Equivalent-source model of the same field (e.g. from potfield.fields.harmonic.eqsources).
     grid_height : float or array, optional
         Height (m) of the grid surface; required with ``model``.
     pad_fraction, pad_mode
-        FFT padding (see potfield.fields.transforms.pad_grid).
+        FFT padding (see potfield.fields.harmonic.transforms.pad_grid).
 
     Returns
     -------
@@ -405,7 +405,7 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
         Removed before the transform and given to the ``uniform`` side: the mean (default) or a
         least-squares plane (then a uniform gradient is not separated either).
     pad_fraction, pad_mode
-        FFT padding (potfield.fields.transforms.pad_grid).
+        FFT padding (potfield.fields.harmonic.transforms.pad_grid).
 
     Returns
     -------
@@ -800,7 +800,7 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
     The external Gauss coefficients (``q``, ``s``) and, with ``include_induced``, the internal
     ones (``g``, ``h``: fitted to the disturbance after the main field was removed, so they are
     the induced part) of a coefficient table are interpolated linearly in time and synthesised
-    at the site (:mod:`potfield.fields.spherical`; Chapman and Bartels 1940; Olsen, Glassmeier
+    at the site (:mod:`potfield.fields.harmonic.spherical`; Chapman and Bartels 1940; Olsen, Glassmeier
     and Jia 2010, Space Sci. Rev. 152:135). The vector is projected onto the IGRF-14 direction
     at the site and time: ``dF = b . F / |F|``, the first-order change of the total intensity
     (valid while ``|b| << |F|``; Blakely 1995, sec. 12.1, for the total-field anomaly as a
@@ -830,7 +830,7 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
     numpy.ndarray
         Total-field variation (nT) of the broadcast shape of the inputs.
     """
-    from .igrf import igrf
+    from ..magnetic.igrf import igrf
 
     if "time" not in coefficients_table.columns:
         raise InputDataError("the coefficient table has no 'time' column",

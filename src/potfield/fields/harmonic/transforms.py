@@ -29,7 +29,7 @@ import scipy.fft
 import xarray as xr
 from scipy import ndimage
 
-from ..errors import InputDataError
+from ...errors import InputDataError
 
 #: Smallest padding per side as a fraction of the grid size (common practice: >= 25 %).
 MIN_PAD_FRACTION = 0.25
@@ -808,7 +808,7 @@ def grid_declination(declination: float, crs, longitude: float, latitude: float)
     """
     import pyproj
 
-    from ..errors import CRSError
+    from ...errors import CRSError
 
     try:
         to_grid = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
