@@ -9,6 +9,7 @@ import pytest
 import verde as vd
 
 from potfield.fields.harmonic import eqsources as eqs
+from potfield.fields.harmonic.eqsources.solve import LatticeProblem
 
 G = 6.6743e-11  # CODATA 2018 gravitational constant (m^3 kg^-1 s^-2)
 
@@ -125,7 +126,7 @@ def test_lattice_operator_and_adjoint():
     rng = np.random.default_rng(11)
     coords = vd.scatter_points((0, 2000, 0, 1500), size=1500, random_state=4, extra_coords=100.0)
     coords = (coords[0], coords[1], coords[2] + rng.normal(0, 20, 1500))
-    problem = eqs._LatticeProblem(*coords, np.ones(1500), 150.0, 40.0)
+    problem = LatticeProblem(*coords, np.ones(1500), 150.0, 40.0)
     coefs = rng.normal(size=problem.n_sources)
     model = problem.model(coefs, 0.0, None)
     fast = problem.forward(coefs)
@@ -147,7 +148,7 @@ def test_preconditioned_cgls_solves_the_damped_least_squares_problem():
     coords = (coords[0], coords[1], coords[2] + rng.normal(0, 10, 900))
     weights = rng.uniform(0.5, 2.0, 900)
     data = np.sin(coords[0] / 300.0) + np.cos(coords[1] / 250.0)
-    problem = eqs._LatticeProblem(*coords, weights / weights.mean(), 120.0, 40.0)
+    problem = LatticeProblem(*coords, weights / weights.mean(), 120.0, 40.0)
     damping = 1e-2
     coefs, _, info = problem.solve(data, damping, tol=1e-6, maxiter=3000)
     assert info["converged"]
@@ -330,7 +331,7 @@ def test_lattice_operator_when_source_planes_cross_data_levels(draped):
     # data, so source planes and data levels interleave (the kernel core is then needed).
     blocked, _, _, _ = draped
     rng = np.random.default_rng(2)
-    problem = eqs._LatticeProblem(*blocked, np.ones(blocked[0].size), 100.0, 50.0)
+    problem = LatticeProblem(*blocked, np.ones(blocked[0].size), 100.0, 50.0)
     assert problem.zp.max() > problem.zl.min()
     coefs = rng.normal(size=problem.n_sources)
     fast = problem.forward(coefs)
@@ -345,7 +346,7 @@ def test_lattice_operator_when_source_planes_cross_data_levels(draped):
 
 def test_preconditioner_is_symmetric_positive_and_covers_every_source(draped):
     blocked, _, _, _ = draped
-    problem = eqs._LatticeProblem(*blocked, np.ones(blocked[0].size), 150.0, 50.0)
+    problem = LatticeProblem(*blocked, np.ones(blocked[0].size), 150.0, 50.0)
     blocks = problem._preconditioner(1e-4)
     counts = np.zeros(problem.n_sources)
     for src in blocks.windows:
