@@ -336,6 +336,7 @@ def run(ctx: StageContext) -> StageOutput:
 def _remote_reference(ctx: StageContext) -> StageOutput:
     """Diurnal correction from an observatory network's fitted external field (no local base)."""
     from ..fields.harmonic.separation import external_field_at, remote_reference_caution
+    from ._boundary import translate
 
     cfg = ctx.config.diurnal
     path = ctx.survey.resolve(cfg.remote_reference)
@@ -345,8 +346,11 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
                              fix="run the observatory network first and point at its out/tables/coefficients.csv")
     coefficients = pd.read_csv(path)
     table = ctx.table.copy()
-    variation = external_field_at(coefficients, table["longitude"].to_numpy(), table["latitude"].to_numpy(),
-                                  table["height"].to_numpy(), table["time"].to_numpy(dtype="datetime64[ns]"))
+    with translate(InputDataError, file=path, key="diurnal.remote_reference",
+                   fix="use the coefficients table written by the observatory network's separate stage"):
+        variation = external_field_at(coefficients, table["longitude"].to_numpy(),
+                                      table["latitude"].to_numpy(), table["height"].to_numpy(),
+                                      table["time"].to_numpy(dtype="datetime64[ns]"))
     missing = ~np.isfinite(variation)
     if missing.all():
         raise InputDataError("the remote-reference coefficients do not cover the survey's times",
