@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ...errors import ConfigError
+from ..errors import BadParameter
 
 #: Newtonian constant of gravitation, m^3 kg^-1 s^-2 (CODATA 2018).
 G = 6.6743e-11
@@ -95,13 +95,12 @@ def get_ellipsoid(name: str) -> ReferenceEllipsoid:
 
     Raises
     ------
-    potfield.errors.ConfigError
+    potfield.fields.errors.BadParameter
         For an unknown name.
     """
     key = str(name).upper().replace("-", "").replace(" ", "")
     if key not in ELLIPSOIDS:
-        raise ConfigError(f"unknown ellipsoid '{name}'", key="reference.ellipsoid",
-                          fix=f"use one of {', '.join(ELLIPSOIDS)}")
+        raise BadParameter(f"unknown ellipsoid '{name}'", hint=f"use one of {', '.join(ELLIPSOIDS)}")
     return ELLIPSOIDS[key]
 
 

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ...errors import ModelRangeError
+from ..errors import OutOfModelRange
 
 #: Constants of Longman (1959), cgs units. The gravitational constant is CODATA 2018.
 _MU = 6.6743e-8  # G, cm^3 g^-1 s^-2
@@ -83,9 +83,9 @@ def longman_components(longitude, latitude, height, time):
                                          np.asarray(height, dtype=float), t)
     years = t.astype("datetime64[Y]").astype(int) + 1970
     if np.any((years < VALID_YEARS[0]) | (years > VALID_YEARS[1])):
-        raise ModelRangeError(
+        raise OutOfModelRange(
             f"tide asked for a time outside {VALID_YEARS[0]}-{VALID_YEARS[1]}",
-            fix="check the dates of the readings")
+            hint="check the dates of the readings")
     shape = lon.shape
     lon, lat, h, t = (a.ravel() for a in (lon, lat, h, t))
     moon, sun = np.empty(lon.size), np.empty(lon.size)

@@ -617,7 +617,7 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
 
     Raises
     ------
-    InputDataError
+    potfield.fields.errors.NotEnoughData, potfield.fields.errors.IllPosed
         More unknowns than data in the whole network, or a network that cannot resolve the
         coefficients (e.g. all stations on one meridian) with ``damping = 0``.
     """

@@ -31,7 +31,7 @@ from typing import NamedTuple
 import numba
 import numpy as np
 
-from ...errors import InputDataError, ModelRangeError
+from ..errors import BadGeometry, BadParameter, OutOfModelRange
 
 __all__ = [
     "IGRFField",
@@ -167,10 +167,10 @@ def _check_years(years: np.ndarray) -> None:
     finite = years[np.isfinite(years)]
     if finite.size and (finite.min() < FIRST_YEAR or finite.max() > LAST_YEAR):
         bad = finite[(finite < FIRST_YEAR) | (finite > LAST_YEAR)]
-        raise ModelRangeError(
+        raise OutOfModelRange(
             f"{MODEL_NAME} is defined for dates from {FIRST_YEAR:.1f} to {LAST_YEAR:.1f} only; "
             f"got {bad.size} date(s) outside it (from {bad.min():.4f} to {bad.max():.4f})",
-            fix="use dates within 1900-01-01 .. 2030-01-01",
+            hint="use dates within 1900-01-01 .. 2030-01-01",
         )
 
 
@@ -194,7 +194,7 @@ def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         If a date is outside [1900, 2030].
     """
     years = _as_years(decimal_year)
@@ -247,9 +247,9 @@ def decimal_year(times) -> np.ndarray:
         try:
             arr = arr.astype("datetime64[ns]")
         except (ValueError, TypeError) as err:
-            raise InputDataError(
+            raise BadParameter(
                 f"cannot read times as dates ({err})",
-                fix="give numpy datetime64 values, ISO 8601 strings or decimal years",
+                hint="give numpy datetime64 values, ISO 8601 strings or decimal years",
             ) from None
     t = arr.astype("datetime64[ns]")
     nat = np.isnat(t)
@@ -473,9 +473,9 @@ def igrf(longitude, latitude, height, time) -> IGRFField:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         A date outside [1900, 2030].
-    InputDataError
+    potfield.fields.errors.BadGeometry
         A latitude outside [-90, 90], or times that cannot be read.
 
     Examples
@@ -488,10 +488,10 @@ def igrf(longitude, latitude, height, time) -> IGRFField:
     bad = np.abs(lat) > 90.0
     if np.any(bad):
         where = np.argwhere(np.atleast_1d(bad))[0]
-        raise InputDataError(
+        raise BadGeometry(
             f"latitude {np.atleast_1d(lat)[tuple(where)]:g} at index {tuple(int(w) for w in where)} "
             "is outside [-90, 90] degrees",
-            fix="check the latitude column (swapped with longitude, or projected coordinates?)",
+            hint="give latitudes in degrees (swapped with longitude, or projected coordinates?)",
         )
     return IGRFField(*_run_kernel(longitude, lat, height, time, True))
 
@@ -520,17 +520,17 @@ def igrf_geocentric(radius, colatitude, longitude, time) -> GeocentricField:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         A date outside [1900, 2030].
-    InputDataError
+    potfield.fields.errors.BadGeometry
         A colatitude outside [0, 180] or a radius that is not positive.
     """
     colat = np.asarray(colatitude, dtype=float)
     radius = np.asarray(radius, dtype=float)
     if np.any((colat < 0) | (colat > 180)):
-        raise InputDataError("colatitude outside [0, 180] degrees", fix="give geocentric colatitudes")
+        raise BadGeometry("colatitude outside [0, 180] degrees", hint="give geocentric colatitudes")
     if np.any(radius <= 0):
-        raise InputDataError("radius must be positive (m from the Earth's centre)",
-                             fix="give geocentric radii in metres")
+        raise BadGeometry("radius must be positive (m from the Earth's centre)",
+                             hint="give geocentric radii in metres")
     x, y, z, *_ = _run_kernel(longitude, colat, radius, time, False)
     return GeocentricField(radial=-z, theta=-x, phi=y)
