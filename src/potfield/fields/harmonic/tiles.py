@@ -39,9 +39,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 import xarray as xr
-from scipy.spatial import cKDTree
 
 from ...io.grids import make_grid
+from .._numerics import nearest_neighbour_distances
 
 __all__ = [
     "TiledGrid",
@@ -216,15 +216,10 @@ def _fit_window(e, n, u, d, w, grid_e, grid_n, grid_h, points, fit_kwargs):
 def _default_depth(e, n, sample=200_000, seed=0) -> float:
     """4.5 x the mean nearest-neighbour distance (harmonica's default; Soler and Uieda 2021),
     from at most ``sample`` points drawn at random (their neighbours searched among all)."""
-    pts = np.column_stack([e, n])
-    tree = cKDTree(pts)
-    if len(pts) > sample:
-        pick = np.random.default_rng(seed).choice(len(pts), sample, replace=False)
-        query = pts[pick]
-    else:
-        query = pts
-    dist, _ = tree.query(query, k=2)
-    return 4.5 * float(np.mean(dist[:, 1]))
+    pick = None
+    if len(e) > sample:
+        pick = np.random.default_rng(seed).choice(len(e), sample, replace=False)
+    return 4.5 * float(np.mean(nearest_neighbour_distances(e, n, points=pick)))
 
 
 def _active_client(client):

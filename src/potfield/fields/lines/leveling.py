@@ -1050,21 +1050,11 @@ def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max
 
 
 def sample_grid(grid, easting, northing) -> np.ndarray:
-    """Bilinear interpolation of a grid at points; NaN outside the grid or in empty cells."""
-    from scipy.interpolate import RegularGridInterpolator
+    """Bilinear interpolation of a grid at points; NaN outside the grid or in empty cells
+    (:func:`potfield.fields._numerics.sample_grid`)."""
+    from .._numerics import sample_grid as bilinear
 
-    grid = grid.transpose("northing", "easting")
-    north = grid["northing"].to_numpy()
-    east = grid["easting"].to_numpy()
-    values = grid.to_numpy().astype(float)
-    if north[0] > north[-1]:
-        north, values = north[::-1], values[::-1]
-    if east[0] > east[-1]:
-        east, values = east[::-1], values[:, ::-1]
-    interp = RegularGridInterpolator((north, east), values, method="linear", bounds_error=False,
-                                     fill_value=np.nan)
-    pts = np.column_stack([np.asarray(northing, float), np.asarray(easting, float)])
-    return interp(pts)
+    return bilinear(grid, easting, northing)
 
 
 def lowpass_along_lines(values, line_ids, distance, wavelength) -> np.ndarray:
