@@ -139,6 +139,31 @@ def test_lattice_operator_and_adjoint():
         * np.linalg.norm(resid)
 
 
+
+def test_lattice_operator_small_case():
+    # A small draped case (also run with numba's JIT disabled, tests/fields/test_nojit.py): the
+    # pre-corrected FFT operator against the direct sum of 1/r (Phillips and White 1997, IEEE
+    # Trans. CAD 16:1059), its adjoint against the dot-product identity, and the preconditioner
+    # symmetric (additive Schwarz is SPD: Smith, Bjorstad and Gropp 1996).
+    rng = np.random.default_rng(5)
+    coords = vd.scatter_points((0, 500, 0, 400), size=120, random_state=6, extra_coords=80.0)
+    coords = (coords[0], coords[1], coords[2] + 0.05 * coords[0])
+    problem = LatticeProblem(*coords, np.ones(120), 120.0, 40.0)
+    coefs = rng.normal(size=problem.n_sources)
+    fast = problem.forward(coefs)
+    model = problem.model(coefs, 0.0, None)
+    exact = model.predict(coords)
+    assert np.linalg.norm(fast - exact) < 1e-4 * np.linalg.norm(exact)
+    above = (coords[0], coords[1], coords[2] + 30.0)  # the lattice evaluation used for big grids
+    lattice = model._predict_fft(*(np.ravel(c).astype(float) for c in above))
+    assert np.linalg.norm(lattice - model.predict(above)) < 1e-4 * np.linalg.norm(lattice)
+    resid = rng.normal(size=120)
+    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) \
+        * np.linalg.norm(resid)
+    blocks = problem._preconditioner(1e-3)
+    x, y = rng.normal(size=(2, problem.n_sources))
+    assert abs(x @ blocks.apply(y) - y @ blocks.apply(x)) < 1e-9 * abs(x @ blocks.apply(x))
+
 def test_preconditioned_cgls_solves_the_damped_least_squares_problem():
     # The lattice solver's answer against numpy's least squares on the explicit stacked matrix
     # [W^1/2 A; sqrt(damping) I] (Paige and Saunders 1982, ACM TOMS 8:43: CGLS converges to
