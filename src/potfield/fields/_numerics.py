@@ -12,8 +12,14 @@ test against an outside reference in ``tests/fields/test_numerics.py``:
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+from numpy.typing import ArrayLike
 import scipy.linalg
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 __all__ = [
     "block_median",
@@ -72,7 +78,7 @@ def group_median(values: np.ndarray, groups: np.ndarray, count: int) -> np.ndarr
     return 0.5 * (sorted_values[starts + (sizes - 1) // 2] + sorted_values[starts + sizes // 2])
 
 
-def block_median(easting, northing, upward, data, spacing: float, region=None,
+def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, spacing: float, region: tuple[float, float, float, float] | None = None,
                  stretch: bool = False) -> tuple[tuple[np.ndarray, np.ndarray, np.ndarray],
                                                  np.ndarray]:
     """Median of the coordinates and the data in square blocks (vectorised, O(N log N)).
@@ -132,7 +138,7 @@ def block_median(easting, northing, upward, data, spacing: float, region=None,
     return (out[0], out[1], out[2]), out[3]
 
 
-def nearest_neighbour_distances(easting, northing, points=None) -> np.ndarray:
+def nearest_neighbour_distances(easting: ArrayLike, northing: ArrayLike, points: np.ndarray | None = None) -> np.ndarray:
     """Horizontal distance (m) from each point to its nearest other point (a k-d tree query).
 
     Parameters
@@ -157,7 +163,7 @@ def nearest_neighbour_distances(easting, northing, points=None) -> np.ndarray:
     return dist[:, 1]
 
 
-def median_spacing(easting, northing) -> float:
+def median_spacing(easting: ArrayLike, northing: ArrayLike) -> float:
     """Median distance from each point to its nearest neighbour (m); NaN with fewer than two.
 
     Common practice for the data spacing of scattered stations; harmonica's default source depth
@@ -167,7 +173,7 @@ def median_spacing(easting, northing) -> float:
     return float(np.median(dist)) if dist.size else float("nan")
 
 
-def sample_grid(grid, easting, northing) -> np.ndarray:
+def sample_grid(grid: xr.DataArray, easting: ArrayLike, northing: ArrayLike) -> np.ndarray:
     """Bilinear values of a grid with dimensions ``northing`` and ``easting`` at points.
 
     NaN outside the grid and wherever a cell corner with non-zero weight is NaN (empty cells).

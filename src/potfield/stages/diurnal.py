@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError
+from ..fields.errors import FieldError
 from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                               estimate_time_offset, great_circle_distance, interpolate_base,
                               station_difference)
@@ -127,7 +128,7 @@ def _datums(ctx, bases, cleaned, span) -> list[float]:
             stamp = stamp.tz_convert("UTC").tz_localize(None)
         try:
             first = base_datum(t0, v0, "time", at_time=np.datetime64(stamp.to_datetime64(), "ns"))
-        except ValueError:
+        except FieldError:
             raise ConfigError(f"datum_time {cfg.datum_time} is outside the record of base "
                               f"'{bases[0].name}' ({_span_text(t0[0], t0[-1])})",
                               key="diurnal.datum_time", fix="choose a time inside the base record") from None

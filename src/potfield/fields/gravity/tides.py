@@ -26,6 +26,7 @@ References
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import OutOfModelRange
 
@@ -55,7 +56,7 @@ def _as_times(time) -> np.ndarray:
     return t.astype("datetime64[ns]")
 
 
-def longman_components(longitude, latitude, height, time):
+def longman_components(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Longman's upward tidal accelerations of the Moon and of the Sun (rigid Earth, mGal).
 
     Parameters
@@ -158,7 +159,7 @@ def _longman(lon, lat, h, t):
     return gm * 1e3, gs * 1e3
 
 
-def longman_gravity(longitude, latitude, height, time, gravimetric_factor: float = 1.16):
+def longman_gravity(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
     """Tidal change of measured gravity (mGal): what a gravimeter sees of the Earth tide.
 
     Equal to minus Longman's upward tidal acceleration of Moon and Sun times the gravimetric
@@ -188,7 +189,7 @@ def longman_gravity(longitude, latitude, height, time, gravimetric_factor: float
     return -float(gravimetric_factor) * (gm + gs)
 
 
-def longman_correction(longitude, latitude, height, time, gravimetric_factor: float = 1.16):
+def longman_correction(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
     """Tide correction (mGal) to ADD to gravity readings: ``-longman_gravity(...)``.
 
     See :func:`longman_gravity` (Longman 1959, J. Geophys. Res. 64(12), 2351-2355).

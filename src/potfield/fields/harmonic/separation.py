@@ -34,6 +34,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from numpy.typing import ArrayLike
 import pandas as pd
 import scipy.fft
 import scipy.linalg
@@ -74,8 +75,8 @@ RANK_TOLERANCE = 1e-2
 # ==============================================================================================
 # Regional / residual
 # ==============================================================================================
-def regional_upward(grid: xr.DataArray, height: float, *, model=None, grid_height=None,
-                    pad_fraction: float = 0.5, pad_mode: str = "reflect"):
+def regional_upward(grid: xr.DataArray, height: float, *, model: EquivalentSourceModel | None = None, grid_height: float | None = None,
+                    pad_fraction: float = 0.5, pad_mode: str = "reflect") -> tuple[xr.DataArray, xr.DataArray]:
     """Regional field by upward continuation, residual = field - regional.
 
     Continuing the field upward by ``height`` attenuates each wavenumber by ``exp(-|k| height)``,
@@ -158,15 +159,15 @@ class TwoLayerSources:
     rms: float
     info: dict = field(default_factory=dict)
 
-    def predict_regional(self, coordinates) -> np.ndarray:
+    def predict_regional(self, coordinates: tuple) -> np.ndarray:
         """Field of the deep layer (the regional) at ``(easting, northing, upward)``."""
         return self.deep.predict(coordinates)
 
-    def predict_residual(self, coordinates) -> np.ndarray:
+    def predict_residual(self, coordinates: tuple) -> np.ndarray:
         """Field of the shallow layer at ``(easting, northing, upward)``."""
         return self.shallow.predict(coordinates)
 
-    def predict(self, coordinates) -> np.ndarray:
+    def predict(self, coordinates: tuple) -> np.ndarray:
         """Field of both layers."""
         return self.deep.predict(coordinates) + self.shallow.predict(coordinates)
 
@@ -181,7 +182,7 @@ def _block_positions(e, n, u, block):
 
 
 def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_depth: float,
-                       deep_spacing: float, shallow_spacing: float, deep_damping: float = 1e-3):
+                       deep_spacing: float, shallow_spacing: float, deep_damping: float = 1e-3) -> tuple[float, float]:
     """Damping of the shallow layer that puts the deep/shallow split at a chosen wavelength.
 
     With the dimensionless kernel ``depth / r``, a layer of sources at spacing ``s`` and depth
@@ -214,10 +215,10 @@ def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_d
     return float(deep_damping), float(deep_damping * ratio)
 
 
-def fit_two_layer(coordinates, data, *, deep_depth: float, shallow_depth: float,
+def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, shallow_depth: float,
                   deep_block: float | None = None, shallow_block: float | None = None,
                   deep_damping: float | None = None, shallow_damping: float | None = None,
-                  crossover_wavelength: float | None = None, weights=None) -> TwoLayerSources:
+                  crossover_wavelength: float | None = None, weights: ArrayLike | None = None) -> TwoLayerSources:
     """Fit a deep and a shallow equivalent-source layer together; the deep layer is the regional.
 
     Each layer is a set of point sources with the ``1/r`` Green's function at a relative depth
@@ -441,7 +442,7 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
 def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m: float, *,
                          uniform: str = "external", trend: str = "mean",
                          regularisation: float = 0.1, pad_fraction: float = 1.0,
-                         pad_mode: str = "edge"):
+                         pad_mode: str = "edge") -> dict[str, xr.DataArray]:
     """Split a harmonic scalar measured on two horizontal planes into internal and external parts.
 
     A harmonic scalar (gravity, one field component, or approximately a total-field anomaly)
@@ -584,9 +585,9 @@ def _same_longitude(longitude) -> bool:
     return bool(np.max(np.abs(z - z[0])) < 1e-9)
 
 
-def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
+def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, *,
                            internal_degree: int = 1, external_degree: int = 1,
-                           damping: float = 0.0, stations=None) -> GaussFit:
+                           damping: float = 0.0, stations: list[str] | None = None) -> GaussFit:
     """Least-squares Gauss coefficients of internal and external potentials at every epoch.
 
     The disturbance field ``(X, Y, Z)`` at ``S`` stations (main field removed) is modelled at
@@ -703,14 +704,14 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
         damping=float(damping))
 
 
-def coefficient_table(times, fit: GaussFit) -> pd.DataFrame:
+def coefficient_table(times: ArrayLike, fit: GaussFit) -> pd.DataFrame:
     """The coefficient time series as a table: ``time`` then one column per coefficient (nT)."""
     table = pd.DataFrame(fit.coefficients, columns=fit.names)
     table.insert(0, "time", np.asarray(times, dtype="datetime64[ns]"))
     return table
 
 
-def induction_ratio(internal, external) -> dict[str, float]:
+def induction_ratio(internal: ArrayLike, external: ArrayLike) -> dict[str, float]:
     """Ratio of induced internal to external coefficient by regression of their time series.
 
     Least squares ``internal = ratio * external + offset`` over the epochs where both are finite
@@ -773,7 +774,7 @@ def _as_ns(values) -> np.ndarray:
     return series.dt.tz_localize(None).to_numpy(dtype="datetime64[ns]")
 
 
-def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, height, time, *,
+def external_field_at(coefficients_table: pd.DataFrame, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, *,
                       include_induced: bool = True, max_gap_s: float = 180.0) -> np.ndarray:
     """Total-field variation of the fitted external (plus induced) field at a site.
 
@@ -865,7 +866,7 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
     return result.reshape(shape)
 
 
-def nearest_station(station_longitude, station_latitude, longitude: float, latitude: float):
+def nearest_station(station_longitude: ArrayLike, station_latitude: ArrayLike, longitude: float, latitude: float) -> tuple[int, float]:
     """Index and great-circle distance (km) of the station nearest to a site (haversine on a
     sphere of radius 6371.2 km; common practice)."""
     slon, slat = np.radians(np.asarray(station_longitude, dtype=float)), np.radians(

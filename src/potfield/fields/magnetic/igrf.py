@@ -30,6 +30,7 @@ from typing import NamedTuple
 
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import BadGeometry, BadParameter, OutOfModelRange
 
@@ -174,7 +175,7 @@ def _check_years(years: np.ndarray) -> None:
         )
 
 
-def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
+def coefficients(decimal_year: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """IGRF-14 Gauss coefficients at the given date(s).
 
     Linear interpolation between the 5-year main-field models 1900.0-2025.0 and linear
@@ -211,7 +212,7 @@ def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
 # --------------------------------------------------------------------------------------------
 
 
-def decimal_year(times) -> np.ndarray:
+def decimal_year(times: ArrayLike) -> np.ndarray:
     """Dates as decimal years: year + (time - 1 January) / (length of that year).
 
     This is the time argument of the IGRF (IAGA Working Group V-MOD 2024): 2020-07-02T00:00
@@ -276,7 +277,7 @@ def _as_years(time) -> np.ndarray:
     return decimal_year(time)
 
 
-def geodetic_to_geocentric(latitude, height):
+def geodetic_to_geocentric(latitude: ArrayLike, height: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Geocentric radius and latitude of geodetic positions on the WGS84 ellipsoid.
 
     ``N = a / sqrt(1 - e^2 sin^2 phi)``, ``x = (N + h) cos phi``, ``z = (N (1 - e^2) + h) sin phi``,
@@ -444,7 +445,7 @@ def _run_kernel(longitude, coord1, coord2, time, geodetic: bool):
     return [row.reshape(shape) for row in out]
 
 
-def igrf(longitude, latitude, height, time) -> IGRFField:
+def igrf(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike) -> IGRFField:
     """IGRF-14 main field at geodetic positions and dates.
 
     Spherical-harmonic synthesis of the IGRF-14 potential to degree 13 (10 before 1995) with
@@ -496,7 +497,7 @@ def igrf(longitude, latitude, height, time) -> IGRFField:
     return IGRFField(*_run_kernel(longitude, lat, height, time, True))
 
 
-def igrf_geocentric(radius, colatitude, longitude, time) -> GeocentricField:
+def igrf_geocentric(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, time: ArrayLike) -> GeocentricField:
     """IGRF-14 main field in geocentric spherical coordinates.
 
     The same synthesis as :func:`igrf` (IAGA Working Group V-MOD 2024; Langel 1987), without the

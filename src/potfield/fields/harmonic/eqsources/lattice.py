@@ -14,6 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike
 import scipy.fft
 
 from ..._numerics import group_median
@@ -78,7 +79,7 @@ class Lattice:
     ny: int
 
     @classmethod
-    def covering(cls, dx, west, east, south, north, margin):
+    def covering(cls, dx: float, west: float, east: float, south: float, north: float, margin: int) -> Lattice:
         x0 = west - margin * dx
         y0 = south - margin * dx
         nx = int(np.ceil((east - x0) / dx - 1e-9)) + margin + 1
@@ -86,7 +87,7 @@ class Lattice:
         return cls(float(x0), float(y0), float(dx), int(nx), int(ny))
 
 
-def lattice_kernel(ox, oy, dz, dx, scale, core):
+def lattice_kernel(ox: ArrayLike, oy: ArrayLike, dz: float, dx: float, scale: float, core: bool) -> np.ndarray:
     """Lattice kernel ``scale / r`` between nodes offset by (ox, oy) cells and heights ``dz``
     apart; with ``core`` it is zero where both offsets are at most CORE_CELLS (values only ever
     used for near sources, whose interpolated field the near-field correction removes again:
@@ -100,7 +101,7 @@ def lattice_kernel(ox, oy, dz, dx, scale, core):
     return np.where(inside, 0.0, kernel) if core else kernel
 
 
-def kernel_table(zl, zp, dx, scale, reach, core):
+def kernel_table(zl: np.ndarray, zp: np.ndarray, dx: float, scale: float, reach: int, core: bool) -> np.ndarray:
     """``table[l, oy + reach, ox + reach, p]``: the lattice kernel between level ``zl[l]`` and
     plane ``zp[p]`` at node offsets up to ``reach`` cells (what the near-field correction
     subtracts; the same values as the convolver's)."""
@@ -161,12 +162,12 @@ class Convolver:
 
 
 
-def capped(heights, ceiling):
+def capped(heights: np.ndarray, ceiling: float | None) -> np.ndarray:
     """Source heights not above ``ceiling`` (m; None = no cap)."""
     return heights if ceiling is None else np.minimum(heights, float(ceiling))
 
 
-def layer_ceiling(grid_height, depth):
+def layer_ceiling(grid_height: float | str | None, depth: float) -> float | None:
     """Highest source height (m) under a grid at constant ``grid_height`` for a layer ``depth``
     deep: half the depth below the grid, so a layer following high ground never reaches up to
     a grid flown lower (None for a drape grid, ``grid_height`` None or "drape")."""
@@ -175,14 +176,14 @@ def layer_ceiling(grid_height, depth):
     return float(grid_height) - 0.5 * float(depth)
 
 
-def constant_plane(u, depth, ceiling=None):
+def constant_plane(u: np.ndarray, depth: float, ceiling: float | None = None) -> float:
     """Height of a constant-depth layer: ``depth`` below the median data height and at least
     ``depth / 2`` below every datum (and not above ``ceiling``)."""
     return float(capped(min(float(np.median(u)) - depth, float(u.min()) - 0.5 * depth),
                          ceiling))
 
 
-def source_heights(u, groups, cells, shape, depth, depth_type="relative", ceiling=None):
+def source_heights(u: np.ndarray, groups: np.ndarray, cells: tuple[np.ndarray, np.ndarray], shape: tuple[int, int], depth: float, depth_type: str = "relative", ceiling: float | None = None) -> tuple[np.ndarray, float]:
     """Heights of lattice sources and the kernel scale.
 
     ``"relative"``: each source ``depth`` below the median height of the data at its lattice

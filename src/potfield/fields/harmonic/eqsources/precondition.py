@@ -10,10 +10,15 @@ are in DEVELOPERS.md ("Equivalent sources: measured choices").
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 import scipy.linalg
 
 from .kernels import _dense_jacobian, _schwarz_apply
+
+if TYPE_CHECKING:
+    from .solve import LatticeProblem
 
 #: Sources per preconditioner tile.
 PRECOND_SOURCES = 300
@@ -30,12 +35,12 @@ PRECOND_FAR_STRIDE = 4
 class NodeIndex:
     """Items (sources or data) by lattice node, to list those in a box of nodes quickly."""
 
-    def __init__(self, flat, nx):
+    def __init__(self, flat: np.ndarray, nx: int):
         self.order = np.argsort(flat, kind="stable")
         self.keys = np.asarray(flat)[self.order]
         self.nx = int(nx)
 
-    def within(self, x0, x1, y0, y1):
+    def within(self, x0: int, x1: int, y0: int, y1: int) -> np.ndarray:
         """Indices of the items whose node column is in [x0, x1] and row in [y0, y1]."""
         x0, x1 = max(int(x0), 0), min(int(x1), self.nx - 1)
         rows = np.arange(max(int(y0), 0), int(y1) + 1)
@@ -56,7 +61,7 @@ class Schwarz:
     windows are ill-conditioned and an explicit inverse cost 20 % more iterations. Symmetric
     positive definite, as conjugate gradients need."""
 
-    def __init__(self, normals, damping, n_sources, chunks):
+    def __init__(self, normals: list[tuple[np.ndarray, np.ndarray]], damping: float, n_sources: int, chunks: int):
         sizes = np.array([src.size for src, _ in normals], dtype=np.int64)
         self.src_off = np.concatenate([[0], np.cumsum(sizes)])
         self.fac_off = np.concatenate([[0], np.cumsum(sizes * (sizes + 1) // 2)])
@@ -71,18 +76,18 @@ class Schwarz:
             self.fac[self.fac_off[k]:self.fac_off[k + 1]] = factor[np.tril_indices(src.size)]
 
     @property
-    def windows(self):
+    def windows(self) -> list[np.ndarray]:
         """Source indices of every window."""
         return [self.src[a:b] for a, b in zip(self.src_off[:-1], self.src_off[1:])]
 
-    def apply(self, s):
+    def apply(self, s: np.ndarray) -> np.ndarray:
         buffers = np.empty((self.chunks, self.n_sources))
         _schwarz_apply(np.ascontiguousarray(s, dtype=float), self.src, self.src_off, self.fac,
                        self.fac_off, buffers)
         return buffers.sum(axis=0)
 
 
-def local_normals(problem) -> list[tuple[np.ndarray, np.ndarray]]:
+def local_normals(problem: LatticeProblem) -> list[tuple[np.ndarray, np.ndarray]]:
     """``(source indices, J^T W J)`` of every preconditioner window of a
     :class:`~potfield.fields.harmonic.eqsources.solve.LatticeProblem` (its lattice, source
     nodes and heights, data nodes, positions and square-root weights)."""

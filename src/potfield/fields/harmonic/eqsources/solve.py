@@ -129,10 +129,10 @@ class LatticeProblem:
         self._normals = None  # local normal matrices of the preconditioner, built on first use
 
     @property
-    def n_sources(self):
+    def n_sources(self) -> int:
         return self.node_index.size
 
-    def forward(self, c):
+    def forward(self, c: np.ndarray) -> np.ndarray:
         """W^1/2 A c."""
         lat = self.lattice
         grids = np.zeros((self.zp.size, lat.ny * lat.nx))
@@ -143,7 +143,7 @@ class LatticeProblem:
         _near_gather(self.near_cols, self.near_vals, np.ascontiguousarray(c, dtype=float), out)
         return out
 
-    def adjoint(self, r):
+    def adjoint(self, r: np.ndarray) -> np.ndarray:
         """A^T W^1/2 r."""
         lat = self.lattice
         r = np.ascontiguousarray(r, dtype=float)
@@ -165,7 +165,7 @@ class LatticeProblem:
             self._normals = local_normals(self)
         return Schwarz(self._normals, damping, self.n_sources, self.chunks)
 
-    def solve(self, d, damping, tol=1e-4, maxiter=500, z0=None):
+    def solve(self, d: np.ndarray, damping: float, tol: float = 1e-4, maxiter: int = 500, z0: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, dict]:
         """Preconditioned CGLS for min |W^1/2 (d - A c)|^2 + damping |c|^2.
 
         Conjugate gradients on the damped normal equations, run on the stacked operator
@@ -184,10 +184,10 @@ class LatticeProblem:
         b = self.sw * d
         blocks = self._preconditioner(damping)
 
-        def forward(z):
+        def forward(z) -> np.ndarray:
             return self.forward(z), root * z
 
-        def adjoint(r1, r2):
+        def adjoint(r1, r2) -> np.ndarray:
             return self.adjoint(r1) + root * r2
 
         z = np.zeros(self.n_sources) if z0 is None else z0.copy()
@@ -227,7 +227,7 @@ class LatticeProblem:
                 "relative_gradient": float(np.sqrt(max(gamma, 0.0) / gamma0))}
         return z.copy(), z, info
 
-    def model(self, coefs, damping, region):
+    def model(self, coefs: np.ndarray, damping: float, region: tuple | None) -> EquivalentSourceModel:
         lat = self.lattice
         iy, ix = np.divmod(self.node_index, lat.nx)
         points = (lat.x0 + ix * lat.dx, lat.y0 + iy * lat.dx, self.src_z.copy())
