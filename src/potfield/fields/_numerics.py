@@ -85,8 +85,9 @@ def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, dat
 
     Every coordinate and the data are replaced by their medians in each block of side
     ``spacing`` counted from the region's south-west corner (points on the east edge fall in the
-    last column). With ``stretch`` the block sides are stretched so that a whole number of
-    blocks (``round(width / spacing)``, at least one) spans the region along each axis, as
+    last column). With ``stretch`` the blocks are verde's: sides stretched so that a whole number
+    of blocks (``round(width / spacing)``, at least one) spans the region along each axis, each
+    point in the block of the nearest centre (``verde.block_split``), as
     ``verde.BlockReduce(numpy.median, spacing, drop_coords=False)`` does by default (Uieda 2018,
     JOSS 3:957). One stable sort per array replaces a per-block Python-level grouping.
 
@@ -112,18 +113,18 @@ def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, dat
         region = (e.min(), e.max(), n.min(), n.max())
     west, east, south, north = (float(v) for v in region)
     if stretch:
-        ncol = max(int(round((east - west) / spacing)), 1)
-        nrow = max(int(round((north - south) / spacing)), 1)
-        step_e, step_n = (east - west) / ncol, (north - south) / nrow
-        col = np.floor((e - west) / step_e) if step_e > 0 else np.zeros(e.size)
-        row = np.floor((n - south) / step_n) if step_n > 0 else np.zeros(n.size)
-        col = np.clip(col.astype(np.int64), 0, ncol - 1)
-        row = np.clip(row.astype(np.int64), 0, nrow - 1)
+        # verde's own block assignment (nearest block centre), so that points on a block edge
+        # (gridded data) fall in the same block as with verde.BlockReduce
+        from verde import block_split
+
+        _, key = block_split((e, n), spacing=spacing, region=(west, east, south, north),
+                             adjust="spacing")
+        key = np.asarray(key, dtype=np.int64)
     else:
         ncol = int(np.floor((east - west) / spacing)) + 1
         col = np.clip(np.floor((e - west) / spacing).astype(np.int64), 0, ncol - 1)
         row = np.floor((n - south) / spacing).astype(np.int64)
-    key = row * ncol + col
+        key = row * ncol + col
     out = []
     starts = counts = None
     for values in (e, n, u, d):
