@@ -15,8 +15,8 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 import numpy as np
-from numpy.typing import ArrayLike
 import scipy.linalg
+from numpy.typing import ArrayLike
 
 if TYPE_CHECKING:
     import xarray as xr

@@ -14,8 +14,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import ArrayLike
 import scipy.fft
+from numpy.typing import ArrayLike
 
 from ..._numerics import group_median
 from .kernels import _mix_spectra

@@ -94,7 +94,7 @@ class EquivalentSourceModel:
         return out.reshape(shape)
 
     def _predict_fft(self, e: np.ndarray, n: np.ndarray, u: np.ndarray) -> np.ndarray:
-        x0, y0, dx, nx, ny = self.lattice
+        x0, y0, dx, nx, _ = self.lattice
         src_iy, src_ix = np.divmod(self.node_index, int(nx))
         margin = INTERP_ORDER // 2 + 1
         west = min(e.min(), x0 + src_ix.min() * dx)
