@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from potfield.errors import ModelRangeError
+from potfield.fields.errors import OutOfModelRange
 from potfield.fields.gravity.tides import longman_components, longman_correction, longman_gravity
 
 tidegravity = pytest.importorskip("tidegravity")
@@ -114,6 +114,6 @@ def test_vectorised_over_readings_and_broadcasts():
 
 
 def test_times_outside_the_valid_range_are_refused():
-    with pytest.raises(ModelRangeError) as info:
+    with pytest.raises(OutOfModelRange) as info:
         longman_gravity(0.0, 0.0, 0.0, np.array(["1700-01-01"], dtype="datetime64[ns]"))
     assert "\n" not in str(info.value)

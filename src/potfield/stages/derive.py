@@ -12,8 +12,10 @@ import warnings
 
 import numpy as np
 
-from ..errors import StageError
+from ..errors import CRSError, InputDataError, StageError
+from ..fields.errors import FieldError, NotEnoughData
 from ..fields.harmonic import transforms as tf
+from ._boundary import Rule, translate
 from .base import Stage, StageContext, StageOutput
 from .gridmodel import grid_height, load_grid_model
 
@@ -118,8 +120,10 @@ def run(ctx: StageContext) -> StageOutput:
             crs, centroid = ingest.get("crs"), ingest.get("centroid")
             dec_true = float(dec)
             if crs and centroid:  # the filter works on grid axes: declination from grid north
-                dec, true_north = tf.grid_declination(dec_true, crs, float(centroid[0]),
-                                                      float(centroid[1]))
+                with translate(CRSError, key="survey.output_crs",
+                               fix="check [survey] output_crs and the survey coordinates"):
+                    dec, true_north = tf.grid_declination(dec_true, crs, float(centroid[0]),
+                                                          float(centroid[1]))
                 out.metrics["rtp_true_north_deg"] = true_north
                 out.notes.append(f"declination {dec_true:.2f} deg from true north is {dec:.2f} deg "
                                  "from grid north (meridian convergence)")
@@ -183,7 +187,10 @@ def run(ctx: StageContext) -> StageOutput:
 
 def _run(ctx: StageContext) -> StageOutput:
     """Run with numerical warnings from the transforms collected into the stage's warnings."""
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, translate({
+            NotEnoughData: Rule(InputDataError,
+                                fix="check the grid stage's output and its mask distance"),
+            FieldError: InputDataError}):
         warnings.simplefilter("always", UserWarning)
         result = run(ctx)
     result.warnings.extend(str(w.message) for w in caught if issubclass(w.category, UserWarning))

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError
+from ..fields.errors import FieldError
 from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                               estimate_time_offset, great_circle_distance, interpolate_base,
                               station_difference)
@@ -127,7 +128,7 @@ def _datums(ctx, bases, cleaned, span) -> list[float]:
             stamp = stamp.tz_convert("UTC").tz_localize(None)
         try:
             first = base_datum(t0, v0, "time", at_time=np.datetime64(stamp.to_datetime64(), "ns"))
-        except ValueError:
+        except FieldError:
             raise ConfigError(f"datum_time {cfg.datum_time} is outside the record of base "
                               f"'{bases[0].name}' ({_span_text(t0[0], t0[-1])})",
                               key="diurnal.datum_time", fix="choose a time inside the base record") from None
@@ -336,6 +337,7 @@ def run(ctx: StageContext) -> StageOutput:
 def _remote_reference(ctx: StageContext) -> StageOutput:
     """Diurnal correction from an observatory network's fitted external field (no local base)."""
     from ..fields.harmonic.separation import external_field_at, remote_reference_caution
+    from ._boundary import translate
 
     cfg = ctx.config.diurnal
     path = ctx.survey.resolve(cfg.remote_reference)
@@ -345,8 +347,11 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
                              fix="run the observatory network first and point at its out/tables/coefficients.csv")
     coefficients = pd.read_csv(path)
     table = ctx.table.copy()
-    variation = external_field_at(coefficients, table["longitude"].to_numpy(), table["latitude"].to_numpy(),
-                                  table["height"].to_numpy(), table["time"].to_numpy(dtype="datetime64[ns]"))
+    with translate(InputDataError, file=path, key="diurnal.remote_reference",
+                   fix="use the coefficients table written by the observatory network's separate stage"):
+        variation = external_field_at(coefficients, table["longitude"].to_numpy(),
+                                      table["latitude"].to_numpy(), table["height"].to_numpy(),
+                                      table["time"].to_numpy(dtype="datetime64[ns]"))
     missing = ~np.isfinite(variation)
     if missing.all():
         raise InputDataError("the remote-reference coefficients do not cover the survey's times",

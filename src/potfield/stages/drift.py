@@ -37,8 +37,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..errors import ConfigError, InputDataError, StageError, format_rows
+from ..errors import ConfigError, InputDataError, ModelRangeError, StageError, format_rows
+from ..fields.errors import BadParameter, FieldError
 from ..fields.gravity import network as gravnet
+from ._boundary import Rule, translate
 from .base import Check, Stage, StageContext, StageOutput, usable
 
 #: Default spec values (common practice for ground gravity loops with spring gravimeters).
@@ -80,8 +82,7 @@ def read_calibration(path: Path) -> pd.DataFrame:
     except gravnet.CalibrationTableError as err:
         # data row n is file line n + 1 (header on line 1, no comments assumed)
         row = None if err.table_row is None else err.table_row + 1
-        message = str(err).split(": ", 1)[-1] if err.table_row is not None else str(err)
-        raise InputDataError(message, file=path, row=row) from None
+        raise InputDataError(err.message, file=path, row=row, fix=err.hint) from None
     return cal
 
 
@@ -167,7 +168,8 @@ def _calibrated(ctx: StageContext, table: pd.DataFrame, notes: list[str],
     if flagged.any():
         warnings.append(f"{int(flagged.sum())} flagged reading(s) outside the calibration table "
                         "left without a value")
-    out = gravnet.apply_calibration(np.where(flagged, np.nan, reading), cal)
+    with translate(InputDataError, file=path):
+        out = gravnet.apply_calibration(np.where(flagged, np.nan, reading), cal)
     notes.append(f"calibrated counter readings with {path.name} ({len(cal)} intervals)")
     return out
 
@@ -180,10 +182,11 @@ def _tide(ctx: StageContext, table: pd.DataFrame) -> np.ndarray:
     from ..fields.gravity.tides import longman_correction
 
     height = table["height"].to_numpy(dtype=float) if "height" in table else np.zeros(len(table))
-    return np.asarray(longman_correction(
-        table["longitude"].to_numpy(dtype=float), table["latitude"].to_numpy(dtype=float),
-        np.nan_to_num(height), table["time"].to_numpy().astype("datetime64[ns]"),
-        ctx.config.drift.gravimetric_factor), dtype=float)
+    with translate(ModelRangeError, fix="check the dates of the readings"):
+        return np.asarray(longman_correction(
+            table["longitude"].to_numpy(dtype=float), table["latitude"].to_numpy(dtype=float),
+            np.nan_to_num(height), table["time"].to_numpy().astype("datetime64[ns]"),
+            ctx.config.drift.gravimetric_factor), dtype=float)
 
 
 def _check_bases(ctx: StageContext, stations: np.ndarray, use: np.ndarray) -> dict:
@@ -246,8 +249,9 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings):
             continue
         best = counts.index[int(np.argmax(counts.to_numpy()))]  # first of the most occupied
         is_base |= sel & (stations == best)
-    result = gravnet.loop_drift(time, value, is_base, loops, method=method, base_value=base_value,
-                                use=use)
+    with translate(InputDataError, key="drift.method"):
+        result = gravnet.loop_drift(time, value, is_base, loops, method=method,
+                                    base_value=base_value, use=use)
     drift = np.nan_to_num(result.drift, nan=0.0)  # loops without repeats: no drift removed
     corrected = value - drift
 
@@ -286,8 +290,10 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings):
 
 
 def _network_method(time, value, stations, loops, use, bases, tares, reading_sigma, warnings):
-    result = gravnet.network_adjustment(stations, time, value, loops, bases, tares=tares,
-                                        reading_sigma=reading_sigma, use=use)
+    with translate({BadParameter: Rule(InputDataError, key="drift.bases"),
+                    FieldError: InputDataError}):
+        result = gravnet.network_adjustment(stations, time, value, loops, bases, tares=tares,
+                                            reading_sigma=reading_sigma, use=use)
     warnings.extend(result.warnings)
     table = result.loops.rename(columns={"max_abs_residual_mgal": "residual_closure_mgal"})
     table = table.drop(columns=["t0"])

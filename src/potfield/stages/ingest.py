@@ -238,12 +238,11 @@ def line_geometry(table: pd.DataFrame) -> dict:
                             np.max(np.abs(gaps - result[key])) / result[key])
     if result["line_spacing_m"] is None:
         # Station surveys: median nearest-neighbour distance between distinct positions.
-        from scipy.spatial import cKDTree
+        from ..fields._numerics import median_spacing
 
         pts = np.unique(np.round(table[["easting", "northing"]].to_numpy(), 1), axis=0)
         if len(pts) >= 2:
-            dist, _ = cKDTree(pts).query(pts, k=2)
-            result["line_spacing_m"] = float(np.median(dist[:, 1]))
+            result["line_spacing_m"] = median_spacing(pts[:, 0], pts[:, 1])
     return result
 
 

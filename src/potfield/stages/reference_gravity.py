@@ -33,9 +33,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import StageError
+from ..errors import ConfigError, InputDataError, StageError
+from ..fields.errors import BadParameter, FieldError
 from ..fields.gravity.reductions import (atmospheric_correction, bouguer_cap, bouguer_slab,
                               free_air_correction, normal_gravity)
+from ._boundary import Rule, translate
 from .base import Check, StageContext, StageOutput, usable
 
 #: Columns this module creates.
@@ -115,6 +117,7 @@ def _terrain(ctx: StageContext, table, height, notes, warnings, checks, state):
     return result.correction
 
 
+@translate({BadParameter: Rule(ConfigError, key="reference.ellipsoid"), FieldError: InputDataError})
 def run_gravity(ctx: StageContext) -> StageOutput:
     """Add normal gravity, corrections and anomalies to the readings of a gravity survey.
 

@@ -43,7 +43,9 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, InputDataError, ModelRangeError, StageError
+from ..fields.errors import FieldError, OutOfModelRange
 from ..fields.magnetic.igrf import FIRST_YEAR, LAST_YEAR, MODEL_NAME, decimal_year, igrf
+from ._boundary import translate
 from .base import StageContext, StageOutput, usable
 
 #: Columns this module creates, by survey kind.
@@ -164,6 +166,8 @@ def _stats(prefix: str, values: np.ndarray) -> dict:
             f"{prefix}_mean": float(values.mean()), f"{prefix}_std": float(values.std())}
 
 
+@translate({OutOfModelRange: ModelRangeError, FieldError: InputDataError},
+           fix="check the position and time columns of the input files")
 def run_magnetic(ctx: StageContext) -> StageOutput:
     """Remove the IGRF-14 main field (magnetic and observatory surveys).
 

@@ -29,8 +29,11 @@ import math
 import numpy as np
 import pandas as pd
 
-from ..errors import StageError
+from ..errors import InputDataError, StageError
+from ..fields._numerics import sample_grid
+from ..fields.errors import BadParameter, FieldError, IllPosed, NotEnoughData
 from ..fields.harmonic import separation as sep
+from ._boundary import Rule, translate
 from .base import Check, Stage, StageContext, StageOutput, usable
 from .gridmodel import grid_height, load_grid_model
 
@@ -103,11 +106,15 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         grid[t_codes, st_codes] = values[c]
         arrays[c] = grid
     ctx.progress(f"Gauss coefficients at {n_t} epochs from {n_s} stations")
-    fit = sep.fit_gauss_coefficients(
-        arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
-        positions["latitude"].to_numpy(), positions["height"].to_numpy(),
-        internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
-        damping=cfg.damping, stations=list(st_names))
+    with translate({IllPosed: Rule(InputDataError, key="separate.damping", fix=(
+                        "add stations spread in longitude and latitude, lower the degrees, or "
+                        "set a damping > 0")),
+                    FieldError: Rule(InputDataError, key="separate.internal_degree")}):
+        fit = sep.fit_gauss_coefficients(
+            arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
+            positions["latitude"].to_numpy(), positions["height"].to_numpy(),
+            internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
+            damping=cfg.damping, stations=list(st_names))
     out = StageOutput(table=table.copy())
     new = out.table
     for k, c in enumerate(COMPONENTS):
@@ -180,15 +187,6 @@ def _main_grid(ctx: StageContext):
     return None, None
 
 
-def _sample(grid, easting, northing) -> np.ndarray:
-    """Bilinear values of a grid at points (NaN outside)."""
-    import xarray as xr
-
-    e = xr.DataArray(np.asarray(easting, dtype=float), dims="p")
-    n = xr.DataArray(np.asarray(northing, dtype=float), dims="p")
-    return np.asarray(grid.interp(easting=e, northing=n, method="linear").values, dtype=float)
-
-
 def _value_column(ctx: StageContext, table: pd.DataFrame) -> str | None:
     record = ctx.state.get("grid", {})
     for key in ("column", "value_column", "source_column"):
@@ -233,9 +231,14 @@ def _two_layer(ctx, grid, height, out):
             key="separate.shallow_depth_m", fix="set shallow_depth_m below deep_depth_m")
     crossover = cfg.crossover_wavelength_m or 3.0 * cfg.regional_height_m
     ctx.progress(f"two-layer equivalent sources on {int(np.isfinite(small.values).sum())} cells")
-    model = sep.fit_two_layer((ee, nn, uu), small.values, deep_depth=deep, shallow_depth=shallow,
-                              deep_damping=cfg.deep_damping, shallow_damping=cfg.shallow_damping,
-                              crossover_wavelength=crossover)
+    with translate({BadParameter: Rule(InputDataError, key="separate.deep_depth_m",
+                                       fix="set deep_depth_m larger than shallow_depth_m"),
+                    NotEnoughData: Rule(InputDataError,
+                                        fix="grid the survey first (the separation needs the grid)")}):
+        model = sep.fit_two_layer((ee, nn, uu), small.values, deep_depth=deep,
+                                  shallow_depth=shallow, deep_damping=cfg.deep_damping,
+                                  shallow_damping=cfg.shallow_damping,
+                                  crossover_wavelength=crossover)
     EE, NN = np.meshgrid(grid.easting.values, grid.northing.values)
     UU = np.broadcast_to(np.asarray(height, dtype=float), EE.shape)
     values = np.where(np.isfinite(grid.values), model.predict_regional((EE, NN, UU)), np.nan)
@@ -279,12 +282,16 @@ def _vector(ctx, table, grid, height, out):
                                        damping=damping, block_size=spacing)
         values = np.where(mask, model.predict((EE, NN, UU)), np.nan)
         grids.append(grid.copy(data=values).rename(f"mag_{comp}"))
-    parts = sep.separate_vector_plane(*grids, uniform=cfg.uniform_part,
-                                      pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
+    with translate({BadParameter: Rule(InputDataError, key="separate.uniform_part"),
+                    NotEnoughData: Rule(InputDataError,
+                                        fix="check the mag_north, mag_east and mag_down columns"),
+                    FieldError: InputDataError}):
+        parts = sep.separate_vector_plane(*grids, uniform=cfg.uniform_part,
+                                          pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
     new = out.table
     for name, part in parts.items():
         out.grids[name] = part
-        new[name] = _sample(part, e, n)
+        new[name] = sample_grid(part, e, n)
         vals = part.values[np.isfinite(part.values)]
         out.metrics[f"{name}_rms_nT"] = float(np.sqrt(np.mean((vals - vals.mean()) ** 2))) if vals.size else float("nan")
     out.notes.append("vector components gridded by equivalent sources and split into the fields "
@@ -336,9 +343,11 @@ def run_grids(ctx: StageContext) -> StageOutput:
         out.warnings.append("grid height unknown: the two-layer fit assumes the grid at 0 m")
     results = {}
     if "upward" in methods:
-        regional, residual = sep.regional_upward(grid, cfg.regional_height_m, model=model,
-                                                 grid_height=height, pad_fraction=cfg.pad_fraction,
-                                                 pad_mode=cfg.pad_mode)
+        with translate(InputDataError, key="separate.regional_height_m"):
+            regional, residual = sep.regional_upward(grid, cfg.regional_height_m, model=model,
+                                                     grid_height=height,
+                                                     pad_fraction=cfg.pad_fraction,
+                                                     pad_mode=cfg.pad_mode)
         out.grids["regional_upward"], out.grids["residual_upward"] = regional, residual
         results["upward"] = regional
         out.metrics["upward_method"] = regional.attrs["separation_method"]
@@ -361,9 +370,10 @@ def run_grids(ctx: StageContext) -> StageOutput:
             from ..fields.harmonic.transforms import fill_masked
 
             full = fill_masked(grid) if np.isnan(grid.values).any() else grid
-            regional = _sample(sep.regional_upward(full, cfg.regional_height_m,
-                                                   pad_fraction=cfg.pad_fraction,
-                                                   pad_mode=cfg.pad_mode)[0], e, n)
+            with translate(InputDataError, key="separate.regional_height_m"):
+                regional = sample_grid(sep.regional_upward(full, cfg.regional_height_m,
+                                                           pad_fraction=cfg.pad_fraction,
+                                                           pad_mode=cfg.pad_mode)[0], e, n)
         else:
             regional = results["two_layer"].predict_regional((e, n, u))
         out.table["regional"] = regional

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from potfield.errors import PotfieldError
+from potfield.fields.errors import FieldError
 from potfield.fields.gravity import network as gn
 
 T0 = np.datetime64("2024-03-05T08:00:00", "ns")
@@ -51,7 +51,7 @@ def test_calibration_hand_computed():
 def test_calibration_out_of_table_and_bad_table():
     with pytest.raises(gn.CalibrationRangeError) as info:
         gn.apply_calibration([2050.0, 1999.9, 2300.0], CAL)
-    assert isinstance(info.value, PotfieldError)
+    assert isinstance(info.value, FieldError)
     assert list(info.value.positions) == [1, 2]
     bad = CAL.copy()
     bad.loc[2, "counter"] = 2050.0

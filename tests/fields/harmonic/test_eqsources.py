@@ -9,6 +9,7 @@ import pytest
 import verde as vd
 
 from potfield.fields.harmonic import eqsources as eqs
+from potfield.fields.harmonic.eqsources.solve import LatticeProblem
 
 G = 6.6743e-11  # CODATA 2018 gravitational constant (m^3 kg^-1 s^-2)
 
@@ -125,7 +126,7 @@ def test_lattice_operator_and_adjoint():
     rng = np.random.default_rng(11)
     coords = vd.scatter_points((0, 2000, 0, 1500), size=1500, random_state=4, extra_coords=100.0)
     coords = (coords[0], coords[1], coords[2] + rng.normal(0, 20, 1500))
-    problem = eqs._LatticeProblem(*coords, np.ones(1500), 150.0, 40.0)
+    problem = LatticeProblem(*coords, np.ones(1500), 150.0, 40.0)
     coefs = rng.normal(size=problem.n_sources)
     model = problem.model(coefs, 0.0, None)
     fast = problem.forward(coefs)
@@ -138,6 +139,31 @@ def test_lattice_operator_and_adjoint():
         * np.linalg.norm(resid)
 
 
+
+def test_lattice_operator_small_case():
+    # A small draped case (also run with numba's JIT disabled, tests/fields/test_nojit.py): the
+    # pre-corrected FFT operator against the direct sum of 1/r (Phillips and White 1997, IEEE
+    # Trans. CAD 16:1059), its adjoint against the dot-product identity, and the preconditioner
+    # symmetric (additive Schwarz is SPD: Smith, Bjorstad and Gropp 1996).
+    rng = np.random.default_rng(5)
+    coords = vd.scatter_points((0, 500, 0, 400), size=120, random_state=6, extra_coords=80.0)
+    coords = (coords[0], coords[1], coords[2] + 0.05 * coords[0])
+    problem = LatticeProblem(*coords, np.ones(120), 120.0, 40.0)
+    coefs = rng.normal(size=problem.n_sources)
+    fast = problem.forward(coefs)
+    model = problem.model(coefs, 0.0, None)
+    exact = model.predict(coords)
+    assert np.linalg.norm(fast - exact) < 1e-4 * np.linalg.norm(exact)
+    above = (coords[0], coords[1], coords[2] + 30.0)  # the lattice evaluation used for big grids
+    lattice = model._predict_fft(*(np.ravel(c).astype(float) for c in above))
+    assert np.linalg.norm(lattice - model.predict(above)) < 1e-4 * np.linalg.norm(lattice)
+    resid = rng.normal(size=120)
+    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) \
+        * np.linalg.norm(resid)
+    blocks = problem._preconditioner(1e-3)
+    x, y = rng.normal(size=(2, problem.n_sources))
+    assert abs(x @ blocks.apply(y) - y @ blocks.apply(x)) < 1e-9 * abs(x @ blocks.apply(x))
+
 def test_preconditioned_cgls_solves_the_damped_least_squares_problem():
     # The lattice solver's answer against numpy's least squares on the explicit stacked matrix
     # [W^1/2 A; sqrt(damping) I] (Paige and Saunders 1982, ACM TOMS 8:43: CGLS converges to
@@ -147,7 +173,7 @@ def test_preconditioned_cgls_solves_the_damped_least_squares_problem():
     coords = (coords[0], coords[1], coords[2] + rng.normal(0, 10, 900))
     weights = rng.uniform(0.5, 2.0, 900)
     data = np.sin(coords[0] / 300.0) + np.cos(coords[1] / 250.0)
-    problem = eqs._LatticeProblem(*coords, weights / weights.mean(), 120.0, 40.0)
+    problem = LatticeProblem(*coords, weights / weights.mean(), 120.0, 40.0)
     damping = 1e-2
     coefs, _, info = problem.solve(data, damping, tol=1e-6, maxiter=3000)
     assert info["converged"]
@@ -330,7 +356,7 @@ def test_lattice_operator_when_source_planes_cross_data_levels(draped):
     # data, so source planes and data levels interleave (the kernel core is then needed).
     blocked, _, _, _ = draped
     rng = np.random.default_rng(2)
-    problem = eqs._LatticeProblem(*blocked, np.ones(blocked[0].size), 100.0, 50.0)
+    problem = LatticeProblem(*blocked, np.ones(blocked[0].size), 100.0, 50.0)
     assert problem.zp.max() > problem.zl.min()
     coefs = rng.normal(size=problem.n_sources)
     fast = problem.forward(coefs)
@@ -345,7 +371,7 @@ def test_lattice_operator_when_source_planes_cross_data_levels(draped):
 
 def test_preconditioner_is_symmetric_positive_and_covers_every_source(draped):
     blocked, _, _, _ = draped
-    problem = eqs._LatticeProblem(*blocked, np.ones(blocked[0].size), 150.0, 50.0)
+    problem = LatticeProblem(*blocked, np.ones(blocked[0].size), 150.0, 50.0)
     blocks = problem._preconditioner(1e-4)
     counts = np.zeros(problem.n_sources)
     for src in blocks.windows:

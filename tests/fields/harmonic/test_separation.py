@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from potfield.errors import InputDataError, PotfieldError
+from potfield.fields.errors import FieldError
 from potfield.fields.harmonic import spherical as sp
 from potfield.fields.magnetic.igrf import igrf
 from potfield.fields.harmonic.separation import (
@@ -73,7 +73,7 @@ def test_fit_is_exact_on_noise_free_data_and_groups_gaps():
 
 def test_too_few_stations_is_a_clear_error():
     north, east, down = _network(np.ones((2, 8)), np.ones((2, 8)), LON[:3], LAT[:3], HGT[:3])
-    with pytest.raises(InputDataError) as err:
+    with pytest.raises(FieldError) as err:
         fit_gauss_coefficients(north, east, down, LON[:3], LAT[:3], HGT[:3],
                                internal_degree=2, external_degree=2)
     text = str(err.value)
@@ -86,7 +86,7 @@ def test_one_meridian_network_is_a_clear_error_unless_damped():
     lat = np.array([-60.0, -30.0, -5.0, 10.0, 40.0, 70.0])
     h = np.zeros(6)
     north, east, down = _network(np.ones((3, 3)), np.ones((3, 3)), lon, lat, h)
-    with pytest.raises(InputDataError, match="all 6 stations lie on longitude 25"):
+    with pytest.raises(FieldError, match="all 6 stations lie on longitude 25"):
         fit_gauss_coefficients(north, east, down, lon, lat, h)
     fit = fit_gauss_coefficients(north, east, down, lon, lat, h, damping=1e-2)
     assert np.all(np.isfinite(fit.coefficients))
@@ -95,9 +95,9 @@ def test_one_meridian_network_is_a_clear_error_unless_damped():
 
 def test_bad_degrees_and_damping():
     north, east, down = _network(np.ones((1, 3)), np.ones((1, 3)))
-    with pytest.raises(InputDataError, match="internal_degree 0 and external_degree 0"):
+    with pytest.raises(FieldError, match="internal_degree 0 and external_degree 0"):
         fit_gauss_coefficients(north, east, down, LON, LAT, HGT, internal_degree=0, external_degree=0)
-    with pytest.raises(InputDataError, match="damping"):
+    with pytest.raises(FieldError, match="damping"):
         fit_gauss_coefficients(north, east, down, LON, LAT, HGT, damping=-1.0)
     fit = fit_gauss_coefficients(north, east, down, LON, LAT, HGT, internal_degree=0)
     assert fit.names == ["q10", "q11", "s11"]
@@ -150,13 +150,13 @@ def test_external_field_at_interpolates_and_refuses_outside():
 
 
 def test_external_field_at_bad_tables():
-    with pytest.raises(InputDataError, match="no 'time' column"):
+    with pytest.raises(FieldError, match="no 'time' column"):
         external_field_at(pd.DataFrame({"q10": [1.0]}), 0, 0, 0, np.datetime64("2024-01-01"))
     bad = pd.DataFrame({"time": ["2024-01-01"], "q10": [1.0], "q11": [0.0]})
-    with pytest.raises(InputDataError, match="not a full set"):
+    with pytest.raises(FieldError, match="not a full set"):
         external_field_at(bad, 0, 0, 0, np.datetime64("2024-01-01"))
     only_internal = pd.DataFrame({"time": ["2024-01-01"], "g10": [1.0], "g11": [0.0], "h11": [0.0]})
-    with pytest.raises(InputDataError, match="no external"):
+    with pytest.raises(FieldError, match="no external"):
         external_field_at(only_internal, 0, 0, 0, np.datetime64("2024-01-01"))
 
 
@@ -208,15 +208,15 @@ def test_vector_parts_add_up_to_the_data_and_masks_are_kept():
 def test_plane_input_errors():
     a = _grid(np.zeros(EE.shape))
     other = make_grid(E + 50.0, E, np.zeros(EE.shape), name="x", units="nT", long_name="x")
-    with pytest.raises(InputDataError, match="not on the same cells"):
+    with pytest.raises(FieldError, match="not on the same cells"):
         separate_vector_plane(a, other, a)
-    with pytest.raises(InputDataError, match="uniform part"):
+    with pytest.raises(FieldError, match="uniform part"):
         separate_vector_plane(a, a, a, uniform="both")
-    with pytest.raises(InputDataError, match="trend"):
+    with pytest.raises(FieldError, match="trend"):
         separate_vector_plane(a, a, a, trend="cubic")
-    with pytest.raises(InputDataError, match="no cell"):
+    with pytest.raises(FieldError, match="no cell"):
         separate_vector_plane(_grid(np.full(EE.shape, np.nan)), a, a)
-    with pytest.raises(InputDataError, match="must be > 0"):
+    with pytest.raises(FieldError, match="must be > 0"):
         separate_two_heights(a, a, 0.0)
 
 
@@ -247,15 +247,15 @@ def test_regional_upward_parts_add_up_and_bad_height():
     np.testing.assert_allclose(regional.values + residual.values, values, atol=1e-9)
     assert regional.name == "regional_upward" and residual.name == "residual_upward"
     assert regional.values.max() < values.max()  # continuation attenuates (Blakely 1995 ch. 12)
-    with pytest.raises(PotfieldError, match="regional height"):
+    with pytest.raises(FieldError, match="regional height"):
         regional_upward(grid, 0.0)
 
 
 def test_two_layer_checks_and_damping_rule():
-    with pytest.raises(InputDataError, match="deep > shallow"):
+    with pytest.raises(FieldError, match="deep > shallow"):
         fit_two_layer((EE, NN, np.zeros_like(EE)), np.ones_like(EE), deep_depth=100.0,
                       shallow_depth=200.0, crossover_wavelength=1000.0)
-    with pytest.raises(InputDataError, match="finite data"):
+    with pytest.raises(FieldError, match="finite data"):
         fit_two_layer((EE[:1, :5], NN[:1, :5], np.zeros((1, 5))), np.ones((1, 5)),
                       deep_depth=1000.0, shallow_depth=200.0, crossover_wavelength=1000.0)
     # the rule: deep fraction 1 / (1 + exp(2 k (h_d - h_s)) / rho) is 1/2 at the crossover

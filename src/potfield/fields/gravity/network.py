@@ -39,7 +39,7 @@ import scipy.linalg
 import scipy.sparse
 import scipy.sparse.csgraph
 
-from ...errors import InputDataError
+from ..errors import BadParameter, IllPosed, OutOfModelRange
 
 __all__ = [
     "FREE_AIR_GRADIENT",
@@ -63,23 +63,24 @@ FREE_AIR_GRADIENT = 0.3086
 _SINGULAR_LIMIT = 1.0e8
 
 
-class CalibrationTableError(InputDataError):
-    """The calibration (interval) table is malformed. ``row`` is its 1-based data row or None."""
+class CalibrationTableError(BadParameter):
+    """The calibration (interval) table is malformed. ``table_row`` is its 1-based data row or
+    None."""
 
-    def __init__(self, message: str, *, row: int | None = None, **kwargs):
-        super().__init__(message, row=row, **kwargs)
+    def __init__(self, message: str, *, row: int | None = None, hint: str | None = None):
+        super().__init__(message, hint=hint)
         self.table_row = row
 
 
-class CalibrationRangeError(InputDataError):
+class CalibrationRangeError(OutOfModelRange):
     """Readings fall outside the calibration table; ``positions`` holds their 0-based indices."""
 
-    def __init__(self, message: str, positions, **kwargs):
-        super().__init__(message, **kwargs)
+    def __init__(self, message: str, positions, *, hint: str | None = None):
+        super().__init__(message, hint=hint)
         self.positions = np.asarray(positions, dtype=int)
 
 
-class NetworkError(InputDataError):
+class NetworkError(IllPosed):
     """The network cannot be solved (an untied part, an undetermined drift or tare)."""
 
 
@@ -111,7 +112,7 @@ def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if missing:
             raise CalibrationTableError(
                 f"calibration table has no column {', '.join(missing)}",
-                fix="give the columns counter, mgal, factor (one row per interval)",
+                hint="give the columns counter, mgal, factor (one row per interval)",
             )
         cols = [np.asarray(pd.to_numeric(pd.Series(table[lower[c]]), errors="coerce"), dtype=float)
                 for c in ("counter", "mgal", "factor")]
@@ -119,21 +120,21 @@ def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         arr = np.asarray(table, dtype=float)
         if arr.ndim != 2 or arr.shape[1] != 3:
             raise CalibrationTableError("calibration table must have three columns",
-                                        fix="give the columns counter, mgal, factor")
+                                        hint="give the columns counter, mgal, factor")
         cols = [arr[:, 0], arr[:, 1], arr[:, 2]]
     counter, mgal, factor = cols
     if counter.size == 0:
-        raise CalibrationTableError("calibration table is empty", fix="add its rows")
+        raise CalibrationTableError("calibration table is empty", hint="add its rows")
     bad = ~(np.isfinite(counter) & np.isfinite(mgal) & np.isfinite(factor))
     if bad.any():
         row = int(np.flatnonzero(bad)[0]) + 1
         raise CalibrationTableError("calibration table value is missing or not a number", row=row,
-                                    fix="write numbers in counter, mgal and factor")
+                                    hint="write numbers in counter, mgal and factor")
     steps = np.diff(counter)
     if (steps <= 0).any():
         row = int(np.flatnonzero(steps <= 0)[0]) + 2
         raise CalibrationTableError("calibration table counter readings must increase", row=row,
-                                    fix="sort the table by counter reading and remove duplicates")
+                                    hint="sort the table by counter reading and remove duplicates")
     return counter, mgal, factor
 
 
@@ -181,7 +182,7 @@ def apply_calibration(counter, table) -> np.ndarray:
             f"{pos.size} counter reading(s) outside the calibration table "
             f"[{c_tab[0]:g}, {c_tab[-1]:g}] (first: {counter[pos[0]]:g})",
             positions=pos,
-            fix="extend the calibration table to cover every reading",
+            hint="extend the calibration table to cover every reading",
         )
     # Interval index: the last i with C_i <= c (a reading equal to the last counter uses the
     # last row, which gives M_last exactly).
@@ -315,7 +316,7 @@ def loop_drift(time, value, is_base, loop_id, method: str = "linear", base_value
     Cambridge University Press.
     """
     if method not in ("linear", "piecewise"):
-        raise ValueError(f"method must be 'linear' or 'piecewise', not {method!r}")
+        raise BadParameter(f"method must be 'linear' or 'piecewise', not {method!r}")
     time = np.asarray(time).astype("datetime64[ns]")
     value = np.asarray(value, dtype=float)
     n = value.size
@@ -436,8 +437,8 @@ def _normalise_bases(bases) -> dict[str, tuple[float, float | None]]:
         else:
             g, sigma = float(spec), None
         if sigma is not None and not sigma > 0:
-            raise InputDataError(f"base '{name}': sigma must be positive, not {sigma}",
-                                 fix="give sigma_mgal > 0, or leave it out to hold the base fixed")
+            raise BadParameter(f"base '{name}': sigma must be positive, not {sigma}",
+                               hint="give a sigma > 0, or none to hold the base fixed")
         out[str(name)] = (g, sigma)
     return out
 
@@ -510,10 +511,10 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     warnings: list[str] = []
     if not bases:
         raise NetworkError("no absolute base given",
-                           fix="add at least one base with its absolute gravity")
+                           hint="add at least one base with its absolute gravity")
     used = np.flatnonzero(use)
     if used.size == 0:
-        raise NetworkError("no usable reading to adjust", fix="check the flags and readings")
+        raise NetworkError("no usable reading to adjust", hint="check the flags and readings")
 
     # --- indexing ---------------------------------------------------------------------------
     st_codes, st_names = pd.factorize(pd.Series(station), sort=True)
@@ -525,7 +526,7 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     for name in bases:
         if name not in name_to_code or occupations[name_to_code[name]] == 0:
             raise NetworkError(f"base '{name}' is never occupied by a usable reading",
-                               fix="check the station id of the base, or its flagged readings")
+                               hint="check the station id of the base, or its flagged readings")
     base_code = np.array([name_to_code[b] for b in bases], dtype=int)
     base_g = np.array([bases[b][0] for b in bases])
     base_sigma = np.array([np.nan if bases[b][1] is None else bases[b][1] for b in bases])
@@ -546,7 +547,7 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
         shown = ", ".join(untied[:5]) + (f" (and {len(untied) - 5} more)" if len(untied) > 5 else "")
         raise NetworkError(
             f"loop(s) {shown} share no station with any base or tied loop",
-            fix="occupy a base or an already tied station in each loop, or add a base",
+            hint="occupy a base or an already tied station in each loop, or add a base",
         )
 
     # --- loop times ---------------------------------------------------------------------------

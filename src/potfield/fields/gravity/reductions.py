@@ -30,8 +30,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike
 
-from ...errors import ConfigError
+from ..errors import BadParameter
 
 #: Newtonian constant of gravitation, m^3 kg^-1 s^-2 (CODATA 2018).
 G = 6.6743e-11
@@ -95,17 +96,16 @@ def get_ellipsoid(name: str) -> ReferenceEllipsoid:
 
     Raises
     ------
-    potfield.errors.ConfigError
+    potfield.fields.errors.BadParameter
         For an unknown name.
     """
     key = str(name).upper().replace("-", "").replace(" ", "")
     if key not in ELLIPSOIDS:
-        raise ConfigError(f"unknown ellipsoid '{name}'", key="reference.ellipsoid",
-                          fix=f"use one of {', '.join(ELLIPSOIDS)}")
+        raise BadParameter(f"unknown ellipsoid '{name}'", hint=f"use one of {', '.join(ELLIPSOIDS)}")
     return ELLIPSOIDS[key]
 
 
-def normal_gravity(latitude, height=0.0, ellipsoid: str = "WGS84") -> np.ndarray:
+def normal_gravity(latitude: ArrayLike, height: ArrayLike = 0.0, ellipsoid: str = "WGS84") -> np.ndarray:
     """Normal gravity (mGal) at geodetic latitude and height above the ellipsoid, closed form.
 
     The magnitude of the gradient of the normal potential of a level ellipsoid, evaluated
@@ -160,7 +160,7 @@ def normal_gravity(latitude, height=0.0, ellipsoid: str = "WGS84") -> np.ndarray
     return gamma * MGAL
 
 
-def free_air_correction(height, latitude=None, *, order: int = 1) -> np.ndarray:
+def free_air_correction(height: ArrayLike, latitude: ArrayLike | None = None, *, order: int = 1) -> np.ndarray:
     """Free-air (height) correction in mGal, to ADD to observed gravity.
 
     ``order=1``: the classic constant gradient, 0.3086 mGal/m x h (common practice).
@@ -190,13 +190,13 @@ def free_air_correction(height, latitude=None, *, order: int = 1) -> np.ndarray:
         return 0.3086 * h
     if order == 2:
         if latitude is None:
-            raise ValueError("the second-order free-air correction needs the latitude")
+            raise BadParameter("the second-order free-air correction needs the latitude")
         s2 = np.sin(np.radians(np.asarray(latitude, dtype=float))) ** 2
         return (0.3087691 - 0.0004398 * s2) * h - 7.2125e-8 * h * h
-    raise ValueError(f"order must be 1 or 2, not {order}")
+    raise BadParameter(f"order must be 1 or 2, not {order}")
 
 
-def atmospheric_correction(height) -> np.ndarray:
+def atmospheric_correction(height: ArrayLike) -> np.ndarray:
     """Atmospheric correction (mGal, ADDED to observed gravity): the attraction of the
     atmosphere above the station that normal gravity includes.
 
@@ -220,7 +220,7 @@ def atmospheric_correction(height) -> np.ndarray:
     return 0.874 - 9.9e-5 * h + 3.56e-9 * h * h
 
 
-def bouguer_slab(height, density=2670.0) -> np.ndarray:
+def bouguer_slab(height: ArrayLike, density: ArrayLike = 2670.0) -> np.ndarray:
     """Attraction (mGal) of an infinite horizontal slab of thickness ``height``: 2 pi G rho h.
 
     Parameters
@@ -246,7 +246,7 @@ def bouguer_slab(height, density=2670.0) -> np.ndarray:
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(24)
 
 
-def bouguer_cap(height, density=2670.0, *, arc_length: float = CAP_ARC_LENGTH,
+def bouguer_cap(height: ArrayLike, density: ArrayLike = 2670.0, *, arc_length: float = CAP_ARC_LENGTH,
                 earth_radius: float = CAP_EARTH_RADIUS) -> np.ndarray:
     """Attraction (mGal) of a spherical cap of thickness ``height`` out to 166.735 km.
 

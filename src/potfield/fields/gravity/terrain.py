@@ -56,10 +56,17 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 from choclo.prism import gravity_u
+
+from ..errors import BadGeometry, BadParameter, NotEnoughData
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 #: Block-averaging factor between successive zones.
 ZONE_FACTOR = 4
@@ -98,12 +105,12 @@ def _grid_geometry(dem):
     north = np.asarray(dem["northing"].values, dtype=float)
     values = np.asarray(dem.transpose("northing", "easting").values, dtype=float)
     if east.size < 2 or north.size < 2:
-        raise ValueError("the DEM needs at least 2 x 2 cells")
+        raise NotEnoughData("the DEM needs at least 2 x 2 cells")
     dx, dy = np.diff(east), np.diff(north)
     if np.any(dx <= 0) or np.any(dy <= 0):
-        raise ValueError("DEM coordinates must be ascending (use potfield.io.grids.ascending)")
+        raise BadGeometry("DEM coordinates must be ascending (use potfield.io.grids.ascending)")
     if np.ptp(dx) > 1e-6 * abs(dx[0]) or np.ptp(dy) > 1e-6 * abs(dy[0]):
-        raise ValueError("the DEM is not a regular grid")
+        raise BadGeometry("the DEM is not a regular grid")
     dx0, dy0 = float(dx.mean()), float(dy.mean())
     return east[0] - dx0 / 2, north[0] - dy0 / 2, dx0, dy0, values
 
@@ -208,11 +215,11 @@ def _terrain_kernel(x, y, h, ground, z_flat, offsets, nys, nxs, factors, holes, 
         missing[p] = lost / (np.pi * r2max)
 
 
-def terrain_correction(easting, northing, height, dem, *, density: float = 2670.0,
+def terrain_correction(easting: ArrayLike, northing: ArrayLike, height: ArrayLike, dem: xr.DataArray, *, density: float = 2670.0,
                        radius: float = 166_700.0, inner_radius: float = 2_000.0,
                        far_ratio: float = 8.0, curvature: bool = True,
                        earth_radius: float = EARTH_RADIUS,
-                       missing_tolerance: float = 0.01, ground=None) -> TerrainResult:
+                       missing_tolerance: float = 0.01, ground: xr.DataArray | None = None) -> TerrainResult:
     """Terrain correction (mGal, positive, ADDED to the simple Bouguer anomaly) at stations.
 
     Parameters
@@ -269,9 +276,9 @@ def terrain_correction(easting, northing, height, dem, *, density: float = 2670.
         gr = np.ascontiguousarray(np.broadcast_to(np.asarray(ground, dtype=float), h.shape)
                                   .ravel())
     if not (x.size == y.size == h.size):
-        raise ValueError("easting, northing and height must have the same size")
+        raise BadGeometry("easting, northing and height must have the same size")
     if not (radius > 0 and inner_radius >= 0 and far_ratio > 0):
-        raise ValueError("radius and far_ratio must be positive, inner_radius >= 0")
+        raise BadParameter("radius and far_ratio must be positive, inner_radius >= 0")
     x0, y0, dx0, dy0, values = _grid_geometry(dem)
     factors, holes, inner = _zone_plan(dx0, dy0, inner_radius, radius, far_ratio)
     levels = [_block_mean(values, f) for f in factors]

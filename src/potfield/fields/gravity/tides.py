@@ -26,8 +26,9 @@ References
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import ArrayLike
 
-from ...errors import ModelRangeError
+from ..errors import OutOfModelRange
 
 #: Constants of Longman (1959), cgs units. The gravitational constant is CODATA 2018.
 _MU = 6.6743e-8  # G, cm^3 g^-1 s^-2
@@ -55,7 +56,7 @@ def _as_times(time) -> np.ndarray:
     return t.astype("datetime64[ns]")
 
 
-def longman_components(longitude, latitude, height, time):
+def longman_components(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Longman's upward tidal accelerations of the Moon and of the Sun (rigid Earth, mGal).
 
     Parameters
@@ -83,9 +84,9 @@ def longman_components(longitude, latitude, height, time):
                                          np.asarray(height, dtype=float), t)
     years = t.astype("datetime64[Y]").astype(int) + 1970
     if np.any((years < VALID_YEARS[0]) | (years > VALID_YEARS[1])):
-        raise ModelRangeError(
+        raise OutOfModelRange(
             f"tide asked for a time outside {VALID_YEARS[0]}-{VALID_YEARS[1]}",
-            fix="check the dates of the readings")
+            hint="check the dates of the readings")
     shape = lon.shape
     lon, lat, h, t = (a.ravel() for a in (lon, lat, h, t))
     moon, sun = np.empty(lon.size), np.empty(lon.size)
@@ -158,7 +159,7 @@ def _longman(lon, lat, h, t):
     return gm * 1e3, gs * 1e3
 
 
-def longman_gravity(longitude, latitude, height, time, gravimetric_factor: float = 1.16):
+def longman_gravity(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
     """Tidal change of measured gravity (mGal): what a gravimeter sees of the Earth tide.
 
     Equal to minus Longman's upward tidal acceleration of Moon and Sun times the gravimetric
@@ -188,7 +189,7 @@ def longman_gravity(longitude, latitude, height, time, gravimetric_factor: float
     return -float(gravimetric_factor) * (gm + gs)
 
 
-def longman_correction(longitude, latitude, height, time, gravimetric_factor: float = 1.16):
+def longman_correction(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
     """Tide correction (mGal) to ADD to gravity readings: ``-longman_gravity(...)``.
 
     See :func:`longman_gravity` (Longman 1959, J. Geophys. Res. 64(12), 2351-2355).

@@ -32,17 +32,20 @@ down (X, Y, Z), nT.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 import pandas as pd
 import scipy.fft
 import scipy.linalg
 import xarray as xr
 
-from ...errors import InputDataError
+from .._numerics import block_median, damped_lstsq, median_spacing
+from ..errors import BadGeometry, BadParameter, IllPosed, NotEnoughData
 from . import spherical
 from . import transforms as tf
+from .eqsources.kernels import _dense_jacobian
+from .eqsources.model import EquivalentSourceModel
 
 __all__ = [
     "regional_upward",
@@ -72,8 +75,8 @@ RANK_TOLERANCE = 1e-2
 # ==============================================================================================
 # Regional / residual
 # ==============================================================================================
-def regional_upward(grid: xr.DataArray, height: float, *, model=None, grid_height=None,
-                    pad_fraction: float = 0.5, pad_mode: str = "reflect"):
+def regional_upward(grid: xr.DataArray, height: float, *, model: EquivalentSourceModel | None = None, grid_height: float | None = None,
+                    pad_fraction: float = 0.5, pad_mode: str = "reflect") -> tuple[xr.DataArray, xr.DataArray]:
     """Regional field by upward continuation, residual = field - regional.
 
     Continuing the field upward by ``height`` attenuates each wavenumber by ``exp(-|k| height)``,
@@ -104,8 +107,8 @@ def regional_upward(grid: xr.DataArray, height: float, *, model=None, grid_heigh
         ``separation_method`` is ``"model"`` or ``"fft"``.
     """
     if not (np.isfinite(height) and height > 0):
-        raise InputDataError(f"regional height {height} m must be positive",
-                             key="separate.regional_height_m", fix="give a height in metres > 0")
+        raise BadParameter(f"regional height {height} m must be positive",
+                             hint="give a height in metres > 0")
     grid = grid.transpose("northing", "easting")
     if model is not None and grid_height is not None:
         regional = tf.model_upward_continuation(model.predict, grid, height, grid_height)
@@ -136,9 +139,9 @@ class TwoLayerSources:
 
     Attributes
     ----------
-    deep, shallow : harmonica.EquivalentSources
-        Fitted estimators (``points_``, ``coefs_`` set by the joint fit; their ``predict`` gives
-        each layer's field).
+    deep, shallow : potfield.fields.harmonic.eqsources.EquivalentSourceModel
+        Each layer's sources (``"dense"`` models: positions, coefficients, kernel ``depth / r``);
+        their ``predict`` gives each layer's field.
     deep_depth, shallow_depth : float
         Source depth below the (block-averaged) data positions (m).
     deep_damping, shallow_damping : float
@@ -147,8 +150,8 @@ class TwoLayerSources:
         RMS misfit of the joint fit at the data (data units).
     """
 
-    deep: Any
-    shallow: Any
+    deep: EquivalentSourceModel
+    shallow: EquivalentSourceModel
     deep_depth: float
     shallow_depth: float
     deep_damping: float
@@ -156,31 +159,30 @@ class TwoLayerSources:
     rms: float
     info: dict = field(default_factory=dict)
 
-    def predict_regional(self, coordinates) -> np.ndarray:
+    def predict_regional(self, coordinates: tuple) -> np.ndarray:
         """Field of the deep layer (the regional) at ``(easting, northing, upward)``."""
         return self.deep.predict(coordinates)
 
-    def predict_residual(self, coordinates) -> np.ndarray:
+    def predict_residual(self, coordinates: tuple) -> np.ndarray:
         """Field of the shallow layer at ``(easting, northing, upward)``."""
         return self.shallow.predict(coordinates)
 
-    def predict(self, coordinates) -> np.ndarray:
+    def predict(self, coordinates: tuple) -> np.ndarray:
         """Field of both layers."""
         return self.deep.predict(coordinates) + self.shallow.predict(coordinates)
 
 
 def _block_positions(e, n, u, block):
-    import verde as vd
-
+    """Block-median source positions; blocks stretched to fit the data region as verde's
+    BlockReduce does by default (the behaviour this fit was built with)."""
     if not block:
         return e.copy(), n.copy(), u.copy()
-    reducer = vd.BlockReduce(np.median, spacing=block, drop_coords=False)
-    coords, _ = reducer.filter((e, n, u), np.zeros_like(e))
-    return tuple(np.asarray(c, dtype=float).ravel() for c in coords[:3])
+    positions, _ = block_median(e, n, u, np.zeros_like(e), block, stretch=True)
+    return positions
 
 
 def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_depth: float,
-                       deep_spacing: float, shallow_spacing: float, deep_damping: float = 1e-3):
+                       deep_spacing: float, shallow_spacing: float, deep_damping: float = 1e-3) -> tuple[float, float]:
     """Damping of the shallow layer that puts the deep/shallow split at a chosen wavelength.
 
     With the dimensionless kernel ``depth / r``, a layer of sources at spacing ``s`` and depth
@@ -213,17 +215,18 @@ def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_d
     return float(deep_damping), float(deep_damping * ratio)
 
 
-def fit_two_layer(coordinates, data, *, deep_depth: float, shallow_depth: float,
+def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, shallow_depth: float,
                   deep_block: float | None = None, shallow_block: float | None = None,
                   deep_damping: float | None = None, shallow_damping: float | None = None,
-                  crossover_wavelength: float | None = None, weights=None) -> TwoLayerSources:
+                  crossover_wavelength: float | None = None, weights: ArrayLike | None = None) -> TwoLayerSources:
     """Fit a deep and a shallow equivalent-source layer together; the deep layer is the regional.
 
-    Each layer is a harmonica :class:`~harmonica.EquivalentSources` (point sources with the
-    ``1/r`` Green's function at a relative depth below block-median data positions; Cordell
-    1992, Geophysics 57:629; Soler and Uieda 2021, GJI 227:1768). The two Jacobians (from
-    ``EquivalentSources.jacobian``, scaled by each layer's depth so the kernel ``depth / r`` is
-    dimensionless and the coefficients carry the data unit) are stacked and the joint damped
+    Each layer is a set of point sources with the ``1/r`` Green's function at a relative depth
+    below block-median data positions (Cordell 1992, Geophysics 57:629; Soler and Uieda 2021,
+    GJI 227:1768), returned as a ``"dense"``
+    :class:`~potfield.fields.harmonic.eqsources.EquivalentSourceModel`. The two Jacobians (kernel
+    ``depth / r``, so it is dimensionless and the coefficients carry the data unit) are stacked
+    and the joint damped
     least-squares problem ::
 
         min  sum_i w_i (d_i - [J_d c_d + J_s c_s]_i)^2 + damping_d |c_d|^2 + damping_s |c_s|^2
@@ -257,78 +260,60 @@ def fit_two_layer(coordinates, data, *, deep_depth: float, shallow_depth: float,
     -------
     TwoLayerSources
     """
-    import harmonica as hm
-
     e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(
         *coordinates[:3], data))
     w = np.ones_like(d) if weights is None else np.asarray(weights, dtype=float).ravel()
     good = np.isfinite(e) & np.isfinite(n) & np.isfinite(u) & np.isfinite(d) & np.isfinite(w) & (w > 0)
     e, n, u, d, w = e[good], n[good], u[good], d[good], w[good]
     if d.size < 10:
-        raise InputDataError(f"only {d.size} finite data for the two-layer separation",
-                             fix="grid the survey first (the separation needs the grid)")
+        raise NotEnoughData(f"only {d.size} finite data for the two-layer separation",
+                            hint="at least 10 are needed")
     if not (deep_depth > shallow_depth > 0):
-        raise InputDataError(
+        raise BadParameter(
             f"two-layer depths must satisfy deep > shallow > 0 (got deep {deep_depth:g} m, "
-            f"shallow {shallow_depth:g} m)", key="separate.deep_depth_m",
-            fix="set deep_depth_m larger than shallow_depth_m")
+            f"shallow {shallow_depth:g} m)", hint="make the deep layer deeper than the shallow one")
     w = w / w.mean()
     deep_block = float(deep_block) if deep_block else 0.5 * float(deep_depth)
     pos_d = _block_positions(e, n, u, deep_block)
     pos_s = _block_positions(e, n, u, shallow_block)
     pts_d = (pos_d[0], pos_d[1], pos_d[2] - deep_depth)
     pts_s = (pos_s[0], pos_s[1], pos_s[2] - shallow_depth)
-    spacing_s = float(shallow_block) if shallow_block else _median_nn(e, n)
+    spacing_s = float(shallow_block) if shallow_block else median_spacing(e, n)
     if shallow_damping is None:
         if crossover_wavelength is None:
-            raise ValueError("give shallow_damping or crossover_wavelength")
+            raise BadParameter("give shallow_damping or crossover_wavelength")
         deep_damping, shallow_damping = two_layer_dampings(
             crossover_wavelength, deep_depth, shallow_depth, deep_block, spacing_s,
             1e-3 if deep_damping is None else deep_damping)
     elif deep_damping is None:
         deep_damping = 1e-3
-    deep = hm.EquivalentSources(points=pts_d, damping=deep_damping)
-    shallow = hm.EquivalentSources(points=pts_s, damping=shallow_damping)
-    coords = (e, n, u)
-    jac = np.hstack([deep.jacobian(coords, pts_d) * deep_depth,
-                     shallow.jacobian(coords, pts_s) * shallow_depth])
+    nd, ns = pts_d[0].size, pts_s[0].size
+    jac = np.empty((e.size, nd + ns))
+    for cols, pts, depth in ((slice(0, nd), pts_d, deep_depth),
+                             (slice(nd, nd + ns), pts_s, shallow_depth)):
+        layer = np.empty((e.size, pts[0].size))
+        _dense_jacobian(e, n, u, *(np.ascontiguousarray(p, dtype=float) for p in pts),
+                        float(depth), layer)
+        jac[:, cols] = layer
     sw = np.sqrt(w)
     jac *= sw[:, None]
-    normal = jac.T @ jac
-    rhs = jac.T @ (sw * d)
-    nd = pts_d[0].size
-    normal[np.arange(nd), np.arange(nd)] += deep_damping
-    idx = np.arange(nd, normal.shape[0])
-    normal[idx, idx] += shallow_damping
-    try:
-        coefs = scipy.linalg.solve(normal, rhs, assume_a="pos")
-    except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
-        coefs = scipy.linalg.lstsq(normal, rhs)[0]
+    damping = np.r_[np.full(nd, float(deep_damping)), np.full(ns, float(shallow_damping))]
+    coefs = damped_lstsq(jac, sw * d, damping)
     fitted = (jac @ coefs) / sw
-    del jac, normal
-    import verde as vd
-
-    region = vd.get_region((e, n))
-    for layer, c, pts, depth in ((deep, coefs[:nd] * deep_depth, pts_d, deep_depth),
-                                 (shallow, coefs[nd:] * shallow_depth, pts_s, shallow_depth)):
-        layer.points_ = pts
-        layer.coefs_ = c
-        layer.region_ = region
-        layer.depth_ = None
+    del jac
+    region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
+    deep, shallow = (
+        EquivalentSourceModel("dense", pts, c, float(depth), float(depth), float(damp),
+                              float(block or 0.0), region)
+        for pts, c, depth, damp, block in (
+            (pts_d, coefs[:nd], deep_depth, deep_damping, deep_block),
+            (pts_s, coefs[nd:], shallow_depth, shallow_damping, shallow_block)))
     rms = float(np.sqrt(np.mean((d - fitted) ** 2)))
     return TwoLayerSources(deep, shallow, float(deep_depth), float(shallow_depth),
                            float(deep_damping), float(shallow_damping), rms,
                            info={"deep_sources": int(nd), "shallow_sources": int(pts_s[0].size),
                                  "data": int(d.size), "deep_block": deep_block,
                                  "shallow_spacing": spacing_s})
-
-
-def _median_nn(e, n) -> float:
-    from scipy.spatial import cKDTree
-
-    pts = np.column_stack([e, n])
-    dist, _ = cKDTree(pts).query(pts, k=2)
-    return float(np.median(dist[:, 1]))
 
 
 # ==============================================================================================
@@ -349,8 +334,8 @@ def _prepared(grid: xr.DataArray, pad_fraction, pad_mode, detrend):
 
 def _check_trend(trend: str) -> None:
     if trend not in ("mean", "plane"):
-        raise InputDataError(f"trend '{trend}' is not 'mean' or 'plane'",
-                             fix="use 'mean' (default) or 'plane'")
+        raise BadParameter(f"trend '{trend}' is not 'mean' or 'plane'",
+                             hint="use 'mean' (default) or 'plane'")
 
 
 def _check_same(grids, names):
@@ -359,8 +344,8 @@ def _check_same(grids, names):
         g = g.transpose("northing", "easting")
         if g.shape != first.shape or not (np.allclose(g.easting, first.easting)
                                           and np.allclose(g.northing, first.northing)):
-            raise InputDataError(f"grid '{name}' is not on the same cells as '{names[0]}'",
-                                 fix="grid every component on the same region and spacing")
+            raise BadGeometry(f"grid '{name}' is not on the same cells as '{names[0]}'",
+                                 hint="grid every component on the same region and spacing")
     return [g.transpose("northing", "easting").sortby(["northing", "easting"]) for g in grids]
 
 
@@ -414,14 +399,14 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
         ``external_east``, ``external_down`` (ascending coordinates, masked like the input).
     """
     if uniform not in UNIFORM_CHOICES:
-        raise InputDataError(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
-                             key="separate.uniform_part", fix="use 'external' or 'internal'")
+        raise BadParameter(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
+                             hint="use 'external' or 'internal'")
     _check_trend(trend)
     north, east, down = _check_same([north, east, down], ["north", "east", "down"])
     mask = ~(np.isfinite(north.values) & np.isfinite(east.values) & np.isfinite(down.values))
     if mask.all():
-        raise InputDataError("the vector grids have no cell where all three components are known",
-                             fix="check the mag_north, mag_east and mag_down columns")
+        raise NotEnoughData("the vector grids have no cell where all three components are known",
+                             hint="the north, east and down grids must overlap")
     (pn, mn, sn), (pe, me, se), (pd_, md, sd) = (_prepared(g, pad_fraction, pad_mode, trend == "plane")
                                                  for g in (north, east, down))
     k_e, k_n, k = pn.wavenumbers()
@@ -457,7 +442,7 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
 def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m: float, *,
                          uniform: str = "external", trend: str = "mean",
                          regularisation: float = 0.1, pad_fraction: float = 1.0,
-                         pad_mode: str = "edge"):
+                         pad_mode: str = "edge") -> dict[str, xr.DataArray]:
     """Split a harmonic scalar measured on two horizontal planes into internal and external parts.
 
     A harmonic scalar (gravity, one field component, or approximately a total-field anomaly)
@@ -498,11 +483,11 @@ def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m:
         Parts at the lower plane (ascending coordinates, masked like the inputs).
     """
     if not (np.isfinite(separation_m) and separation_m > 0):
-        raise InputDataError(f"height difference {separation_m} m between the planes must be > 0",
-                             fix="give the upper plane's height above the lower one")
+        raise BadParameter(f"height difference {separation_m} m between the planes must be > 0",
+                             hint="give the upper plane's height above the lower one")
     if uniform not in UNIFORM_CHOICES:
-        raise InputDataError(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
-                             key="separate.uniform_part", fix="use 'external' or 'internal'")
+        raise BadParameter(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
+                             hint="use 'external' or 'internal'")
     _check_trend(trend)
     lower, upper = _check_same([lower, upper], ["lower", "upper"])
     mask = ~(np.isfinite(lower.values) & np.isfinite(upper.values))
@@ -600,9 +585,9 @@ def _same_longitude(longitude) -> bool:
     return bool(np.max(np.abs(z - z[0])) < 1e-9)
 
 
-def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
+def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, *,
                            internal_degree: int = 1, external_degree: int = 1,
-                           damping: float = 0.0, stations=None) -> GaussFit:
+                           damping: float = 0.0, stations: list[str] | None = None) -> GaussFit:
     """Least-squares Gauss coefficients of internal and external potentials at every epoch.
 
     The disturbance field ``(X, Y, Z)`` at ``S`` stations (main field removed) is modelled at
@@ -633,26 +618,24 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
 
     Raises
     ------
-    InputDataError
+    potfield.fields.errors.NotEnoughData, potfield.fields.errors.IllPosed
         More unknowns than data in the whole network, or a network that cannot resolve the
         coefficients (e.g. all stations on one meridian) with ``damping = 0``.
     """
     data = [np.atleast_2d(np.asarray(a, dtype=float)) for a in (north, east, down)]
     if not (data[0].shape == data[1].shape == data[2].shape):
-        raise ValueError("north, east and down must have the same shape (n_epochs, n_stations)")
+        raise BadGeometry("north, east and down must have the same shape (n_epochs, n_stations)")
     n_epochs, n_st = data[0].shape
     lon, lat, h = (np.asarray(a, dtype=float).ravel() for a in (longitude, latitude, height))
     if not (lon.size == lat.size == h.size == n_st):
-        raise ValueError("one longitude, latitude and height per station (column) is needed")
+        raise BadGeometry("one longitude, latitude and height per station (column) is needed")
     names = list(stations) if stations is not None else [f"#{i + 1}" for i in range(n_st)]
     ni, ne = int(internal_degree), int(external_degree)
     if ni < 0 or ne < 0 or ni + ne == 0:
-        raise InputDataError(f"internal_degree {ni} and external_degree {ne}: at least one must be "
-                             ">= 1 and neither negative", key="separate.internal_degree",
-                             fix="use e.g. internal_degree = 1 and external_degree = 1")
+        raise BadParameter(f"internal_degree {ni} and external_degree {ne}: at least one must be "
+                             ">= 1 and neither negative", hint="use e.g. internal_degree = 1 and external_degree = 1")
     if not damping >= 0:
-        raise InputDataError(f"damping {damping} must be >= 0", key="separate.damping",
-                             fix="use 0 (none) or a small positive value")
+        raise BadParameter(f"damping {damping} must be >= 0", hint="use 0 (none) or a small positive value")
     blocks = []
     if ni:
         blocks.append(np.concatenate(spherical.geodetic_design_matrices(lon, lat, h, ni, "internal"),
@@ -668,11 +651,10 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
     present = avail.reshape(n_epochs, 3, n_st).any(axis=(0, 1))
     n_data = int(3 * present.sum())
     if n_unk > n_data:
-        raise InputDataError(
+        raise NotEnoughData(
             f"{n_unk} Gauss coefficients (internal degree {ni}, external degree {ne}) but only "
             f"{present.sum()} stations with data = {n_data} components",
-            key="separate.internal_degree",
-            fix=f"lower the degrees (degree 1 + 1 needs 6 unknowns, i.e. at least 2 stations) "
+            hint=f"lower the degrees (degree 1 + 1 needs 6 unknowns, i.e. at least 2 stations) "
                 "or add stations")
     cols = np.tile(present, 3)
     singular = scipy.linalg.svdvals(G[cols])
@@ -685,10 +667,9 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
         else:
             detail = (f"the design matrix of the {present.sum()} stations has effective rank "
                       f"{rank} for {n_unk} unknowns (condition number {condition:.3g})")
-        raise InputDataError(
+        raise IllPosed(
             f"the station network cannot resolve the Gauss coefficients: {detail}",
-            key="separate.damping",
-            fix="add stations spread in longitude and latitude, lower the degrees, or set a "
+            hint="add stations spread in longitude and latitude, lower the degrees, or set a "
                 "damping > 0")
     coefs = np.full((n_epochs, n_unk), np.nan)
     patterns, inverse = np.unique(avail, axis=0, return_inverse=True)
@@ -723,14 +704,14 @@ def fit_gauss_coefficients(north, east, down, longitude, latitude, height, *,
         damping=float(damping))
 
 
-def coefficient_table(times, fit: GaussFit) -> pd.DataFrame:
+def coefficient_table(times: ArrayLike, fit: GaussFit) -> pd.DataFrame:
     """The coefficient time series as a table: ``time`` then one column per coefficient (nT)."""
     table = pd.DataFrame(fit.coefficients, columns=fit.names)
     table.insert(0, "time", np.asarray(times, dtype="datetime64[ns]"))
     return table
 
 
-def induction_ratio(internal, external) -> dict[str, float]:
+def induction_ratio(internal: ArrayLike, external: ArrayLike) -> dict[str, float]:
     """Ratio of induced internal to external coefficient by regression of their time series.
 
     Least squares ``internal = ratio * external + offset`` over the epochs where both are finite
@@ -779,10 +760,10 @@ def _split_names(columns):
             nmax += 1
         names = spherical.coefficient_names(nmax, source)
         if sorted(names) != sorted(cols):
-            raise InputDataError(
+            raise BadParameter(
                 f"the coefficient table's {source} columns {', '.join(cols)} are not a full set "
                 f"to one degree (expected {', '.join(names)})",
-                fix="use the coefficients table written by the separate stage")
+                hint="use a table made by coefficient_table")
         out.append((nmax, names))
     return out
 
@@ -793,7 +774,7 @@ def _as_ns(values) -> np.ndarray:
     return series.dt.tz_localize(None).to_numpy(dtype="datetime64[ns]")
 
 
-def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, height, time, *,
+def external_field_at(coefficients_table: pd.DataFrame, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, *,
                       include_induced: bool = True, max_gap_s: float = 180.0) -> np.ndarray:
     """Total-field variation of the fitted external (plus induced) field at a site.
 
@@ -833,12 +814,12 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
     from ..magnetic.igrf import igrf
 
     if "time" not in coefficients_table.columns:
-        raise InputDataError("the coefficient table has no 'time' column",
-                             fix="use the coefficients table written by the separate stage")
+        raise BadParameter("the coefficient table has no 'time' column",
+                             hint="use a table made by coefficient_table")
     (ni, int_names), (ne, ext_names) = _split_names(coefficients_table.columns)
     if ne == 0:
-        raise InputDataError("the coefficient table has no external (q, s) coefficients",
-                             fix="fit an external part (external_degree >= 1) in the separate stage")
+        raise BadParameter("the coefficient table has no external (q, s) coefficients",
+                             hint="fit with an external degree >= 1")
     t_stamp = _as_ns(coefficients_table["time"])
     t_ok = ~np.isnat(t_stamp)
     t_table = t_stamp.astype("int64").astype(float)
@@ -859,8 +840,7 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
         values = coefficients_table[names].to_numpy(dtype=float)
         rows = t_ok & np.all(np.isfinite(values), axis=1)
         if rows.sum() < 1:
-            raise InputDataError("the coefficient table has no epoch with finite coefficients",
-                                 fix="check the separate stage's output")
+            raise NotEnoughData("the coefficient table has no epoch with finite coefficients")
         tt, vv = t_table[rows], values[rows]
         order = np.argsort(tt)
         tt, vv = tt[order], vv[order]
@@ -886,7 +866,7 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude, latitude, hei
     return result.reshape(shape)
 
 
-def nearest_station(station_longitude, station_latitude, longitude: float, latitude: float):
+def nearest_station(station_longitude: ArrayLike, station_latitude: ArrayLike, longitude: float, latitude: float) -> tuple[int, float]:
     """Index and great-circle distance (km) of the station nearest to a site (haversine on a
     sphere of radius 6371.2 km; common practice)."""
     slon, slat = np.radians(np.asarray(station_longitude, dtype=float)), np.radians(

@@ -26,8 +26,10 @@ which is what least-squares separation needs (potfield.fields.harmonic.separatio
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..magnetic.igrf import REFERENCE_RADIUS_M, geodetic_to_geocentric
+from ..errors import BadGeometry, BadParameter
 
 __all__ = [
     "coefficient_index",
@@ -54,7 +56,7 @@ def degree_of(count: int) -> int:
     """The degree ``nmax`` with ``nmax (nmax + 2) == count`` (ValueError when there is none)."""
     nmax = int(round(np.sqrt(count + 1) - 1))
     if nmax < 0 or n_coefficients(nmax) != count:
-        raise ValueError(f"{count} coefficients is not nmax (nmax + 2) for any degree nmax")
+        raise BadGeometry(f"{count} coefficients is not nmax (nmax + 2) for any degree nmax")
     return nmax
 
 
@@ -86,10 +88,10 @@ def coefficient_names(nmax: int, source: str = "internal") -> list[str]:
 
 def _check_source(source: str) -> None:
     if source not in SOURCES:
-        raise ValueError(f"source must be 'internal' or 'external', not {source!r}")
+        raise BadParameter(f"source must be 'internal' or 'external', not {source!r}")
 
 
-def schmidt_legendre(nmax: int, colatitude):
+def schmidt_legendre(nmax: int, colatitude: ArrayLike) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Schmidt semi-normalised associated Legendre functions and their colatitude derivatives.
 
     ``P_n^m(cos theta)`` with ``P_n^0`` unnormalised and ``P_n^m`` scaled by
@@ -143,8 +145,8 @@ def schmidt_legendre(nmax: int, colatitude):
     return P, dP, Q
 
 
-def design_matrices(radius, colatitude, longitude, nmax: int, source: str = "internal",
-                    reference_radius: float = REFERENCE_RADIUS_M):
+def design_matrices(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, nmax: int, source: str = "internal",
+                    reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Matrices mapping Gauss coefficients to ``(B_r, B_theta, B_phi)`` at points.
 
     For an internal coefficient ``g_n^m`` (``h``: cos -> sin, and the sign of the ``B_phi``
@@ -209,8 +211,8 @@ def _psi(latitude, height):
     return radius, 90.0 - lat_c, psi
 
 
-def geodetic_design_matrices(longitude, latitude, height, nmax: int, source: str = "internal",
-                             reference_radius: float = REFERENCE_RADIUS_M):
+def geodetic_design_matrices(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, nmax: int, source: str = "internal",
+                             reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Matrices mapping Gauss coefficients to geodetic north, east, down at geodetic positions.
 
     The positions are converted to geocentric coordinates on the WGS84 ellipsoid and the
@@ -243,8 +245,8 @@ def geodetic_design_matrices(longitude, latitude, height, nmax: int, source: str
     return xs * cpsi + zs * spsi, g_p, -xs * spsi + zs * cpsi
 
 
-def synthesis(coefficients, radius, colatitude, longitude, source: str = "internal",
-              reference_radius: float = REFERENCE_RADIUS_M):
+def synthesis(coefficients: ArrayLike, radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, source: str = "internal",
+              reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Field of an internal or external potential at geocentric points.
 
     Parameters
@@ -274,8 +276,8 @@ def synthesis(coefficients, radius, colatitude, longitude, source: str = "intern
                  .reshape(coefficients.shape[:-1] + g.shape[:-1]) for g in mats)
 
 
-def geodetic_synthesis(coefficients, longitude, latitude, height, source: str = "internal",
-                       reference_radius: float = REFERENCE_RADIUS_M):
+def geodetic_synthesis(coefficients: ArrayLike, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, source: str = "internal",
+                       reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Geodetic north, east, down (nT) of an internal or external potential.
 
     As :func:`synthesis` with positions given geodetically (see

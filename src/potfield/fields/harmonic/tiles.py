@@ -37,11 +37,13 @@ import sys
 from dataclasses import dataclass, field
 
 import numpy as np
+from numpy.typing import ArrayLike
 import pandas as pd
 import xarray as xr
-from scipy.spatial import cKDTree
 
 from ...io.grids import make_grid
+from .._numerics import nearest_neighbour_distances
+from ..errors import BadParameter, NotEnoughData
 
 __all__ = [
     "TiledGrid",
@@ -63,7 +65,7 @@ MIN_WINDOW_DATA = 20
 # ------------------------------------------------------------------------------------------------
 # geometry and weights
 # ------------------------------------------------------------------------------------------------
-def cosine_step(t):
+def cosine_step(t: ArrayLike) -> np.ndarray:
     """Smooth step S(t): 0 for t <= -1, (1 + sin(pi t / 2)) / 2 in between, 1 for t >= 1.
 
     The raised-cosine (Tukey) transition (Harris 1978, Proc. IEEE 66:51); S(t) + S(-t) = 1.
@@ -88,7 +90,7 @@ def tile_boundaries(start: float, stop: float, tile_size: float) -> np.ndarray:
         ``K + 1`` ascending boundaries from ``start`` to ``stop``.
     """
     if not tile_size > 0:
-        raise ValueError(f"tile_size must be positive, not {tile_size}")
+        raise BadParameter(f"tile_size must be positive, not {tile_size}")
     count = max(1, int(np.ceil((stop - start) / tile_size - 1e-9)))
     return np.linspace(start, stop, count + 1)
 
@@ -104,14 +106,14 @@ def _step_row(x, bounds, k, ramp):
     return (x >= bounds[k]).astype(float)
 
 
-def tile_axis_weight(coordinate, bounds, k: int, ramp: float) -> np.ndarray:
+def tile_axis_weight(coordinate: ArrayLike, bounds: tuple[float, float], k: int, ramp: float) -> np.ndarray:
     """Weight ``phi_k`` of core ``k`` along one axis at ``coordinate`` (module docstring)."""
     x = np.asarray(coordinate, dtype=float)
     bounds = np.asarray(bounds, dtype=float)
     return _step_row(x, bounds, k, ramp) - _step_row(x, bounds, k + 1, ramp)
 
 
-def axis_weights(coordinate, bounds, ramp: float) -> np.ndarray:
+def axis_weights(coordinate: ArrayLike, bounds: list[tuple[float, float]], ramp: float) -> np.ndarray:
     """Partition-of-unity weights of the cores along one axis (module docstring).
 
     Parameters
@@ -143,7 +145,7 @@ class _Window:
     support: tuple
 
 
-def tile_windows(region, tile_size: float, overlap: float) -> list[_Window]:
+def tile_windows(region: tuple[float, float, float, float], tile_size: float, overlap: float) -> list[_Window]:
     """The tiles of ``region``: core, fit window (core + overlap) and blending support
     (core + overlap / 2), row by row from the south-west.
 
@@ -169,7 +171,7 @@ def tile_windows(region, tile_size: float, overlap: float) -> list[_Window]:
     return windows
 
 
-def blend_weights(easting, northing, region, tile_size: float, overlap: float) -> np.ndarray:
+def blend_weights(easting: ArrayLike, northing: ArrayLike, region: tuple[float, float, float, float], tile_size: float, overlap: float) -> np.ndarray:
     """Blending weight of every tile at points (separable cosine partition of unity).
 
     Parameters
@@ -216,15 +218,10 @@ def _fit_window(e, n, u, d, w, grid_e, grid_n, grid_h, points, fit_kwargs):
 def _default_depth(e, n, sample=200_000, seed=0) -> float:
     """4.5 x the mean nearest-neighbour distance (harmonica's default; Soler and Uieda 2021),
     from at most ``sample`` points drawn at random (their neighbours searched among all)."""
-    pts = np.column_stack([e, n])
-    tree = cKDTree(pts)
-    if len(pts) > sample:
-        pick = np.random.default_rng(seed).choice(len(pts), sample, replace=False)
-        query = pts[pick]
-    else:
-        query = pts
-    dist, _ = tree.query(query, k=2)
-    return 4.5 * float(np.mean(dist[:, 1]))
+    pick = None
+    if len(e) > sample:
+        pick = np.random.default_rng(seed).choice(len(e), sample, replace=False)
+    return 4.5 * float(np.mean(nearest_neighbour_distances(e, n, points=pick)))
 
 
 def _active_client(client):
@@ -268,11 +265,11 @@ class TiledGrid:
     predicted: np.ndarray | None = None
 
 
-def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_size,
-              overlap=None, depth="default", damping=1e-3, block_size=None, weights=None,
-              method="auto", client=None, scheduler="threads", max_pending=None,
-              residuals=False, at=None, name="field", units="",
-              long_name="equivalent-source grid (tiled)", fit_options=None) -> TiledGrid:
+def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, *, region: tuple[float, float, float, float], spacing: float, height: float, tile_size: float,
+              overlap: float | None = None, depth: float | str = "default", damping: float = 1e-3, block_size: float | None = None, weights: ArrayLike | None = None,
+              method: str = "auto", client: object = None, scheduler: str = "threads", max_pending: int | None = None,
+              residuals: bool = False, at: tuple | None = None, name: str = "field", units: str = "",
+              long_name: str = "equivalent-source grid (tiled)", fit_options: dict | None = None) -> TiledGrid:
     """Grid scattered potential-field data by tiled, blended equivalent sources on Dask.
 
     Parameters
@@ -341,13 +338,13 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
     good = np.isfinite(e) & np.isfinite(n) & np.isfinite(u) & np.isfinite(d)
     if w is not None:
         if w.size != d.size:
-            raise ValueError("weights must have the same size as data")
+            raise BadParameter("weights must have the same size as data")
         good &= np.isfinite(w) & (w > 0)
     if not good.any():
-        raise ValueError("no finite data to grid")
+        raise NotEnoughData("no finite data to grid")
     if isinstance(depth, str):
         if depth != "default":
-            raise ValueError(f"depth must be a number or 'default', not '{depth}'")
+            raise BadParameter(f"depth must be a number or 'default', not '{depth}'")
         depth = _default_depth(e[good], n[good])
     depth = float(depth)
     tile_size = float(tile_size)
@@ -355,7 +352,7 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
         overlap = max(2.0 * depth, tile_size / 8.0)
     overlap = float(overlap)
     if not 0 <= overlap < tile_size:
-        raise ValueError(f"overlap ({overlap:g} m) must be >= 0 and smaller than tile_size "
+        raise BadParameter(f"overlap ({overlap:g} m) must be >= 0 and smaller than tile_size "
                          f"({tile_size:g} m)")
     block_size = float(spacing) if block_size is None else float(block_size)
     fit_kwargs = {**(fit_options or {}), "depth": depth, "damping": float(damping),
@@ -500,9 +497,9 @@ def fit_tiled(easting, northing, upward, data, *, region, spacing, height, tile_
     return TiledGrid(grid=grid, residual=residual, tiles=pd.DataFrame(rows), predicted=predicted)
 
 
-def grid_tiled(easting, northing, upward, data, *, region, spacing, height, tile_size,
-               overlap=None, depth="default", damping=1e-3, block_size=None, client=None,
-               **kwargs) -> xr.DataArray:
+def grid_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, *, region: tuple[float, float, float, float], spacing: float, height: float, tile_size: float,
+               overlap: float | None = None, depth: float | str = "default", damping: float = 1e-3, block_size: float | None = None, client: object = None,
+               **kwargs: object) -> xr.DataArray:
     """Tiled, blended equivalent-source grid (the grid of :func:`fit_tiled`).
 
     Parameters and references as :func:`fit_tiled` (extra keywords are passed on to it).

@@ -29,7 +29,7 @@ import scipy.fft
 import xarray as xr
 from scipy import ndimage
 
-from ...errors import InputDataError
+from ..errors import BadGeometry, BadParameter, NotEnoughData
 
 #: Smallest padding per side as a fraction of the grid size (common practice: >= 25 %).
 MIN_PAD_FRACTION = 0.25
@@ -111,22 +111,22 @@ class PaddedGrid:
 def _check_grid(grid: xr.DataArray, name: str = "grid") -> None:
     if not isinstance(grid, xr.DataArray) or set(grid.dims) != {"northing", "easting"}:
         dims = getattr(grid, "dims", None)
-        raise InputDataError(
+        raise BadGeometry(
             f"{name} must be an xarray DataArray with dimensions ('northing', 'easting'), got {dims}",
-            fix="build grids with potfield.io.grids.make_grid",
+            hint="build grids with potfield.io.grids.make_grid",
         )
     for dim in ("northing", "easting"):
         coord = np.asarray(grid[dim].values, dtype=float)
         if coord.size < 4:
-            raise InputDataError(
+            raise NotEnoughData(
                 f"{name} has only {coord.size} cells along {dim}; transforms need at least 4",
-                fix="grid a larger area or use a smaller cell size",
+                hint="grid a larger area or use a smaller cell size",
             )
         step = np.diff(coord)
         if not np.allclose(step, step[0], rtol=1e-6, atol=0.0) or step[0] == 0:
-            raise InputDataError(
+            raise BadGeometry(
                 f"{name} spacing along {dim} is not regular",
-                fix="regrid onto a regular grid (potfield.io.grids.make_grid) before transforming",
+                hint="regrid onto a regular grid (potfield.io.grids.make_grid) before transforming",
             )
 
 
@@ -152,16 +152,16 @@ def _filler_values(filler, grid: xr.DataArray, flipped: tuple[bool, bool]) -> np
                         atol=1e-6 * abs(float(grid[d].values[1] - grid[d].values[0])))
             for d in ("northing", "easting"))
         if not same:
-            raise InputDataError(
+            raise BadGeometry(
                 "the filler grid does not have the same cells as the grid to transform",
-                fix="predict the filler (equivalent-source model) on the grid's own coordinates",
+                hint="predict the filler (equivalent-source model) on the grid's own coordinates",
             )
         return np.asarray(filler.values, dtype=float)
     values = np.asarray(filler, dtype=float)
     if values.shape != grid.shape:
-        raise InputDataError(
+        raise BadGeometry(
             f"the filler array has shape {values.shape}, the grid {grid.shape}",
-            fix="give a filler with the grid's shape",
+            hint="give a filler with the grid's shape",
         )
     if flipped[0]:
         values = values[::-1]
@@ -223,9 +223,8 @@ def _fill_values(asc: xr.DataArray, filler, flipped) -> tuple[np.ndarray, np.nda
     values = np.array(asc.values, dtype=float)
     mask = ~np.isfinite(values)
     if mask.all():
-        raise InputDataError(
+        raise NotEnoughData(
             f"grid '{asc.name}' has no valid (finite) cell",
-            fix="check the gridding stage output and its mask distance",
         )
     how = "none"
     if mask.any():
@@ -275,13 +274,12 @@ def pad_grid(grid: xr.DataArray, pad_fraction: float = 0.5, mode: str = "reflect
     """
     _check_grid(grid)
     if not pad_fraction >= MIN_PAD_FRACTION:
-        raise InputDataError(
+        raise BadParameter(
             f"pad_fraction {pad_fraction} is below the minimum {MIN_PAD_FRACTION}",
-            key="derive.pad_fraction", fix=f"use a value >= {MIN_PAD_FRACTION} (0.5 is the default)",
+            hint=f"use a value >= {MIN_PAD_FRACTION} (0.5 is the default)",
         )
     if mode not in PAD_MODES:
-        raise InputDataError(f"unknown padding mode '{mode}'", key="derive.pad_mode",
-                             fix=f"use one of {', '.join(PAD_MODES)}")
+        raise BadParameter(f"unknown padding mode '{mode}'", hint=f"use one of {', '.join(PAD_MODES)}")
     asc, flipped = _ascending(grid)
     values, mask, how = _fill_values(asc, filler, flipped)
     northing = np.asarray(asc.northing.values, dtype=float)
@@ -414,9 +412,8 @@ def upward_continuation(grid: xr.DataArray, height: float, *, pad_fraction: floa
     """
     _check_grid(grid)
     if not (np.isfinite(height) and height >= 0):
-        raise InputDataError(f"upward continuation height {height} m must be >= 0",
-                             key="derive.upward_m",
-                             fix="give a positive height; use downward_continuation to go down")
+        raise BadParameter(f"upward continuation height {height} m must be >= 0",
+                             hint="give a positive height; use downward_continuation to go down")
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     values = _apply_kernel(prep, lambda ke, kn, k: np.exp(-k * height)) + prep.plane
     units, long_name = _source(grid)
@@ -493,8 +490,8 @@ def downward_continuation(grid: xr.DataArray, depth: float, regularisation: floa
     """
     _check_grid(grid)
     if not (np.isfinite(depth) and depth >= 0):
-        raise InputDataError(f"downward continuation depth {depth} m must be >= 0",
-                             fix="give a positive depth; use upward_continuation to go up")
+        raise BadParameter(f"downward continuation depth {depth} m must be >= 0",
+                             hint="give a positive depth; use upward_continuation to go up")
     warning = None
     if source_depth is not None and depth >= 0.8 * source_depth:
         warning = (f"downward continuation by {depth:g} m approaches or passes the source depth "
@@ -506,8 +503,8 @@ def downward_continuation(grid: xr.DataArray, depth: float, regularisation: floa
         alpha = _choose_regularisation(float(k.max()), depth, max_gain)
     else:
         if not (np.isfinite(regularisation) and regularisation >= 0):
-            raise InputDataError(f"regularisation {regularisation} must be >= 0 (m^2)",
-                                 fix="give a non-negative alpha or None for the automatic choice")
+            raise BadParameter(f"regularisation {regularisation} must be >= 0 (m^2)",
+                                 hint="give a non-negative alpha or None for the automatic choice")
         alpha = float(regularisation)
     peak = float(_tikhonov_gain(np.linspace(0, float(k.max()), 4097), depth, alpha).max())
     values = _apply_kernel(prep, lambda ke, kn, kk: _tikhonov_gain(kk, depth, alpha)) + prep.plane
@@ -548,8 +545,8 @@ def model_upward_continuation(predict: Callable, grid: xr.DataArray, height: flo
     """
     _check_grid(grid)
     if not (np.isfinite(height) and height >= 0):
-        raise InputDataError(f"upward continuation height {height} m must be >= 0",
-                             key="derive.upward_m", fix="give a positive height")
+        raise BadParameter(f"upward continuation height {height} m must be >= 0",
+                             hint="give a positive height")
     grid = grid.transpose("northing", "easting")
     easting, northing = np.meshgrid(grid.easting.values, grid.northing.values)
     upward = np.broadcast_to(np.asarray(grid_height, dtype=float), easting.shape) + height
@@ -593,8 +590,8 @@ def vertical_derivative(grid: xr.DataArray, order: int = 1, *, pad_fraction: flo
     """
     _check_grid(grid)
     if order not in (1, 2):
-        raise InputDataError(f"vertical derivative order {order} is not supported",
-                             fix="use order 1 or 2")
+        raise BadParameter(f"vertical derivative order {order} is not supported",
+                             hint="use order 1 or 2")
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     values = _apply_kernel(prep, lambda ke, kn, k: k**order)
     units, long_name = _source(grid)
@@ -608,8 +605,8 @@ def vertical_derivative(grid: xr.DataArray, order: int = 1, *, pad_fraction: flo
 def _horizontal(grid: xr.DataArray, method: str, pad_fraction: float, pad_mode: str, filler):
     """(dx, dy, prep) on the ascending grid: d/d easting, d/d northing."""
     if method not in ("central", "fft"):
-        raise InputDataError(f"unknown horizontal derivative method '{method}'",
-                             key="derive.horizontal_method", fix="use 'central' or 'fft'")
+        raise BadParameter(f"unknown horizontal derivative method '{method}'",
+                             hint="use 'central' or 'fft'")
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     if method == "central":
         d_n, d_e = prep.spacing
@@ -808,20 +805,18 @@ def grid_declination(declination: float, crs, longitude: float, latitude: float)
     """
     import pyproj
 
-    from ...errors import CRSError
-
     try:
         to_grid = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
     except pyproj.exceptions.CRSError as err:
-        raise CRSError(f"cannot use the grid CRS for the grid declination ({err})",
-                       fix="check [survey] output_crs") from None
+        raise BadGeometry(f"cannot use the grid CRS for the grid declination ({err})",
+                          hint="give a CRS that pyproj understands") from None
     step = 1e-4 if latitude < 89.0 else -1e-4
     e0, n0 = to_grid.transform(longitude, latitude)
     e1, n1 = to_grid.transform(longitude, latitude + step)
     true_north = float(np.degrees(np.arctan2(np.sign(step) * (e1 - e0), np.sign(step) * (n1 - n0))))
     if not np.isfinite(true_north):
-        raise CRSError(f"the grid CRS cannot project the point ({longitude}, {latitude})",
-                       fix="check [survey] output_crs and the survey coordinates")
+        raise BadGeometry(f"the grid CRS cannot project the point ({longitude}, {latitude})",
+                          hint="the point must lie inside the CRS's area of use")
     return float(declination) + true_north, true_north
 
 
@@ -889,23 +884,22 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
     """
     _check_grid(grid)
     if (mag_inclination is None) != (mag_declination is None):
-        raise InputDataError("give both magnetisation inclination and declination, or neither",
-                             fix="set both angles (degrees) or leave both out for induced magnetisation")
+        raise BadParameter("give both magnetisation inclination and declination, or neither",
+                             hint="set both angles (degrees) or leave both out for induced magnetisation")
     for label, value in (("inclination", inclination), ("declination", declination),
                          ("mag_inclination", mag_inclination), ("mag_declination", mag_declination)):
         if value is not None and not np.isfinite(value):
-            raise InputDataError(f"RTP {label} is not a finite number ({value})",
-                                 fix="check the reference stage's inclination/declination")
+            raise BadParameter(f"RTP {label} is not a finite number ({value})",
+                                 hint="give the field's inclination and declination in degrees")
     if abs(inclination) > 90 or (mag_inclination is not None and abs(mag_inclination) > 90):
-        raise InputDataError("an inclination is outside [-90, 90] degrees",
-                             fix="give inclinations in degrees, positive down")
+        raise BadParameter("an inclination is outside [-90, 90] degrees",
+                             hint="give inclinations in degrees, positive down")
     m_inc = inclination if mag_inclination is None else float(mag_inclination)
     m_dec = declination if mag_declination is None else float(mag_declination)
     if method == "auto":
         method = rtp_method_for(min(abs(inclination), abs(m_inc)), auto_threshold)
     if method not in ("plain", "pseudo"):
-        raise InputDataError(f"unknown reduction-to-pole method '{method}'", key="derive.rtp",
-                             fix="use 'auto', 'plain' or 'pseudo'")
+        raise BadParameter(f"unknown reduction-to-pole method '{method}'", hint="use 'auto', 'plain' or 'pseudo'")
     if method == "plain":
         def kernel(ke, kn, k):
             return 1.0 / (_theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k))
@@ -917,8 +911,8 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
         else:
             pseudo = abs(float(pseudo_inclination))
             if pseudo > 90:
-                raise InputDataError(f"pseudo inclination {pseudo_inclination} is outside [-90, 90] degrees",
-                                     key="derive.pseudo_inclination_deg", fix="give degrees, e.g. 30")
+                raise BadParameter(f"pseudo inclination {pseudo_inclination} is outside [-90, 90] degrees",
+                                     hint="give degrees, e.g. 30")
         amp_f = math.copysign(max(abs(inclination), pseudo), inclination if inclination else 1.0)
         amp_m = math.copysign(max(abs(m_inc), pseudo), m_inc if m_inc else 1.0)
 

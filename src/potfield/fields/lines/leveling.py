@@ -47,6 +47,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from ..errors import BadGeometry, BadParameter, NotEnoughData
+
 __all__ = [
     "find_crossovers",
     "usable_crossovers",
@@ -248,7 +250,7 @@ def find_crossovers(easting, northing, line_ids, is_tie, values, time=None, heig
     bad |= ~np.isfinite(v)
     if not (y.size == n and line_ids.size == n and is_tie.size == n and v.size == n
             and h.size == n and tnum.size == n and bad.size == n):
-        raise ValueError("find_crossovers: all arrays must have the same length")
+        raise BadGeometry("find_crossovers: all arrays must have the same length")
 
     codes, names = pd.factorize(pd.Series(line_ids), sort=False)
     codes = np.asarray(codes, dtype=np.int64)
@@ -706,7 +708,7 @@ def adjust_lines(crossovers, tie_corrections=None, *, model="constant", lines=No
     least squares); Luyendyk (1997), AGSO J. Aust. Geol. Geophys. 17(2):31.
     """
     if model not in MODEL_DEGREE:
-        raise ValueError(f"model must be one of {', '.join(MODEL_DEGREE)}, not {model!r}")
+        raise BadParameter(f"model must be one of {', '.join(MODEL_DEGREE)}, not {model!r}")
     degree_wanted = MODEL_DEGREE[model]
     ok = usable_crossovers(crossovers, use, max_height_difference)
     ok &= crossovers["kind"].to_numpy() == "traverse-tie"
@@ -842,7 +844,7 @@ def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber
     from scipy.sparse.csgraph import connected_components
 
     if model not in MODEL_DEGREE:
-        raise ValueError(f"model must be one of {', '.join(MODEL_DEGREE)}, not {model!r}")
+        raise BadParameter(f"model must be one of {', '.join(MODEL_DEGREE)}, not {model!r}")
     kind = crossovers["kind"].to_numpy()
     ok = usable_crossovers(crossovers, use, max_height_difference)
     line_col = crossovers["line"].astype(str).to_numpy()
@@ -939,7 +941,7 @@ def line_azimuth(easting, northing, line_ids) -> float:
     frame = pd.DataFrame({"x": np.asarray(easting, float), "y": np.asarray(northing, float),
                           "line": np.asarray(line_ids)}).dropna()
     if frame.empty:
-        raise ValueError("line_azimuth: no finite coordinates")
+        raise NotEnoughData("line_azimuth: no finite coordinates")
     group = frame.groupby("line", sort=False)
     dx = (group["x"].last() - group["x"].first()).to_numpy()
     dy = (group["y"].last() - group["y"].first()).to_numpy()
@@ -1016,7 +1018,7 @@ def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max
     grid = ascending(grid.transpose("northing", "easting"))
     values = grid.to_numpy().astype(float)
     if values.ndim != 2 or min(values.shape) < 2:
-        raise ValueError("micro_level: the grid needs at least 2 x 2 cells")
+        raise NotEnoughData("micro_level: the grid needs at least 2 x 2 cells")
     east = grid["easting"].to_numpy()
     north = grid["northing"].to_numpy()
     dx, dy = abs(float(east[1] - east[0])), abs(float(north[1] - north[0]))
@@ -1050,21 +1052,11 @@ def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max
 
 
 def sample_grid(grid, easting, northing) -> np.ndarray:
-    """Bilinear interpolation of a grid at points; NaN outside the grid or in empty cells."""
-    from scipy.interpolate import RegularGridInterpolator
+    """Bilinear interpolation of a grid at points; NaN outside the grid or in empty cells
+    (:func:`potfield.fields._numerics.sample_grid`)."""
+    from .._numerics import sample_grid as bilinear
 
-    grid = grid.transpose("northing", "easting")
-    north = grid["northing"].to_numpy()
-    east = grid["easting"].to_numpy()
-    values = grid.to_numpy().astype(float)
-    if north[0] > north[-1]:
-        north, values = north[::-1], values[::-1]
-    if east[0] > east[-1]:
-        east, values = east[::-1], values[:, ::-1]
-    interp = RegularGridInterpolator((north, east), values, method="linear", bounds_error=False,
-                                     fill_value=np.nan)
-    pts = np.column_stack([np.asarray(northing, float), np.asarray(easting, float)])
-    return interp(pts)
+    return bilinear(grid, easting, northing)
 
 
 def lowpass_along_lines(values, line_ids, distance, wavelength) -> np.ndarray:

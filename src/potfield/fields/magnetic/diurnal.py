@@ -19,6 +19,8 @@ import numba
 import numpy as np
 import pandas as pd
 
+from ..errors import BadParameter, NotEnoughData
+
 #: Factor taking the median absolute deviation to a standard deviation for normal errors
 #: (Rousseeuw and Croux 1993, J. Am. Stat. Assoc. 88:1273).
 MAD_TO_SIGMA = 1.482602218505602
@@ -183,7 +185,7 @@ def interpolate_base(base_time, base_value, reading_time, method: str = "linear"
         True for readings inside a base gap longer than ``max_gap_s`` or outside the record.
     """
     if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, not {method!r}")
+        raise BadParameter(f"method must be one of {METHODS}, not {method!r}")
     epoch = time_epoch(base_time, reading_time)
     tb = to_seconds(base_time, epoch)
     vb = np.asarray(base_value, dtype=float)
@@ -247,7 +249,7 @@ def base_datum(base_time, base_value, mode: str = "median", *, value: float | No
     vb = np.asarray(base_value, dtype=float)
     if mode == "value":
         if value is None or not np.isfinite(value):
-            raise ValueError("datum mode 'value' needs a finite value")
+            raise BadParameter("datum mode 'value' needs a finite value")
         return float(value)
     epoch = time_epoch(base_time, [] if span is None else np.asarray(span),
                        [] if at_time is None else np.atleast_1d(at_time))
@@ -261,17 +263,17 @@ def base_datum(base_time, base_value, mode: str = "median", *, value: float | No
             if not inside.any():
                 inside = good
         if not inside.any():
-            raise ValueError("the base record has no finite value")
+            raise NotEnoughData("the base record has no finite value")
         return float(np.median(vb[inside]))
     if mode == "time":
         if at_time is None:
-            raise ValueError("datum mode 'time' needs at_time")
+            raise BadParameter("datum mode 'time' needs at_time")
         t0 = float(to_seconds(np.atleast_1d(at_time), epoch)[0])
         tg, vg = tb[good], vb[good]
         if tg.size == 0 or t0 < tg[0] or t0 > tg[-1]:
-            raise ValueError("datum time is outside the base record")
+            raise BadParameter("datum time is outside the base record")
         return float(np.interp(t0, tg, vg))
-    raise ValueError(f"datum mode must be 'median', 'value' or 'time', not {mode!r}")
+    raise BadParameter(f"datum mode must be 'median', 'value' or 'time', not {mode!r}")
 
 
 def diurnal_correction(base_time, base_value, reading_time, *, method: str = "linear",
@@ -345,7 +347,7 @@ def combine_bases(corrections, flags, distances, method: str = "nearest", power:
         w = np.where(on_base.any(axis=0)[None, :], on_base.astype(float), w)
         weights = w / w.sum(axis=0, keepdims=True)
     else:
-        raise ValueError(f"method must be 'nearest' or 'distance', not {method!r}")
+        raise BadParameter(f"method must be 'nearest' or 'distance', not {method!r}")
     return (weights * c).sum(axis=0), all_flagged, weights
 
 

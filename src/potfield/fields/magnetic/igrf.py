@@ -30,8 +30,9 @@ from typing import NamedTuple
 
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 
-from ...errors import InputDataError, ModelRangeError
+from ..errors import BadGeometry, BadParameter, OutOfModelRange
 
 __all__ = [
     "IGRFField",
@@ -167,14 +168,14 @@ def _check_years(years: np.ndarray) -> None:
     finite = years[np.isfinite(years)]
     if finite.size and (finite.min() < FIRST_YEAR or finite.max() > LAST_YEAR):
         bad = finite[(finite < FIRST_YEAR) | (finite > LAST_YEAR)]
-        raise ModelRangeError(
+        raise OutOfModelRange(
             f"{MODEL_NAME} is defined for dates from {FIRST_YEAR:.1f} to {LAST_YEAR:.1f} only; "
             f"got {bad.size} date(s) outside it (from {bad.min():.4f} to {bad.max():.4f})",
-            fix="use dates within 1900-01-01 .. 2030-01-01",
+            hint="use dates within 1900-01-01 .. 2030-01-01",
         )
 
 
-def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
+def coefficients(decimal_year: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """IGRF-14 Gauss coefficients at the given date(s).
 
     Linear interpolation between the 5-year main-field models 1900.0-2025.0 and linear
@@ -194,7 +195,7 @@ def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         If a date is outside [1900, 2030].
     """
     years = _as_years(decimal_year)
@@ -211,7 +212,7 @@ def coefficients(decimal_year) -> tuple[np.ndarray, np.ndarray]:
 # --------------------------------------------------------------------------------------------
 
 
-def decimal_year(times) -> np.ndarray:
+def decimal_year(times: ArrayLike) -> np.ndarray:
     """Dates as decimal years: year + (time - 1 January) / (length of that year).
 
     This is the time argument of the IGRF (IAGA Working Group V-MOD 2024): 2020-07-02T00:00
@@ -247,9 +248,9 @@ def decimal_year(times) -> np.ndarray:
         try:
             arr = arr.astype("datetime64[ns]")
         except (ValueError, TypeError) as err:
-            raise InputDataError(
+            raise BadParameter(
                 f"cannot read times as dates ({err})",
-                fix="give numpy datetime64 values, ISO 8601 strings or decimal years",
+                hint="give numpy datetime64 values, ISO 8601 strings or decimal years",
             ) from None
     t = arr.astype("datetime64[ns]")
     nat = np.isnat(t)
@@ -276,7 +277,7 @@ def _as_years(time) -> np.ndarray:
     return decimal_year(time)
 
 
-def geodetic_to_geocentric(latitude, height):
+def geodetic_to_geocentric(latitude: ArrayLike, height: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Geocentric radius and latitude of geodetic positions on the WGS84 ellipsoid.
 
     ``N = a / sqrt(1 - e^2 sin^2 phi)``, ``x = (N + h) cos phi``, ``z = (N (1 - e^2) + h) sin phi``,
@@ -444,7 +445,7 @@ def _run_kernel(longitude, coord1, coord2, time, geodetic: bool):
     return [row.reshape(shape) for row in out]
 
 
-def igrf(longitude, latitude, height, time) -> IGRFField:
+def igrf(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike) -> IGRFField:
     """IGRF-14 main field at geodetic positions and dates.
 
     Spherical-harmonic synthesis of the IGRF-14 potential to degree 13 (10 before 1995) with
@@ -473,9 +474,9 @@ def igrf(longitude, latitude, height, time) -> IGRFField:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         A date outside [1900, 2030].
-    InputDataError
+    potfield.fields.errors.BadGeometry
         A latitude outside [-90, 90], or times that cannot be read.
 
     Examples
@@ -488,15 +489,15 @@ def igrf(longitude, latitude, height, time) -> IGRFField:
     bad = np.abs(lat) > 90.0
     if np.any(bad):
         where = np.argwhere(np.atleast_1d(bad))[0]
-        raise InputDataError(
+        raise BadGeometry(
             f"latitude {np.atleast_1d(lat)[tuple(where)]:g} at index {tuple(int(w) for w in where)} "
             "is outside [-90, 90] degrees",
-            fix="check the latitude column (swapped with longitude, or projected coordinates?)",
+            hint="give latitudes in degrees (swapped with longitude, or projected coordinates?)",
         )
     return IGRFField(*_run_kernel(longitude, lat, height, time, True))
 
 
-def igrf_geocentric(radius, colatitude, longitude, time) -> GeocentricField:
+def igrf_geocentric(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, time: ArrayLike) -> GeocentricField:
     """IGRF-14 main field in geocentric spherical coordinates.
 
     The same synthesis as :func:`igrf` (IAGA Working Group V-MOD 2024; Langel 1987), without the
@@ -520,17 +521,17 @@ def igrf_geocentric(radius, colatitude, longitude, time) -> GeocentricField:
 
     Raises
     ------
-    ModelRangeError
+    potfield.fields.errors.OutOfModelRange
         A date outside [1900, 2030].
-    InputDataError
+    potfield.fields.errors.BadGeometry
         A colatitude outside [0, 180] or a radius that is not positive.
     """
     colat = np.asarray(colatitude, dtype=float)
     radius = np.asarray(radius, dtype=float)
     if np.any((colat < 0) | (colat > 180)):
-        raise InputDataError("colatitude outside [0, 180] degrees", fix="give geocentric colatitudes")
+        raise BadGeometry("colatitude outside [0, 180] degrees", hint="give geocentric colatitudes")
     if np.any(radius <= 0):
-        raise InputDataError("radius must be positive (m from the Earth's centre)",
-                             fix="give geocentric radii in metres")
+        raise BadGeometry("radius must be positive (m from the Earth's centre)",
+                             hint="give geocentric radii in metres")
     x, y, z, *_ = _run_kernel(longitude, colat, radius, time, False)
     return GeocentricField(radial=-z, theta=-x, phi=y)
