@@ -78,7 +78,24 @@ def cmd_check(args) -> int:
     return 0
 
 
-FINAL_WORDS = ("done in", "unchanged", "not available", "does nothing")
+FINAL_WORDS = ("done in", "unchanged", "does nothing")
+
+
+def _outcome(summary) -> tuple[str, bool]:
+    """The last line of ``potfield run``: failed checks and skipped/degraded steps, and whether
+    anything is not as specified (for --strict)."""
+    failed = summary.failed_checks
+    skipped, degraded = summary.skipped_steps, summary.degraded_steps
+    parts = []
+    if failed:
+        parts.append(f"{len(failed)} failed spec check(s): " + ", ".join(c["check"] for c in failed))
+    if skipped:
+        parts.append("skipped: " + ", ".join(s["stage"] for s in skipped))
+    if degraded:
+        parts.append("degraded: " + ", ".join(sorted({s["stage"] for s in degraded})))
+    if not parts:
+        return "all spec checks passed; no step skipped or degraded", False
+    return "; ".join(parts), True
 
 
 def cmd_run(args) -> int:
@@ -90,7 +107,7 @@ def cmd_run(args) -> int:
     with console.status("starting") as status:
         def progress(message: str) -> None:
             if any(word in message for word in FINAL_WORDS):
-                console.print(message)
+                console.print(message, markup=False)
             else:
                 status.update(message)
 
@@ -98,11 +115,15 @@ def cmd_run(args) -> int:
                              force=args.force, progress=progress)
     failed = summary.failed_checks
     console.print(f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
-                  f"{len(failed)} failed")
+                  f"{len(failed)} failed", markup=False)
     for check in failed:
         console.print(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance {check['tolerance']:.4g} "
-                      f"{check['unit']})")
-    return 0
+                      f"{check['unit']})", markup=False)
+    for step in summary.steps:
+        console.print(f"  WARNING {step['stage']} {step['result']}: {step['detail']}", markup=False)
+    last, bad = _outcome(summary)
+    console.print(last, markup=False)
+    return 1 if (bad and args.strict) else 0
 
 
 def cmd_stages(args) -> int:
@@ -113,12 +134,7 @@ def cmd_stages(args) -> int:
         print(f"{kind}:")
         for name in KIND_ORDER[kind]:
             stage = load_stage(name)
-            if stage.run is None:
-                text = "not available yet"
-            elif kind not in stage.kinds:
-                text = f"does nothing for {kind} surveys"
-            else:
-                text = stage.summary
+            text = stage.summary if kind in stage.kinds else f"does nothing for {kind} surveys"
             print(f"  {name:<10} {text}")
     return 0
 
@@ -173,6 +189,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--only", metavar="STAGE", help="run only this stage (earlier ones must be up to date)")
     p.add_argument("--from", dest="start", metavar="STAGE", help="start at this stage")
     p.add_argument("--force", action="store_true", help="recompute even unchanged stages")
+    p.add_argument("--strict", action="store_true",
+                   help="exit with code 1 when a spec check fails or a step was skipped or degraded")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("stages", help="list the stages of each survey kind")

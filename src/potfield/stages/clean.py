@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..fields.lines.noise import fourth_difference, line_noise, robust_spikes
-from .base import Check, Stage, StageContext, StageOutput
+from .base import Check, Contract, Stage, StageContext, StageOutput
 
 #: The measured value(s) cleaned per survey kind.
 VALUE_COLUMNS = {
@@ -125,4 +125,13 @@ STAGE = Stage(
     "out of band; per-line fourth-difference noise",
     run=run,
     sections=("clean",),
+    contract=Contract(
+        requires_columns=("line", "line_type"),
+        provides_columns={"gravity": ("flag_duplicate_time",),
+                          "*": ("flag_duplicate_time", "flag_time_gap", "flag_spike")},
+        optional_columns=("flag_distance_gap", "flag_height", "fourth_difference",
+                          "fourth_difference_*"),
+        requires_state=("ingest",),
+        provides_tables=("clean_lines",),
+    ),
 )

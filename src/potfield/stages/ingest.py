@@ -18,7 +18,7 @@ import pyproj
 from ..config import SurveyConfig
 from ..errors import CRSError, InputDataError, format_rows
 from ..io.delimited import TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
-from .base import Check, Stage, StageContext, StageOutput
+from .base import Check, Contract, Stage, StageContext, StageOutput
 
 NUMERIC_COLUMNS = ("longitude", "latitude", "easting", "northing", "height", "total_field",
                    "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation")
@@ -323,4 +323,10 @@ STAGE = Stage(
     run=run,
     sections=("lines",),
     inputs=_inputs,
+    # ingest makes the table: besides these, every column mapped in [input.columns] is its own
+    contract=Contract(
+        provides_columns=("longitude", "latitude", "easting", "northing", "line", "line_type",
+                          "distance", "source_file", "source_row"),
+        optional_columns=("*",),
+    ),
 )
