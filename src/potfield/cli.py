@@ -64,7 +64,10 @@ def cmd_check(args) -> int:
     for path, rows in info["files"].items():
         print(f"file     {path}: {rows:,} readings")
     print(f"readings {info['readings']:,}")
-    print(f"time     {info['time_span'][0]} .. {info['time_span'][1]} UTC")
+    if info["time_span"][0] is None:
+        print("time     none (no time column: no diurnal correction or drift)")
+    else:
+        print(f"time     {info['time_span'][0]} .. {info['time_span'][1]} UTC")
     lo = info["extent_lonlat"]
     print(f"extent   longitude {lo[0]:.5f} .. {lo[1]:.5f}, latitude {lo[2]:.5f} .. {lo[3]:.5f}")
     r = info["region_m"]

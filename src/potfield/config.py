@@ -64,6 +64,14 @@ COLUMN_QUANTITY = {
 KINDS = ("magnetic", "gravity", "observatory")
 
 
+def unit_factor(name: str, units: dict[str, str]) -> float:
+    """Factor taking column ``name`` from its declared unit (``units``) to potfield's unit."""
+    quantity = COLUMN_QUANTITY.get(name)
+    if quantity is None or name not in units:
+        return 1.0
+    return float(UNIT_FACTORS[quantity][units[name]])
+
+
 class Section(BaseModel):
     """Base of every section: unknown keys are errors, assignments are validated."""
 

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from ..config import unit_factor
 from ..errors import ConfigError, InputDataError
 from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                               estimate_time_offset, great_circle_distance, interpolate_base,
@@ -90,7 +91,8 @@ def read_base(base, survey, index: int) -> BaseRecord:
         frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
                                skip_rows=base.skip_rows, missing_values=base.missing_values)
         times = parse_time(frame, base.time, path)
-        value = convert_units(to_numeric(frame, "total_field", path), "total_field", base.units)
+        value = convert_units(to_numeric(frame, "total_field", path),
+                              unit_factor("total_field", base.units))
     if base.time_offset_s:
         times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
     order = np.argsort(times, kind="stable")
