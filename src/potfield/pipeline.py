@@ -97,7 +97,7 @@ def select_stages(order: tuple[str, ...], until: str | None = None, only: str | 
     if only and (until or start):
         other = "--until" if until else "--from"
         raise StageError(f"--only {only} cannot be combined with {other}",
-                         fix=f"use --only alone, or --from/--until for a range of stages")
+                         fix="use --only alone, or --from/--until for a range of stages")
     if only:
         return [only]
     first = order.index(start) if start else 0
@@ -342,12 +342,22 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                                grids=_LazyGrids(grids), progress=lambda m, n=name: say(f"{n}: {m}"),
                                manifest=manifest)
             started = time.perf_counter()
-            output = stage.run(ctx)
-            if not isinstance(output, StageOutput):
-                raise TypeError(f"stage {name} returned {type(output).__name__}, not StageOutput")
-            added = _check_provides(stage, config.kind, table, output)
-            seconds = time.perf_counter() - started
-            entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
+            try:
+                output = stage.run(ctx)
+                if not isinstance(output, StageOutput):
+                    raise TypeError(f"stage {name} returned {type(output).__name__}, not StageOutput")
+                added = _check_provides(stage, config.kind, table, output)
+                seconds = time.perf_counter() - started
+                entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
+            except BaseException:
+                # out/ keeps describing what is current: the stages before this one
+                _mark_stale(manifest, order[index:], f"stage '{name}' failed in the run of {stamp}; "
+                            "these results are not current")
+                try:
+                    _finish(survey, manifest, order[:index], table, hashes)
+                except Exception:  # noqa: BLE001, S110  (the original error matters more)
+                    pass
+                raise
             entry["contract"] = stage.contract.as_record(config.kind)
             entry["columns_added"] = added
             if output.table is not None:
@@ -362,18 +372,26 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                                        output.skipped, list(output.degraded)))
             say(f"{name}: done in {seconds:.1f} s" + _loud(entry))
         _mark_stale(manifest, later, stale_reason)
-        if table is not None:
-            write_table_csv(survey.tables / "readings.csv", table)
-        checks, steps = [], []
-        for name in order[: last_index + 1]:
-            entry = manifest["stages"].get(name, {})
-            checks.extend(entry.get("checks", []))
-            steps.extend(_step_rows(name, entry))
-        write_csv(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS))
-        manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        manifest["outputs"] = survey.output_checksums(hashes)
-        write_json(survey.manifest_path, manifest)
+        checks, steps = _finish(survey, manifest, order[: last_index + 1], table, hashes)
     return RunSummary(survey.root, records, checks, manifest, steps)
+
+
+def _finish(survey: Survey, manifest: dict, current, table: pd.DataFrame | None,
+            hashes: dict) -> tuple[list[dict], list[dict]]:
+    """Write readings.csv (the table of the last current stage), checks.csv (the checks and
+    skipped/degraded steps of the ``current`` stages) and the manifest with the outputs' checksums."""
+    if table is not None:
+        write_table_csv(survey.tables / "readings.csv", table)
+    checks, steps = [], []
+    for name in current:
+        entry = manifest["stages"].get(name, {})
+        checks.extend(entry.get("checks", []))
+        steps.extend(_step_rows(name, entry))
+    write_csv(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS))
+    manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    manifest["outputs"] = survey.output_checksums(hashes)
+    write_json(survey.manifest_path, manifest)
+    return checks, steps
 
 
 def _loud(entry: dict) -> str:

@@ -121,3 +121,16 @@ def test_report_command_updates_the_report_checksum(magnetic_survey, capsys):
     assert "out/report.html" in after["outputs"]
     assert any(k.startswith("out/maps/") for k in after["outputs"])
     assert after["stages"] == before["stages"]  # only the checksums change
+
+
+def test_a_failing_stage_leaves_out_consistent(magnetic_survey, capsys):
+    root = str(magnetic_survey)
+    assert main(["run", root, "--until", "reference"]) == 0
+    # a reference date outside IGRF-14 makes the reference stage fail with a one-line error
+    path = magnetic_survey / "survey.toml"
+    path.write_text(path.read_text().replace("[reference]\n", '[reference]\nigrf_date = "1850-01-01"\n', 1))
+    line = _one_line_error(capsys, ["run", root, "--until", "reference"])
+    assert "igrf_date" in line
+    manifest = _assert_manifest_matches_disk(magnetic_survey)
+    assert manifest["stages"]["reference"]["status"] == "stale"
+    assert "anomaly" not in _readings_columns(magnetic_survey)
