@@ -81,7 +81,7 @@ def cmd_check(args) -> int:
     return 0
 
 
-FINAL_WORDS = ("done in", "unchanged", "does nothing")
+FINAL_WORDS = ("done in", "skipped in", "unchanged", "does nothing", "marked stale")
 
 
 def _outcome(summary) -> tuple[str, bool]:

@@ -370,8 +370,13 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             write_json(survey.manifest_path, manifest)
             records.append(StageRecord(name, entry["status"], seconds, output.notes, output.warnings,
                                        output.skipped, list(output.degraded)))
-            say(f"{name}: done in {seconds:.1f} s" + _loud(entry))
+            verb = "skipped" if entry["status"] == "skipped" else "done"
+            say(f"{name}: {verb} in {seconds:.1f} s" + _loud(entry))
         _mark_stale(manifest, later, stale_reason)
+        stale = [n for n in later if manifest["stages"].get(n, {}).get("status") == "stale"]
+        if stale:
+            say(f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
+                "run again without --until/--only to bring them back)")
         checks, steps = _finish(survey, manifest, order[: last_index + 1], table, hashes)
     return RunSummary(survey.root, records, checks, manifest, steps)
 

@@ -59,7 +59,7 @@ def test_until_after_a_longer_run_marks_later_stages_stale(magnetic_survey, caps
     assert "anomaly" in _readings_columns(magnetic_survey)
 
     assert main(["run", root, "--until", "clean"]) == 0
-    capsys.readouterr()
+    assert "diurnal, reference: marked stale" in capsys.readouterr().out
     manifest = _assert_manifest_matches_disk(magnetic_survey)
     # the later stages are stale, and readings.csv is exactly the clean stage's table
     assert manifest["stages"]["diurnal"]["status"] == "stale"
