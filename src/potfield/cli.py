@@ -110,7 +110,7 @@ def cmd_run(args) -> int:
     with console.status("starting") as status:
         def progress(message: str) -> None:
             if any(word in message for word in FINAL_WORDS):
-                console.print(message, markup=False)
+                console.print(message, markup=False, soft_wrap=True)
             else:
                 status.update(message)
 
@@ -123,9 +123,10 @@ def cmd_run(args) -> int:
         console.print(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance {check['tolerance']:.4g} "
                       f"{check['unit']})", markup=False)
     for step in summary.steps:
-        console.print(f"  WARNING {step['stage']} {step['result']}: {step['detail']}", markup=False)
+        console.print(f"  WARNING {step['stage']} {step['result']}: {step['detail']}", markup=False,
+                      soft_wrap=True)
     last, bad = _outcome(summary)
-    console.print(last, markup=False)
+    console.print(last, markup=False, soft_wrap=True)  # one line, never wrapped
     return 1 if (bad and args.strict) else 0
 
 
