@@ -161,7 +161,8 @@ def bench_grid_vs_harmonica_demo(readings=1_000_000, seed=1, gb_damping=1e-4, fo
     from potfield.config import GridSection
     from potfield.demo import make_demo
     from potfield.fields.harmonic import eqsources as eqs
-    from potfield.pipeline import read_cache_table, run_survey
+    from potfield.io.tables import read_cache_table
+    from potfield.pipeline import run_survey
     from potfield.stages import grid as grid_stage
     from potfield.stages.base import usable
 

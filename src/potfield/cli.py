@@ -64,7 +64,10 @@ def cmd_check(args) -> int:
     for path, rows in info["files"].items():
         print(f"file     {path}: {rows:,} readings")
     print(f"readings {info['readings']:,}")
-    print(f"time     {info['time_span'][0]} .. {info['time_span'][1]} UTC")
+    if info["time_span"][0] is None:
+        print("time     none (no time column: no diurnal correction or drift)")
+    else:
+        print(f"time     {info['time_span'][0]} .. {info['time_span'][1]} UTC")
     lo = info["extent_lonlat"]
     print(f"extent   longitude {lo[0]:.5f} .. {lo[1]:.5f}, latitude {lo[2]:.5f} .. {lo[3]:.5f}")
     r = info["region_m"]
@@ -78,7 +81,24 @@ def cmd_check(args) -> int:
     return 0
 
 
-FINAL_WORDS = ("done in", "unchanged", "not available", "does nothing")
+FINAL_WORDS = ("done in", "skipped in", "unchanged", "does nothing", "marked stale")
+
+
+def _outcome(summary) -> tuple[str, bool]:
+    """The last line of ``potfield run``: failed checks and skipped/degraded steps, and whether
+    anything is not as specified (for --strict)."""
+    failed = summary.failed_checks
+    skipped, degraded = summary.skipped_steps, summary.degraded_steps
+    parts = []
+    if failed:
+        parts.append(f"{len(failed)} failed spec check(s): " + ", ".join(c["check"] for c in failed))
+    if skipped:
+        parts.append("skipped: " + ", ".join(s["stage"] for s in skipped))
+    if degraded:
+        parts.append("degraded: " + ", ".join(sorted({s["stage"] for s in degraded})))
+    if not parts:
+        return "all spec checks passed; no step skipped or degraded", False
+    return "; ".join(parts), True
 
 
 def cmd_run(args) -> int:
@@ -90,7 +110,7 @@ def cmd_run(args) -> int:
     with console.status("starting") as status:
         def progress(message: str) -> None:
             if any(word in message for word in FINAL_WORDS):
-                console.print(message)
+                console.print(message, markup=False, soft_wrap=True)
             else:
                 status.update(message)
 
@@ -98,11 +118,16 @@ def cmd_run(args) -> int:
                              force=args.force, progress=progress)
     failed = summary.failed_checks
     console.print(f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
-                  f"{len(failed)} failed")
+                  f"{len(failed)} failed", markup=False)
     for check in failed:
         console.print(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance {check['tolerance']:.4g} "
-                      f"{check['unit']})")
-    return 0
+                      f"{check['unit']})", markup=False)
+    for step in summary.steps:
+        console.print(f"  WARNING {step['stage']} {step['result']}: {step['detail']}", markup=False,
+                      soft_wrap=True)
+    last, bad = _outcome(summary)
+    console.print(last, markup=False, soft_wrap=True)  # one line, never wrapped
+    return 1 if (bad and args.strict) else 0
 
 
 def cmd_stages(args) -> int:
@@ -113,12 +138,7 @@ def cmd_stages(args) -> int:
         print(f"{kind}:")
         for name in KIND_ORDER[kind]:
             stage = load_stage(name)
-            if stage.run is None:
-                text = "not available yet"
-            elif kind not in stage.kinds:
-                text = f"does nothing for {kind} surveys"
-            else:
-                text = stage.summary
+            text = stage.summary if kind in stage.kinds else f"does nothing for {kind} surveys"
             print(f"  {name:<10} {text}")
     return 0
 
@@ -173,6 +193,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--only", metavar="STAGE", help="run only this stage (earlier ones must be up to date)")
     p.add_argument("--from", dest="start", metavar="STAGE", help="start at this stage")
     p.add_argument("--force", action="store_true", help="recompute even unchanged stages")
+    p.add_argument("--strict", action="store_true",
+                   help="exit with code 1 when a spec check fails or a step was skipped or degraded")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("stages", help="list the stages of each survey kind")

@@ -64,6 +64,14 @@ COLUMN_QUANTITY = {
 KINDS = ("magnetic", "gravity", "observatory")
 
 
+def unit_factor(name: str, units: dict[str, str]) -> float:
+    """Factor taking column ``name`` from its declared unit (``units``) to potfield's unit."""
+    quantity = COLUMN_QUANTITY.get(name)
+    if quantity is None or name not in units:
+        return 1.0
+    return float(UNIT_FACTORS[quantity][units[name]])
+
+
 class Section(BaseModel):
     """Base of every section: unknown keys are errors, assignments are validated."""
 
@@ -245,6 +253,9 @@ class GravityBase(Section):
 
 
 class DriftSection(Section):
+    #: false = the readings are final observed gravity (mGal, e.g. a station list): no
+    #: calibration, tide, drift or network adjustment; the drift stage is recorded as skipped.
+    enabled: bool = True
     #: Calibration (interval) table for counter units: file with columns counter, mgal, factor.
     calibration_file: str | None = None
     #: Correct the Earth tide (Longman 1959) before the drift.
@@ -268,6 +279,10 @@ class DriftSection(Section):
 
 
 class ReferenceSection(Section):
+    #: false = the value is already an anomaly (data reduced elsewhere): taken as it is
+    #: (magnetic: total_field [- diurnal]; gravity: observed gravity) as the anomaly; the
+    #: reference stage is recorded as skipped.
+    enabled: bool = True
     #: Magnetic and observatory: evaluate IGRF-14 at each reading's time (unset, the default),
     #: or at this one fixed date for all readings ("YYYY-MM-DD", UTC; 1900-01-01 .. 2030-01-01).
     igrf_date: str | None = None

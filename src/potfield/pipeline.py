@@ -5,6 +5,13 @@ stage name, potfield's source code, the survey.toml sections the stage reads, th
 the files it reads and the key of the stage before it; a stage whose key is unchanged is not
 recomputed (its table is loaded from out/cache/). Everything is written atomically; raw/ is only
 read.
+
+Every stage declares a :class:`potfield.stages.base.Contract`: the runner checks its required
+columns and earlier records before running it, and what it added after (an undeclared or dropped
+column is an internal bug). A stage that says its step was skipped or degraded is recorded so in
+the manifest and checks.csv. A run that stops before the last stage marks the later stages
+"stale": readings.csv, checks.csv and the manifest always describe the same stages, and the
+manifest's output checksums are those of the files on disk.
 """
 
 from __future__ import annotations
@@ -16,6 +23,7 @@ import platform
 import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from fnmatch import fnmatchcase
 from functools import lru_cache
 from importlib import metadata
 from pathlib import Path
@@ -24,32 +32,31 @@ from typing import Callable
 import pandas as pd
 
 from . import __version__
-from .errors import PotfieldError, StageError
-from .io.atomic import write_csv, write_json, write_parquet
+from .errors import InputDataError, PotfieldError, StageError
+from .io.atomic import write_csv, write_json
+from .io.tables import read_cache_table, write_cache_table, write_table_csv
+from .kinds import KIND_ORDER
 from .qc.specs import load_spec
 from .stages.base import Check, Stage, StageContext, StageOutput
 from .survey import Survey, sha256_file
 
-#: Stage order per survey kind (design.md).
-KIND_ORDER: dict[str, tuple[str, ...]] = {
-    "magnetic": ("ingest", "clean", "diurnal", "reference", "level", "grid", "separate", "derive", "report"),
-    "gravity": ("ingest", "clean", "drift", "reference", "level", "grid", "separate", "derive", "report"),
-    "observatory": ("ingest", "clean", "reference", "separate", "report"),
-}
-
 PACKAGES = ("numpy", "scipy", "pandas", "pyproj", "verde", "harmonica", "boule", "xarray",
             "matplotlib", "pydantic", "pyarrow", "numba", "dask")
 
+#: Columns of out/tables/checks.csv. Spec checks have result pass/fail; a skipped or degraded
+#: step is a row with result "skipped" / "degraded" and the reason in ``detail``.
+CHECK_COLUMNS = ["check", "value", "tolerance", "sense", "unit", "result", "source", "detail", "stage"]
+#: Stage statuses whose results are current (reusable when the key is unchanged).
+CURRENT = ("done", "skipped")
+
+
+class ContractError(RuntimeError):
+    """A stage broke its declared contract (an internal bug, not a user's mistake)."""
+
 
 def load_stage(name: str) -> Stage:
-    """The stage object of module potfield.stages.NAME, or an 'unavailable' placeholder."""
-    try:
-        module = importlib.import_module(f"potfield.stages.{name}")
-    except ModuleNotFoundError as err:
-        if err.name and err.name.startswith(f"potfield.stages.{name}"):
-            return Stage(name=name, summary="not available yet in this version of potfield", run=None)
-        raise
-    return module.STAGE
+    """The stage object of module potfield.stages.NAME."""
+    return importlib.import_module(f"potfield.stages.{name}").STAGE
 
 
 def stages_for(kind: str) -> list[Stage]:
@@ -79,25 +86,38 @@ def package_versions() -> dict[str, str]:
 
 def select_stages(order: tuple[str, ...], until: str | None = None, only: str | None = None,
                   start: str | None = None) -> list[str]:
-    """Names of the stages to run, in order, from the --until/--only/--from options."""
+    """Names of the stages to run, in order, from the --until/--only/--from options.
+
+    Contradictory choices are refused: --only with --until or --from, and --from after --until.
+    """
     for option, value in (("--until", until), ("--only", only), ("--from", start)):
         if value is not None and value not in order:
             raise StageError(f"{option} {value}: no such stage for this survey kind",
                              fix=f"use one of: {', '.join(order)}")
+    if only and (until or start):
+        other = "--until" if until else "--from"
+        raise StageError(f"--only {only} cannot be combined with {other}",
+                         fix="use --only alone, or --from/--until for a range of stages")
     if only:
         return [only]
     first = order.index(start) if start else 0
     last = order.index(until) if until else len(order) - 1
+    if first > last:
+        raise StageError(f"--from {start} comes after --until {until} in the stage order",
+                         fix=f"choose a range in the order {' -> '.join(order)}")
     return list(order[first:last + 1])
 
 
 @dataclass
 class StageRecord:
     name: str
-    status: str  # done | cached | unavailable | not-applicable
+    status: str  # done | cached | skipped | not-applicable
     seconds: float = 0.0
     notes: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    #: Why the step was skipped (None: applied) and what was only partly applied.
+    skipped: str | None = None
+    degraded: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -106,10 +126,20 @@ class RunSummary:
     records: list[StageRecord]
     checks: list[dict]
     manifest: dict
+    #: Skipped and degraded steps of the current results: rows as in checks.csv.
+    steps: list[dict] = field(default_factory=list)
 
     @property
     def failed_checks(self) -> list[dict]:
         return [c for c in self.checks if c["result"] == "fail"]
+
+    @property
+    def skipped_steps(self) -> list[dict]:
+        return [s for s in self.steps if s["result"] == "skipped"]
+
+    @property
+    def degraded_steps(self) -> list[dict]:
+        return [s for s in self.steps if s["result"] == "degraded"]
 
 
 def _read_manifest(survey: Survey) -> dict:
@@ -125,11 +155,9 @@ def _stage_key(stage: Stage, config, survey: Survey, previous: str, checksums: d
     inputs = {}
     if stage.inputs is not None:
         for path in stage.inputs(config, survey):
-            rel = _rel(path, survey)
+            rel = survey.rel(path)
             if rel not in checksums:
                 if not Path(path).is_file():
-                    from .errors import InputDataError
-
                     raise InputDataError("file not found", file=path,
                                          fix="check the file name in survey.toml")
                 checksums[rel] = sha256_file(Path(path))
@@ -140,50 +168,93 @@ def _stage_key(stage: Stage, config, survey: Survey, previous: str, checksums: d
 
 
 def _rel(path, survey: Survey) -> str:
-    path = Path(path).resolve()
-    try:
-        return str(path.relative_to(survey.root))
-    except ValueError:
-        return str(path)
+    return survey.rel(path)
 
 
-def write_table_csv(path: Path, table: pd.DataFrame) -> Path:
-    """The residual table as CSV: pyarrow's writer (fast), ISO 8601 UTC times."""
-    import pyarrow as pa
-    import pyarrow.csv as pacsv
+def _provider(order: tuple[str, ...], before: str, column: str, kind: str) -> str | None:
+    """The earlier stage whose contract provides ``column``."""
+    for name in order[: order.index(before)]:
+        stage = load_stage(name)
+        if kind not in stage.kinds:
+            continue
+        if column in stage.contract.provides(kind) or (
+                name != "ingest" and stage.contract.may_add(kind, column)):  # ingest's extra
+            return name                                                     # columns are mapped ones
 
-    from .io.atomic import atomic_path
-
-    import pyarrow.compute as pc
-
-    arrow = pa.Table.from_pandas(table, preserve_index=False)
-    if "time" in arrow.column_names:
-        index = arrow.column_names.index("time")
-        text = pc.strftime(arrow.column(index), format="%Y-%m-%dT%H:%M:%SZ")
-        arrow = arrow.set_column(index, "time", text)
-    with atomic_path(path) as tmp:
-        pacsv.write_csv(arrow, tmp)
-    return path
+    return None
 
 
-#: Text columns stored dictionary-encoded in the cache (fast to write), restored as object.
-CACHE_TEXT = ("line", "line_type", "source_file", "station", "loop")
+def _check_requires(stage: Stage, kind: str, order: tuple[str, ...], table: pd.DataFrame | None,
+                    state: dict, manifest: dict, root: Path) -> None:
+    """A StageError naming the stage and what to run first when a requirement is missing."""
+    contract = stage.contract
+    missing = [c for c in contract.requires(kind) if table is None or c not in table.columns]
+    for column in missing:
+        provider = _provider(order, stage.name, column, kind)
+        if provider is None:
+            raise StageError(f"stage '{stage.name}' needs the column '{column}', which no earlier "
+                             "stage provides", key=f"input.columns.{column}",
+                             fix=f"map an input column to '{column}' under [input.columns]")
+        entry = manifest["stages"].get(provider, {})
+        why = f" (it was skipped: {entry.get('summary')})" if entry.get("status") == "skipped" else ""
+        raise StageError(f"stage '{stage.name}' needs the column '{column}' of stage "
+                         f"'{provider}'{why}",
+                         fix=f"run 'potfield run {root} --from {provider}' first")
+    for name in contract.requires_state:
+        if name in KIND_ORDER[kind] and name not in state:
+            raise StageError(f"stage '{stage.name}' needs the record of stage '{name}'",
+                             fix=f"run 'potfield run {root} --until {name}' first")
 
 
-def write_cache_table(path: Path, table: pd.DataFrame) -> Path:
-    frame = table.copy(deep=False)
-    for name in CACHE_TEXT:
-        if name in frame and frame[name].dtype == object:
-            frame[name] = frame[name].astype("category")
-    return write_parquet(path, frame)
+def _check_provides(stage: Stage, kind: str, before: pd.DataFrame | None, output: StageOutput) -> list[str]:
+    """The columns the stage added; a ContractError when it broke its contract."""
+    contract = stage.contract
+    for what, names, declared in (("grid", output.grids, contract.grids(kind)),
+                                  ("table", output.tables, contract.tables(kind))):
+        extra = [n for n in names if not any(fnmatchcase(n, p) for p in declared)]
+        if extra:
+            raise ContractError(f"stage '{stage.name}' wrote {what}(s) {extra} it does not declare "
+                                f"(declared: {list(declared)})")
+    if output.table is None:
+        return []
+    received = list(before.columns) if before is not None else []
+    produced = set(output.table.columns)
+    dropped = [c for c in received if c not in produced]
+    if dropped:
+        raise ContractError(f"stage '{stage.name}' dropped column(s) {dropped}")
+    added = [c for c in output.table.columns if c not in set(received)]
+    undeclared = [c for c in added if not contract.may_add(kind, c)]
+    if undeclared:
+        raise ContractError(f"stage '{stage.name}' added column(s) {undeclared} it does not declare")
+    promised = [c for c in contract.provides(kind) if c not in produced]
+    if promised and not output.skipped:
+        raise ContractError(f"stage '{stage.name}' did not add the column(s) {promised} it provides")
+    return added
 
 
-def read_cache_table(path: Path) -> pd.DataFrame:
-    table = pd.read_parquet(path)
-    for name in CACHE_TEXT:
-        if name in table and isinstance(table[name].dtype, pd.CategoricalDtype):
-            table[name] = table[name].astype(object)
-    return table
+def _step_rows(name: str, entry: dict) -> list[dict]:
+    """checks.csv rows of a stage's skipped / degraded steps."""
+    rows = []
+    if entry.get("status") == "skipped":
+        rows.append({"check": f"step {name}", "value": float("nan"), "tolerance": float("nan"),
+                     "sense": "", "unit": "", "result": "skipped", "source": "potfield",
+                     "detail": entry.get("summary", ""), "stage": name})
+    for text in entry.get("degraded", []):
+        rows.append({"check": f"step {name}", "value": float("nan"), "tolerance": float("nan"),
+                     "sense": "", "unit": "", "result": "degraded", "source": "potfield",
+                     "detail": text, "stage": name})
+    return rows
+
+
+def _mark_stale(manifest: dict, names, reason: str) -> None:
+    """Mark the records of ``names`` stale: their results are not in readings.csv/checks.csv."""
+    for name in names:
+        entry = manifest["stages"].get(name)
+        if not entry or entry.get("status") in ("stale", "not-applicable"):
+            continue
+        entry["status_before_stale"] = entry.get("status")
+        entry["status"] = "stale"
+        entry["stale_reason"] = reason
 
 
 def run_survey(root: Path | str, *, until: str | None = None, only: str | None = None,
@@ -208,8 +279,10 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             "packages": package_versions(),
             "inputs": {},
             "spec": {k: list(v) for k, v in spec.items()},
-            "stages": dict(old_stages),
+            "stages": {k: dict(v) for k, v in old_stages.items()},
+            "outputs": old.get("outputs", {}),
         }
+        hashes: dict = {}
         checksums: dict[str, str] = {}
         table: pd.DataFrame | None = None
         state: dict[str, dict] = {}
@@ -217,15 +290,13 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
         previous_key = ""
         records: list[StageRecord] = []
         last_index = order.index(selected[-1])
+        later = order[last_index + 1:]
+        stamp = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+        stale_reason = (f"the run of {stamp} stopped after '{selected[-1]}': these results are "
+                        "not in readings.csv/checks.csv; run again without --until/--only to "
+                        "bring them back (unchanged ones are reused)")
         for index, name in enumerate(order[: last_index + 1]):
             stage = load_stage(name)
-            if stage.run is None:
-                entry = {"status": "unavailable", "summary": stage.summary}
-                if name in selected:
-                    manifest["stages"][name] = entry
-                    records.append(StageRecord(name, "unavailable", notes=[stage.summary]))
-                    say(f"{name}: not available yet in this version (skipped)")
-                continue
             if config.kind not in stage.kinds:
                 if name in selected:
                     manifest["stages"][name] = {"status": "not-applicable"}
@@ -235,11 +306,13 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             key, inputs = _stage_key(stage, config, survey, previous_key, checksums)
             manifest["inputs"].update(inputs)
             previous_key = key
-            cached = old_stages.get(name, {})
+            cached = manifest["stages"].get(name, {})
+            status = cached.get("status_before_stale") if cached.get("status") == "stale" \
+                else cached.get("status")
             cache_file = survey.cache / f"{name}.parquet"
             # --force recomputes the selected stages only; earlier ones must still be up to date
             is_cached = (not (force and name in selected) and cached.get("key") == key
-                         and cached.get("status") == "done"
+                         and status in CURRENT
                          and (not cached.get("table") or cache_file.is_file())
                          and all((survey.grids / f"{g}.nc").is_file() for g in cached.get("grids", [])))
             if name not in selected or is_cached:
@@ -247,45 +320,93 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                     raise StageError(
                         f"stage '{name}' has no up-to-date result to start '{selected[0]}' from",
                         fix=f"run 'potfield run {survey.root}' (or with --until {selected[0]}) first")
+                if cached.get("status") == "stale":  # an unchanged result comes back
+                    cached["status"] = cached.pop("status_before_stale", "done")
+                    cached.pop("stale_reason", None)
                 if cached.get("table"):
                     table = read_cache_table(cache_file)
                 state[name] = cached.get("state", {})
                 for g in cached.get("grids", []):
                     grids[g] = survey.grids / f"{g}.nc"
                 if name in selected:
-                    records.append(StageRecord(name, "cached", notes=cached.get("notes", [])))
-                    say(f"{name}: unchanged, reused")
+                    records.append(StageRecord(name, "cached", notes=cached.get("notes", []),
+                                               skipped=cached.get("summary") if status == "skipped" else None,
+                                               degraded=list(cached.get("degraded", []))))
+                    say(f"{name}: unchanged, reused" + _loud(cached))
                 continue
+            # Whatever follows this stage was made from results about to change: stale until rerun.
+            _mark_stale(manifest, order[index + 1:], stale_reason)
+            _check_requires(stage, config.kind, order, table, state, manifest, survey.root)
             say(f"{name}: running")
             ctx = StageContext(config=config, survey=survey, table=table, state=state, spec=spec,
                                grids=_LazyGrids(grids), progress=lambda m, n=name: say(f"{n}: {m}"),
                                manifest=manifest)
             started = time.perf_counter()
-            output = stage.run(ctx)
-            if not isinstance(output, StageOutput):
-                raise TypeError(f"stage {name} returned {type(output).__name__}, not StageOutput")
-            seconds = time.perf_counter() - started
-            entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
+            try:
+                output = stage.run(ctx)
+                if not isinstance(output, StageOutput):
+                    raise TypeError(f"stage {name} returned {type(output).__name__}, not StageOutput")
+                added = _check_provides(stage, config.kind, table, output)
+                seconds = time.perf_counter() - started
+                entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
+            except BaseException:
+                # out/ keeps describing what is current: the stages before this one
+                _mark_stale(manifest, order[index:], f"stage '{name}' failed in the run of {stamp}; "
+                            "these results are not current")
+                try:
+                    _finish(survey, manifest, order[:index], table, hashes)
+                except Exception:  # noqa: BLE001, S110  (the original error matters more)
+                    pass
+                raise
+            entry["contract"] = stage.contract.as_record(config.kind)
+            entry["columns_added"] = added
             if output.table is not None:
                 table = output.table
             for g in entry["grids"]:
                 grids[g] = survey.grids / f"{g}.nc"
             manifest["stages"][name] = entry
-            write_json(survey.manifest_path, manifest)  # a later failure keeps this stage's record
-            records.append(StageRecord(name, "done", seconds, output.notes, output.warnings))
-            say(f"{name}: done in {seconds:.1f} s")
-        # Drop records of stages after the last one that ran in this order: they are stale.
-        if table is not None:
-            write_table_csv(survey.tables / "readings.csv", table)
-        checks = []
-        for name in order:
-            checks.extend(manifest["stages"].get(name, {}).get("checks", []))
-        write_csv(survey.tables / "checks.csv", pd.DataFrame(checks, columns=[
-            "check", "value", "tolerance", "sense", "unit", "result", "source", "detail", "stage"]))
-        manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        manifest["outputs"] = output_checksums(survey)
-        write_json(survey.manifest_path, manifest)
-    return RunSummary(survey.root, records, checks, manifest)
+            # a later failure keeps this stage's record; the checksums follow the files written
+            manifest["outputs"] = survey.output_checksums(hashes)
+            write_json(survey.manifest_path, manifest)
+            records.append(StageRecord(name, entry["status"], seconds, output.notes, output.warnings,
+                                       output.skipped, list(output.degraded)))
+            verb = "skipped" if entry["status"] == "skipped" else "done"
+            say(f"{name}: {verb} in {seconds:.1f} s" + _loud(entry))
+        _mark_stale(manifest, later, stale_reason)
+        stale = [n for n in later if manifest["stages"].get(n, {}).get("status") == "stale"]
+        if stale:
+            say(f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
+                "run again without --until/--only to bring them back)")
+        checks, steps = _finish(survey, manifest, order[: last_index + 1], table, hashes)
+    return RunSummary(survey.root, records, checks, manifest, steps)
+
+
+def _finish(survey: Survey, manifest: dict, current, table: pd.DataFrame | None,
+            hashes: dict) -> tuple[list[dict], list[dict]]:
+    """Write readings.csv (the table of the last current stage), checks.csv (the checks and
+    skipped/degraded steps of the ``current`` stages) and the manifest with the outputs' checksums."""
+    if table is not None:
+        write_table_csv(survey.tables / "readings.csv", table)
+    checks, steps = [], []
+    for name in current:
+        entry = manifest["stages"].get(name, {})
+        checks.extend(entry.get("checks", []))
+        steps.extend(_step_rows(name, entry))
+    write_csv(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS))
+    manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    manifest["outputs"] = survey.output_checksums(hashes)
+    write_json(survey.manifest_path, manifest)
+    return checks, steps
+
+
+def _loud(entry: dict) -> str:
+    """' (SKIPPED: why)' / ' (DEGRADED: what)' for the progress line of a stage."""
+    text = ""
+    if entry.get("status") == "skipped" or entry.get("status_before_stale") == "skipped":
+        text += f" -- SKIPPED: {entry.get('summary', '')}"
+    if entry.get("degraded"):
+        text += f" -- DEGRADED: {'; '.join(entry['degraded'])}"
+    return text
 
 
 class _LazyGrids(dict):
@@ -347,8 +468,8 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
         row = check.as_row() if isinstance(check, Check) else dict(check)
         row["stage"] = name
         checks.append(row)
-    return {
-        "status": "done",
+    entry = {
+        "status": "skipped" if output.skipped else "done",
         "key": key,
         "seconds": round(seconds, 3),
         "finished": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -360,18 +481,15 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
         "warnings": output.warnings,
         "tables": sorted(output.tables),
         "grids": sorted(output.grids),
+        "degraded": list(output.degraded),
     }
+    if output.skipped:
+        entry["summary"] = output.skipped  # shown by the report for a stage that is not "done"
+    return entry
 
 
 def output_checksums(survey: Survey) -> dict[str, str]:
-    files = {}
-    for folder in (survey.tables, survey.grids, survey.maps):
-        for path in sorted(folder.glob("*")):
-            if path.is_file() and not path.name.startswith("."):
-                files[_rel(path, survey)] = sha256_file(path)
-    if survey.report_path.is_file():
-        files[_rel(survey.report_path, survey)] = sha256_file(survey.report_path)
-    return files
+    return survey.output_checksums()
 
 
 def check_survey(root: Path | str) -> dict:
@@ -386,11 +504,9 @@ def check_survey(root: Path | str) -> dict:
     output = ingest.run(ctx)
     for name in KIND_ORDER[config.kind]:
         stage = load_stage(name)
-        if stage.inputs is not None and name != "ingest" and stage.run is not None:
+        if stage.inputs is not None and name != "ingest":
             for path in stage.inputs(config, survey):
                 if not Path(path).is_file():
-                    from .errors import InputDataError
-
                     raise InputDataError("file not found", file=path, fix="check the file name in survey.toml")
     table = output.table
     info = {
@@ -408,7 +524,7 @@ def check_survey(root: Path | str) -> dict:
         "traverse_lines": output.metrics["traverse_lines"],
         "tie_lines": output.metrics["tie_lines"],
         "line_spacing_m": output.state.get("line_spacing_m"),
-        "stages": [f"{s.name}{'' if s.run else ' (not available yet)'}" for s in stages_for(config.kind)],
+        "stages": [s.name for s in stages_for(config.kind)],
     }
     return info
 

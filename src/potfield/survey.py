@@ -84,6 +84,53 @@ class Survey:
         for path in (self.tables, self.grids, self.maps, self.cache):
             path.mkdir(parents=True, exist_ok=True)
 
+    def rel(self, path) -> str:
+        """``path`` relative to the survey folder when inside it, else absolute."""
+        path = Path(path).resolve()
+        try:
+            return str(path.relative_to(self.root))
+        except ValueError:
+            return str(path)
+
+    def output_checksums(self, cache: dict | None = None) -> dict[str, str]:
+        """SHA-256 of every file in out/tables, out/grids, out/maps and of out/report.html.
+
+        ``cache`` (path -> (size, mtime_ns, digest)) lets the runner skip re-hashing files
+        that did not change since its last call.
+        """
+        paths = [p for folder in (self.tables, self.grids, self.maps) if folder.is_dir()
+                 for p in sorted(folder.glob("*")) if p.is_file() and not p.name.startswith(".")]
+        if self.report_path.is_file():
+            paths.append(self.report_path)
+        files = {}
+        for path in paths:
+            stat = path.stat()
+            known = cache.get(str(path)) if cache is not None else None
+            if known is not None and known[:2] == (stat.st_size, stat.st_mtime_ns):
+                digest = known[2]
+            else:
+                digest = sha256_file(path)
+                if cache is not None:
+                    cache[str(path)] = (stat.st_size, stat.st_mtime_ns, digest)
+            files[self.rel(path)] = digest
+        return files
+
+    def refresh_manifest_outputs(self) -> None:
+        """Rewrite manifest.json's output checksums from the files now in out/ (after
+        ``potfield report`` redrew the maps and the report). Call under :meth:`lock`."""
+        import json
+
+        from .io.atomic import write_json
+
+        if not self.manifest_path.is_file():
+            return
+        try:
+            manifest = json.loads(self.manifest_path.read_text())
+        except (OSError, json.JSONDecodeError):
+            return
+        manifest["outputs"] = self.output_checksums()
+        write_json(self.manifest_path, manifest)
+
     # --- config and inputs -------------------------------------------------------------------
     def load_config(self) -> SurveyConfig:
         if not self.root.is_dir():

@@ -79,6 +79,7 @@ def test_no_base_passes_through(tmp_path):
     out = STAGE.run(context(tmp_path, {}))
     assert out.table is None
     assert out.notes == ["no base station given: diurnal correction not applied"]
+    assert out.skipped == out.notes[0]  # recorded as a skipped step by the runner
     assert STAGE.name == "diurnal" and STAGE.kinds == ("magnetic",) and STAGE.sections == ("diurnal",)
 
 

@@ -9,11 +9,11 @@ from __future__ import annotations
 
 import gzip
 from pathlib import Path
+from typing import Protocol
 
 import numpy as np
 import pandas as pd
 
-from ..config import COLUMN_QUANTITY, UNIT_FACTORS, TimeSection
 from ..errors import InputDataError, format_rows
 
 #: Columns that stay text.
@@ -134,12 +134,17 @@ def to_numeric(frame: pd.DataFrame, name: str, path: Path) -> np.ndarray:
     return values
 
 
-def convert_units(values: np.ndarray, name: str, units: dict[str, str]) -> np.ndarray:
-    """Multiply by the factor that takes the declared unit to potfield's unit for ``name``."""
-    quantity = COLUMN_QUANTITY.get(name)
-    if quantity is None or name not in units:
-        return values
-    return values * UNIT_FACTORS[quantity][units[name]]
+class TimeSpec(Protocol):
+    """How a file gives its times (e.g. potfield.config.TimeSection): plain values only."""
+
+    format: str
+    date: str | None
+
+
+def convert_units(values: np.ndarray, factor: float) -> np.ndarray:
+    """``values`` times ``factor``, the factor that takes the file's unit to potfield's
+    (:func:`potfield.config.unit_factor`); unchanged when the factor is 1."""
+    return values if factor == 1.0 else values * factor
 
 
 def _parse_date(text: pd.Series) -> pd.Series:
@@ -150,7 +155,7 @@ def _parse_date(text: pd.Series) -> pd.Series:
     return pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
 
 
-def parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
+def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
     """Readings' times as datetime64[ns] (UTC, timezone-naive).
 
     Formats: ISO 8601 (``time`` column), ``date_seconds`` (``date`` column or ``spec.date`` plus

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ..io.atomic import write_text
+from ..kinds import KIND_ORDER
 from . import maps
 
 CAUTION = ("These results need review by a qualified geophysicist before they are used for any "
@@ -227,8 +228,6 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict]) -> st
     parts.append("<h2 id='failed-checks'>Failed spec checks</h2>")
     cols = ["stage", "check", "value", "sense", "tolerance", "unit", "result", "source", "detail"]
     parts.append(_table(failed, cols) if failed else "<p>All spec checks passed.</p>")
-    from ..pipeline import KIND_ORDER
-
     ordered = [n for n in KIND_ORDER[config.kind] if n in stages]
     for name in ordered:
         entry = stages[name]
@@ -285,7 +284,7 @@ def build_report(survey, config, manifest: dict, table: pd.DataFrame | None,
 def rebuild_report(root: Path) -> Path:
     """``potfield report DIR``: rebuild maps and report.html from out/ without recomputing."""
     from ..errors import StageError
-    from ..pipeline import KIND_ORDER, read_cache_table
+    from ..io.tables import read_cache_table
     from ..qc.specs import load_spec
     from ..survey import Survey
 
@@ -305,4 +304,5 @@ def rebuild_report(root: Path) -> Path:
     grid_paths = {p.stem: p for p in survey.grids.glob("*.nc")}
     with survey.lock():
         path, _ = build_report(survey, config, manifest, table, grid_paths)
+        survey.refresh_manifest_outputs()  # the manifest's checksums follow the new report and maps
     return path

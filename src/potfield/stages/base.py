@@ -103,6 +103,73 @@ class StageOutput:
     #: Human-readable notes and warnings for the log and the report.
     notes: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    #: Why the stage's step was not applied (e.g. "no base station given: no diurnal
+    #: correction"); the runner records the stage as "skipped", loudly. None: it was applied.
+    skipped: str | None = None
+    #: Parts of the step that were not applied or only partly (e.g. lines left unlevelled); the
+    #: runner records them as "degraded" in the manifest and checks.csv.
+    degraded: list[str] = field(default_factory=list)
+
+
+def _per_kind(value, kind: str) -> tuple[str, ...]:
+    """A contract field for one survey kind: a tuple, or a dict kind -> tuple ("*": any kind)."""
+    if isinstance(value, dict):
+        return tuple(value.get(kind, value.get("*", ())))
+    return tuple(value)
+
+
+@dataclass(frozen=True)
+class Contract:
+    """What a stage needs from earlier stages and what it hands on; the runner checks both.
+
+    Column fields are a tuple of names or a dict survey kind -> tuple (key ``"*"``: every other
+    kind). ``requires_columns`` must be in the table the stage receives (the runner says which
+    earlier stage provides a missing one). ``provides_columns`` are added whenever the stage
+    returns a table; ``optional_columns`` may be added (shell patterns such as ``flag_*`` are
+    allowed). A stage that adds a column it did not declare, leaves out one it promised or drops
+    a column it received is an internal bug. ``requires_state`` names earlier stages whose
+    records (``ctx.state[name]``) the stage reads; ``provides_grids`` / ``provides_tables`` are
+    the grids and tables it may write (again possibly per kind). The runner records the contract
+    in manifest.json.
+    """
+
+    requires_columns: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+    provides_columns: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+    optional_columns: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+    requires_state: tuple[str, ...] = ()
+    provides_grids: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+    provides_tables: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+
+    def requires(self, kind: str) -> tuple[str, ...]:
+        return _per_kind(self.requires_columns, kind)
+
+    def provides(self, kind: str) -> tuple[str, ...]:
+        return _per_kind(self.provides_columns, kind)
+
+    def optional(self, kind: str) -> tuple[str, ...]:
+        return _per_kind(self.optional_columns, kind)
+
+    def grids(self, kind: str) -> tuple[str, ...]:
+        return _per_kind(self.provides_grids, kind)
+
+    def tables(self, kind: str) -> tuple[str, ...]:
+        return _per_kind(self.provides_tables, kind)
+
+    def may_add(self, kind: str, column: str) -> bool:
+        """True when ``column`` is one the stage declared (provides or optional)."""
+        from fnmatch import fnmatchcase
+
+        return column in self.provides(kind) or any(
+            fnmatchcase(column, pattern) for pattern in self.optional(kind))
+
+    def as_record(self, kind: str) -> dict[str, list[str]]:
+        """The contract for one survey kind, JSON-able (for manifest.json)."""
+        return {"requires_columns": list(self.requires(kind)),
+                "provides_columns": list(self.provides(kind)),
+                "optional_columns": list(self.optional(kind)),
+                "requires_state": list(self.requires_state),
+                "provides_grids": list(self.grids(kind)),
+                "provides_tables": list(self.tables(kind))}
 
 
 @dataclass(frozen=True)
@@ -111,23 +178,15 @@ class Stage:
 
     name: str
     summary: str
-    #: The function; None means "not available yet" and the runner says so instead of faking it.
-    run: Callable[[StageContext], StageOutput] | None
+    run: Callable[[StageContext], StageOutput]
     #: survey.toml sections this stage reads (its cache key hashes them).
     sections: tuple[str, ...] = ()
     #: Extra input files this stage reads (bases, DEM, calibration): f(config, survey) -> paths.
     inputs: Callable[["SurveyConfig", "Survey"], list[Path]] | None = None
     #: Survey kinds for which the stage does something; others pass through with a note.
     kinds: tuple[str, ...] = ("magnetic", "gravity", "observatory")
-
-
-def passthrough(reason: str) -> Callable[[StageContext], StageOutput]:
-    """A stage body that does nothing and says why (e.g. no tie lines in a ground survey)."""
-
-    def run(ctx: StageContext) -> StageOutput:
-        return StageOutput(notes=[reason])
-
-    return run
+    #: What the stage requires and provides (checked by the runner).
+    contract: Contract = field(default_factory=Contract)
 
 
 def usable(table: pd.DataFrame) -> np.ndarray:
@@ -139,9 +198,45 @@ def usable(table: pd.DataFrame) -> np.ndarray:
     return ~table[flags].to_numpy(dtype=bool).any(axis=1)
 
 
-def best_value_column(table: pd.DataFrame, candidates=("anomaly_levelled", "anomaly")) -> str:
-    """The most processed value column present (levelled anomaly, else anomaly)."""
+#: The reduced field the reference stage makes, per survey kind. It is also the name of the grid
+#: stage's main grid (the one derive and separate work on). The one definition of both.
+ANOMALY_COLUMN = {"magnetic": "anomaly", "gravity": "bouguer_anomaly"}
+#: The levelled value (level stage), for both kinds.
+LEVELLED_COLUMN = "anomaly_levelled"
+
+
+def main_grid_names(kind: str) -> tuple[str, ...]:
+    """Names of the grid stage's main grid for a survey kind, in order of preference."""
+    first = ANOMALY_COLUMN.get(kind, "anomaly")
+    return (first,) + tuple(n for n in ANOMALY_COLUMN.values() if n != first)
+
+
+def value_column(table: pd.DataFrame, kind: str, state: dict | None = None, *,
+                 levelled: bool = True) -> str | None:
+    """The value column a stage works on; the one place that chooses it.
+
+    The latest earlier stage record ``state[stage]["value_column"]`` naming a column of the
+    table wins (reference records its anomaly, level ``anomaly_levelled``, grid the column it
+    gridded). Without a record: ``anomaly_levelled`` (when ``levelled``), then the kind's
+    anomaly (``ANOMALY_COLUMN``), then the other kind's. None when the table has none of them.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        The readings table the stage received.
+    kind : str
+        Survey kind.
+    state : dict, optional
+        ``ctx.state``: records of earlier stages, in run order.
+    levelled : bool
+        False for the level stage itself (it levels the reference stage's anomaly).
+    """
+    for record in reversed(list((state or {}).values())):
+        name = record.get("value_column") if isinstance(record, dict) else None
+        if name and name in table.columns and (levelled or name != LEVELLED_COLUMN):
+            return name
+    candidates = ((LEVELLED_COLUMN,) if levelled else ()) + main_grid_names(kind)
     for name in candidates:
         if name in table.columns:
             return name
-    raise KeyError(f"none of {candidates} in the readings table")
+    return None

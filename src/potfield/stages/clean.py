@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..fields.lines.noise import fourth_difference, line_noise, robust_spikes
-from .base import Check, Stage, StageContext, StageOutput
+from .base import Check, Contract, Stage, StageContext, StageOutput
 
 #: The measured value(s) cleaned per survey kind.
 VALUE_COLUMNS = {
@@ -37,17 +37,19 @@ def run(ctx: StageContext) -> StageOutput:
     cfg = ctx.config.clean
     table = ctx.table.copy()
     groups = pd.factorize(table["line"])[0]
-    seconds = table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
+    timed = "time" in table  # station lists may have no time: no time-based flags then
+    seconds = (table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9 if timed
+               else np.arange(len(table), dtype=float))
     metrics: dict = {}
     checks: list[Check] = []
     notes: list[str] = []
 
     # Duplicated timestamps within a line (the second and later copies are flagged).
     key = pd.DataFrame({"g": groups, "t": seconds})
-    table["flag_duplicate_time"] = key.duplicated(keep="first").to_numpy()
+    table["flag_duplicate_time"] = key.duplicated(keep="first").to_numpy() if timed else False
 
     # Gaps in time and distance.
-    if ctx.config.kind != "gravity":
+    if ctx.config.kind != "gravity" and timed:
         table["flag_time_gap"], time_limit = _gap_flags(seconds, groups, cfg.max_time_gap_s)
         metrics["time_gap_limit_s"] = time_limit
         if ctx.config.kind == "magnetic":
@@ -93,7 +95,7 @@ def run(ctx: StageContext) -> StageOutput:
     # Per-line table.
     lines = table.groupby(groups, sort=False).agg(
         line=("line", "first"), line_type=("line_type", "first"), readings=("line", "size"),
-        start=("time", "first"), end=("time", "last"))
+        **({"start": ("time", "first"), "end": ("time", "last")} if timed else {}))
     for c in flags:
         lines[c.replace("flag_", "flagged_")] = table.groupby(groups, sort=False)[c].sum().to_numpy()
     for envelope in noise_tables:
@@ -125,4 +127,13 @@ STAGE = Stage(
     "out of band; per-line fourth-difference noise",
     run=run,
     sections=("clean",),
+    contract=Contract(
+        requires_columns=("line", "line_type"),
+        provides_columns={"gravity": ("flag_duplicate_time",),
+                          "*": ("flag_duplicate_time", "flag_spike")},
+        optional_columns=("flag_time_gap", "flag_distance_gap", "flag_height", "fourth_difference",
+                          "fourth_difference_*"),
+        requires_state=("ingest",),
+        provides_tables=("clean_lines",),
+    ),
 )

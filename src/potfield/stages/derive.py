@@ -16,18 +16,16 @@ from ..errors import CRSError, InputDataError, StageError
 from ..fields.errors import FieldError, NotEnoughData
 from ..fields.harmonic import transforms as tf
 from ._boundary import Rule, translate
-from .base import Stage, StageContext, StageOutput
+from .base import ANOMALY_COLUMN, Contract, Stage, StageContext, StageOutput, main_grid_names
 from .gridmodel import grid_height, load_grid_model
 
-#: Main-grid names by survey kind, in order of preference.
 #: How masked cells were filled (potfield.fields.harmonic.transforms.fill_masked "fill" attribute).
 FILL_TEXT = {"none": "none", "smooth fill": "smooth fill", "filler": "equivalent-source prediction",
              "filler + smooth fill": "equivalent-source prediction + smooth fill"}
-MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
 
 
 def _main_grid(ctx: StageContext):
-    order = MAIN_GRIDS.get(ctx.config.kind, ("anomaly", "bouguer_anomaly"))
+    order = main_grid_names(ctx.config.kind)
     for name in order:
         if name in ctx.grids:
             return name, ctx.grids[name]
@@ -204,4 +202,6 @@ STAGE = Stage(
     run=_run,
     sections=("derive", "grid"),
     kinds=("magnetic", "gravity"),
+    contract=Contract(requires_state=("grid",),
+                      provides_grids=tuple(f"{name}_*" for name in ANOMALY_COLUMN.values())),
 )

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from ..config import unit_factor
 from ..errors import ConfigError, InputDataError
 from ..fields.errors import FieldError
 from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
@@ -20,7 +21,7 @@ from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, 
                               station_difference)
 from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
 from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
-from .base import Check, Stage, StageContext, StageOutput, usable
+from .base import Check, Contract, Stage, StageContext, StageOutput, usable
 
 #: Most rows of the ``base_record`` table (all bases together), for plots.
 BASE_RECORD_ROWS = 20_000
@@ -91,7 +92,8 @@ def read_base(base, survey, index: int) -> BaseRecord:
         frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
                                skip_rows=base.skip_rows, missing_values=base.missing_values)
         times = parse_time(frame, base.time, path)
-        value = convert_units(to_numeric(frame, "total_field", path), "total_field", base.units)
+        value = convert_units(to_numeric(frame, "total_field", path),
+                              unit_factor("total_field", base.units))
     if base.time_offset_s:
         times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
     order = np.argsort(times, kind="stable")
@@ -186,16 +188,23 @@ def run(ctx: StageContext) -> StageOutput:
     """
     cfg = ctx.config.diurnal
     if not cfg.enabled:
-        return StageOutput(notes=["diurnal correction disabled ([diurnal] enabled = false)"])
+        why = "diurnal correction disabled ([diurnal] enabled = false)"
+        return StageOutput(notes=[why], skipped=why)
+    if "time" not in ctx.table.columns or ctx.table["time"].isna().all():
+        why = ("the readings have no time (no [input.columns] time): no diurnal correction; "
+               "the external field variation stays in the anomaly")
+        return StageOutput(notes=[why], skipped=why)
     if not cfg.bases:
         if cfg.remote_reference:
             return _remote_reference(ctx)
-        return StageOutput(notes=["no base station given: diurnal correction not applied"])
+        why = "no base station given: diurnal correction not applied"
+        return StageOutput(notes=[why], skipped=why)
     table = ctx.table.copy()
     reading_time = table["time"].to_numpy(dtype="datetime64[ns]")
     span = (reading_time.min(), reading_time.max())
     notes: list[str] = []
     warnings: list[str] = []
+    degraded: list[str] = []
     checks: list[Check] = []
     metrics: dict = {"bases": len(cfg.bases)}
 
@@ -227,6 +236,7 @@ def run(ctx: StageContext) -> StageOutput:
         if outside:
             warnings.append(f"{outside:,} readings lie outside the record of base '{b.name}' "
                             f"({_span_text(b.time[0], b.time[-1])})")
+            degraded.append(warnings[-1])
         metrics[f"base_{b.name}"] = {
             "samples": int(b.time.size), "spikes": int(c.spike.sum()), "missing": int(c.missing.sum()),
             "gaps": int(len(c.gaps)), "datum_nT": float(d), "start": str(b.time[0]), "end": str(b.time[-1]),
@@ -331,7 +341,7 @@ def run(ctx: StageContext) -> StageOutput:
     }
     return StageOutput(table=table, metrics=metrics, state=state,
                        tables={"diurnal_lines": lines, "base_record": _base_record_table(bases, cleaned)},
-                       checks=checks, notes=notes, warnings=warnings)
+                       checks=checks, notes=notes, warnings=warnings, degraded=degraded)
 
 
 def _remote_reference(ctx: StageContext) -> StageOutput:
@@ -370,7 +380,9 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
     if not warnings:
         warnings.append("Diurnal correction from a remote reference (observatory network model), "
                         "not a local base: check the levelling misclosures before relying on it.")
-    return StageOutput(table=table, warnings=warnings,
+    degraded = ([f"{int(missing.sum()):,} readings outside the remote reference's times: no "
+                 "diurnal correction there (flag_base_gap)"] if missing.any() else [])
+    return StageOutput(table=table, warnings=warnings, degraded=degraded,
                        metrics={"method": "remote reference", "datum_nT": datum,
                                 "readings_without_reference": int(missing.sum())},
                        notes=[f"diurnal correction from {cfg.remote_reference} (remote reference)"])
@@ -390,4 +402,9 @@ STAGE = Stage(
     sections=("diurnal",),
     inputs=_inputs,
     kinds=("magnetic",),
+    contract=Contract(
+        provides_columns=("diurnal", "flag_base_gap"),
+        requires_state=("ingest",),
+        provides_tables=("diurnal_lines", "base_record"),
+    ),
 )

@@ -41,7 +41,7 @@ from ..errors import ConfigError, InputDataError, ModelRangeError, StageError, f
 from ..fields.errors import BadParameter, FieldError
 from ..fields.gravity import network as gravnet
 from ._boundary import Rule, translate
-from .base import Check, Stage, StageContext, StageOutput, usable
+from .base import Check, Contract, Stage, StageContext, StageOutput, usable
 
 #: Default spec values (common practice for ground gravity loops with spring gravimeters).
 DRIFT_RATE_DEFAULT = 0.05  # mGal/h
@@ -229,7 +229,7 @@ def _tare_times(ctx: StageContext) -> list[np.datetime64]:
 # ------------------------------------------------------------------------------------------------
 # loop methods
 # ------------------------------------------------------------------------------------------------
-def _loop_method(method, time, value, stations, loops, use, bases, warnings):
+def _loop_method(method, time, value, stations, loops, use, bases, warnings, degraded):
     """Drift per loop from base repeats, then tie every loop to bases or tied stations."""
     n = value.size
     codes, labels = pd.factorize(pd.Series(loops), sort=False)
@@ -246,6 +246,7 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings):
         counts = pd.Series(stations[sel]).value_counts(sort=False)
         if counts.empty or counts.max() < 2:
             warnings.append(f"loop {labels[k]}: no station occupied twice, drift not corrected")
+            degraded.append(warnings[-1])
             continue
         best = counts.index[int(np.argmax(counts.to_numpy()))]  # first of the most occupied
         is_base |= sel & (stations == best)
@@ -310,6 +311,10 @@ def run(ctx: StageContext) -> StageOutput:
     cfg = ctx.config.drift
     if ctx.table is None:
         raise StageError("the drift stage needs the readings table", fix="run the ingest stage first")
+    if not cfg.enabled:
+        why = ("drift stage disabled ([drift] enabled = false): the readings are taken as final "
+               "observed gravity (mGal); no calibration, tide, drift or base ties applied here")
+        return StageOutput(notes=[why], skipped=why)
     src = ctx.table
     for col in ("time", "reading"):
         if col not in src:
@@ -318,6 +323,7 @@ def run(ctx: StageContext) -> StageOutput:
     table = src.copy()
     notes: list[str] = []
     warnings: list[str] = []
+    degraded: list[str] = []
     n = len(table)
     time = table["time"].to_numpy().astype("datetime64[ns]")
     stations = _station_ids(table)
@@ -367,7 +373,7 @@ def run(ctx: StageContext) -> StageOutput:
         if any(sigma is not None for _, sigma in bases.values()):
             notes.append("base sigma_mgal is used only by method = 'network'; bases held fixed")
         drift, offset, loop_table, sigma0, net = _loop_method(
-            cfg.method, time, value, stations, loops, use, bases, warnings)
+            cfg.method, time, value, stations, loops, use, bases, warnings, degraded)
     table["drift"] = drift
     table["loop_offset"] = offset
     gravity = value - drift - offset
@@ -417,6 +423,7 @@ def run(ctx: StageContext) -> StageOutput:
                                     rate_src, detail=f"largest |drift rate|: loop {loop_table['loop'].iloc[worst]}"))
     else:
         warnings.append("no loop has a drift rate: drift rate check not made")
+        degraded.append(warnings[-1])
     if len(repeats):
         worst = int(np.argmax(repeats["range_mgal"].to_numpy()))
         checks.append(Check.at_most("gravity_repeat_difference", repeats["range_mgal"].iloc[worst],
@@ -455,7 +462,7 @@ def run(ctx: StageContext) -> StageOutput:
     notes.append(f"{cfg.method} drift over {len(loop_table)} loop(s), {len(st)} station(s), "
                  f"tied to {len(bases)} base(s)")
     return StageOutput(table=table, metrics=metrics, state=state, tables=tables, checks=checks,
-                       notes=notes, warnings=warnings)
+                       notes=notes, warnings=warnings, degraded=degraded)
 
 
 def _inputs(config, survey) -> list[Path]:
@@ -471,4 +478,11 @@ STAGE = Stage(
     sections=("drift",),
     inputs=_inputs,
     kinds=("gravity",),
+    contract=Contract(
+        provides_columns=("reading_mgal", "instrument_height_correction", "tide", "drift",
+                          "loop_offset", "gravity", "drift_residual"),
+        optional_columns=("loop", "flag_instrument_height"),
+        requires_state=("ingest",),
+        provides_tables=("loops", "stations", "repeats", "tares"),
+    ),
 )

@@ -10,7 +10,6 @@ again. Methods: Dampney (1969) Geophysics 34:39; Cordell (1992) Geophysics 57:62
 
 from __future__ import annotations
 
-import importlib
 import math
 
 import numpy as np
@@ -19,20 +18,19 @@ import pandas as pd
 from ..errors import ConfigError, StageError
 from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
-from .base import Stage, StageContext, StageOutput, usable
+from .base import ANOMALY_COLUMN, Contract, Stage, StageContext, StageOutput, usable, value_column
+from .microlevel import micro_level_table
 
-#: Value columns in order of preference.
-VALUE_COLUMNS = ("anomaly_levelled", "anomaly", "bouguer_anomaly")
 #: Fewest block-reduced data for a blocked cross-validation; fewer use the middle of the search.
 MIN_CV_DATA = 40
 
 
-def _value_column(table: pd.DataFrame) -> str:
-    for name in VALUE_COLUMNS:
-        if name in table.columns:
-            return name
-    raise StageError(f"the readings table has none of the columns {', '.join(VALUE_COLUMNS)}",
-                     key="grid", fix="run the reference (and level) stages before the grid stage")
+def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
+    column = value_column(table, ctx.config.kind, ctx.state)
+    if column is None:
+        raise StageError("the readings table has no anomaly column to grid", key="grid",
+                         fix="run the reference (and level) stages before the grid stage")
+    return column
 
 
 def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing):
@@ -188,7 +186,7 @@ def run(ctx: StageContext) -> StageOutput:
     if table is None or len(table) == 0:
         raise StageError("no readings to grid", key="grid", fix="run the ingest stage first")
     cfg = ctx.config.grid
-    column = _value_column(table)
+    column = _value_column(ctx, table)
     for name in ("easting", "northing", "height"):
         if name not in table.columns:
             raise StageError(f"the readings table has no '{name}' column", key="grid",
@@ -218,7 +216,7 @@ def run(ctx: StageContext) -> StageOutput:
     mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
         2.0 * (line_spacing if line_spacing else 4.0 * spacing)
     gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
-    name = "bouguer_anomaly" if gravity else "anomaly"
+    name = ANOMALY_COLUMN["gravity" if gravity else "magnetic"]  # the main grid
     units = "mGal" if gravity else "nT"
     long_name = "Bouguer anomaly" if column == "bouguer_anomaly" else (
         "gravity anomaly" if gravity else "total-field magnetic anomaly")
@@ -239,16 +237,10 @@ def run(ctx: StageContext) -> StageOutput:
     result = table.copy()
     micro_note = None
     if ctx.config.level.micro_levelling:
-        micro_level_table = None
-        for module in ("potfield.fields.lines.leveling", "potfield.stages.level"):
-            try:
-                micro_level_table = getattr(importlib.import_module(module), "micro_level_table")
-                break
-            except (ImportError, AttributeError):
-                continue
-        if micro_level_table is None or not line_spacing:
-            micro_note = ("micro-levelling skipped: " + ("no line spacing" if micro_level_table
-                                                          else "micro_level_table not available"))
+        if not line_spacing:
+            micro_note = "micro-levelling skipped: no line spacing"
+            out.degraded.append("micro-levelling asked for ([level] micro_levelling) but the "
+                                "survey has no line spacing: not applied")
         else:
             correction = np.asarray(micro_level_table(table, grid, line_spacing, ctx.config.level),
                                     dtype=float)
@@ -281,6 +273,7 @@ def run(ctx: StageContext) -> StageOutput:
     out.tables["grid_cv"] = scores
     out.state = {
         "column": column,
+        "value_column": column,
         "grid": name,
         "method": model.method,
         "depth_type": cfg.depth_type,
@@ -364,7 +357,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     out.grids[name] = grid
     out.tables["grid_cv"] = scores
     out.tables["grid_tiles"] = result.tiles
-    out.state = {"column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
+    out.state = {"column": column, "value_column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
                  "damping": float(best["damping"]), "block_m": block, "spacing_m": spacing,
                  "height": float(height), "drape": False, "region": list(region),
                  "mask_distance_m": float(mask_distance), "model_path": None, "units": units,
@@ -388,4 +381,12 @@ STAGE = Stage(
     sections=("grid", "level"),
     inputs=None,
     kinds=("magnetic", "gravity"),
+    contract=Contract(
+        requires_columns={k: ("easting", "northing", "height", c) for k, c in ANOMALY_COLUMN.items()},
+        provides_columns=("grid_residual",),
+        optional_columns=("micro_level_correction", "*_micro"),
+        requires_state=("ingest",),
+        provides_grids={k: (c,) for k, c in ANOMALY_COLUMN.items()},
+        provides_tables=("grid_cv", "grid_tiles"),
+    ),
 )

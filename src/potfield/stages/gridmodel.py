@@ -20,7 +20,7 @@ def grid_height(ctx: StageContext, grid):
     """Height (m) of a grid's surface.
 
     Looked up in order: an ``upward`` coordinate of the grid, the grid stage's record
-    (``height``, ``height_m`` or ``grid_height``), the grid's ``height`` attribute, a numeric
+    ``height``, the grid's ``height`` attribute, a numeric
     ``[grid] height``.
 
     Parameters
@@ -40,11 +40,9 @@ def grid_height(ctx: StageContext, grid):
         upward = grid["upward"]
         dims = [d for d in ("northing", "easting") if d in upward.dims]
         return np.asarray(upward.transpose(*dims).values, dtype=float)
-    record = ctx.state.get("grid", {})
-    for key in ("height", "height_m", "grid_height"):
-        value = record.get(key)
-        if isinstance(value, (int, float)) and math.isfinite(value):
-            return float(value)
+    value = ctx.state.get("grid", {}).get("height")
+    if isinstance(value, (int, float)) and math.isfinite(value):
+        return float(value)
     for value in (grid.attrs.get("height"), ctx.config.grid.height):
         if isinstance(value, (int, float, np.floating)) and math.isfinite(float(value)):
             return float(value)

@@ -15,10 +15,10 @@ import numpy as np
 import pandas as pd
 import pyproj
 
-from ..config import SurveyConfig
+from ..config import SurveyConfig, unit_factor
 from ..errors import CRSError, InputDataError, format_rows
 from ..io.delimited import TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
-from .base import Check, Stage, StageContext, StageOutput
+from .base import Check, Contract, Stage, StageContext, StageOutput
 
 NUMERIC_COLUMNS = ("longitude", "latitude", "easting", "northing", "height", "total_field",
                    "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation")
@@ -81,14 +81,18 @@ def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
         frame = read_delimited(path, columns=columns, delimiter=config.input.delimiter,
                                skip_rows=config.input.skip_rows,
                                missing_values=config.input.missing_values)
-        out = pd.DataFrame({"time": parse_time(frame, config.input.time, path)})
+        if "time" in columns:
+            out = pd.DataFrame({"time": parse_time(frame, config.input.time, path)})
+        else:  # a survey without time (station lists): no time column, no diurnal correction
+            out = pd.DataFrame(index=pd.RangeIndex(len(frame)))
         for name in columns:
             if name in ("time", "date"):
                 continue
             if name in TEXT_COLUMNS:
                 out[name] = frame[name].astype("string").str.strip().astype(object).to_numpy()
             else:
-                out[name] = convert_units(to_numeric(frame, name, path), name, config.input.units)
+                out[name] = convert_units(to_numeric(frame, name, path),
+                                          unit_factor(name, config.input.units))
         out["source_file"] = frame["source_file"].to_numpy()
         out["source_row"] = frame["source_row"].to_numpy()
         frames.append(out)
@@ -157,7 +161,12 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
 def assign_lines(table: pd.DataFrame, config: SurveyConfig) -> pd.DataFrame:
     """Give every reading a line name and a line type (traverse/tie)."""
     if "line" not in table:
-        if config.kind == "observatory" and "station" in table:
+        if "time" not in table and "loop" not in table and not (
+                config.kind == "observatory" and "station" in table):
+            # no time to split lines by: one line per input file
+            table["line"] = pd.factorize(table["source_file"])[0].astype(str)
+            table["line"] = np.char.add("L", (table["line"].astype(int) + 1).astype(str)).astype(object)
+        elif config.kind == "observatory" and "station" in table:
             table["line"] = table["station"]
         elif "loop" in table:
             table["line"] = table["loop"].astype(str)
@@ -247,7 +256,8 @@ def line_geometry(table: pd.DataFrame) -> dict:
 
 
 def _sort(table: pd.DataFrame) -> pd.DataFrame:
-    order = np.lexsort((table["time"].to_numpy(), pd.factorize(table["line"], sort=True)[0]))
+    within = table["time"].to_numpy() if "time" in table else np.arange(len(table))
+    order = np.lexsort((within, pd.factorize(table["line"], sort=True)[0]))
     return table.iloc[order].reset_index(drop=True)
 
 
@@ -276,7 +286,7 @@ def run(ctx: StageContext) -> StageOutput:
     ordered += [c for c in table.columns if c not in ordered and c not in ("source_file", "source_row")]
     table = table[ordered + ["source_file", "source_row"]]
     geometry = line_geometry(table)
-    t = table["time"]
+    t = table["time"] if "time" in table else None
     state = {
         "crs": out_crs.to_wkt(),
         "crs_name": out_crs.name,
@@ -284,7 +294,7 @@ def run(ctx: StageContext) -> StageOutput:
         "centroid": [float(table["longitude"].mean()), float(table["latitude"].mean())],
         "region": [float(table["easting"].min()), float(table["easting"].max()),
                    float(table["northing"].min()), float(table["northing"].max())],
-        "time_span": [str(t.min()), str(t.max())],
+        "time_span": [str(t.min()), str(t.max())] if t is not None else [None, None],
         **geometry,
     }
     lines = table.groupby("line_type")["line"].nunique().to_dict()
@@ -322,4 +332,10 @@ STAGE = Stage(
     run=run,
     sections=("lines",),
     inputs=_inputs,
+    # ingest makes the table: besides these, every column mapped in [input.columns] is its own
+    contract=Contract(
+        provides_columns=("longitude", "latitude", "easting", "northing", "line", "line_type",
+                          "distance", "source_file", "source_row"),
+        optional_columns=("*",),
+    ),
 )

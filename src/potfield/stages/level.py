@@ -22,21 +22,20 @@ import pandas as pd
 
 from ..errors import StageError
 from ..fields.lines import leveling
-from .base import Check, Stage, StageContext, StageOutput, usable
+from .base import (ANOMALY_COLUMN, LEVELLED_COLUMN, Check, Contract, Stage, StageContext, StageOutput,
+                   main_grid_names, usable, value_column)
+from .microlevel import micro_level_table  # noqa: F401  (re-exported: the grid stage uses it)
 
-#: Value columns that can be levelled, in order of preference.
-VALUE_COLUMNS = ("anomaly", "bouguer_anomaly")
-
-
-def _value_column(table: pd.DataFrame) -> str:
-    for name in VALUE_COLUMNS:
-        if name in table.columns:
-            return name
-    raise StageError(
-        f"the readings table has none of the columns {', '.join(VALUE_COLUMNS)} to level",
-        key="level",
-        fix="run the reference stage before level (potfield run SURVEY --from reference)",
-    )
+def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
+    """The reference stage's anomaly (:func:`potfield.stages.base.value_column`)."""
+    column = value_column(table, ctx.config.kind, ctx.state, levelled=False)
+    if column is None:
+        raise StageError(
+            f"the readings table has none of the columns {', '.join(main_grid_names(ctx.config.kind))} "
+            "to level", key="level",
+            fix="run the reference stage before level (potfield run SURVEY --from reference)",
+        )
+    return column
 
 
 def _unit(config) -> str:
@@ -46,9 +45,10 @@ def _unit(config) -> str:
 def _passthrough(table: pd.DataFrame, value: str, note: str, metrics=None) -> StageOutput:
     table = table.copy()
     table["level_correction"] = 0.0
-    table["anomaly_levelled"] = table[value].to_numpy(dtype=float)
-    return StageOutput(table=table, notes=[note], metrics=dict(metrics or {}),
-                       state={"value_column": value, "levelled": False})
+    table[LEVELLED_COLUMN] = table[value].to_numpy(dtype=float)
+    return StageOutput(table=table, notes=[note], metrics=dict(metrics or {}), skipped=note,
+                       state={"value_column": LEVELLED_COLUMN, "levelled_column": value,
+                              "levelled": False})
 
 
 def _rms(values) -> float:
@@ -63,7 +63,7 @@ def run(ctx: StageContext) -> StageOutput:
         raise StageError("no readings table", key="level", fix="run the ingest stage first")
     cfg = ctx.config.level
     table = ctx.table
-    value = _value_column(table)
+    value = _value_column(ctx, table)
     note_gravity = (" (gravity: anomaly_levelled holds the levelled bouguer_anomaly)"
                     if value == "bouguer_anomaly" else "")
     if not cfg.enabled:
@@ -143,10 +143,17 @@ def run(ctx: StageContext) -> StageOutput:
                 if row.warning]
     if len(warnings) > 10:
         warnings = warnings[:10] + [f"... and {len(warnings) - 10} more (see tables/lines.csv)"]
+    degraded = []
     if not used.any():
         warnings.insert(0, f"none of the {len(cx)} crossovers is usable (all flagged or above "
                         f"max_height_difference_m = {cfg.max_height_difference_m} m): lines "
                         "keep their level")
+        degraded.append(warnings[0])
+    elif len(adjust.unlevelled):
+        names = ", ".join(map(str, list(adjust.unlevelled)[:10]))
+        more = f" and {len(adjust.unlevelled) - 10} more" if len(adjust.unlevelled) > 10 else ""
+        degraded.append(f"{len(adjust.unlevelled)} traverse line(s) left unlevelled (fewer than "
+                        f"min_crossovers = {cfg.min_crossovers} usable crossovers): {names}{more}")
     if ctx.config.kind == "gravity":
         tol, source = ctx.tolerance("crossover_rms_mGal", 1.0, "common practice (from memory)")
     else:
@@ -170,7 +177,8 @@ def run(ctx: StageContext) -> StageOutput:
              f"{cfg.traverse_model} per traverse line; datum: mean tie correction 0)"
              f"{note_gravity}"]
     state = {
-        "value_column": value,
+        "value_column": LEVELLED_COLUMN,
+        "levelled_column": value,
         "levelled": True,
         "crossover_rms_before": rms_before,
         "crossover_rms_after": rms_after,
@@ -179,7 +187,7 @@ def run(ctx: StageContext) -> StageOutput:
     }
     return StageOutput(table=out, metrics=metrics, state=state,
                        tables={"crossovers": cx, "lines": line_table}, checks=checks,
-                       notes=notes, warnings=warnings)
+                       notes=notes, warnings=warnings, degraded=degraded)
 
 
 def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers):
@@ -222,65 +230,6 @@ def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_cr
     return pd.DataFrame(rows)
 
 
-def micro_level_table(table: pd.DataFrame, grid, line_spacing: float, config_level) -> np.ndarray:
-    """Per-reading micro-levelling corrections (Minty 1991), for the grid stage.
-
-    Call this with the grid made from the levelled readings when ``[level] micro_levelling`` is
-    true; add the returned array to the gridded value column (e.g. ``anomaly_levelled``) and grid
-    again. The corrugation of ``grid`` is estimated by :func:`potfield.fields.lines.leveling.micro_level`
-    (high-pass across the traverse lines with cut-off ``micro_cutoff_spacings * line_spacing``,
-    low-pass along them with cut-off ``micro_along_spacings * line_spacing``, clipped to
-    ``+-micro_max_amplitude``), sampled at every reading (bilinear), low-passed along each line
-    with the same along-line cut-off, and negated.
-
-    Parameters
-    ----------
-    table : pandas.DataFrame
-        Readings with ``easting``, ``northing``, ``line``, optional ``line_type`` (the line
-        direction is the mean direction of the traverse lines) and ``distance`` (else it is
-        computed from the coordinates).
-    grid : xarray.DataArray
-        The gridded levelled values (``northing``, ``easting`` dimensions, regular spacing).
-    line_spacing : float
-        Nominal traverse line spacing (m), e.g. ``ctx.state["ingest"]["line_spacing_m"]``.
-    config_level : potfield.config.LevelSection
-        The ``[level]`` section.
-
-    Returns
-    -------
-    numpy.ndarray, shape (len(table),)
-        Correction to ADD to each reading (field units); 0 for readings outside the grid.
-
-    References
-    ----------
-    Minty, B. R. S. (1991). Simple micro-levelling for aeromagnetic data. Exploration
-    Geophysics 22:591-592.
-    """
-    if not line_spacing or not np.isfinite(line_spacing) or line_spacing <= 0:
-        raise StageError(f"micro-levelling needs a positive line spacing, got {line_spacing}",
-                         key="level.micro_levelling",
-                         fix="set [level] micro_levelling = false for surveys without regular lines")
-    east = table["easting"].to_numpy(float)
-    north = table["northing"].to_numpy(float)
-    lines = table["line"].astype(str).to_numpy()
-    trav = (table["line_type"].astype(str).to_numpy() != "tie") if "line_type" in table \
-        else np.ones(len(table), dtype=bool)
-    direction = leveling.line_azimuth(east[trav], north[trav], lines[trav])
-    along = config_level.micro_along_spacings * line_spacing
-    corrugation = leveling.micro_level(
-        grid, direction, line_spacing, config_level.micro_cutoff_spacings,
-        config_level.micro_max_amplitude, along_wavelength=along)
-    sampled = leveling.sample_grid(corrugation, east, north)
-    if "distance" in table:
-        distance = table["distance"].to_numpy(float)
-    else:
-        step = np.hypot(np.diff(east, prepend=east[:1]), np.diff(north, prepend=north[:1]))
-        step[np.r_[True, lines[1:] != lines[:-1]]] = 0.0
-        distance = pd.Series(step).groupby(lines).cumsum().to_numpy()
-    smooth = leveling.lowpass_along_lines(sampled, lines, distance, along)
-    return -np.nan_to_num(smooth, nan=0.0)
-
-
 STAGE = Stage(
     name="level",
     summary="tie-line levelling: crossovers, ties to each other, traverse lines to ties (robust)",
@@ -288,4 +237,9 @@ STAGE = Stage(
     sections=("level", "lines"),
     inputs=None,
     kinds=("magnetic", "gravity"),
+    contract=Contract(
+        requires_columns={k: ("easting", "northing", c) for k, c in ANOMALY_COLUMN.items()},
+        provides_columns=("level_correction", LEVELLED_COLUMN),
+        provides_tables=("crossovers", "lines"),
+    ),
 )

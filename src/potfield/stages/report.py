@@ -6,7 +6,7 @@ The same builder serves ``potfield report DIR``, which rebuilds from out/ withou
 from __future__ import annotations
 
 from ..qc.report import build_report
-from .base import Stage, StageContext, StageOutput
+from .base import Contract, Stage, StageContext, StageOutput
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -25,4 +25,5 @@ STAGE = Stage(
     summary="QC maps, residual tables and the self-contained HTML report with spec checks and provenance",
     run=run,
     sections=("report",),
+    contract=Contract(requires_state=("ingest",)),
 )

@@ -34,14 +34,9 @@ from ..fields._numerics import sample_grid
 from ..fields.errors import BadParameter, FieldError, IllPosed, NotEnoughData
 from ..fields.harmonic import separation as sep
 from ._boundary import Rule, translate
-from .base import Check, Stage, StageContext, StageOutput, usable
+from .base import Check, Contract, Stage, StageContext, StageOutput, main_grid_names, usable, value_column
 from .gridmodel import grid_height, load_grid_model
 
-#: Main grids by survey kind, in order of preference.
-MAIN_GRIDS = {"magnetic": ("anomaly", "bouguer_anomaly"), "gravity": ("bouguer_anomaly", "anomaly")}
-#: Value columns (the field that was gridded) by survey kind, in order of preference.
-VALUE_COLUMNS = {"magnetic": ("anomaly_levelled", "anomaly"),
-                 "gravity": ("anomaly_levelled", "bouguer_anomaly", "anomaly")}
 VECTOR = ("mag_north", "mag_east", "mag_down")
 COMPONENTS = ("north", "east", "down")
 
@@ -181,21 +176,15 @@ def run_observatory(ctx: StageContext) -> StageOutput:
 # survey grids
 # ----------------------------------------------------------------------------------------------
 def _main_grid(ctx: StageContext):
-    for name in MAIN_GRIDS.get(ctx.config.kind, ("anomaly",)):
+    for name in main_grid_names(ctx.config.kind):
         if name in ctx.grids:
             return name, ctx.grids[name].transpose("northing", "easting")
     return None, None
 
 
 def _value_column(ctx: StageContext, table: pd.DataFrame) -> str | None:
-    record = ctx.state.get("grid", {})
-    for key in ("column", "value_column", "source_column"):
-        if record.get(key) in table.columns:
-            return record[key]
-    for name in VALUE_COLUMNS.get(ctx.config.kind, ("anomaly",)):
-        if name in table.columns:
-            return name
-    return None
+    """The column the grid stage gridded (:func:`potfield.stages.base.value_column`)."""
+    return value_column(table, ctx.config.kind, ctx.state)
 
 
 def _decimate(grid, limit: int):
@@ -404,4 +393,12 @@ STAGE = Stage(
     "equivalent sources), internal/external parts on the plane and on the sphere",
     run=run,
     sections=("separate", "grid"),
+    contract=Contract(
+        requires_columns={"observatory": ("time",)},
+        optional_columns={"observatory": ("sep_internal_*", "sep_external_*", "sep_residual_*"),
+                          "*": ("regional", "residual", "internal_*", "external_*")},
+        provides_grids={"observatory": (),
+                        "*": ("regional_*", "residual_*", "internal_*", "external_*")},
+        provides_tables={"observatory": ("coefficients", "station_residuals"), "*": ()},
+    ),
 )
