@@ -547,6 +547,30 @@ class SurveyConfig(Section):
     separate: SeparateSection = Field(default_factory=SeparateSection)
     report: ReportSection = Field(default_factory=ReportSection)
 
+    @model_validator(mode="after")
+    def _kind_sections(self):
+        """Sections that only one survey kind reads must not be filled for another kind: a
+        magnetic config pointed at gravity data (or the reverse) is a mistake, not a no-op."""
+        kind = self.survey.kind
+        used = []
+        if kind != "magnetic":
+            if self.diurnal.bases:
+                used.append(("diurnal.bases", "magnetic"))
+            if self.diurnal.remote_reference:
+                used.append(("diurnal.remote_reference", "magnetic"))
+        if kind != "gravity":
+            if self.drift.bases:
+                used.append(("drift.bases", "gravity"))
+            if self.drift.calibration_file:
+                used.append(("drift.calibration_file", "gravity"))
+            if self.reference.dem_file:
+                used.append(("reference.dem_file", "gravity"))
+        if used:
+            key, owner = used[0]
+            raise ValueError(f"'{key}' is only used by {owner} surveys but survey.kind is "
+                             f"'{kind}' (fix: correct survey.kind or remove {key})")
+        return self
+
     @property
     def kind(self) -> str:
         return self.survey.kind
@@ -625,7 +649,9 @@ def _model_at(model: type[BaseModel], loc: tuple) -> type[BaseModel] | None:
 
 def _format_validation(err: ValidationError, path: Path) -> str:
     first = err.errors()[0]
-    loc = tuple(first["loc"])
+    # drop the union-member tags pydantic adds to the location (grid.height.float -> grid.height)
+    loc = tuple(p for p in first["loc"] if not (isinstance(p, str) and (
+        p in ("float", "int", "str", "bool", "none") or "[" in p)))
     key = ".".join(str(p) for p in loc)
     kind = first["type"]
     if kind == "extra_forbidden":
@@ -636,15 +662,19 @@ def _format_validation(err: ValidationError, path: Path) -> str:
         return f"{path}: key '{key}' is required (fix: add it to survey.toml)"
     if kind == "value_error":
         msg = str(first.get("ctx", {}).get("error", first["msg"]))
-        return f"{path}: key '{key or 'top level'}': {msg}"
+        return f"{path}: key '{key}': {msg}" if key else f"{path}: {msg}"
     expected = first["msg"].replace("Input should be", "expected").replace("input should be", "expected")
     got = first.get("input")
     if kind in _RANGE_ERRORS:
-        return (f"{path}: key '{key}' = {got!r} is out of range; {expected} "
+        ctx = first.get("ctx", {})
+        bound = " and ".join(f"{_RANGE_ERRORS[k]} {ctx[k]}" for k in ("gt", "ge", "lt", "le") if k in ctx)
+        return (f"{path}: key '{key}' = {got!r} is out of range; it must be {bound} "
                 f"(fix: change it in survey.toml)")
     if kind == "finite_number":
         return (f"{path}: key '{key}' = {got!r} is not a finite number "
                 f"(fix: give a finite number in survey.toml)")
+    if kind == "string_too_short":
+        return f"{path}: key '{key}' must not be empty (fix: give it a value in survey.toml)"
     if kind == "too_short":
         least = first.get("ctx", {}).get("min_length", 1)
         return (f"{path}: key '{key}' is too short ({got!r}); it needs at least {least} "
@@ -653,7 +683,8 @@ def _format_validation(err: ValidationError, path: Path) -> str:
 
 
 #: pydantic error types of a numeric bound (Field(gt=, ge=, lt=, le=)).
-_RANGE_ERRORS = {"greater_than", "greater_than_equal", "less_than", "less_than_equal"}
+_RANGE_ERRORS = {"greater_than": ">", "greater_than_equal": ">=", "less_than": "<", "less_than_equal": "<=",
+                 "gt": ">", "ge": ">=", "lt": "<", "le": "<="}
 
 
 def parse_config(data: dict, path: Path | str = "survey.toml") -> SurveyConfig:

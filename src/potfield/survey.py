@@ -130,6 +130,9 @@ class Survey:
         path = self.out / ".lock"
         try:
             self.out.mkdir(parents=True, exist_ok=True)
+        except OSError as err:  # out/ is a file, read-only parent, ...
+            raise self._output_error(err) from None
+        try:
             fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
         except FileExistsError:
             pid = _read_pid(path)
@@ -174,10 +177,9 @@ class Survey:
 
     def _output_error(self, err: OSError) -> OutputError:
         target = Path(err.filename) if err.filename else self.out
-        folder = target if target.is_dir() else target.parent
         reason = (err.strerror or str(err)).lower()
         return OutputError(
-            f"cannot write to {folder}: {reason}",
+            f"cannot write to {target}: {reason}",
             fix=f"make {self.out} writable (or free disk space) and run again; raw/ is never written",
         )
 

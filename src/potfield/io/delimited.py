@@ -161,6 +161,9 @@ def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> 
             handle.readline()
         header = handle.readline()
     if not header.strip():
+        if skip_rows:
+            raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
+                                 file=path, fix="check input.skip_rows and that the right file is named")
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     for candidate in (",", ";", "\t"):
         if candidate in header:
@@ -170,7 +173,7 @@ def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> 
 
 def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "auto",
                    skip_rows: int = 0, missing_values=(), required=(), encoding: str = "utf-8",
-                   encoding_key: str = "input.encoding") -> pd.DataFrame:
+                   encoding_key: str = "input.encoding", columns_key: str = "input.columns") -> pd.DataFrame:
     """Read the mapped columns of one delimited file, renamed to canonical names.
 
     Parameters
@@ -186,8 +189,8 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         Text encoding of the file. When the default ``"utf-8"`` cannot decode it, the file is
         read as latin-1 (every byte is a character there) and ``frame.attrs["warnings"]`` says
         so; another declared encoding that fails is an error naming the line and byte offset.
-    encoding_key : str
-        survey.toml key of the encoding, for messages.
+    encoding_key, columns_key : str
+        survey.toml keys of the encoding and of the column mapping, for messages.
 
     Returns
     -------
@@ -202,8 +205,8 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     for name in required:
         if name not in columns:
             raise InputDataError(
-                f"no input column is mapped to '{name}'", file=path, key=f"input.columns.{name}",
-                fix=f"add {name} = \"<your column>\" under [input.columns]",
+                f"no input column is mapped to '{name}'", file=path, key=f"{columns_key}.{name}",
+                fix=f"add {name} = \"<your column>\" under [{columns_key}]",
             )
     try:
         failure = _decode_failure(path, encoding)
@@ -211,7 +214,7 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         raise InputDataError(f"cannot read the file ({_first_line(err)})", file=path,
                              fix="check that the file is complete (re-copy or re-compress it)") from None
     if failure is None:
-        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding)
+        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding, columns_key)
     line, offset, byte = failure
     if codecs.lookup(encoding).name != "utf-8":
         raise InputDataError(
@@ -219,7 +222,7 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
             file=path, key=encoding_key,
             fix="set the encoding the file was written in (e.g. utf-8, latin-1, cp1252)",
         )
-    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1")
+    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key)
     frame.attrs["warnings"] = [
         f"{path.name}: not valid UTF-8 (byte 0x{byte:02x} at line {line}, byte offset {offset}); "
         f"read as latin-1 -- check the text columns, or declare the file's encoding with "
@@ -228,7 +231,7 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
 
 
 def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_rows: int,
-                    missing_values, encoding: str) -> pd.DataFrame:
+                    missing_values, encoding: str, columns_key: str = "input.columns") -> pd.DataFrame:
     sep = sniff_delimiter(path, skip_rows, encoding) if delimiter == "auto" else delimiter
     wanted = list(dict.fromkeys(columns.values()))
     kwargs = dict(skiprows=skip_rows, na_values=list(missing_values), keep_default_na=True,
@@ -255,8 +258,8 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
         canon = [k for k, v in columns.items() if v == missing[0]][0]
         raise InputDataError(
             f"column '{missing[0]}' (mapped to {canon}) is not in the file; its columns are: "
-            f"{', '.join(header[:20])}", file=path, key=f"input.columns.{canon}",
-            fix="correct the column name under [input.columns]",
+            f"{', '.join(header[:20])}", file=path, key=f"{columns_key}.{canon}",
+            fix=f"correct the column name under [{columns_key}]",
         )
     ragged = _ragged_row(path, sep, skip_rows, encoding)
     if ragged is not None:
@@ -372,10 +375,14 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarra
     raw = frame["time"]
     if spec.format == "iso":
         text = raw.astype("string").str.strip()
+        # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
+        # to_datetime raises on them even with errors="coerce"
+        year = pd.to_numeric(text.str.extract(r"^([+-]?\d{4,})", expand=False), errors="coerce")
+        text = text.where(~((year < 1678) | (year > 2261)).fillna(False), pd.NA)
         parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
         result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
         bad = np.isnat(result)
-        example_source = text
+        example_source = raw.astype("string").str.strip()
     else:
         seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
         if spec.format == "decimal_hours":

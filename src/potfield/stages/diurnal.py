@@ -89,7 +89,8 @@ def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
                               fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
         frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
                                skip_rows=base.skip_rows, missing_values=base.missing_values,
-                               encoding=encoding, encoding_key="input.encoding")
+                               encoding=encoding, encoding_key="input.encoding",
+                               columns_key=f"{key}.columns")
         times = parse_time(frame, base.time, path)
         value = convert_units(to_numeric(frame, "total_field", path), "total_field", base.units)
     if base.time_offset_s:
