@@ -100,7 +100,7 @@ def _toml_value(value) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, float):
-        return "inf" if value == np.inf else "-inf" if value == -np.inf else "nan" if value != value else repr(value)
+        return "inf" if value == np.inf else "-inf" if value == -np.inf else "nan" if np.isnan(value) else repr(value)
     if isinstance(value, int):
         return str(value)
     if isinstance(value, str):
@@ -232,7 +232,7 @@ def iaga_header(station: str, label: str, value: str):
 
 def edit_glob(pattern: str, func):
     def apply(root: Path) -> None:
-        path = sorted((root / "raw").glob(pattern))[0]
+        path = min((root / "raw").glob(pattern))
         path.write_bytes(func(path.read_bytes()))
     return apply
 

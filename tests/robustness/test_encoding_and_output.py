@@ -53,7 +53,7 @@ def test_utf8_file_reads_without_warning(tmp_path):
 
 def test_permission_denied_while_writing_is_one_line_and_releases_lock(magnetic_survey, capsys,
                                                                        monkeypatch):
-    import potfield.io.atomic as atomic
+    from potfield.io import atomic
 
     real = os.replace
 

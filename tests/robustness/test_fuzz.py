@@ -17,7 +17,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pytest
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
@@ -56,19 +55,19 @@ def _case(tmp_path: Path, name: str) -> Path:
 # --- delimited reader ------------------------------------------------------------------------
 
 CSV_TEXT = (
-    "LINE,UTC,LON,LAT,HEIGHT,TMI\n"
-    "1010,2024-05-01T01:00:00.0Z,138.0001,-33.0001,120.5,57001.25\n"
-    "1010,2024-05-01T01:00:00.1Z,138.0002,-33.0002,120.6,57001.31\n"
-    "1010,2024-05-01T01:00:00.2Z,138.0003,-33.0003,120.4,57001.28\n"
-    "9010,2024-05-01T01:05:00.0Z,138.0001,-33.0010,121.0,57002.01\n"
-    "9010,2024-05-01T01:05:00.1Z,138.0002,-33.0010,121.1,57002.07\n"
-).encode()
+    b"LINE,UTC,LON,LAT,HEIGHT,TMI\n"
+    b"1010,2024-05-01T01:00:00.0Z,138.0001,-33.0001,120.5,57001.25\n"
+    b"1010,2024-05-01T01:00:00.1Z,138.0002,-33.0002,120.6,57001.31\n"
+    b"1010,2024-05-01T01:00:00.2Z,138.0003,-33.0003,120.4,57001.28\n"
+    b"9010,2024-05-01T01:05:00.0Z,138.0001,-33.0010,121.0,57002.01\n"
+    b"9010,2024-05-01T01:05:00.1Z,138.0002,-33.0010,121.1,57002.07\n"
+)
 CSV_COLUMNS = {"line": "LINE", "time": "UTC", "longitude": "LON", "latitude": "LAT",
                "height": "HEIGHT", "total_field": "TMI"}
 SECONDS_TEXT = (
-    "DATE SOD F\n2024-11-18 79800.0 57078.35\n2024-11-18 79801.0 57078.30\n"
-    "20241118 79802.5 57078.33\n"
-).encode()
+    b"DATE SOD F\n2024-11-18 79800.0 57078.35\n2024-11-18 79801.0 57078.30\n"
+    b"20241118 79802.5 57078.33\n"
+)
 SECONDS_COLUMNS = {"date": "DATE", "time": "SOD", "total_field": "F"}
 
 

@@ -6,6 +6,7 @@ by survey kind) and single values are overridden with ``[survey] spec_overrides`
 
 from __future__ import annotations
 
+import math
 import tomllib
 from importlib import resources
 from pathlib import Path
@@ -61,7 +62,7 @@ def load_spec(config, survey=None) -> dict[str, tuple[float, str]]:
         if not isinstance(entry, dict) or "value" not in entry:
             raise ConfigError(f"{path}: entry '{key}' needs value and source")
         value = entry["value"]
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or value != value:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value):
             raise ConfigError(f"{path}: entry '{key}' value {value!r} is not a number",
                               fix="give the tolerance as a number")
         spec[key] = (float(value), str(entry.get("source", "common practice")))
