@@ -43,9 +43,15 @@ def _decode_failure(path: Path, encoding: str) -> tuple[int, int, int] | None:
     """Line number, byte offset and value of the first byte that ``encoding`` cannot decode
     (None when the whole file decodes). One streaming pass, bounded memory."""
     decoder = codecs.getincrementaldecoder(encoding)()
+    # ASCII blocks decode in any ASCII-compatible codec: skip them (bytes.isascii is fast)
+    ascii_safe = "a".encode(encoding) == b"a" and "\n".encode(encoding) == b"\n"
     offset, lines = 0, 0
     with _open_binary(path) as handle:
         while block := handle.handle.read(SCAN_BLOCK):
+            if ascii_safe and block.isascii() and not decoder.getstate()[0]:
+                offset += len(block)
+                lines += block.count(b"\n")
+                continue
             try:
                 decoder.decode(block)
             except UnicodeDecodeError as err:
@@ -94,16 +100,17 @@ def _field_counts(path: Path, sep: str, skip_rows: int, encoding: str):
             chunk, rest = data[:cut], data[cut:]
             arr = np.frombuffer(chunk, dtype=np.uint8)
             ends = np.flatnonzero(arr == 10)
-            space = (arr == 32) | (arr == 9) | (arr == 13) | (arr == 10)
-            solid = np.cumsum(~space, dtype=np.int64)[ends]
-            nonblank = np.diff(np.r_[0, solid]) > 0
             if sep == "whitespace":
-                starts = ~space & np.r_[True, space[:-1]]
-                total = np.cumsum(starts, dtype=np.int64)[ends]
-                counts = np.diff(np.r_[0, total])
+                space = (arr == 32) | (arr == 9) | (arr == 13) | (arr == 10)
+                solid = np.cumsum(~space, dtype=np.int64)[ends]
+                nonblank = np.diff(np.r_[0, solid]) > 0
+                starts = np.flatnonzero(~space & np.r_[True, space[:-1]])
+                counts = np.diff(np.r_[0, np.searchsorted(starts, ends)])
             else:
-                total = np.cumsum(arr == code, dtype=np.int64)[ends]
-                counts = np.diff(np.r_[0, total]) + 1
+                # a line is blank when it holds nothing but an optional carriage return
+                length = np.diff(np.r_[-1, ends]) - 1
+                nonblank = (length > 1) | ((length == 1) & (arr[np.maximum(ends - 1, 0)] != 13))
+                counts = np.diff(np.r_[0, np.searchsorted(np.flatnonzero(arr == code), ends)]) + 1
             numbers = consumed + 1 + np.arange(ends.size)
             consumed += ends.size
             keep = nonblank & (numbers > skip_rows)
@@ -261,24 +268,31 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
             f"{', '.join(header[:20])}", file=path, key=f"{columns_key}.{canon}",
             fix=f"correct the column name under [{columns_key}]",
         )
-    ragged = _ragged_row(path, sep, skip_rows, encoding)
-    if ragged is not None:
-        line, fields, expected, others = ragged
-        more = f" (and {others} more such line(s))" if others else ""
-        raise InputDataError(
-            f"line {line} has {fields} field(s) but the header line {skip_rows + 1} has "
-            f"{expected}{more}", file=path,
-            fix="give every row the header's fields (empty = missing), or check the delimiter",
-        )
+    def refuse_ragged() -> None:
+        # pandas' C parser fills short rows with NaN silently; pyarrow refuses them (and then
+        # this runs before the fallback), so the byte scan is only needed off the pyarrow path
+        ragged = _ragged_row(path, sep, skip_rows, encoding)
+        if ragged is not None:
+            line, fields, expected, others = ragged
+            more = f" (and {others} more such line(s))" if others else ""
+            raise InputDataError(
+                f"line {line} has {fields} field(s) but the header line {skip_rows + 1} has "
+                f"{expected}{more}", file=path,
+                fix="give every row the header's fields (empty = missing), or check the delimiter",
+            )
+
     try:
         if sep == "whitespace":
+            refuse_ragged()
             frame = pd.read_csv(path, sep=r"\s+", usecols=lambda c: str(c).strip() in wanted, **kwargs)
         elif len(sep) == 1 and not skip_rows and path.suffix != ".gz":
             try:  # pyarrow's reader is several times faster on large files
                 frame = pd.read_csv(path, sep=sep, usecols=wanted, engine="pyarrow", **kwargs)
             except (ValueError, TypeError, KeyError):
+                refuse_ragged()
                 frame = pd.read_csv(path, sep=sep, usecols=lambda c: str(c).strip() in wanted, **kwargs)
         else:
+            refuse_ragged()
             frame = pd.read_csv(path, sep=sep, usecols=lambda c: str(c).strip() in wanted, **kwargs)
     except (pd.errors.ParserError, ValueError, csv.Error, OverflowError) as err:
         if isinstance(err, UnicodeDecodeError):
