@@ -357,7 +357,14 @@ def _parse_date(text: pd.Series) -> pd.Series:
     compact = text.str.fullmatch(r"\d{8}").fillna(False)
     text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
     text = text.str.replace("/", "-", regex=False)
-    return pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
+    return pd.to_datetime(_drop_out_of_range_years(text), format="%Y-%m-%d", errors="coerce")
+
+
+def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
+    """Dates whose year datetime64[ns] cannot hold (outside 1678..2261) as missing, so they are
+    reported as unreadable at their lines (pandas raises on them even with errors="coerce")."""
+    year = pd.to_numeric(text.str.extract(r"^\s*([+-]?\d{4,})-", expand=False), errors="coerce")
+    return text.where(~((year < 1678) | (year > 2261)).fillna(False).astype(bool), pd.NA)
 
 
 def parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
@@ -391,8 +398,7 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarra
         text = raw.astype("string").str.strip()
         # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
         # to_datetime raises on them even with errors="coerce"
-        year = pd.to_numeric(text.str.extract(r"^([+-]?\d{4,})", expand=False), errors="coerce")
-        text = text.where(~((year < 1678) | (year > 2261)).fillna(False), pd.NA)
+        text = _drop_out_of_range_years(text)
         parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
         result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
         bad = np.isnat(result)
@@ -423,6 +429,8 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarra
         result[good] = day[good] + ns[good].astype("int64").astype("timedelta64[ns]")
         bad = np.isnat(result)
         example_source = raw.astype("string")
+        if "date" in frame:
+            example_source = frame["date"].astype("string").str.strip() + " " + example_source
     if bad.any():
         rows = frame["source_row"].to_numpy()[bad]
         raise InputDataError(
