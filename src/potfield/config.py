@@ -15,7 +15,14 @@ import tomllib
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from .errors import ConfigError
 
@@ -73,9 +80,10 @@ def unit_factor(name: str, units: dict[str, str]) -> float:
 
 
 class Section(BaseModel):
-    """Base of every section: unknown keys are errors, assignments are validated."""
+    """Base of every section: unknown keys are errors, assignments are validated, and numbers
+    must be finite (TOML's ``inf``/``nan`` are refused)."""
 
-    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+    model_config = ConfigDict(extra="forbid", validate_assignment=True, allow_inf_nan=False)
 
 
 class SurveySection(Section):
@@ -87,12 +95,20 @@ class SurveySection(Section):
     output_crs: str = "auto"
     #: Height reference of the input heights: "ellipsoid" or "geoid" (then geoid_undulation).
     height_reference: Literal["ellipsoid", "geoid"] = "ellipsoid"
-    #: Geoid undulation N (m) added to geoid heights to make them ellipsoidal (h = H + N).
-    geoid_undulation: float = 0.0
+    #: Geoid undulation N (m) added to geoid heights to make them ellipsoidal (h = H + N); the
+    #: Earth's geoid lies within about -110..+90 m of the ellipsoid (from memory), so |N| <= 200.
+    geoid_undulation: float = Field(0.0, ge=-200.0, le=200.0)
     #: Spec profile name (configs/specs/NAME.toml) or a path relative to the survey folder.
     spec: str = "auto"
     #: Overrides of single spec values: {"noise_fourth_difference_nT" = 0.2, ...}
     spec_overrides: dict[str, float] = Field(default_factory=dict)
+
+    @field_validator("crs", "output_crs", "spec")
+    @classmethod
+    def _not_blank(cls, value: str) -> str:
+        if not value.strip():
+            raise ValueError("must not be empty")
+        return value
 
 
 class TimeSection(Section):
@@ -102,14 +118,22 @@ class TimeSection(Section):
     #: Date for decimal_hours / date_seconds when the file has no date column (YYYY-MM-DD).
     date: str | None = None
 
+    @field_validator("date")
+    @classmethod
+    def _iso_date(cls, value: str | None) -> str | None:
+        return None if value is None else _check_date(value)
+
 
 class InputSection(Section):
     #: Files or glob patterns relative to the survey folder.
-    files: list[str] = Field(default_factory=lambda: ["raw/*.csv"])
+    files: list[str] = Field(default_factory=lambda: ["raw/*.csv"], min_length=1)
     #: "auto", ",", ";", "whitespace" or "\t".
     delimiter: str = "auto"
+    #: Text encoding of the input files (any Python codec name). With the default utf-8, a file
+    #: that is not valid UTF-8 is read as latin-1 and the run says so in a warning.
+    encoding: str = "utf-8"
     #: Lines to skip at the top of each file before the header line.
-    skip_rows: int = 0
+    skip_rows: int = Field(0, ge=0)
     #: Values that mean "missing" in the input, besides empty fields.
     missing_values: list[str] = Field(default_factory=lambda: ["*", "NaN", "nan", "-99999", "99999"])
     #: Canonical name -> the input file's column name.
@@ -117,6 +141,29 @@ class InputSection(Section):
     #: Canonical name -> unit of that input column.
     units: dict[str, str] = Field(default_factory=dict)
     time: TimeSection = Field(default_factory=TimeSection)
+
+    @field_validator("files")
+    @classmethod
+    def _files_named(cls, value: list[str]) -> list[str]:
+        if any(not f.strip() for f in value):
+            raise ValueError("a file name is empty; give a file or glob pattern such as \"raw/*.csv\"")
+        return value
+
+    @field_validator("delimiter")
+    @classmethod
+    def _usable_delimiter(cls, value: str) -> str:
+        return _check_delimiter(value)
+
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, value: str) -> str:
+        import codecs
+
+        try:
+            codecs.lookup(value)
+        except LookupError:
+            raise ValueError(f"unknown text encoding '{value}'; use e.g. utf-8, latin-1 or cp1252") from None
+        return value
 
     @field_validator("columns")
     @classmethod
@@ -148,37 +195,44 @@ class LinesSection(Section):
     #: Alternatively: numeric line names >= this value are tie lines (common practice: 9000+).
     tie_min: float | None = None
     #: When there is no line column: start a new line when the time gap exceeds this (s).
-    split_gap_s: float = 60.0
+    split_gap_s: float = Field(60.0, gt=0)
 
 
 class CleanSection(Section):
     #: Spike test: rolling median window (samples) and threshold in robust sigmas (MAD * 1.4826).
-    spike_window: int = 11
-    spike_threshold: float = 6.0
+    spike_window: int = Field(11, ge=3)
+    spike_threshold: float = Field(6.0, gt=0)
     #: Minimum absolute spike size (field units) so a quiet line is not over-flagged.
-    spike_min: float = 0.0
+    spike_min: float = Field(0.0, ge=0)
     #: Time gap (s) above which the reading after the gap is flagged; 0 = from sampling (5x median).
-    max_time_gap_s: float = 0.0
+    max_time_gap_s: float = Field(0.0, ge=0)
     #: Distance gap (m) along line above which the reading after the gap is flagged; 0 = 5x median.
-    max_distance_gap_m: float = 0.0
+    max_distance_gap_m: float = Field(0.0, ge=0)
     #: Heights outside [min, max] (m) are flagged; None = no limit.
     height_min: float | None = None
     height_max: float | None = None
     #: Fourth difference normalised by 16 (so a spike of A gives 6A/16) when true.
     fourth_difference_normalised: bool = False
 
+    @model_validator(mode="after")
+    def _height_band(self):
+        if self.height_min is not None and self.height_max is not None and self.height_min >= self.height_max:
+            raise ValueError(f"height_min {self.height_min:g} must be below height_max "
+                             f"{self.height_max:g} (fix: swap or correct them under [clean])")
+        return self
+
 
 class BaseStation(Section):
     #: Name of the base (used in checks, tables and messages).
-    name: str
+    name: str = Field(min_length=1)
     #: File (relative to the survey folder): delimited text or IAGA-2002 (.min/.sec/.iaga).
-    file: str
+    file: str = Field(min_length=1)
     #: "auto" (IAGA-2002 when the first line is an IAGA-2002 'Format' record), "delimited", "iaga2002".
     format: Literal["auto", "delimited", "iaga2002"] = "auto"
     #: Position of the base (deg); None = from the IAGA-2002 header (required for delimited
     #: files when two or more bases are combined or the time offset is estimated).
-    longitude: float | None = None
-    latitude: float | None = None
+    longitude: float | None = Field(None, ge=-180, le=360)
+    latitude: float | None = Field(None, ge=-90, le=90)
     #: For delimited base files: canonical name -> file column (time, total_field, date).
     columns: dict[str, str] = Field(default_factory=dict)
     #: Unit of the base total_field column (nT, uT, pT, gamma).
@@ -186,7 +240,7 @@ class BaseStation(Section):
     #: Delimiter of a delimited file: "auto", ",", ";", "whitespace" or "\t".
     delimiter: str = "auto"
     #: Lines to skip at the top of a delimited file before its header line.
-    skip_rows: int = 0
+    skip_rows: int = Field(0, ge=0)
     #: Values meaning "missing" in a delimited file, besides empty fields.
     missing_values: list[str] = Field(default_factory=lambda: ["*", "NaN", "nan", "-99999", "99999"])
     #: Time format of a delimited file (as [input.time]).
@@ -194,6 +248,11 @@ class BaseStation(Section):
     #: Seconds added to the base file's times to bring its clock to UTC (e.g. -3600 for a logger
     #: kept on UTC+1).
     time_offset_s: float = 0.0
+
+    @field_validator("delimiter")
+    @classmethod
+    def _usable_delimiter(cls, value: str) -> str:
+        return _check_delimiter(value)
 
 
 class DiurnalSection(Section):
@@ -216,29 +275,34 @@ class DiurnalSection(Section):
     datum_value: float | None = None
     #: Datum time (ISO 8601, UTC) for datum = "time".
     datum_time: str | None = None
+
+    @field_validator("datum_time")
+    @classmethod
+    def _datum_time(cls, value: str | None) -> str | None:
+        return None if value is None else _check_time(value)
     #: Two or more bases: "nearest" or "distance" (inverse-distance weights).
     combine: Literal["nearest", "distance"] = "nearest"
     #: Exponent p of the inverse-distance weights d**-p (combine = "distance").
-    distance_power: float = 2.0
+    distance_power: float = Field(2.0, gt=0)
     #: Base gaps longer than this (s) flag the readings inside them.
-    max_gap_s: float = 10.0
+    max_gap_s: float = Field(10.0, gt=0)
     #: Base spike test: running median window (samples), threshold (robust sigmas) and the
     #: smallest departure (nT) called a spike; spikes are removed from the base record.
-    spike_window: int = 11
-    spike_threshold: float = 6.0
-    spike_min_nT: float = 0.5
+    spike_window: int = Field(11, ge=3)
+    spike_threshold: float = Field(6.0, gt=0)
+    spike_min_nT: float = Field(0.5, ge=0)
     #: Time offset estimate: survey readings within this distance (m) of a base (e.g. static
     #: records beside it before and after a flight) are cross-correlated with it after a
     #: running-mean high-pass of offset_highpass_s seconds, for lags up to offset_max_lag_s;
     #: passes shorter than offset_highpass_s are left out.
-    offset_radius_m: float = 500.0
-    offset_highpass_s: float = 60.0
-    offset_max_lag_s: float = 30.0
+    offset_radius_m: float = Field(500.0, gt=0)
+    offset_highpass_s: float = Field(60.0, gt=0)
+    offset_max_lag_s: float = Field(30.0, ge=0)
 
 
 class GravityBase(Section):
     #: Station id of the base, as written in the station column of the readings.
-    station: str
+    station: str = Field(min_length=1)
     #: Absolute gravity at the base (mGal).
     gravity: float
     #: Standard deviation (mGal) of the base value, weighting it in the network adjustment;
@@ -261,15 +325,20 @@ class DriftSection(Section):
     #: Correct the Earth tide (Longman 1959) before the drift.
     tide: bool = True
     #: Gravimetric factor 1 + h2 - 3/2 k2 applied to the rigid-Earth tide (common practice 1.16).
-    gravimetric_factor: float = 1.16
+    gravimetric_factor: float = Field(1.16, gt=0, le=2)
     #: "linear" (per loop, first/last base), "piecewise" (through every base repeat) or "network".
     method: Literal["linear", "piecewise", "network"] = "network"
     #: Absolute gravity bases ([[drift.bases]] tables: station, gravity, optional sigma_mgal).
     bases: list[GravityBase] = Field(default_factory=list)
     #: Instrument height correction gradient (mGal/m; common practice 0.3086).
-    free_air_gradient: float = 0.3086
+    free_air_gradient: float = Field(0.3086, ge=0, le=1)
     #: Tare: an abrupt step; times (ISO) at which a tare is allowed in the network adjustment.
     tares: list[str] = Field(default_factory=list)
+
+    @field_validator("tares")
+    @classmethod
+    def _tare_times(cls, value: list[str]) -> list[str]:
+        return [_check_time(t) for t in value]
     #: How readings are grouped into loops: "auto" (the loop column, else a mapped line column,
     #: else the local solar day at the mean longitude), "loop", "line" or "day".
     loops: Literal["auto", "loop", "line", "day"] = "auto"
@@ -289,7 +358,7 @@ class ReferenceSection(Section):
     #: Gravity: normal-gravity ellipsoid.
     ellipsoid: Literal["WGS84", "GRS80"] = "WGS84"
     #: Gravity: reduction density (kg/m^3) for the Bouguer and terrain corrections.
-    density: float = Field(2670.0, gt=0)
+    density: float = Field(2670.0, gt=0, le=10_000)
     #: Gravity: Bouguer correction as an infinite "slab" or a spherical "cap" to 166.735 km.
     bouguer: Literal["slab", "cap"] = "cap"
     #: Gravity: add the atmospheric correction (Hinze et al. 2005) to the free-air anomaly.
@@ -316,6 +385,19 @@ class ReferenceSection(Section):
     #: (ground surveys); false: keep the DEM value there (airborne readings above the terrain).
     terrain_readings_on_ground: bool = True
 
+    @field_validator("igrf_date")
+    @classmethod
+    def _igrf_date(cls, value: str | None) -> str | None:
+        return None if value is None else _check_date(value)
+
+    @model_validator(mode="after")
+    def _terrain_zones(self):
+        if self.terrain_inner_radius_m > self.terrain_radius_m:
+            raise ValueError(f"terrain_inner_radius_m {self.terrain_inner_radius_m:g} exceeds "
+                             f"terrain_radius_m {self.terrain_radius_m:g} (fix: make the inner "
+                             "radius the smaller one under [reference])")
+        return self
+
 
 class LevelSection(Section):
     #: Level lines at all; false copies the value into anomaly_levelled with zero correction.
@@ -328,7 +410,7 @@ class LevelSection(Section):
     #: Minimum crossovers per line for its own correction; fewer keeps the line's level.
     min_crossovers: int = Field(default=2, ge=1)
     #: Crossovers with |height difference| above this (m) are dropped (common practice).
-    max_height_difference_m: float = 30.0
+    max_height_difference_m: float = Field(30.0, gt=0)
     #: Huber threshold of the robust (IRLS) fits, in robust sigmas (1.4826 x MAD); 0 = plain LS.
     huber_threshold: float = Field(default=1.5, ge=0.0)
     #: Longest gap (m) between consecutive readings still joined into one track segment when
@@ -346,18 +428,19 @@ class LevelSection(Section):
 
 class GridSection(Section):
     #: Cell size (m); 0 = a quarter of the nominal line spacing (common practice).
-    spacing_m: float = 0.0
+    spacing_m: float = Field(0.0, ge=0)
     #: Block size for the block reduction (m); 0 = the cell size.
-    block_m: float = 0.0
+    block_m: float = Field(0.0, ge=0)
     #: Height of the grid (m, ellipsoidal); None = median reading height. "drape" follows data.
     height: float | str | None = None
     #: Search for source depth (multiples of block size) and damping by blocked CV.
-    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0])
-    dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1])
+    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0], min_length=1)
+    dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1],
+                                  min_length=1)
     #: Number of folds of the blocked K-fold cross-validation.
-    cv_folds: int = 4
+    cv_folds: int = Field(4, ge=2, le=50)
     #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
-    mask_distance_m: float = 0.0
+    mask_distance_m: float = Field(0.0, ge=0)
     #: Equivalent-source solver: "auto" (dense up to 4000 sources, else FFT lattice), "dense"
     #: (sources beneath the blocks) or "fft" (lattice layer, conjugate gradients).
     method: Literal["auto", "dense", "fft"] = "auto"
@@ -371,7 +454,28 @@ class GridSection(Section):
     tolerance: float = Field(2e-5, gt=0, lt=1)
     #: Tiled gridding of very large surveys (potfield.fields.harmonic.tiles) and the tile size (m).
     tiled: bool = False
-    tile_size_m: float = 0.0
+    tile_size_m: float = Field(0.0, ge=0)
+
+    @field_validator("height")
+    @classmethod
+    def _height(cls, value):
+        if isinstance(value, str) and value != "drape":
+            raise ValueError(f"height '{value}' is not known; give a number (m), \"drape\" or leave it out")
+        return value
+
+    @field_validator("depth_factors")
+    @classmethod
+    def _positive_factors(cls, value: list[float]) -> list[float]:
+        if any(v <= 0 for v in value):
+            raise ValueError("every depth factor must be > 0 (multiples of the block size)")
+        return value
+
+    @field_validator("dampings")
+    @classmethod
+    def _positive_dampings(cls, value: list[float]) -> list[float]:
+        if any(v < 0 for v in value):
+            raise ValueError("every damping must be >= 0")
+        return value
 
 
 #: Products the derive stage can make (potfield.stages.derive).
@@ -446,7 +550,7 @@ class SeparateSection(Section):
 class ReportSection(Section):
     geotiff: bool = False
     title: str | None = None
-    dpi: int = 110
+    dpi: int = Field(110, ge=30, le=1200)
 
 
 class SurveyConfig(Section):
@@ -465,6 +569,30 @@ class SurveyConfig(Section):
     separate: SeparateSection = Field(default_factory=SeparateSection)
     report: ReportSection = Field(default_factory=ReportSection)
 
+    @model_validator(mode="after")
+    def _kind_sections(self):
+        """Sections that only one survey kind reads must not be filled for another kind: a
+        magnetic config pointed at gravity data (or the reverse) is a mistake, not a no-op."""
+        kind = self.survey.kind
+        used = []
+        if kind != "magnetic":
+            if self.diurnal.bases:
+                used.append(("diurnal.bases", "magnetic"))
+            if self.diurnal.remote_reference:
+                used.append(("diurnal.remote_reference", "magnetic"))
+        if kind != "gravity":
+            if self.drift.bases:
+                used.append(("drift.bases", "gravity"))
+            if self.drift.calibration_file:
+                used.append(("drift.calibration_file", "gravity"))
+            if self.reference.dem_file:
+                used.append(("reference.dem_file", "gravity"))
+        if used:
+            key, owner = used[0]
+            raise ValueError(f"'{key}' is only used by {owner} surveys but survey.kind is "
+                             f"'{kind}' (fix: correct survey.kind or remove {key})")
+        return self
+
     @property
     def kind(self) -> str:
         return self.survey.kind
@@ -478,6 +606,38 @@ class SurveyConfig(Section):
         return hashlib.sha256(
             json.dumps(self.model_dump(mode="json"), sort_keys=True).encode()
         ).hexdigest()
+
+
+def _check_delimiter(value: str) -> str:
+    """``auto``, ``whitespace`` or one character that is not a quote or a line break."""
+    if value in ("auto", "whitespace") or (len(value) == 1 and value not in "\"\r\n"):
+        return value
+    shown = "an empty delimiter" if not value else f"delimiter {value!r}"
+    raise ValueError(f"{shown} is not usable; use \"auto\", \",\", \";\", \"\\t\" or \"whitespace\"")
+
+
+def _check_date(value: str) -> str:
+    """A ``YYYY-MM-DD`` date (the message says which form is expected)."""
+    import datetime as _dt
+
+    try:
+        _dt.date.fromisoformat(value.strip())
+    except ValueError:
+        raise ValueError(f"'{value}' is not a date; write it as YYYY-MM-DD") from None
+    return value
+
+
+def _check_time(value: str) -> str:
+    """An ISO 8601 date and time pandas can represent (1677..2262)."""
+    import pandas as pd
+
+    try:
+        stamp = pd.Timestamp(value.strip())
+    except (ValueError, OverflowError):
+        raise ValueError(f"'{value}' is not an ISO 8601 time; write it as YYYY-MM-DDThh:mm:ssZ") from None
+    if stamp is pd.NaT:
+        raise ValueError(f"'{value}' is not an ISO 8601 time; write it as YYYY-MM-DDThh:mm:ssZ")
+    return value
 
 
 def _unknown(key: str, valid, what: str) -> str:
@@ -511,7 +671,9 @@ def _model_at(model: type[BaseModel], loc: tuple) -> type[BaseModel] | None:
 
 def _format_validation(err: ValidationError, path: Path) -> str:
     first = err.errors()[0]
-    loc = tuple(first["loc"])
+    # drop the union-member tags pydantic adds to the location (grid.height.float -> grid.height)
+    loc = tuple(p for p in first["loc"] if not (isinstance(p, str) and (
+        p in ("float", "int", "str", "bool", "none") or "[" in p)))
     key = ".".join(str(p) for p in loc)
     kind = first["type"]
     if kind == "extra_forbidden":
@@ -522,10 +684,29 @@ def _format_validation(err: ValidationError, path: Path) -> str:
         return f"{path}: key '{key}' is required (fix: add it to survey.toml)"
     if kind == "value_error":
         msg = str(first.get("ctx", {}).get("error", first["msg"]))
-        return f"{path}: key '{key}': {msg}"
+        return f"{path}: key '{key}': {msg}" if key else f"{path}: {msg}"
     expected = first["msg"].replace("Input should be", "expected").replace("input should be", "expected")
     got = first.get("input")
+    if kind in _RANGE_ERRORS:
+        ctx = first.get("ctx", {})
+        bound = " and ".join(f"{_RANGE_ERRORS[k]} {ctx[k]}" for k in ("gt", "ge", "lt", "le") if k in ctx)
+        return (f"{path}: key '{key}' = {got!r} is out of range; it must be {bound} "
+                f"(fix: change it in survey.toml)")
+    if kind == "finite_number":
+        return (f"{path}: key '{key}' = {got!r} is not a finite number "
+                f"(fix: give a finite number in survey.toml)")
+    if kind == "string_too_short":
+        return f"{path}: key '{key}' must not be empty (fix: give it a value in survey.toml)"
+    if kind == "too_short":
+        least = first.get("ctx", {}).get("min_length", 1)
+        return (f"{path}: key '{key}' is too short ({got!r}); it needs at least {least} "
+                f"value(s) (fix: give at least {least} in survey.toml)")
     return f"{path}: key '{key}' has the wrong type or value ({got!r}); {expected}"
+
+
+#: pydantic error types of a numeric bound (Field(gt=, ge=, lt=, le=)).
+_RANGE_ERRORS = {"greater_than": ">", "greater_than_equal": ">=", "less_than": "<", "less_than_equal": "<=",
+                 "gt": ">", "ge": ">=", "lt": "<", "le": "<="}
 
 
 def parse_config(data: dict, path: Path | str = "survey.toml") -> SurveyConfig:
@@ -546,7 +727,23 @@ def load_config(path: Path | str) -> SurveyConfig:
             fix="run 'potfield new DIR --kind magnetic|gravity|observatory' or point at a survey folder",
         )
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        raw = path.read_bytes()
+    except OSError as err:
+        raise ConfigError(f"{path}: cannot read the file ({err.strerror or err})",
+                          fix="check the file's permissions") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        # TOML is UTF-8 by definition (TOML 1.0.0, "Spec"): name the byte, do not guess.
+        line = raw.count(b"\n", 0, err.start) + 1
+        column = err.start - (raw.rfind(b"\n", 0, err.start) + 1) + 1
+        raise ConfigError(
+            f"{path}: line {line}, column {column} (byte offset {err.start}): byte "
+            f"0x{raw[err.start]:02x} is not UTF-8 text; a TOML file must be UTF-8",
+            fix="save survey.toml as UTF-8 (or replace the character with plain ASCII)",
+        ) from None
+    try:
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise ConfigError(f"{path}: not valid TOML ({err})", fix="correct the syntax at that line") from None
     return parse_config(data, path)

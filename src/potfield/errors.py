@@ -50,6 +50,10 @@ class SurveyLockedError(PotfieldError):
     """Another run holds the survey's lock."""
 
 
+class OutputError(PotfieldError):
+    """out/ (or a file in it) cannot be written: permissions, a full disk, a file in the way."""
+
+
 class StageError(PotfieldError):
     """A stage cannot run with the inputs it was given (e.g. a required earlier stage missing)."""
 

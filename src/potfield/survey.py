@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .config import SurveyConfig, load_config
-from .errors import ConfigError, InputDataError, SurveyLockedError
+from .errors import ConfigError, InputDataError, OutputError, SurveyLockedError
 
 
 def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
@@ -169,9 +169,16 @@ class Survey:
     # --- lock -----------------------------------------------------------------------------------
     @contextmanager
     def lock(self):
-        """Exclusive lock on the survey's out/ so two runs cannot write it at once."""
-        self.out.mkdir(parents=True, exist_ok=True)
+        """Exclusive lock on the survey's out/ so two runs cannot write it at once.
+
+        An OSError while writing out/ inside the lock (permission denied, disk full, a file
+        where a folder should be) becomes a one-line :class:`OutputError`; the lock is released.
+        """
         path = self.out / ".lock"
+        try:
+            self.out.mkdir(parents=True, exist_ok=True)
+        except OSError as err:  # out/ is a file, read-only parent, ...
+            raise self._output_error(err) from None
         try:
             fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
         except FileExistsError:
@@ -184,12 +191,44 @@ class Survey:
                     f"{self.root}: another potfield run (pid {pid}) is processing this survey",
                     fix=f"wait for it to finish, or delete {path} if no run is active",
                 ) from None
+        except OSError as err:
+            raise self._output_error(err) from None
         try:
             os.write(fd, str(os.getpid()).encode())
             os.close(fd)
             yield
+        except OSError as err:
+            if not self._is_output_error(err):
+                raise
+            raise self._output_error(err) from None
         finally:
-            path.unlink(missing_ok=True)
+            try:
+                path.unlink(missing_ok=True)
+            except OSError:
+                pass
+
+    def _is_output_error(self, err: OSError) -> bool:
+        """A write failure under out/ (not, e.g., an input file that vanished mid-run)."""
+        import errno
+
+        if err.errno not in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQUOT,
+                             errno.ENOTDIR, errno.EISDIR, errno.EEXIST):
+            return False
+        if not err.filename:
+            return True
+        try:
+            Path(err.filename).resolve().relative_to(self.out)
+        except ValueError:
+            return False
+        return True
+
+    def _output_error(self, err: OSError) -> OutputError:
+        target = Path(err.filename) if err.filename else self.out
+        reason = (err.strerror or str(err)).lower()
+        return OutputError(
+            f"cannot write to {target}: {reason}",
+            fix=f"make {self.out} writable (or free disk space) and run again; raw/ is never written",
+        )
 
 
 def _read_pid(path: Path) -> int | None:

@@ -33,7 +33,7 @@ def make_demo(kind: str, directory: Path, readings: int | None = None, seed: int
     directory : Path
         Folder to write (created; files of an earlier demo in it are overwritten).
     readings : int, optional
-        Magnetic scenario only: approximate number of readings, 10,000 to 10,000,000
+        Magnetic scenario only: approximate number of readings, 1,000 to 10,000,000
         (default 30,000). Ignored by the other kinds.
     seed : int
         Seed of ``numpy.random.default_rng``; the same seed gives the same files.

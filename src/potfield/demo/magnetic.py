@@ -42,7 +42,10 @@ from .common import rng_for
 #: Readings of the committed demo.
 DEFAULT_READINGS = 30_000
 #: Smallest and largest supported size.
-MIN_READINGS = 10_000
+MIN_READINGS = 1_000
+#: Below this size the area is smaller than two standard tie spacings: three ties at half the
+#: side instead (sizes from here up keep the standard plan, so their files are unchanged).
+SMALL_PLAN_BELOW = 10_000
 MAX_READINGS = 10_000_000
 #: Survey design (m, m/s, Hz, m).
 LINE_SPACING = 200.0
@@ -258,11 +261,20 @@ def plan_lines(readings: int) -> dict:
     """Size of the (square) area and the line plan for about ``readings`` samples."""
     step = SPEED / RATE_HZ
     density = 1.0 / LINE_SPACING + 1.0 / TIE_SPACING  # line metres per square metre
-    side = float(np.sqrt(readings * step / density))
-    side = max(round(side / TIE_SPACING) * TIE_SPACING, 2 * TIE_SPACING)
+    if readings < SMALL_PLAN_BELOW:
+        # side^2 / LINE_SPACING (traverses) + 3 side (ties) = readings x step, solved for side
+        # and rounded down to an even number of line spacings (at least 4 traverse gaps).
+        a, b = 1.0 / LINE_SPACING, 3.0
+        side = (-b + np.sqrt(b * b + 4.0 * a * readings * step)) / (2.0 * a)
+        side = max(np.floor(side / (2 * LINE_SPACING)) * 2 * LINE_SPACING, 4 * LINE_SPACING)
+        tie_spacing = side / 2.0
+    else:
+        side = float(np.sqrt(readings * step / density))
+        side = max(round(side / TIE_SPACING) * TIE_SPACING, 2 * TIE_SPACING)
+        tie_spacing = TIE_SPACING
     n_trav = int(round(side / LINE_SPACING)) + 1
-    n_tie = int(round(side / TIE_SPACING)) + 1
-    return {"side_m": side, "traverses": n_trav, "ties": n_tie}
+    n_tie = int(round(side / tie_spacing)) + 1
+    return {"side_m": float(side), "traverses": n_trav, "ties": n_tie, "tie_spacing_m": float(tie_spacing)}
 
 
 def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -> Path:
@@ -273,7 +285,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     directory : Path
         Survey folder to create or overwrite (survey.toml, raw/, truth/, README.md).
     readings : int, optional
-        Approximate number of readings, 10,000 to 10,000,000 (default 30,000).
+        Approximate number of readings, 1,000 to 10,000,000 (default 30,000).
     seed : int
         Seed of ``numpy.random.default_rng``; the same seed gives the same bytes.
 
@@ -303,7 +315,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     # Lines: traverses east-west (numbered 1010, 1020, ...), ties north-south (9010, ...).
     n_trav, n_tie = plan["traverses"], plan["ties"]
     offsets = np.concatenate([-side / 2 + LINE_SPACING * np.arange(n_trav),
-                              -side / 2 + TIE_SPACING * np.arange(n_tie)])
+                              -side / 2 + plan["tie_spacing_m"] * np.arange(n_tie)])
     is_tie = np.r_[np.zeros(n_trav, bool), np.ones(n_tie, bool)]
     names = np.r_[1010 + 10 * np.arange(n_trav), 9010 + 10 * np.arange(n_tie)].astype(str)
     n_lines = names.size
@@ -502,7 +514,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
         "area": {"name": common.AREA_NAME, "centre_lon": common.CENTRE_LON,
                  "centre_lat": common.CENTRE_LAT, "crs": common.OUTPUT_CRS,
                  "centre_easting": e0, "centre_northing": n0, "side_m": side},
-        "design": {"line_spacing_m": LINE_SPACING, "tie_spacing_m": TIE_SPACING,
+        "design": {"line_spacing_m": LINE_SPACING, "tie_spacing_m": plan["tie_spacing_m"],
                    "traverse_direction": "east-west", "tie_direction": "north-south",
                    "speed_m_s": SPEED, "sample_rate_hz": RATE_HZ, "clearance_m": CLEARANCE,
                    "wind_east_north_m_s": np.round(wind, 3).tolist(), "traverses": n_trav,

@@ -7,6 +7,8 @@ count from 1 at the top of the file (the header line included), as a text editor
 
 from __future__ import annotations
 
+import codecs
+import csv
 import gzip
 from pathlib import Path
 from typing import Protocol
@@ -20,19 +22,155 @@ from ..errors import InputDataError, format_rows
 TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time"}
 
 
-def _open_text(path: Path):
+def _open_text(path: Path, encoding: str = "utf-8"):
     if path.suffix == ".gz":
-        return gzip.open(path, "rt", encoding="utf-8", errors="replace")
-    return open(path, encoding="utf-8", errors="replace")
+        return gzip.open(path, "rt", encoding=encoding, errors="replace")
+    return open(path, encoding=encoding, errors="replace")
 
 
-def sniff_delimiter(path: Path, skip_rows: int = 0) -> str:
+def _open_binary(path: Path):
+    """The file's bytes, decompressed (.gz, .bz2, .xz, .zip, .zst as pandas infers)."""
+    from pandas.io.common import get_handle
+
+    return get_handle(path, "rb", compression="infer", is_text=False)
+
+
+#: Bytes read per block when scanning a file (bounded memory on very large files).
+SCAN_BLOCK = 1 << 23
+
+
+def _decode_failure(path: Path, encoding: str) -> tuple[int, int, int] | None:
+    """Line number, byte offset and value of the first byte that ``encoding`` cannot decode
+    (None when the whole file decodes). One streaming pass, bounded memory."""
+    decoder = codecs.getincrementaldecoder(encoding)()
+    # ASCII blocks decode in any ASCII-compatible codec: skip them (bytes.isascii is fast)
+    ascii_safe = "a".encode(encoding) == b"a" and "\n".encode(encoding) == b"\n"
+    offset, lines = 0, 0
+    with _open_binary(path) as handle:
+        while block := handle.handle.read(SCAN_BLOCK):
+            if ascii_safe and block.isascii() and not decoder.getstate()[0]:
+                offset += len(block)
+                lines += block.count(b"\n")
+                continue
+            try:
+                decoder.decode(block)
+            except UnicodeDecodeError as err:
+                # the incremental decoder may hold back a partial character from the block before
+                start = max(err.start - len(err.object) + len(block), 0)
+                return lines + block.count(b"\n", 0, start) + 1, offset + start, block[start]
+            offset += len(block)
+            lines += block.count(b"\n")
+        try:
+            decoder.decode(b"", final=True)
+        except UnicodeDecodeError:
+            return lines + 1, max(offset - 1, 0), 0
+    return None
+
+
+def _field_counts(path: Path, sep: str, skip_rows: int, encoding: str):
+    """Yield (line numbers, field counts) of the non-blank lines after the header, by blocks.
+
+    Counts delimiters per line on the raw bytes (vectorised, one block of lines at a time), so
+    a row with more or fewer fields than the header is found without parsing the values.
+    """
+    try:
+        sep_b = b" " if sep == "whitespace" else sep.encode(encoding)
+        newline = "\n".encode(encoding)
+    except (UnicodeEncodeError, LookupError):
+        return
+    if len(sep_b) != 1 or newline != b"\n":
+        return  # multi-byte delimiters or encodings (UTF-16): left to the parser
+    code = sep_b[0]
+    consumed, rest = 0, b""
+    with _open_binary(path) as handle:
+        while True:
+            block = handle.handle.read(SCAN_BLOCK)
+            data = rest + block
+            if not block:
+                if not data:
+                    break
+                if not data.endswith(b"\n"):
+                    data += b"\n"
+                cut = len(data)
+            else:
+                cut = data.rfind(b"\n") + 1
+                if cut == 0:
+                    rest = data
+                    continue
+            chunk, rest = data[:cut], data[cut:]
+            arr = np.frombuffer(chunk, dtype=np.uint8)
+            ends = np.flatnonzero(arr == 10)
+            if sep == "whitespace":
+                space = (arr == 32) | (arr == 9) | (arr == 13) | (arr == 10)
+                solid = np.cumsum(~space, dtype=np.int64)[ends]
+                nonblank = np.diff(np.r_[0, solid]) > 0
+                starts = np.flatnonzero(~space & np.r_[True, space[:-1]])
+                counts = np.diff(np.r_[0, np.searchsorted(starts, ends)])
+            else:
+                # a line is blank when it holds nothing but an optional carriage return
+                length = np.diff(np.r_[-1, ends]) - 1
+                nonblank = (length > 1) | ((length == 1) & (arr[np.maximum(ends - 1, 0)] != 13))
+                counts = np.diff(np.r_[0, np.searchsorted(np.flatnonzero(arr == code), ends)]) + 1
+            numbers = consumed + 1 + np.arange(ends.size)
+            consumed += ends.size
+            keep = nonblank & (numbers > skip_rows)
+            yield numbers[keep], counts[keep], chunk, ends, consumed - ends.size
+            if not block:
+                break
+
+
+def _ragged_row(path: Path, sep: str, skip_rows: int, encoding: str) -> tuple[int, int, int, int] | None:
+    """The first data line whose field count differs from the header's.
+
+    Returns (line number, its field count, the header's field count, how many such lines) or
+    None. Lines flagged by the byte count are confirmed with :mod:`csv` (quoted delimiters).
+    """
+    header = None
+    found = None
+    others = 0
+    for numbers, counts, chunk, ends, first in _field_counts(path, sep, skip_rows, encoding):
+        if numbers.size == 0:
+            continue
+        if header is None:
+            header = int(counts[0])
+            numbers, counts = numbers[1:], counts[1:]
+        bad = np.flatnonzero(counts != header)
+        if bad.size == 0:
+            continue
+        if found is not None:
+            others += bad.size
+            continue
+        for i in bad[:50]:
+            number = int(numbers[i])
+            if sep != "whitespace":
+                j = number - first - 1
+                begin = 0 if j == 0 else int(ends[j - 1]) + 1
+                text = chunk[begin:int(ends[j])].decode(encoding, errors="replace").rstrip("\r")
+                fields = len(next(csv.reader([text], delimiter=sep), []))
+                if fields == header:
+                    continue  # a quoted delimiter: not ragged
+            else:
+                fields = int(counts[i])
+            if found is None:
+                found = (number, fields)
+            else:
+                others += 1
+        others += max(bad.size - 50, 0)
+    if found is None:
+        return None
+    return found[0], found[1], header, others
+
+
+def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> str:
     """Guess the delimiter from the header line: ``,`` ``;`` tab or whitespace."""
-    with _open_text(path) as handle:
+    with _open_text(path, encoding) as handle:
         for _ in range(skip_rows):
             handle.readline()
         header = handle.readline()
     if not header.strip():
+        if skip_rows:
+            raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
+                                 file=path, fix="check input.skip_rows and that the right file is named")
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     for candidate in (",", ";", "\t"):
         if candidate in header:
@@ -41,7 +179,8 @@ def sniff_delimiter(path: Path, skip_rows: int = 0) -> str:
 
 
 def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "auto",
-                   skip_rows: int = 0, missing_values=(), required=()) -> pd.DataFrame:
+                   skip_rows: int = 0, missing_values=(), required=(), encoding: str = "utf-8",
+                   encoding_key: str = "input.encoding", columns_key: str = "input.columns") -> pd.DataFrame:
     """Read the mapped columns of one delimited file, renamed to canonical names.
 
     Parameters
@@ -53,6 +192,12 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         ``"auto"``, ``","``, ``";"``, ``"\\t"`` or ``"whitespace"``.
     required : iterable of str
         Canonical names that must be mapped and present.
+    encoding : str
+        Text encoding of the file. When the default ``"utf-8"`` cannot decode it, the file is
+        read as latin-1 (every byte is a character there) and ``frame.attrs["warnings"]`` says
+        so; another declared encoding that fails is an error naming the line and byte offset.
+    encoding_key, columns_key : str
+        survey.toml keys of the encoding and of the column mapping, for messages.
 
     Returns
     -------
@@ -67,42 +212,92 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     for name in required:
         if name not in columns:
             raise InputDataError(
-                f"no input column is mapped to '{name}'", file=path, key=f"input.columns.{name}",
-                fix=f"add {name} = \"<your column>\" under [input.columns]",
+                f"no input column is mapped to '{name}'", file=path, key=f"{columns_key}.{name}",
+                fix=f"add {name} = \"<your column>\" under [{columns_key}]",
             )
-    sep = sniff_delimiter(path, skip_rows) if delimiter == "auto" else delimiter
+    try:
+        failure = _decode_failure(path, encoding)
+    except (OSError, EOFError, ValueError) as err:  # a damaged compressed file
+        raise InputDataError(f"cannot read the file ({_first_line(err)})", file=path,
+                             fix="check that the file is complete (re-copy or re-compress it)") from None
+    if failure is None:
+        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding, columns_key)
+    line, offset, byte = failure
+    if codecs.lookup(encoding).name != "utf-8":
+        raise InputDataError(
+            f"line {line} (byte offset {offset}): byte 0x{byte:02x} is not {encoding} text",
+            file=path, key=encoding_key,
+            fix="set the encoding the file was written in (e.g. utf-8, latin-1, cp1252)",
+        )
+    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key)
+    frame.attrs["warnings"] = [
+        f"{path.name}: not valid UTF-8 (byte 0x{byte:02x} at line {line}, byte offset {offset}); "
+        f"read as latin-1 -- check the text columns, or declare the file's encoding with "
+        f"{encoding_key}"]
+    return frame
+
+
+def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_rows: int,
+                    missing_values, encoding: str, columns_key: str = "input.columns") -> pd.DataFrame:
+    sep = sniff_delimiter(path, skip_rows, encoding) if delimiter == "auto" else delimiter
     wanted = list(dict.fromkeys(columns.values()))
     kwargs = dict(skiprows=skip_rows, na_values=list(missing_values), keep_default_na=True,
+                  encoding=encoding,
                   dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
                          if canon in TEXT_COLUMNS})
     try:
         if sep == "whitespace":
-            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip_rows).columns
+            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip_rows, encoding=encoding).columns
         else:
-            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip_rows).columns
+            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip_rows, encoding=encoding).columns
     except pd.errors.EmptyDataError:
-        raise InputDataError("file is empty", file=path, fix="check that the right file is named") from None
+        where = f" after skipping {skip_rows} line(s)" if skip_rows else ""
+        raise InputDataError(f"file has no header line{where}", file=path,
+                             fix="check that the right file is named and input.skip_rows") from None
+    except (pd.errors.ParserError, ValueError, csv.Error) as err:
+        if isinstance(err, UnicodeDecodeError):
+            raise
+        raise InputDataError(f"cannot read the header line {skip_rows + 1} ({_first_line(err)})",
+                             file=path, fix="check the delimiter and input.skip_rows") from None
     header = [str(h).strip() for h in header]
     missing = [c for c in wanted if c not in header]
     if missing:
         canon = [k for k, v in columns.items() if v == missing[0]][0]
         raise InputDataError(
             f"column '{missing[0]}' (mapped to {canon}) is not in the file; its columns are: "
-            f"{', '.join(header[:20])}", file=path, key=f"input.columns.{canon}",
-            fix="correct the column name under [input.columns]",
+            f"{', '.join(header[:20])}", file=path, key=f"{columns_key}.{canon}",
+            fix=f"correct the column name under [{columns_key}]",
         )
+    def refuse_ragged() -> None:
+        # pandas' C parser fills short rows with NaN silently; pyarrow refuses them (and then
+        # this runs before the fallback), so the byte scan is only needed off the pyarrow path
+        ragged = _ragged_row(path, sep, skip_rows, encoding)
+        if ragged is not None:
+            line, fields, expected, others = ragged
+            more = f" (and {others} more such line(s))" if others else ""
+            raise InputDataError(
+                f"line {line} has {fields} field(s) but the header line {skip_rows + 1} has "
+                f"{expected}{more}", file=path,
+                fix="give every row the header's fields (empty = missing), or check the delimiter",
+            )
+
     try:
         if sep == "whitespace":
+            refuse_ragged()
             frame = pd.read_csv(path, sep=r"\s+", usecols=lambda c: str(c).strip() in wanted, **kwargs)
         elif len(sep) == 1 and not skip_rows and path.suffix != ".gz":
             try:  # pyarrow's reader is several times faster on large files
                 frame = pd.read_csv(path, sep=sep, usecols=wanted, engine="pyarrow", **kwargs)
             except (ValueError, TypeError, KeyError):
+                refuse_ragged()
                 frame = pd.read_csv(path, sep=sep, usecols=lambda c: str(c).strip() in wanted, **kwargs)
         else:
+            refuse_ragged()
             frame = pd.read_csv(path, sep=sep, usecols=lambda c: str(c).strip() in wanted, **kwargs)
-    except pd.errors.ParserError as err:
-        raise InputDataError(f"cannot parse the file ({str(err).splitlines()[0]})", file=path,
+    except (pd.errors.ParserError, ValueError, csv.Error, OverflowError) as err:
+        if isinstance(err, UnicodeDecodeError):
+            raise
+        raise InputDataError(f"cannot parse the file ({_first_line(err)})", file=path,
                              fix="check the delimiter and that every line has the same fields") from None
     frame.columns = [str(c).strip() for c in frame.columns]
     if frame.empty:
@@ -116,20 +311,35 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     return out
 
 
+def _first_line(err: Exception) -> str:
+    text = str(err).strip()
+    return text.splitlines()[0] if text else type(err).__name__
+
+
 def to_numeric(frame: pd.DataFrame, name: str, path: Path) -> np.ndarray:
     """Column ``name`` as float; non-numeric entries are an error naming their line numbers."""
     col = frame[name]
+    if pd.api.types.is_bool_dtype(col.dtype):
+        col = col.astype(object).astype("string")
     if pd.api.types.is_numeric_dtype(col.dtype):
-        return col.to_numpy(dtype=float)
-    values = pd.to_numeric(col, errors="coerce").to_numpy(dtype=float)
-    text = col.astype("string")
-    bad = np.isnan(values) & text.notna().to_numpy() & (text.str.strip() != "").fillna(False).to_numpy()
-    if bad.any():
-        rows = frame["source_row"].to_numpy()[bad]
-        example = text[bad].iloc[0]
+        values = col.to_numpy(dtype=float)
+    else:
+        values = pd.to_numeric(col, errors="coerce").to_numpy(dtype=float)
+        text = col.astype("string")
+        bad = np.isnan(values) & text.notna().to_numpy() & (text.str.strip() != "").fillna(False).to_numpy()
+        if bad.any():
+            rows = frame["source_row"].to_numpy()[bad]
+            example = text[bad].iloc[0]
+            raise InputDataError(
+                f"non-numeric value '{example}' in column {name} at line {format_rows(rows)}",
+                file=path, fix="correct or blank those values (blank = missing)",
+            )
+    infinite = np.isinf(values)
+    if infinite.any():
+        rows = frame["source_row"].to_numpy()[infinite]
         raise InputDataError(
-            f"non-numeric value '{example}' in column {name} at line {format_rows(rows)}",
-            file=path, fix="correct or blank those values (blank = missing)",
+            f"value {values[infinite][0]:g} in column {name} at line {format_rows(rows)} is not a "
+            "finite number", file=path, fix="correct or blank those values (blank = missing)",
         )
     return values
 
@@ -152,7 +362,14 @@ def _parse_date(text: pd.Series) -> pd.Series:
     compact = text.str.fullmatch(r"\d{8}").fillna(False)
     text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
     text = text.str.replace("/", "-", regex=False)
-    return pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
+    return pd.to_datetime(_drop_out_of_range_years(text), format="%Y-%m-%d", errors="coerce")
+
+
+def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
+    """Dates whose year datetime64[ns] cannot hold (outside 1678..2261) as missing, so they are
+    reported as unreadable at their lines (pandas raises on them even with errors="coerce")."""
+    year = pd.to_numeric(text.str.extract(r"^\s*([+-]?\d{4,})-", expand=False), errors="coerce")
+    return text.where(~((year < 1678) | (year > 2261)).fillna(False).astype(bool), pd.NA)
 
 
 def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
@@ -162,16 +379,35 @@ def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
     seconds of day in ``time``), ``decimal_hours`` (hours of day in ``time``; a drop of more than
     12 h between consecutive readings is taken as a day roll-over).
     """
+    try:
+        return _parse_time(frame, spec, path)
+    except (ValueError, OverflowError, pd.errors.OutOfBoundsDatetime) as err:
+        # pandas' DateParseError and OutOfBoundsDatetime are ValueErrors
+        if isinstance(err, InputDataError):
+            raise
+        raise InputDataError(f"cannot read the times as {spec.format} ({_first_line(err)})",
+                             file=path, fix="check the time column and [input.time] format") from None
+
+
+#: Largest |offset| (s) from the date accepted in date_seconds/decimal_hours times (400 days):
+#: keeps the nanosecond arithmetic far from int64 overflow.
+MAX_SECONDS = 400 * 86400.0
+
+
+def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
     if "time" not in frame:
         raise InputDataError("no input column is mapped to 'time'", file=path, key="input.columns.time",
                              fix='add time = "<your time column>" under [input.columns]')
     raw = frame["time"]
     if spec.format == "iso":
         text = raw.astype("string").str.strip()
+        # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
+        # to_datetime raises on them even with errors="coerce"
+        text = _drop_out_of_range_years(text)
         parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
         result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
         bad = np.isnat(result)
-        example_source = text
+        example_source = raw.astype("string").str.strip()
     else:
         seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
         if spec.format == "decimal_hours":
@@ -191,11 +427,15 @@ def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
                 fix='map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [input.time]',
             )
         ns = np.round(seconds * 1e9)
-        good = np.isfinite(ns) & ~np.isnat(day)
+        good = np.isfinite(ns) & (np.abs(seconds) <= MAX_SECONDS) & ~np.isnat(day)
+        day_ns = day.astype("int64").astype(float)
+        good &= np.abs(day_ns + np.where(good, ns, 0.0)) < 9.2e18  # inside datetime64[ns]
         result = np.full(len(frame), np.datetime64("NaT"), dtype="datetime64[ns]")
         result[good] = day[good] + ns[good].astype("int64").astype("timedelta64[ns]")
         bad = np.isnat(result)
         example_source = raw.astype("string")
+        if "date" in frame:
+            example_source = frame["date"].astype("string").str.strip() + " " + example_source
     if bad.any():
         rows = frame["source_row"].to_numpy()[bad]
         raise InputDataError(

@@ -207,10 +207,12 @@ def read_iaga2002(path) -> IagaRecord:
             value = header[key]
             try:
                 header[key] = float(value) if value.strip() else float("nan")
+                if np.isinf(header[key]) or value.strip().lower() in ("nan", "+nan", "-nan"):
+                    raise ValueError(value)
             except ValueError:
                 label_no = _header_line(lines, data_header, HEADER_LABELS[key])
                 _fail(path, label_no, f"{HEADER_LABELS[key]} '{value}' is not a number",
-                      "write it as a decimal number (degrees, or metres for Elevation)")
+                      "write it as a finite decimal number (degrees, or metres for Elevation)")
 
     # --- data header --------------------------------------------------------------------------
     tokens = lines[data_header].replace("|", " ").split()
@@ -283,11 +285,11 @@ def read_iaga2002(path) -> IagaRecord:
     data = pd.DataFrame({"time": times})
     for j, element in enumerate(elements):
         values = pd.to_numeric(frame[f"v{j}"], errors="coerce").to_numpy(dtype=float, copy=True)
-        bad = np.isnan(values)
+        bad = ~np.isfinite(values)
         if bad.any():
             i = int(np.argmax(bad))
             _fail(path, int(line_numbers[i]), f"value '{frame[f'v{j}'].iloc[i]}' of {labels[j]} is "
-                  "not a number", "write numbers as %10.2f, 99999.00 for missing")
+                  "not a finite number", "write numbers as %10.2f, 99999.00 for missing")
         values[values >= SENTINEL_MIN] = np.nan
         data[element] = values
     _derive(data)
@@ -519,6 +521,9 @@ def observatory_table(paths, geoid_undulation: float = 0.0) -> pd.DataFrame:
         if not -90.0 <= lat <= 90.0:
             raise InputDataError(f"Geodetic Latitude {lat} is outside -90..90", file=path,
                                  fix="correct the header record")
+        if not -180.0 <= lon <= 360.0:
+            raise InputDataError(f"Geodetic Longitude {lon} is outside -180..360", file=path,
+                                 fix="correct the header record (degrees east)")
         elevation = record.header.get("elevation", np.nan)
         elevation = 0.0 if not np.isfinite(elevation) else float(elevation)
         data = record.data

@@ -6,6 +6,7 @@ by survey kind) and single values are overridden with ``[survey] spec_overrides`
 
 from __future__ import annotations
 
+import math
 import tomllib
 from importlib import resources
 from pathlib import Path
@@ -24,6 +25,22 @@ def available_profiles() -> list[str]:
     return sorted(p.stem for p in profiles_dir().glob("*.toml"))
 
 
+#: Tolerances the stages ask for (ctx.tolerance) that no shipped profile sets.
+CODE_TOLERANCES = ("diurnal_station_difference_nT", "diurnal_time_offset_s")
+
+
+def known_spec_keys() -> set[str]:
+    """Every tolerance name an override may set: the keys of all shipped profiles, plus
+    :data:`CODE_TOLERANCES`."""
+    keys = set(CODE_TOLERANCES)
+    for path in profiles_dir().glob("*.toml"):
+        try:
+            keys |= set(tomllib.loads(path.read_text(encoding="utf-8")))
+        except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError):
+            continue
+    return keys
+
+
 def load_spec(config, survey=None) -> dict[str, tuple[float, str]]:
     """Tolerances in force: name -> (value, source)."""
     name = config.survey.spec
@@ -37,13 +54,27 @@ def load_spec(config, survey=None) -> dict[str, tuple[float, str]]:
                           fix=f"use one of {', '.join(available_profiles())} or a path to a profile file")
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as err:
-        raise ConfigError(f"{path}: not valid TOML ({err})") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
+        raise ConfigError(f"{path}: not a valid UTF-8 TOML spec profile ({err})",
+                          fix="correct the profile file") from None
     spec = {}
     for key, entry in data.items():
         if not isinstance(entry, dict) or "value" not in entry:
             raise ConfigError(f"{path}: entry '{key}' needs value and source")
-        spec[key] = (float(entry["value"]), str(entry.get("source", "common practice")))
+        value = entry["value"]
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value):
+            raise ConfigError(f"{path}: entry '{key}' value {value!r} is not a number",
+                              fix="give the tolerance as a number")
+        spec[key] = (float(value), str(entry.get("source", "common practice")))
+    known = known_spec_keys() | set(spec)
     for key, value in config.survey.spec_overrides.items():
+        if key not in known:
+            import difflib
+
+            close = difflib.get_close_matches(key, sorted(known), n=1, cutoff=0.5)
+            hint = f"did you mean '{close[0]}'?" if close else f"valid: {', '.join(sorted(known))}"
+            raise ConfigError(f"unknown spec value '{key}'; {hint}",
+                              key=f"survey.spec_overrides.{key}",
+                              fix="use a tolerance name of a profile in configs/specs/")
         spec[key] = (float(value), "survey.toml override")
     return spec

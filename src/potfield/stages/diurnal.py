@@ -50,7 +50,7 @@ def _span_text(start, end) -> str:
     return f"{_time_text(start)} to {_time_text(end)}"
 
 
-def read_base(base, survey, index: int) -> BaseRecord:
+def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
     """Read one ``[[diurnal.bases]]`` entry into times (datetime64[ns], UTC) and total field (nT).
 
     Delimited files go through the same reader, time formats and units as the survey files
@@ -90,7 +90,9 @@ def read_base(base, survey, index: int) -> BaseRecord:
                               key=f"{key}.time.date",
                               fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
         frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
-                               skip_rows=base.skip_rows, missing_values=base.missing_values)
+                               skip_rows=base.skip_rows, missing_values=base.missing_values,
+                               encoding=encoding, encoding_key="input.encoding",
+                               columns_key=f"{key}.columns")
         times = parse_time(frame, base.time, path)
         value = convert_units(to_numeric(frame, "total_field", path),
                               unit_factor("total_field", base.units))
@@ -213,7 +215,7 @@ def run(ctx: StageContext) -> StageOutput:
         if name in names[:i]:
             raise ConfigError(f"base name '{name}' is used twice", key=f"diurnal.bases[{i}].name",
                               fix="give every [[diurnal.bases]] its own name")
-    bases = [read_base(b, ctx.survey, i) for i, b in enumerate(cfg.bases)]
+    bases = [read_base(b, ctx.survey, i, ctx.config.input.encoding) for i, b in enumerate(cfg.bases)]
     for b in bases:
         if b.time[-1] < span[0] or b.time[0] > span[1]:
             raise InputDataError(

@@ -16,7 +16,7 @@ import pandas as pd
 import pyproj
 
 from ..config import SurveyConfig, unit_factor
-from ..errors import CRSError, InputDataError, format_rows
+from ..errors import ConfigError, CRSError, InputDataError, format_rows
 from ..io.delimited import TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
@@ -37,8 +37,11 @@ def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs
     """The output CRS: as configured, the input CRS when it is projected, else the UTM zone of
     the survey centroid (pyproj's UTM database query)."""
     if config.survey.output_crs != "auto":
-        return parse_crs(config.survey.output_crs, "survey.output_crs")
+        crs = parse_crs(config.survey.output_crs, "survey.output_crs")
+        _require_metric(crs, config.survey.output_crs, "survey.output_crs")
+        return crs
     if input_crs.is_projected:
+        _require_metric(input_crs, config.survey.crs, "survey.crs")
         return input_crs
     lon0, lat0 = float(np.nanmean(lon)), float(np.nanmean(lat))
     from pyproj.aoi import AreaOfInterest
@@ -53,6 +56,72 @@ def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs
             code = f"EPSG:{info.code}"
             break
     return pyproj.CRS.from_user_input(code)
+
+
+def _require_metric(crs: pyproj.CRS, text: str, key: str) -> None:
+    """Gridding, distances and derivatives need a projected CRS in metres."""
+    if not crs.is_projected:
+        raise CRSError(f"output CRS '{text}' is {'geographic' if crs.is_geographic else 'not projected'}"
+                       " (degrees); processing needs a projected CRS in metres", key=key,
+                       fix='set survey.output_crs = "auto" (UTM zone) or a projected EPSG code such as "EPSG:32755"')
+    units = {(axis.unit_name or "").lower() for axis in crs.axis_info[:2]}
+    if not units <= {"metre", "meter", "m"}:
+        raise CRSError(f"CRS '{text}' has axes in {', '.join(sorted(units))}, not metres", key=key,
+                       fix='set survey.output_crs = "auto" (UTM zone) or a projected CRS in metres')
+
+
+#: Measured-value columns per survey kind: at least one must be mapped (and hold values).
+KIND_VALUES = {
+    "magnetic": ("total_field", "mag_north", "mag_east", "mag_down"),
+    "gravity": ("reading",),
+    "observatory": ("mag_north", "mag_east", "mag_down", "total_field"),
+}
+#: Fewest readings the stages can work with (fourth differences need five consecutive ones).
+MIN_READINGS = 5
+
+
+def check_value_columns(config: SurveyConfig) -> None:
+    """The survey kind's measured value must be mapped; another kind's value says so."""
+    wanted = KIND_VALUES[config.kind]
+    mapped = config.input.columns
+    if any(name in mapped for name in wanted):
+        return
+    others = [name for kind, names in KIND_VALUES.items() if kind != config.kind
+              for name in names if name in mapped]
+    hint = (f"; '{others[0]}' is a value of another survey kind (check survey.kind)" if others else "")
+    raise ConfigError(
+        f"a {config.kind} survey needs its measured value: no input column is mapped to "
+        f"{' or '.join(wanted)}{hint}", key=f"input.columns.{wanted[0]}",
+        fix=f'add {wanted[0]} = "<your column>" under [input.columns], or correct survey.kind',
+    )
+
+
+def check_readings(table: pd.DataFrame, config: SurveyConfig) -> None:
+    """Enough readings, some measured values, and named lines (each a one-line error)."""
+    n = len(table)
+    if n < MIN_READINGS:
+        raise InputDataError(
+            f"too few readings to process: {n}; need at least {MIN_READINGS}",
+            file=table["source_file"].iat[0] if n else None,
+            fix="check that the right files are named in input.files and that their rows are complete",
+        )
+    values = [name for name in KIND_VALUES[config.kind] if name in table]
+    if values and not any(np.isfinite(table[name].to_numpy(dtype=float)).any() for name in values):
+        raise InputDataError(
+            f"every {' and '.join(values)} value is missing ({n:,} readings)",
+            key=f"input.columns.{values[0]}",
+            fix="check the column mapping and input.missing_values",
+        )
+    if "line" in table:
+        text = table["line"]
+        blank = (text.isna() | (text.astype("string").str.strip() == "")).to_numpy(dtype=bool)
+        if blank.any():
+            first = int(np.argmax(blank))
+            raise InputDataError(
+                f"line name is blank at line {format_rows(table['source_row'].to_numpy()[blank])}",
+                file=table["source_file"].iat[first], key="input.columns.line",
+                fix="fill in the line names, or remove the line mapping to split lines by time gaps",
+            )
 
 
 def _tie_mask(lines: pd.Series, config: SurveyConfig) -> np.ndarray:
@@ -76,11 +145,15 @@ def _tie_mask(lines: pd.Series, config: SurveyConfig) -> np.ndarray:
 def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
     """Read, map, parse and convert every input file; concatenated in file order."""
     columns = dict(config.input.columns)
+    check_value_columns(config)
     frames = []
+    warnings: list[str] = []
     for path in files:
         frame = read_delimited(path, columns=columns, delimiter=config.input.delimiter,
                                skip_rows=config.input.skip_rows,
-                               missing_values=config.input.missing_values)
+                               missing_values=config.input.missing_values,
+                               encoding=config.input.encoding)
+        warnings += frame.attrs.get("warnings", [])
         if "time" in columns:
             out = pd.DataFrame({"time": parse_time(frame, config.input.time, path)})
         else:  # a survey without time (station lists): no time column, no diurnal correction
@@ -96,7 +169,9 @@ def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
         out["source_file"] = frame["source_file"].to_numpy()
         out["source_row"] = frame["source_row"].to_numpy()
         frames.append(out)
-    return pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+    table = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+    table.attrs["warnings"] = warnings
+    return table
 
 
 def _check_range(table: pd.DataFrame, name: str, low: float, high: float, fix: str) -> None:
@@ -111,6 +186,19 @@ def _check_range(table: pd.DataFrame, name: str, low: float, high: float, fix: s
         )
 
 
+def _check_missing(table: pd.DataFrame, names) -> None:
+    """Coordinates are needed for every reading: a blank one is an error naming its lines."""
+    for name in names:
+        bad = ~np.isfinite(table[name].to_numpy(dtype=float))
+        if bad.any():
+            first = int(np.argmax(bad))
+            raise InputDataError(
+                f"{name} is missing at line {format_rows(table['source_row'].to_numpy()[bad])}",
+                file=table["source_file"].iat[first], key=f"input.columns.{name}",
+                fix="fill in the coordinates or remove those rows",
+            )
+
+
 def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFrame, pyproj.CRS]:
     """Fill longitude/latitude and easting/northing both ways with pyproj."""
     in_crs = parse_crs(config.survey.crs, "survey.crs")
@@ -123,6 +211,8 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
                     fix=f'map {name} under [input.columns], or set survey.crs to the projected CRS of easting/northing',
                 )
         _check_range(table, "latitude", -90, 90, "check the latitude column and that longitude/latitude are not swapped")
+        _check_range(table, "longitude", -180, 360, "check the longitude column (degrees, -180..360)")
+        _check_missing(table, ("longitude", "latitude"))
         lon, lat = table["longitude"].to_numpy(), table["latitude"].to_numpy()
         if in_crs.to_epsg() != 4326:
             to_wgs = pyproj.Transformer.from_crs(in_crs, "EPSG:4326", always_xy=True)
@@ -137,6 +227,7 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
                     f"input CRS {config.survey.crs} is projected but no column is mapped to {name}",
                     key=f"input.columns.{name}", fix=f"map {name} under [input.columns]",
                 )
+        _check_missing(table, ("easting", "northing"))
         inv = pyproj.Transformer.from_crs(in_crs, "EPSG:4326", always_xy=True)
         lon, lat = inv.transform(table["easting"].to_numpy(), table["northing"].to_numpy())
         out_crs = output_crs(config, lon, lat, in_crs)
@@ -269,11 +360,15 @@ def run(ctx: StageContext) -> StageOutput:
         from ..io.iaga2002 import observatory_table
 
         table = observatory_table(files, geoid_undulation=config.survey.geoid_undulation)
+        warnings = []
         in_crs = parse_crs(config.survey.crs, "survey.crs")
         _check_range(table, "latitude", -90, 90, "check the station's Geodetic Latitude header")
+        check_readings(table, config)
         table, out_crs = georeference(table, config) if in_crs.is_geographic else (table, in_crs)
     else:
         table = read_readings(config, files)
+        warnings = list(table.attrs.pop("warnings", []))
+        check_readings(table, config)
         if config.survey.height_reference == "geoid" and "height" in table:
             table["height"] = table["height"] + config.survey.geoid_undulation
         table, out_crs = georeference(table, config)
@@ -318,7 +413,8 @@ def run(ctx: StageContext) -> StageOutput:
             detail=f"nominal {geometry['line_spacing_m']:.0f} m from line centroids"))
     notes = [f"{len(table):,} readings from {len(files)} file(s) on {table['line'].nunique()} line(s); "
              f"output CRS {out_crs.name}"]
-    return StageOutput(table=table, metrics=metrics, state=state, notes=notes, checks=checks)
+    return StageOutput(table=table, metrics=metrics, state=state, notes=notes, checks=checks,
+                       warnings=warnings)
 
 
 def _inputs(config, survey):
