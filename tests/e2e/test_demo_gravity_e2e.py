@@ -1,8 +1,9 @@
 """End to end on the committed gravity demo against its truth.
 
-Injected (truth/parameters.json): reading noise 0.008 mGal, daily linear drift, one 0.08 mGal
-tare, the Earth tide (Longman), instrument heights, station height errors of a few cm (up to
-0.1 m at a few stations), a DEM covering 20 km around the survey.
+Injected (truth/parameters.json): reading noise 0.005 mGal, daily linear drift, one 0.08 mGal
+tare (in the middle of a loop, two stations reread after it), the Earth tide (Longman),
+instrument heights, station height errors of a few cm (up to 0.1 m at a few stations), a DEM
+covering 20 km around the survey.
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ def demo(tmp_path_factory):
 def test_drift_tide_and_ties_recover_absolute_gravity(demo):
     _, _, m = demo
     error = m["gravity"] - m["g_true"]
-    # Network adjustment of readings with 0.008 mGal noise: station values good to about the
+    # Network adjustment of readings with 0.005 mGal noise: station values good to about the
     # noise (several occupations), a few single-occupation stations near loop ends carry the
     # drift uncertainty (sigma ~0.007 mGal/h x 1 h). Bound: RMS 0.03 mGal (~4 sigma).
     assert np.sqrt(np.mean(error**2)) < 0.03

@@ -118,6 +118,8 @@ def test_network_recovers_drift_tare_and_tide(tmp_path):
     for lp in ("L1", "L2"):
         assert loops.loc[lp, "drift_rate_mgal_per_h"] == pytest.approx(RATE[lp], abs=2e-4)
     assert out.tables["tares"]["step_mgal"].iloc[0] == pytest.approx(TARE, abs=5e-4)
+    # the tare cuts L2 into two segments tied through S3, S4 and B (Hinze et al. 2013)
+    assert list(out.tables["segments"]["segment"]) == ["L1", "L2#1", "L2#2"]
     assert all(c.passed for c in out.checks), [c.as_row() for c in out.checks]
     assert {c.name for c in out.checks} == {"gravity_drift_rate", "gravity_repeat_difference",
                                             "gravity_loop_closure"}
@@ -277,3 +279,21 @@ def test_stage_definition():
     assert STAGE.name == "drift"
     assert STAGE.sections == ("drift",)
     assert STAGE.kinds == ("gravity",)
+
+
+def test_dial_jump_stops_the_stage_with_the_tare_to_add(tmp_path):
+    table = make_table(tare=0.0, tide=False)
+    # a 30 mGal range (dial) change in loop L1 between S2 (1.30 h) and B (2.00 h); B is read at
+    # 0.00, 2.00 and 4.60 h, so the jump shows between its first two readings, and S1 and S2
+    # (read before and after it) narrow it to 1.30-2.00 h
+    table.loc[3:7, "reading"] += 30.0
+    with pytest.raises(InputDataError) as info:
+        run(context(tmp_path, table, method="network", tide=False))
+    text = str(info.value)
+    # jump plus 2 h of drift at 0.020 mGal/h: +30.040 mGal (hand arithmetic)
+    assert "+30.040 mGal" in text and "station B" in text and "\n" not in text
+    # proposed tare: the middle of 1.30-2.00 h = 1.65 h after 22:00 = 23:39
+    assert "[drift] tares" in text and "proposed: '2024-03-05T23:39:00Z'" in text
+    # given the tare at the jump time, the adjustment recovers every station (Hinze et al. 2013)
+    out = run(context(tmp_path, table, method="network", tide=False, tares=["2024-03-05T23:40:00"]))
+    np.testing.assert_allclose(out.table["gravity"], true_gravity(out.table), atol=1e-6)

@@ -173,3 +173,57 @@ def test_cv_blocks_are_one_line_spacing():
     assert _cv_spacing(50.0, [125.0, 400.0], 200.0, 40_000.0) == 200.0
     assert _cv_spacing(50.0, [125.0, 400.0], None, 40_000.0) == 1200.0  # stations: 3 x depth
     assert _cv_spacing(50.0, [125.0], 200.0, 400.0) == 100.0
+
+
+def test_station_survey_cell_from_station_spacing(tmp_path):
+    # An invented scattered gravity station layout: a 16 x 16 lattice of 400 m rotated by 30 deg
+    # and read in shuffled loop order (no lines), so the nearest-neighbour distance is 400 m by
+    # construction; 40 stations are occupied twice (repeats, a few cm apart in the records).
+    rng = np.random.default_rng(5)
+    i, j = np.meshgrid(np.arange(16), np.arange(16))
+    u, v = 400.0 * i.ravel(), 400.0 * j.ravel()
+    c, s = np.cos(np.radians(30.0)), np.sin(np.radians(30.0))
+    e, n = 10_000.0 + c * u - s * v, 20_000.0 + s * u + c * v
+    repeat = rng.choice(e.size, 40, replace=False)
+    e = np.r_[e, e[repeat] + 0.03]
+    n = np.r_[n, n[repeat] - 0.02]
+    order = rng.permutation(e.size)
+    e, n = e[order], n[order]
+    station = np.r_[np.arange(256), repeat][order]
+    table = pd.DataFrame({
+        "easting": e, "northing": n, "height": 250.0 + rng.normal(0, 5, e.size),
+        "line": [f"LOOP{k // 14}" for k in range(e.size)], "line_type": "traverse",
+        "station": [f"G{k:03d}" for k in station]})
+    # a smooth anomaly of a buried sphere-like source (harmonica point mass, mGal)
+    table["bouguer_anomaly"] = hm.point_gravity((table.easting, table.northing, table.height),
+                                                (13_000.0, 23_000.0, -1500.0), 5e11, field="g_z")
+    config = parse_config({"survey": {"kind": "gravity"},
+                           "grid": {"depth_factors": [4.5], "dampings": [1e-2]}})
+    # the ingest's "line spacing" of loop centroids means nothing for stations (12 m seen on a
+    # real station survey): the grid must not use it
+    state = {"ingest": {"line_spacing_m": 12.0, "tie_spacing_m": None, "crs": "EPSG:32633",
+                        "centroid": [15.0, 45.0]}}
+    ctx = StageContext(config=config, survey=Survey(tmp_path), table=table, state=state)
+    from potfield.stages.grid import STATION_CELL_FRACTION, _station_spacing
+
+    assert _station_spacing(table, np.ones(len(table), bool)) == pytest.approx(400.0, abs=0.1)
+    out = STAGE.run(ctx)
+    grid = out.grids["bouguer_anomaly"]
+    # common practice: a cell of a quarter to a half of the station spacing; here one half
+    assert STATION_CELL_FRACTION == 0.5
+    assert float(grid.easting[1] - grid.easting[0]) == pytest.approx(200.0, abs=0.1)  # region-adjusted
+    assert out.state["spacing_m"] == pytest.approx(200.0, abs=0.1)
+    # about (6000 m / 200 m + 1)^2 nodes over the rotated square's bounding box, not 10^5
+    assert grid.size < 2000
+    # the grid still honours the data: residual at the stations small against the anomaly
+    res = out.table["grid_residual"].to_numpy()
+    assert np.sqrt(np.mean(res**2)) < 0.05 * table["bouguer_anomaly"].std()
+
+
+def test_station_pegs_along_lines_keep_the_line_spacing(tmp_path):
+    # A magnetic line survey whose readings carry station (peg) numbers every 20 m along lines
+    # 200 m apart: the lines rule (common practice: a quarter of the line spacing), not the pegs.
+    ctx = context(tmp_path, depth_factors=[4.5], dampings=[1e-2])
+    ctx.table["station"] = [f"P{k}" for k in range(len(ctx.table))]
+    anomaly = STAGE.run(ctx).grids["anomaly"]
+    assert float(anomaly.easting[1] - anomaly.easting[0]) == pytest.approx(50.0, abs=0.1)

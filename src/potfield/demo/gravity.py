@@ -4,7 +4,8 @@ All data are invented (fictional area, see :mod:`potfield.demo.common`). The sce
 
 * about 256 stations on a jittered 750 m grid over a 12 km square, read in loops that start and
   end at one of two base stations (BASE-A, BASE-B; their absolute values go into survey.toml),
-  with tie loops A-B-A, a few repeat occupations, over several days;
+  the first loop tying the bases (A, B, ...) and the last one again (..., A, B, A or ..., B, A,
+  B), a few repeat occupations, over several days;
 * a synthetic terrain given as a DEM in raw/ (NetCDF-CF, 250 m cells) that covers the survey
   plus a 21 km margin (enough for a 20 km terrain radius); the true topography IS that DEM (flat
   cell tops at the cell heights, density 2670 kg/m^3) continued by a plateau at the DEM's rim
@@ -20,7 +21,9 @@ All data are invented (fictional area, see :mod:`potfield.demo.common`). The sce
 * the meter reading (mGal on the meter's own level) = g_true - instrument height x 0.3086 mGal/m
   (common practice free-air gradient) + the Earth tide the meter sees (Longman 1959, J. Geophys.
   Res. 64:2351, potfield.fields.gravity.tides.longman_gravity with factor 1.16) - a meter offset + drift
-  (linear per day, 0.015-0.035 mGal/h) + one tare (0.08 mGal) + noise (8 uGal); converted to
+  (linear per day, 0.01-0.03 mGal/h) + one tare (0.08 mGal, in the middle of a loop of the
+  second day, after which the crew rereads the last two stations, so that the network
+  adjustment ties the loop's two segments) + noise (5 uGal); converted to
   counter units through the inverse of the calibration (interval) table in raw/ (Hinze, von
   Frese and Saad 2013, Gravity and Magnetic Exploration, CUP);
 * recorded station heights carry realistic errors (a few cm, a few up to 0.1 m).
@@ -56,6 +59,8 @@ EARTH_RADIUS = 6_371_000.0
 DENSITY = 2670.0
 FREE_AIR_GRADIENT = 0.3086
 GRAVIMETRIC_FACTOR = 1.16
+#: Reading noise (mGal): a modern meter's repeatability, a few microgal (common practice).
+NOISE = 0.005
 FIRST_DAY = np.datetime64("2025-03-03T21:40:00", "ns")  # about 07:30 local solar time
 
 
@@ -237,8 +242,17 @@ def regional_gravity(model: dict, east_l, north_l) -> np.ndarray:
             + r["north_mGal_per_km"] * np.asarray(north_l) / 1000.0)
 
 
-def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, bases_local) -> list:
-    """Loop plan: list of (loop name, day, [station indices; -1 = BASE-A, -2 = BASE-B])."""
+def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, bases_local) -> tuple:
+    """Loop plan and where the tare happens.
+
+    Returns ``(loops, tare_loop, tare_position)``: ``loops`` is a list of (loop name, day,
+    [station indices; -1 = BASE-A, -2 = BASE-B]); the tare happens in loop ``tare_loop`` just
+    before its reading number ``tare_position``. Every loop opens and closes at a base; the
+    first loop ties the bases (A, B, ...) and the last one ties them again (..., base, other
+    base, base). The tare falls in the middle of a loop of the second day; the crew notices
+    it and rereads the last two stations read before it, which ties the loop's two segments
+    (common field practice; Hinze, von Frese and Saad 2013).
+    """
     ny = int(round(np.sqrt(n_stations)))
     order = []
     for r in range(ny):  # serpentine along the rows of the station grid
@@ -249,7 +263,9 @@ def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, base
         size = int(rng.integers(11, 15))
         chunks.append(order[i:i + size])
         i += size
-    loops, day, in_day = [("TIE1", 0, [-1, -2, -1])], 0, 1
+    if len(chunks) > 1 and len(chunks[-1]) < 8:  # no short last loop: its drift would be poor
+        chunks[-2] = chunks[-2] + chunks.pop()
+    loops, day, in_day = [], 0, 0
     previous = None
     for c, chunk in enumerate(chunks):
         me = np.mean(station_e[chunk]), np.mean(station_n[chunk])
@@ -262,11 +278,21 @@ def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, base
         if in_day == 4:
             day += 1
             in_day = 0
-        loops.append((f"D{day + 1}L{in_day + 1}", day, [base] + body + [base]))
+        stations = [base] + body + [base]
+        if c == 0:  # tie the bases at the start: A, B (, A) then the loop
+            stations = [-1, -2] + ([-1] if base == -1 else []) + body + [base]
+        if c == len(chunks) - 1:  # and at the end: ..., base, other base, base
+            stations = stations + [-3 - base, base]
+        loops.append((f"D{day + 1}L{in_day + 1}", day, stations))
         in_day += 1
         previous = chunk
-    loops.append(("TIE2", day, [-1, -2, -1]))
-    return loops
+    # The tare: in the middle of the middle loop of the second day (the first when one day).
+    second = [k for k, lp in enumerate(loops) if lp[1] == min(1, day)]
+    tare_loop = second[len(second) // 2]
+    name, d, stations = loops[tare_loop]
+    p = max(3, len(stations) // 2)
+    loops[tare_loop] = (name, d, stations[:p] + stations[p - 2:p] + stations[p:])
+    return loops, tare_loop, p
 
 
 def make_gravity(directory: Path, seed: int = 0) -> Path:
@@ -333,12 +359,15 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     g_true = normal - atm + topo + bodies + regional
 
     # Occupations: loops in time order.
-    loops = _loops(geo, n_st, se, sn, bases_local)
+    loops, tare_loop, tare_position = _loops(geo, n_st, se, sn, bases_local)
     occ_station, occ_loop, occ_time, occ_day = [], [], [], []
     cursor = {}
-    for name, day, stations in loops:  # loop over loops and their stations
+    k_tare = 0
+    for li, (name, day, stations) in enumerate(loops):  # loop over loops and their stations
         t = cursor.get(day, 0.0)
         for k, s in enumerate(stations):
+            if li == tare_loop and k == tare_position:
+                k_tare = len(occ_station)
             idx = n_st if s == -1 else (n_st + 1 if s == -2 else s)
             occ_station.append(idx)
             occ_loop.append(name)
@@ -357,16 +386,14 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     tide = longman_gravity(lon[occ_station], lat[occ_station], h_true[occ_station], times,
                            GRAVIMETRIC_FACTOR)
     n_days = int(occ_day.max()) + 1
-    rates = meter.uniform(0.015, 0.035, n_days)  # mGal/h (a well-behaved meter, inside spec)
+    rates = meter.uniform(0.010, 0.030, n_days)  # mGal/h (a well-behaved meter, inside spec)
     day_offsets = meter.normal(0.0, 0.3, n_days)
     day_start = np.array([occ_sec[occ_day == d].min() for d in range(n_days)])
     drift = day_offsets[occ_day] + rates[occ_day] * (occ_sec - day_start[occ_day]) / 3600.0
-    # Tare: +0.08 mGal between two readings in the middle of the second day.
-    day2 = np.flatnonzero(occ_day == min(1, n_days - 1))
-    k_tare = day2[len(day2) // 2]
+    # Tare: +0.08 mGal between two readings in the middle of a loop of the second day.
     tare_time_s = 0.5 * (occ_sec[k_tare - 1] + occ_sec[k_tare])
     tare = np.where(occ_sec > tare_time_s, 0.08, 0.0)
-    noise = meter.normal(0.0, 0.008, n_occ)
+    noise = meter.normal(0.0, NOISE, n_occ)
     offset = float(np.floor(np.min(g_true) - 1500.0))
     reading_mgal = (g_true[occ_station] - FREE_AIR_GRADIENT * ih + tide - offset + drift + tare + noise)
     cal = calibration_table(rng_for(seed, "grav-calibration"))
@@ -455,7 +482,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
         "bases": base_g,
         "meter": {"offset_mGal": offset, "drift_rates_mGal_per_h": np.round(rates, 5).tolist(),
                   "day_offsets_mGal": np.round(day_offsets, 5).tolist(), "tare_mGal": 0.08,
-                  "tare_time": tare_iso, "noise_sigma_mGal": 0.008,
+                  "tare_time": tare_iso, "noise_sigma_mGal": NOISE,
                   "free_air_gradient_mGal_per_m": FREE_AIR_GRADIENT,
                   "gravimetric_factor": GRAVIMETRIC_FACTOR},
         "terrain": terrain, "plateau_height_m": far_h, "dem_cell_m": DEM_CELL,
@@ -561,7 +588,7 @@ rising to the east.
 
 ## What to look at in the results
 
-- The network adjustment should find drift rates of 0.015-0.035 mGal/h and the 0.08 mGal tare;
+- The network adjustment should find drift rates of 0.01-0.03 mGal/h and the 0.08 mGal tare;
   station gravity should match truth `g_true` to about 0.01-0.02 mGal.
 - The complete Bouguer anomaly should match `bouguer_anomaly_true` to about 0.01 mGal plus two
   known effects: the recorded height errors (about 0.2 mGal per metre), and the topography

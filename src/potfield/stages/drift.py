@@ -20,13 +20,18 @@ Loops: the ``loop`` column when present, else the ``line`` column when one is ma
 Methods (``[drift] method``):
 
 * ``"network"``: least-squares adjustment of all readings with a level and a linear drift per
-  loop, the given tares, and the bases fixed or weighted (Hinze, von Frese and Saad 2013).
+  loop, and the bases fixed or weighted (Hinze, von Frese and Saad 2013). A tare in
+  ``[drift] tares`` cuts every loop that spans it into segments with their own levels, tied
+  through the stations they share (reread a station after a tare); a jump between readings of
+  a station that no drift explains (a dial/range change) stops the stage with the tare to add.
+  A ``meter`` column (several gravimeters) keeps each meter's loops and segments apart.
 * ``"linear"`` / ``"piecewise"``: drift per loop from the repeats of its drift base (the
   configured bases when the loop occupies them twice or more, else the loop's most often occupied
   station), then each loop is tied to the configured bases, or to stations already tied by an
   earlier loop, by the mean difference at those stations. Bases are held at their values.
 
-Tables: ``loops``, ``stations``, ``repeats``. Checks: the drift rate of every loop and the repeat
+Tables: ``loops``, ``stations``, ``repeats`` (and ``tares``, ``segments`` when a tare cuts a
+loop). Checks: the drift rate of every loop and the repeat
 differences / residual closure against the spec (common practice values).
 """
 
@@ -290,11 +295,12 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings, deg
     return drift, offset, table, np.nan, None
 
 
-def _network_method(time, value, stations, loops, use, bases, tares, reading_sigma, warnings):
+def _network_method(time, value, stations, loops, use, bases, tares, reading_sigma, warnings,
+                    meter=None):
     with translate({BadParameter: Rule(InputDataError, key="drift.bases"),
                     FieldError: InputDataError}):
         result = gravnet.network_adjustment(stations, time, value, loops, bases, tares=tares,
-                                            reading_sigma=reading_sigma, use=use)
+                                            reading_sigma=reading_sigma, use=use, meter=meter)
     warnings.extend(result.warnings)
     table = result.loops.rename(columns={"max_abs_residual_mgal": "residual_closure_mgal"})
     table = table.drop(columns=["t0"])
@@ -365,8 +371,10 @@ def run(ctx: StageContext) -> StageOutput:
 
     # 4. drift and ties
     if cfg.method == "network":
+        meter = src["meter"].astype(str).str.strip().to_numpy(dtype=object) if "meter" in src else None
         drift, offset, loop_table, sigma0, net = _network_method(
-            time, value, stations, loops, use, bases, tares, cfg.reading_sigma_mgal, warnings)
+            time, value, stations, loops, use, bases, tares, cfg.reading_sigma_mgal, warnings,
+            meter)
     else:
         if tares:
             warnings.append("[drift] tares are used only by method = 'network'; ignored")
@@ -459,6 +467,8 @@ def run(ctx: StageContext) -> StageOutput:
     tables = {"loops": loop_table, "stations": st.reset_index(), "repeats": repeats}
     if net is not None and len(net.tares):
         tables["tares"] = net.tares
+    if net is not None and len(net.segments) > len(loop_table):
+        tables["segments"] = net.segments  # some loop is cut by a tare
     notes.append(f"{cfg.method} drift over {len(loop_table)} loop(s), {len(st)} station(s), "
                  f"tied to {len(bases)} base(s)")
     return StageOutput(table=table, metrics=metrics, state=state, tables=tables, checks=checks,
@@ -483,6 +493,6 @@ STAGE = Stage(
                           "loop_offset", "gravity", "drift_residual"),
         optional_columns=("loop", "flag_instrument_height"),
         requires_state=("ingest",),
-        provides_tables=("loops", "stations", "repeats", "tares"),
+        provides_tables=("loops", "stations", "repeats", "tares", "segments"),
     ),
 )

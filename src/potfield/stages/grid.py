@@ -33,11 +33,40 @@ def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
     return column
 
 
-def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing):
+#: Station surveys: the cell is this fraction of the station spacing (common practice: a
+#: quarter to a half of the station spacing).
+STATION_CELL_FRACTION = 0.5
+
+
+def _station_spacing(table: pd.DataFrame, ok: np.ndarray):
+    """Median nearest-neighbour distance (m) between the distinct positions of a station survey
+    (a ``station`` column; repeat occupations count once), else None. The grid stage uses it
+    for gravity station surveys, and for other kinds when the ingest found no line spacing or
+    one below the station spacing (a line survey with station pegs keeps its lines). A small
+    local helper: a shared nearest-neighbour spacing may later live in the fields' numerics."""
+    if "station" not in table.columns:
+        return None
+    from scipy.spatial import cKDTree
+
+    pts = np.unique(np.round(np.column_stack([table["easting"].to_numpy(float)[ok],
+                                              table["northing"].to_numpy(float)[ok]]), 1), axis=0)
+    if len(pts) < 2:
+        return None
+    dist, _ = cKDTree(pts).query(pts, k=2)
+    spacing = float(np.median(dist[:, 1]))
+    return spacing if spacing > 0 else None
+
+
+def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing,
+               station_spacing=None):
     """Cell size (m) and how it was chosen."""
     cfg = ctx.config.grid
     if cfg.spacing_m > 0:
         return float(cfg.spacing_m), "[grid] spacing_m"
+    if station_spacing:
+        return STATION_CELL_FRACTION * station_spacing, (
+            f"{STATION_CELL_FRACTION:g} x the median station spacing ({station_spacing:.0f} m, "
+            "nearest neighbour)")
     if line_spacing:
         # Common practice: a quarter to a fifth of the line spacing.
         return float(line_spacing) / 4.0, "a quarter of the line spacing"
@@ -203,7 +232,13 @@ def run(ctx: StageContext) -> StageOutput:
     ingest = ctx.state.get("ingest", {})
     line_spacing = ingest.get("line_spacing_m")
     line_spacing = float(line_spacing) if line_spacing and math.isfinite(line_spacing) else None
-    spacing, spacing_why = _cell_size(ctx, table, ok, line_spacing)
+    station_spacing = _station_spacing(table, ok)
+    if station_spacing and (ctx.config.kind == "gravity" or not line_spacing
+                            or line_spacing < station_spacing):
+        line_spacing = None  # scattered stations have no lines (ingest's value is spurious)
+    else:  # stations pegged along real lines (line spacing above the station spacing)
+        station_spacing = None
+    spacing, spacing_why = _cell_size(ctx, table, ok, line_spacing, station_spacing)
     if not (spacing > 0 and math.isfinite(spacing)):
         raise StageError("cannot derive a cell size from the data", key="grid.spacing_m",
                          fix="set [grid] spacing_m to the cell size in metres")
@@ -214,7 +249,7 @@ def run(ctx: StageContext) -> StageOutput:
         raise ConfigError(f"grid height {height} m is below the equivalent sources",
                           key="grid.height", fix="grid at or above the readings' heights")
     mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
-        2.0 * (line_spacing if line_spacing else 4.0 * spacing)
+        2.0 * (line_spacing if line_spacing else (station_spacing or 4.0 * spacing))
     gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
     name = ANOMALY_COLUMN["gravity" if gravity else "magnetic"]  # the main grid
     units = "mGal" if gravity else "nT"

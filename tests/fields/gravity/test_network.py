@@ -308,3 +308,147 @@ def test_network_tare_between_loops_not_estimated():
     # ignoring the real tare leaves residuals: the check can fail
     res = gn.network_adjustment(STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]})
     assert np.nanmax(np.abs(res.residuals)) > 0.05
+
+
+# ------------------------------------------------------------------------------------------------
+# tares cut the meter's record into segments tied through shared stations
+# ------------------------------------------------------------------------------------------------
+SEG_G = {"B": 979800.000, "S1": 979801.234, "S2": 979799.500, "S3": 979802.750, "S4": 979800.600,
+         "S5": 979803.125, "S6": 979798.870, "S7": 979800.015, "S8": 979804.440, "S9": 979797.333}
+# Loop L1 opens and closes at base B. Loop L2 opens at B; a tare at 25.3 h; the crew rereads S7
+# and S6 and ends the day at stations of L1 (S4, S5) without coming back to B: no base repeat
+# spans the tare, only the shared stations tie the segment after it.
+SEG_PLAN = [("L1", "B", 0.0), ("L1", "S1", 0.4), ("L1", "S2", 0.8), ("L1", "S3", 1.2),
+            ("L1", "B", 1.6), ("L1", "S4", 2.1), ("L1", "S5", 2.4), ("L1", "B", 2.8),
+            ("L2", "B", 24.0), ("L2", "S1", 24.3), ("L2", "S6", 24.7), ("L2", "S7", 25.1),
+            ("L2", "S7", 25.5), ("L2", "S6", 25.8), ("L2", "S8", 26.2), ("L2", "S4", 26.6),
+            ("L2", "S9", 27.0), ("L2", "S5", 27.4), ("L2", "S8", 27.7)]
+SEG_T0 = {"L1": 0.0, "L2": 24.0}
+SEG_LEVEL = {"L1": 2500.0, "L2": 2503.75}
+SEG_RATE = {"L1": 0.035, "L2": -0.02}
+SEG_TARE_H, SEG_TARE = 25.3, -0.42
+
+
+def segment_survey(rate_after=None):
+    """Noise-free readings of SEG_PLAN: truth + level + linear drift + the tare step (Hinze, von
+    Frese and Saad 2013 observation equation). ``rate_after``: L2's drift rate after the tare
+    (default: unchanged), counted from the tare time."""
+    loop = np.array([p[0] for p in SEG_PLAN])
+    station = np.array([p[1] for p in SEG_PLAN])
+    hours = np.array([p[2] for p in SEG_PLAN])
+    value = np.array([SEG_G[s] for s in station]) + np.array([SEG_LEVEL[lp] for lp in loop])
+    rate = np.array([SEG_RATE[lp] for lp in loop])
+    t0 = np.array([SEG_T0[lp] for lp in loop])
+    after = hours > SEG_TARE_H
+    if rate_after is None:
+        value += rate * (hours - t0) + SEG_TARE * after
+    else:
+        value += np.where(after, rate * (SEG_TARE_H - t0) + rate_after * (hours - SEG_TARE_H)
+                          + SEG_TARE, rate * (hours - t0))
+    return station, at(hours), value, loop, hours
+
+
+def test_tare_not_spanned_by_a_base_repeat_tied_through_shared_stations():
+    station, time, value, loop, hours = segment_survey()
+    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
+                                tares=[at(SEG_TARE_H)])
+    # analytic truth of the synthetic network: every station to 0.001 mGal
+    for s, g in SEG_G.items():
+        assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
+    tare = res.tares.iloc[0]
+    assert tare["loop"] == "L2" and tare["estimated"]
+    assert tare["step_mgal"] == pytest.approx(SEG_TARE, abs=1e-3)
+    seg = res.segments.set_index("segment")
+    assert list(seg.index) == ["L1", "L2#1", "L2#2"]
+    assert seg.loc["L2#2", "offset_mgal"] - seg.loc["L2#1", "offset_mgal"] == pytest.approx(SEG_TARE, abs=1e-6)
+    # value - drift - offset is gravity at the mark at every reading
+    np.testing.assert_allclose(value - res.drift - res.offset, [SEG_G[s] for s in station], atol=1e-6)
+    # independent solution: numpy.linalg.lstsq on the explicit design matrix of the segment model
+    # (unknowns S1..S9, levels of L1, L2#1, L2#2, drift rates of L1 and L2)
+    free = sorted(s for s in SEG_G if s != "B")
+    A = np.zeros((len(SEG_PLAN), len(free) + 5))
+    for i, (s, lp, h) in enumerate(zip(station, loop, hours)):
+        if s != "B":
+            A[i, free.index(s)] = 1.0
+        seg_i = 0 if lp == "L1" else (1 if h < SEG_TARE_H else 2)
+        A[i, len(free) + seg_i] = 1.0
+        A[i, len(free) + 3 + (lp == "L2")] = h - SEG_T0[lp]
+    x, *_ = np.linalg.lstsq(A, value - np.where(station == "B", SEG_G["B"], 0.0), rcond=None)
+    np.testing.assert_allclose(res.stations.loc[free, "gravity"], x[: len(free)], atol=1e-6)
+    assert np.linalg.matrix_rank(A) == A.shape[1]  # the segment model is determined
+
+
+def test_tare_restarting_the_drift():
+    # the jolt also changed the drift rate: each segment with its own drift (tare_drift="restart")
+    station, time, value, loop, _ = segment_survey(rate_after=0.05)
+    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
+                                tares=[at(SEG_TARE_H)], tare_drift="restart")
+    for s, g in SEG_G.items():  # analytic truth
+        assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
+    rates = res.loops.set_index("loop")["drift_rate_mgal_per_h"]
+    assert rates["L2#1"] == pytest.approx(SEG_RATE["L2"], abs=1e-6)
+    assert rates["L2#2"] == pytest.approx(0.05, abs=1e-6)
+    assert res.tares.iloc[0]["step_mgal"] == pytest.approx(SEG_TARE, abs=1e-3)
+    # one drift through the tare cannot fit a changed rate: residuals remain (the test can fail)
+    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
+                                tares=[at(SEG_TARE_H)])
+    assert np.nanmax(np.abs(res.residuals)) > 1e-3
+
+
+def test_isolated_segment_is_named():
+    station, time, value, loop, hours = segment_survey()
+    # after the tare the crew reads only new stations (each twice): nothing ties that segment
+    after = (loop == "L2") & (hours > SEG_TARE_H)
+    lonely = np.where(after, np.char.add(station.astype(str), "x"), station)
+    with pytest.raises(gn.NetworkError) as info:
+        gn.network_adjustment(lonely, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)])
+    text = str(info.value)
+    assert isinstance(info.value, PotfieldError) and "\n" not in text
+    assert "loop L2 segment 2 of 2 (after the tare at 2024-03-06T09:18:00)" in text
+    assert "readings 2024-03-06T09:30:00 to 2024-03-06T11:42:00" in text  # its time range
+    assert "reoccupy a station read before it" in text  # the fix
+    # with several meters, the message names the meter
+    with pytest.raises(gn.NetworkError, match="meter CG-0417: loop L2 segment 2"):
+        gn.network_adjustment(lonely, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)],
+                              meter=["CG-0417"] * len(lonely))
+
+
+def test_tare_between_last_station_and_closing_base_cannot_be_told_from_drift():
+    # A tare before the closing base with no station reread: drift and step are confounded
+    # (two base readings, three unknowns: level, drift, step): the error names loop and tare.
+    st = ["B", "S1", "S2", "B", "B", "S3", "S4", "B"]
+    h = np.array([0.0, 0.5, 1.0, 1.5, 24.0, 24.5, 25.0, 25.5])
+    with pytest.raises(gn.NetworkError, match=r"loop L2: its drift and the tare.*2024-03-06T09:15:00"):
+        gn.network_adjustment(st, at(h), np.zeros(8), ["L1"] * 4 + ["L2"] * 4, {"B": 0.0},
+                              tares=[at(25.25)])
+
+
+def test_dial_jump_detected_and_proposed_as_tare():
+    station, time, value, loop, hours = segment_survey()
+    # a 25 mGal range (dial) change in loop L1 at 1.8 h, not in the field notes; base B is read
+    # at 1.6 h and 2.8 h, so the jump shows between those two readings
+    jumped = value + np.where((loop == "L1") & (hours > 1.8), 25.0, 0.0)
+    steps = gn.detect_steps(station, time, jumped, segment=loop)
+    assert len(steps) == 1
+    # the step between the two base readings is the jump plus 1.2 h of drift (0.035 mGal/h)
+    assert steps["step_mgal"].iloc[0] == pytest.approx(25.0 + 0.035 * 1.2, abs=1e-9)
+    assert steps["station"].iloc[0] == "B"
+    # drift alone (0.035 mGal/h) is never a step (common practice: drift of a few tenths of a
+    # mGal per hour at most)
+    assert len(gn.detect_steps(station, time, value, segment=loop)) == 0
+    with pytest.raises(gn.NetworkError) as info:
+        gn.network_adjustment(station, time, jumped, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)])
+    text = str(info.value)
+    assert "+25.042 mGal" in text and "2024-03-05T09:36:00" in text and "2024-03-05T10:48:00" in text
+    assert "dial (range) change" in text
+    # the proposed tare: the middle of the longest gap (1.6 h to 2.1 h) = 1.85 h = 09:51:00
+    proposed = steps["proposed_tare"].iloc[0]
+    assert proposed == np.datetime64("2024-03-05T09:51:00")
+    assert "'2024-03-05T09:51:00Z'" in text
+    # taking the proposal as a tare recovers the stations (analytic truth, 0.001 mGal)
+    res = gn.network_adjustment(station, time, jumped, loop, {"B": SEG_G["B"]},
+                                tares=[proposed, at(SEG_TARE_H)])
+    for s, g in SEG_G.items():
+        assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
+    steps = res.tares.set_index("loop")["step_mgal"]
+    assert steps["L1"] == pytest.approx(25.0, abs=1e-3)

@@ -2,7 +2,7 @@
 
 Public API (imported lazily on first use, so importing the package costs nothing):
 
-- ``network``: ``FREE_AIR_GRADIENT``, ``CalibrationRangeError``, ``CalibrationTableError``, ``NetworkError``, ``LoopDriftResult``, ``NetworkResult``, ``calibration_arrays``, ``apply_calibration``, ``instrument_height_correction``, ``hours_since``, ``loop_drift``, ``network_adjustment``
+- ``network``: ``FREE_AIR_GRADIENT``, ``CalibrationRangeError``, ``CalibrationTableError``, ``NetworkError``, ``LoopDriftResult``, ``NetworkResult``, ``calibration_arrays``, ``apply_calibration``, ``instrument_height_correction``, ``hours_since``, ``loop_drift``, ``network_adjustment``, ``detect_steps``
 - ``reductions``: ``ReferenceEllipsoid``, ``get_ellipsoid``, ``normal_gravity``, ``free_air_correction``, ``atmospheric_correction``, ``bouguer_slab``, ``bouguer_cap``
 - ``terrain``: ``TerrainResult``, ``terrain_correction``
 - ``tides``: ``longman_components``, ``longman_gravity``, ``longman_correction``
@@ -26,6 +26,7 @@ _API = {
     "hours_since": "network",
     "loop_drift": "network",
     "network_adjustment": "network",
+    "detect_steps": "network",
     "ReferenceEllipsoid": "reductions",
     "get_ellipsoid": "reductions",
     "normal_gravity": "reductions",
