@@ -403,14 +403,14 @@ def test_isolated_segment_is_named():
     with pytest.raises(gn.NetworkError) as info:
         gn.network_adjustment(lonely, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)])
     text = str(info.value)
-    assert isinstance(info.value, PotfieldError) and "\n" not in text
+    assert isinstance(info.value, FieldError) and "\n" not in text
     assert "loop L2 segment 2 of 2 (after the tare at 2024-03-06T09:18:00)" in text
     assert "readings 2024-03-06T09:30:00 to 2024-03-06T11:42:00" in text  # its time range
     assert "reoccupy a station read before it" in text  # the fix
     # with several meters, the message names the meter
-    with pytest.raises(gn.NetworkError, match="meter CG-0417: loop L2 segment 2"):
+    with pytest.raises(gn.NetworkError, match="meter M-0417: loop L2 segment 2"):
         gn.network_adjustment(lonely, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)],
-                              meter=["CG-0417"] * len(lonely))
+                              meter=["M-0417"] * len(lonely))
 
 
 def test_tare_between_last_station_and_closing_base_cannot_be_told_from_drift():
