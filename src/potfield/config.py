@@ -158,6 +158,12 @@ class CleanSection(Section):
     height_max: float | None = None
     #: Fourth difference normalised by 16 (so a spike of A gives 6A/16) when true.
     fourth_difference_normalised: bool = False
+    #: Most readings the spike test may flag (fraction); beyond it only the strongest are kept
+    #: and a warning says so (a higher rate means the test is measuring the signal).
+    max_spike_fraction: float = Field(0.02, ge=0.0, le=1.0)
+    #: Observatory minute data: smallest jump (nT) of a spike (first-difference test; keeps the
+    #: natural minute-to-minute variation of quiet days from being flagged).
+    observatory_spike_floor_nT: float = Field(3.0, ge=0.0)
 
 
 class BaseStation(Section):
