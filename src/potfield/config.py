@@ -221,10 +221,21 @@ class DiurnalSection(Section):
     #: Base gaps longer than this (s) flag the readings inside them.
     max_gap_s: float = 10.0
     #: Base spike test: running median window (samples), threshold (robust sigmas) and the
-    #: smallest departure (nT) called a spike; spikes are removed from the base record.
+    #: smallest departure (nT) called a spike (the floor of the threshold, so samples within a
+    #: few nT of the local median are never removed); spikes are removed from the base record.
     spike_window: int = 11
     spike_threshold: float = 6.0
-    spike_min_nT: float = 0.5
+    spike_min_nT: float = 3.0
+    #: Base datum jumps: a level change larger than this (nT) across a recording gap or inside a
+    #: record (robust two-window step test) is reported as a relocation / new set-up (warning).
+    base_jump_nT: float = Field(20.0, gt=0)
+    #: A base recording gap longer than this (s) starts a new base session. Every session (gaps
+    #: and steps split them) is levelled to its own datum: its median over the survey, shifted
+    #: by the same constant as the whole base's datum (datum = "value" or "time").
+    session_gap_s: float = Field(1800.0, gt=0)
+    #: Set-up transient: the first settle_s seconds of each session are flagged where they depart
+    #: from the straight line through the next 2 x settle_s seconds (0 = no test).
+    settle_s: float = Field(300.0, ge=0)
     #: Time offset estimate: survey readings within this distance (m) of a base (e.g. static
     #: records beside it before and after a flight) are cross-correlated with it after a
     #: running-mean high-pass of offset_highpass_s seconds, for lags up to offset_max_lag_s;
