@@ -443,6 +443,20 @@ class SeparateSection(Section):
     external_degree: int = Field(1, ge=0, le=10)
     #: Observatory: Tikhonov damping of the Gauss-coefficient fit (0 = none; > 0 for sparse networks).
     damping: float = Field(0.0, ge=0)
+    #: Observatory: per-station baseline removed from each component before the fit: "median"
+    #: (the station's median over the run: its crustal bias and baseline error) or "none". The
+    #: coefficients are then variations about the run's median level.
+    station_baseline: Literal["median", "none"] = "median"
+    #: Observatory: a station whose residual RMS has a modified z-score above this (Iglewicz and
+    #: Hoaglin 1993; 3.5) is left out and the fit repeated (0 = never; needs 5+ stations).
+    station_outlier_z: float = Field(3.5, ge=0)
+    #: Observatory: a delimited table of an hourly geomagnetic index (e.g. a ring-current index)
+    #: to compare the degree-1 external coefficient q10 with (correlation and regression slope);
+    #: index_column names its value column, index_time_column its time column (ISO 8601, UTC,
+    #: the start of each hour).
+    index_file: str | None = None
+    index_column: str | None = None
+    index_time_column: str = "time"
 
 
 class ReportSection(Section):
