@@ -334,7 +334,7 @@ def _index_comparison(ctx: StageContext, coefficients: pd.DataFrame):
     r = float(np.corrcoef(x, y)[0, 1]) if np.std(x) > 0 and np.std(y) > 0 else float("nan")
     joined["q10_fitted"] = offset + slope * x
     joined = joined.rename_axis("time").reset_index()
-    return joined, {"index_hours": int(len(joined)), "index_correlation": r,
+    return joined, {"index_hours": len(joined), "index_correlation": r,
                     "index_slope_nT_per_unit": float(slope), "index_offset_nT": float(offset)}
 
 

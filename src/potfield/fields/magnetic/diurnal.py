@@ -272,7 +272,7 @@ def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: flo
             changes.append({"index": int(idx[pos]), "kind": "step", "seconds": float(tg[pos]),
                             "size_nT": level_after - level_before, "jump": True})
     for pos in gap_cut:  # loop over gaps (a few)
-        lo = vg[pos - k if pos - k > 0 else 0:pos][part[max(pos - k, 0):pos] == part[pos - 1]]
+        lo = vg[max(pos - k, 0):pos][part[max(pos - k, 0):pos] == part[pos - 1]]
         hi = vg[pos:pos + k][part[pos:pos + k] == part[pos]]
         size = float(np.median(hi) - np.median(lo))
         changes.append({"index": int(idx[pos]), "kind": "gap", "seconds": float(tg[pos]),
