@@ -120,19 +120,23 @@ def test_clean_base_leaves_an_active_record_alone():
 
 
 def test_clean_base_keeps_samples_within_a_few_nT_of_the_local_median():
-    # an active day: the diurnal itself moves samples 1-2.5 nT off an 11-sample running median
-    # (Pc-like pulsations); with the floor none is removed (common practice: base despiking
-    # removes only departures of more than a few nT), while a 10 nT spike still is
+    # a quiet record (0.02 nT noise) with three 40 s bursts of 2 nT pulsations (6 s period): the
+    # bursts are signal, up to 2.2 nT off the 11-sample running median. With the 3 nT floor none
+    # is removed (common practice: base despiking removes only departures of more than a few
+    # nT); the former 0.5 nT floor removed some of them. A 10 nT spike is still removed.
     rng = np.random.default_rng(8)
     t = np.arange(7200.0)
-    v = 50_000 + external(t) + 2.5 * np.sin(2 * np.pi * t / 5.0) * (t > 3600) \
-        + rng.standard_t(2, t.size) * 0.3
+    burst = np.zeros(t.size)
+    for t0 in (1000, 3000, 5000):
+        sel = (t >= t0) & (t < t0 + 40)
+        burst[sel] = 2.0 * np.sin(2 * np.pi * (t[sel] - t0) / 6.0)
+    v = 50_000 + external(t) + burst + rng.normal(0, 0.02, t.size)
     dev = np.abs(v - running_median(v, 11))
-    assert dev.max() > 1.0  # the record does depart by more than 1 nT from its local median
-    result = clean_base(t, v)
-    assert not result.spike[dev < 3.0].any()
+    assert 2.0 < dev.max() < 3.0
+    assert clean_base(t, v, min_spike=0.5).spike.any()  # the old floor: good samples removed
+    assert not clean_base(t, v).spike.any()
     v[2000] += 10.0
-    assert 2000 in np.flatnonzero(clean_base(t, v).spike)
+    assert np.flatnonzero(clean_base(t, v).spike).tolist() == [2000]
 
 
 def _relocated_base(seed=0, transient=True):
