@@ -213,6 +213,12 @@ class CleanSection(Section):
     height_max: float | None = None
     #: Fourth difference normalised by 16 (so a spike of A gives 6A/16) when true.
     fourth_difference_normalised: bool = False
+    #: Most readings the spike test may flag (fraction); beyond it only the strongest are kept
+    #: and a warning says so (a higher rate means the test is measuring the signal).
+    max_spike_fraction: float = Field(0.02, ge=0.0, le=1.0)
+    #: Observatory minute data: smallest jump (nT) of a spike (first-difference test; keeps the
+    #: natural minute-to-minute variation of quiet days from being flagged).
+    observatory_spike_floor_nT: float = Field(3.0, ge=0.0)
 
     @model_validator(mode="after")
     def _height_band(self):
@@ -287,10 +293,21 @@ class DiurnalSection(Section):
     #: Base gaps longer than this (s) flag the readings inside them.
     max_gap_s: float = Field(10.0, gt=0)
     #: Base spike test: running median window (samples), threshold (robust sigmas) and the
-    #: smallest departure (nT) called a spike; spikes are removed from the base record.
+    #: smallest departure (nT) called a spike (the floor of the threshold, so samples within a
+    #: few nT of the local median are never removed); spikes are removed from the base record.
     spike_window: int = Field(11, ge=3)
     spike_threshold: float = Field(6.0, gt=0)
-    spike_min_nT: float = Field(0.5, ge=0)
+    spike_min_nT: float = Field(3.0, ge=0)
+    #: Base datum jumps: a level change larger than this (nT) across a recording gap or inside a
+    #: record (robust two-window step test) is reported as a relocation / new set-up (warning).
+    base_jump_nT: float = Field(20.0, gt=0)
+    #: A base recording gap longer than this (s) starts a new base session. Every session (gaps
+    #: and steps split them) is levelled to its own datum: its median over the survey, shifted
+    #: by the same constant as the whole base's datum (datum = "value" or "time").
+    session_gap_s: float = Field(1800.0, gt=0)
+    #: Set-up transient: the first settle_s seconds of each session are flagged where they depart
+    #: from the straight line through the next 2 x settle_s seconds (0 = no test).
+    settle_s: float = Field(300.0, ge=0)
     #: Time offset estimate: survey readings within this distance (m) of a base (e.g. static
     #: records beside it before and after a flight) are cross-correlated with it after a
     #: running-mean high-pass of offset_highpass_s seconds, for lags up to offset_max_lag_s;
@@ -545,6 +562,20 @@ class SeparateSection(Section):
     external_degree: int = Field(1, ge=0, le=10)
     #: Observatory: Tikhonov damping of the Gauss-coefficient fit (0 = none; > 0 for sparse networks).
     damping: float = Field(0.0, ge=0)
+    #: Observatory: per-station baseline removed from each component before the fit: "median"
+    #: (the station's median over the run: its crustal bias and baseline error) or "none". The
+    #: coefficients are then variations about the run's median level.
+    station_baseline: Literal["median", "none"] = "median"
+    #: Observatory: a station whose residual RMS has a modified z-score above this (Iglewicz and
+    #: Hoaglin 1993; 3.5) is left out and the fit repeated (0 = never; needs 5+ stations).
+    station_outlier_z: float = Field(3.5, ge=0)
+    #: Observatory: a delimited table of an hourly geomagnetic index (e.g. a ring-current index)
+    #: to compare the degree-1 external coefficient q10 with (correlation and regression slope);
+    #: index_column names its value column, index_time_column its time column (ISO 8601, UTC,
+    #: the start of each hour).
+    index_file: str | None = None
+    index_column: str | None = None
+    index_time_column: str = "time"
 
 
 class ReportSection(Section):

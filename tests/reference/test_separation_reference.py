@@ -163,6 +163,10 @@ def test_demo_observatory_true_coefficients_recovered(tmp_path):
     for part in ("survey.toml", "raw", "truth"):
         src = DEMO / part
         (shutil.copytree if src.is_dir() else shutil.copy)(src, root / part)
+    # absolute coefficients: no station baselines (the default removes each station's median,
+    # which shifts every coefficient by a constant; tests/stages/test_separate.py checks that)
+    toml = root / "survey.toml"
+    toml.write_text(toml.read_text().replace("[separate]\n", '[separate]\nstation_baseline = "none"\n'))
     run_survey(root, until="separate")
     coef = pd.read_csv(root / "out" / "tables" / "coefficients.csv")
     truth = pd.read_csv(root / "truth" / "coefficients.csv")

@@ -241,3 +241,33 @@ def test_time_offset_and_chord_checks(tmp_path):
     bound += 2.0 * (2 * np.pi / 900.0) ** 2 / 8 + 20.0 * (2 * np.pi / 20000.0) ** 2 / 8
     assert np.max(np.abs(rest - np.median(rest))) <= 2 * bound
     assert np.ptp(rest) <= 2 * bound
+
+
+def test_base_relocation_levels_each_session_and_warns(tmp_path):
+    # invented: the base is moved while logging at 1380 s (between lines 1010 and 1020): its
+    # level steps by +40 nT (the field difference of the two sites; common practice); the
+    # record starts with a settling transient 20 exp(-t / 30 s) nT
+    (tmp_path / "raw").mkdir()
+    tb = np.arange(0.0, 3000.0)
+    base = 48_500.0 + external(tb) + 40.0 * (tb >= 1380) + 20.0 * np.exp(-tb / 30.0)
+    file = write_csv_base(tmp_path, tb, base)
+    out = STAGE.run(context(tmp_path, {"bases": [csv_base("B1", file)]}))
+    table = out.table
+    t = (table["time"].to_numpy() - T0).astype("int64") / 1e9
+    m = out.metrics["base_B1"]
+    assert m["sessions"] == 2 and len(m["jumps"]) == 1
+    assert m["jumps"][0]["kind"] == "step" and m["jumps"][0]["size_nT"] == pytest.approx(40.0, abs=1.0)
+    assert m["transient_samples"] > 30  # 20 exp(-t/30) > 3 nT for t < 30 ln(20/3) = 57 s (hand)
+    assert any(w.startswith("degraded: base 'B1' level jumps by +") for w in out.warnings), out.warnings
+    assert any(n.startswith("degraded:") for n in out.notes)
+    # each session is levelled to its own datum: inside a session the corrected field is the
+    # geology plus one constant (Reford 1980: corrected = T - (B - B0))
+    corrected = (table["total_field"] - table["diurnal"] - table["geology"]).to_numpy()
+    first, second = t < 1380, t >= 1380
+    assert np.ptp(corrected[first]) < 2e-3 and np.ptp(corrected[second]) < 2e-3
+    # the constants differ by the sessions' median external levels over the survey, not by the
+    # 40 nT jump
+    span = (tb >= t.min()) & (tb <= t.max())
+    expected = (np.median(external(tb[span & (tb >= 1380)])) - np.median(external(tb[span & (tb < 1380)])))
+    assert corrected[second].mean() - corrected[first].mean() == pytest.approx(expected, abs=0.05)
+    assert len(out.state["bases"][0]["session_datums_nT"]) == 2

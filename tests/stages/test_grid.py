@@ -88,6 +88,10 @@ def test_grid_stage(tmp_path, grid):
     finite = np.isfinite(anomaly.values)
     assert np.allclose(again[finite], anomaly.values[finite], rtol=1e-9, atol=1e-9)
     assert out.metrics["grid_residual_rms"] >= 0
+    # the misfit at the flagged readings is reported too: the two +500 nT spikes show as such
+    assert out.metrics["grid_readings_flagged"] == 2
+    assert out.metrics["grid_residual_rms_flagged"] == pytest.approx(500.0, rel=0.05)
+    assert out.metrics["grid_residual_rms_spikes"] == out.metrics["grid_residual_rms_flagged"]
     if len(ctx.config.grid.dampings) > 1:
         cv = out.tables["grid_cv"]
         assert len(cv) == 4 and set(cv.columns) >= {"depth", "damping", "r2", "rms"}
@@ -163,6 +167,7 @@ def test_tiled_grid_agrees_with_whole(tmp_path):
     assert np.isfinite(rt).all()
     assert np.sqrt(np.mean(rt**2)) < 2.0 * np.sqrt(np.mean(rw**2)) + 1e-3 * np.nanstd(a.values)
     assert tiled.metrics["grid_residual_rms"] < 2.0 * whole.metrics["grid_residual_rms"] + 0.01
+    assert tiled.metrics["grid_residual_rms_flagged"] == pytest.approx(500.0, rel=0.05)
 
 
 def test_cv_blocks_are_one_line_spacing():

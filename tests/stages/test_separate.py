@@ -65,7 +65,8 @@ def test_observatory_coefficients_tables_metrics_and_check(tmp_path):
     table.loc[17, "disturbance_down"] += 5000.0  # a wild value, flagged: must not be used
     table.loc[17, "flag_spike"] = True
     table.loc[300:310, "disturbance_east"] = np.nan  # a gap at one station
-    out = STAGE.run(_ctx(tmp_path, "observatory", table=table))
+    # no station baselines: the absolute coefficients are compared with the synthesis
+    out = STAGE.run(_ctx(tmp_path, "observatory", table=table, separate={"station_baseline": "none"}))
     coef = out.tables["coefficients"]
     assert list(coef.columns) == ["time", "g10", "g11", "h11", "q10", "q11", "s11"]
     assert len(coef) == 120 and coef["time"].dtype == "datetime64[ns]"
@@ -268,3 +269,77 @@ def test_two_layer_defaults_on_a_coarse_grid_move_the_deep_layer():
     _, regional, residual = _two_layer(ctx, grid, 100.0, out)
     assert any("deep layer was moved to 6000 m" in w for w in out.warnings)
     np.testing.assert_allclose((regional + residual).values, values, atol=1e-9)
+
+
+def test_observatory_station_baselines_and_outlier_rejection(tmp_path):
+    # invented network: chaosmagpy synthesis (reference library) plus a constant crustal bias
+    # per station and component (50-400 nT, as observatories have), and one station whose
+    # down baseline jumps by 60 nT halfway through and is noisy (3 nT): a faulty station
+    table, q = _observatory_table(epochs=240)
+    rng = np.random.default_rng(4)
+    for i, code in enumerate(sorted(table["station"].unique())):
+        rows = table["station"] == code
+        for c in ("north", "east", "down"):
+            table.loc[rows, f"disturbance_{c}"] += rng.uniform(50, 400) * rng.choice([-1, 1])
+    bad = table["station"] == "S03"
+    table.loc[bad, "disturbance_down"] += (np.where(np.arange(bad.sum()) > 120, 60.0, 0.0)
+                                           + rng.normal(0, 3, bad.sum()))
+    # a station listed with no valid data at all: not counted
+    empty = table[table["station"] == "S00"].copy()
+    empty["station"] = empty["line"] = "S99"
+    empty["longitude"], empty["latitude"] = 100.0, 10.0
+    for c in ("north", "east", "down"):
+        empty[f"disturbance_{c}"] = np.nan
+    table = pd.concat([table, empty], ignore_index=True)
+
+    out = STAGE.run(_ctx(tmp_path, "observatory", table=table))
+    assert out.metrics["stations"] == 8 and out.metrics["stations_without_data"] == ["S99"]
+    assert out.metrics["rejected_stations"] == ["S03"]
+    assert any("S03" in w and w.startswith("degraded:") for w in out.warnings)
+    assert any("S99" in n for n in out.notes)
+    st = out.tables["station_residuals"].set_index("station")
+    assert st.loc["S03", "rejected"] and not st.drop(index="S03")["rejected"].any()
+    # once it is left out the others fit to the noise level (0.2 nT synthesis noise)
+    assert st.drop(index=["S03", "S99"])[["rms_north", "rms_east", "rms_down"]].max().max() < 0.5
+    # the fitted q10 follows the synthesised one up to a constant (the baseline removal):
+    # within 0.5 nT after removing the mean difference (least squares on 7 stations, 0.2 nT noise)
+    coef = out.tables["coefficients"]
+    diff = coef["q10"].to_numpy() - q[:, 0]
+    assert np.std(diff) < 0.5
+    np.testing.assert_allclose(coef["q11"] - coef["q11"].mean(), q[:, 1] - q[:, 1].mean(), atol=0.6)
+    # the ratio (a regression with an offset) is not touched by the baselines
+    assert out.metrics["induction_ratio_g10_q10"] == pytest.approx(0.28, abs=0.01)
+    # without baseline removal the biases spoil the fit: far larger residuals
+    raw = STAGE.run(_ctx(tmp_path, "observatory", table=table,
+                         separate={"station_baseline": "none", "station_outlier_z": 0}))
+    assert raw.metrics["residual_rms_nT"] > 10 * out.metrics["residual_rms_nT"]
+
+
+def test_observatory_q10_against_an_hourly_index(tmp_path):
+    import scipy.stats
+
+    table, q = _observatory_table(epochs=600)  # 10 hours of minutes
+    times = pd.date_range("2025-05-10T00:00", periods=600, freq="min")
+    hourly = pd.Series(q[:, 0], index=times).groupby(times.floor("h")).mean()
+    # an invented ring-current-like index: -1.1 x (q10 - 15) nT plus noise (it falls as q10 rises)
+    rng = np.random.default_rng(1)
+    index = -1.1 * (hourly.to_numpy() - 15.0) + rng.normal(0, 1.0, hourly.size)
+    pd.DataFrame({"time": hourly.index.strftime("%Y-%m-%dT%H:%M:%SZ"), "ring": index}).to_csv(
+        tmp_path / "index.csv", index=False)
+    out = STAGE.run(_ctx(tmp_path, "observatory", table=table,
+                         separate={"index_file": "index.csv", "index_column": "ring"}))
+    cmp_table = out.tables["index_comparison"]
+    assert len(cmp_table) == 10 and out.metrics["index_hours"] == 10
+    # against scipy.stats.linregress (reference library) on the hourly means of the fitted q10
+    ref = scipy.stats.linregress(cmp_table["index"], cmp_table["q10_hourly_mean"])
+    assert out.metrics["index_slope_nT_per_unit"] == pytest.approx(ref.slope, rel=1e-9)
+    assert out.metrics["index_correlation"] == pytest.approx(ref.rvalue, rel=1e-9)
+    # and the invented relation is recovered: slope about -1 / 1.1 nT per unit, r near -1
+    assert out.metrics["index_slope_nT_per_unit"] == pytest.approx(-1 / 1.1, abs=0.05)
+    assert out.metrics["index_correlation"] < -0.99
+    with pytest.raises(InputDataError, match="no column 'dst'"):
+        STAGE.run(_ctx(tmp_path, "observatory", table=table,
+                       separate={"index_file": "index.csv", "index_column": "dst"}))
+    with pytest.raises(InputDataError, match="index file not found"):
+        STAGE.run(_ctx(tmp_path, "observatory", table=table,
+                       separate={"index_file": "nope.csv", "index_column": "ring"}))

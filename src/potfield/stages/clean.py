@@ -10,7 +10,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..fields.lines.noise import fourth_difference, line_noise, robust_spikes
+from ..fields.lines.noise import (cap_flags, first_difference_spikes, fourth_difference, line_noise,
+                                  robust_spikes)
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
 #: The measured value(s) cleaned per survey kind.
@@ -66,14 +67,31 @@ def run(ctx: StageContext) -> StageOutput:
 
     # Spikes and fourth-difference noise on each measured value.
     noise_tables = []
+    warnings: list[str] = []
     spike_any = np.zeros(len(table), dtype=bool)
+    observatory = ctx.config.kind == "observatory"
     for name in VALUE_COLUMNS[ctx.config.kind]:
         if name not in table:
             continue
         values = table[name].to_numpy(dtype=float)
         raw = fourth_difference(values, groups)  # computed once: spikes, column and noise
-        spikes, _ = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold,
-                                  cfg.spike_min, fourth=raw)
+        if observatory:  # one-minute variation data: first differences, floor of a few nT
+            spikes, limit = first_difference_spikes(values, groups, cfg.spike_window,
+                                                    cfg.spike_threshold, cfg.observatory_spike_floor_nT)
+            strength = np.abs(values - 0.5 * (np.roll(values, 1) + np.roll(values, -1))) / limit
+        else:
+            spikes, _, strength = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold,
+                                                cfg.spike_min, fourth=raw, return_strength=True)
+        found = int(spikes.sum())
+        spikes, dropped = cap_flags(spikes, strength, cfg.max_spike_fraction)
+        metrics[f"spikes_found_{name}"] = found
+        if dropped:
+            warnings.append(
+                f"spike test on '{name}' flagged {found:,} of {len(table):,} readings "
+                f"({found / max(len(table), 1):.1%}), more than [clean] max_spike_fraction = "
+                f"{cfg.max_spike_fraction:g}: only the {found - dropped:,} strongest kept as spikes. "
+                "Such a rate usually means the test is measuring the signal (check the sampling "
+                "and [clean] spike_threshold)")
         spike_any |= spikes
         d4n = raw / 16.0
         d4 = d4n if cfg.fourth_difference_normalised else raw
@@ -117,14 +135,16 @@ def run(ctx: StageContext) -> StageOutput:
     notes.append(f"{metrics['flagged_readings']:,} of {len(table):,} readings flagged "
                  f"({', '.join(f'{k[5:]}: {v}' for k, v in counts.items() if v) or 'none'}); "
                  f"spikes {spike_frac:.3%}")
+    metrics["spike_fraction"] = spike_frac
     return StageOutput(table=table, metrics=metrics, tables={"clean_lines": lines}, checks=checks,
-                       notes=notes)
+                       notes=notes, warnings=warnings)
 
 
 STAGE = Stage(
     name="clean",
-    summary="flag spikes (rolling median, robust noise scale), time/distance gaps, duplicate times and heights "
-    "out of band; per-line fourth-difference noise",
+    summary="flag spikes (fourth difference against the line's own roughness; first differences for "
+    "observatory minutes), time/distance gaps, duplicate times and heights out of band; per-line "
+    "fourth-difference noise",
     run=run,
     sections=("clean",),
     contract=Contract(

@@ -16,8 +16,9 @@ import pandas as pd
 from ..config import unit_factor
 from ..errors import ConfigError, InputDataError
 from ..fields.errors import FieldError
-from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
-                              estimate_time_offset, great_circle_distance, interpolate_base,
+from ..fields.magnetic.diurnal import (base_datum, base_sessions, chord_deviation, clean_base,
+                              combine_bases, estimate_time_offset, great_circle_distance,
+                              interpolate_base, session_datums, setup_transients,
                               station_difference)
 from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
 from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
@@ -226,13 +227,38 @@ def run(ctx: StageContext) -> StageOutput:
     ctx.progress(f"cleaning {len(bases)} base record(s)")
     cleaned = [clean_base(b.time, b.value, window=cfg.spike_window, threshold=cfg.spike_threshold,
                           min_spike=cfg.spike_min_nT, max_gap_s=cfg.max_gap_s) for b in bases]
+    # sessions (gaps, datum jumps) and set-up transients; one datum per session
+    sessions = []
+    for b, c in zip(bases, cleaned):
+        split = base_sessions(b.time, b.value, c.good, gap_s=cfg.session_gap_s, jump_nT=cfg.base_jump_nT)
+        if cfg.settle_s > 0:
+            c.transient = setup_transients(b.time, b.value, split.session, c.good, settle_s=cfg.settle_s,
+                                           min_nT=cfg.spike_min_nT)
+            if c.transient.any():  # levels across gaps measured without the settling minutes
+                c.good = c.good & ~c.transient
+                split = base_sessions(b.time, b.value, c.good, gap_s=cfg.session_gap_s,
+                                      jump_nT=cfg.base_jump_nT)
+        else:
+            c.transient = np.zeros(b.time.size, dtype=bool)
+        if not c.good.any():
+            raise InputDataError("base record has no usable sample after cleaning", file=b.path,
+                                 fix="check the base file; raise [diurnal] spike_min_nT or set settle_s = 0")
+        sessions.append(split)
     datums = _datums(ctx, bases, cleaned, span)
+    levelled_values = []  # each base minus its sessions' datums (nT)
+    session_levels = []
+    for b, c, d, split in zip(bases, cleaned, datums, sessions):
+        whole = base_datum(b.time[c.good], b.value[c.good], "median", span=span)
+        per_session = session_datums(b.time, b.value, split.session, c.good, span) + (d - whole)
+        session_levels.append(per_session)
+        levelled_values.append(b.value - per_session[split.session])
 
     corrections, flags = [], []
-    for b, c, d in zip(bases, cleaned, datums):
-        values, flag = interpolate_base(b.time[c.good], b.value[c.good], reading_time,
+    for b, c, d, split, levelled, per_session in zip(bases, cleaned, datums, sessions, levelled_values,
+                                                       session_levels):
+        values, flag = interpolate_base(b.time[c.good], levelled[c.good], reading_time,
                                         cfg.interpolation, cfg.max_gap_s)
-        corrections.append(values - d)
+        corrections.append(values)
         flags.append(flag)
         outside = int(((reading_time < b.time[c.good][0]) | (reading_time > b.time[c.good][-1])).sum())
         if outside:
@@ -242,7 +268,28 @@ def run(ctx: StageContext) -> StageOutput:
         metrics[f"base_{b.name}"] = {
             "samples": int(b.time.size), "spikes": int(c.spike.sum()), "missing": int(c.missing.sum()),
             "gaps": int(len(c.gaps)), "datum_nT": float(d), "start": str(b.time[0]), "end": str(b.time[-1]),
+            "sessions": int(per_session.size), "session_datums_nT": [float(x) for x in per_session],
+            "transient_samples": int(c.transient.sum()),
+            "jumps": [{"time": _time_text(b.time[j["index"]]), "kind": j["kind"],
+                       "size_nT": round(float(j["size_nT"]), 2)} for j in split.jumps],
         }
+        for j in split.jumps:
+            where = "across a recording gap" if j["kind"] == "gap" else "inside the record"
+            warnings.append(
+                f"degraded: base '{b.name}' level jumps by {j['size_nT']:+.1f} nT at "
+                f"{_time_text(b.time[j['index']])} ({where}; more than [diurnal] base_jump_nT = "
+                f"{cfg.base_jump_nT:g} nT): a relocation or new set-up? Each of its {per_session.size} "
+                "sessions is levelled to its own datum; check the base log and the tie-line misclosures")
+        if per_session.size > 1:
+            notes.append(f"base '{b.name}': {per_session.size} sessions (gaps over "
+                         f"{cfg.session_gap_s:g} s or datum jumps), each levelled to its own datum "
+                         f"({', '.join(f'{x:.1f}' for x in per_session)} nT)")
+        if c.transient.any():
+            notes.append(f"base '{b.name}': {int(c.transient.sum())} samples of set-up transient "
+                         f"at session starts left out")
+    if any(split.jumps for split in sessions):
+        notes.append("degraded: base datum jumps found (see warnings); the diurnal correction levels "
+                     "each base session to its own datum")
 
     distances = None  # (n_bases, n_readings) m, when every base has a position
     if all(b.longitude is not None and b.latitude is not None for b in bases):
@@ -267,10 +314,10 @@ def run(ctx: StageContext) -> StageOutput:
     tol15, src15 = ctx.tolerance("diurnal_chord_15s_nT", 0.5)
     tol60, src60 = ctx.tolerance("diurnal_chord_60s_nT", 3.0)
     margin = np.timedelta64(60, "s")
-    for b, c in zip(bases, cleaned):
+    for b, c, levelled in zip(bases, cleaned, levelled_values):
         inside = c.good & (b.time >= span[0] - margin) & (b.time <= span[1] + margin)
         for window, tol, src in ((15.0, tol15, src15), (60.0, tol60, src60)):
-            chord = chord_deviation(b.time[inside], b.value[inside], window)
+            chord = chord_deviation(b.time[inside], levelled[inside], window)
             if np.isfinite(chord.max):
                 worst = b.time[inside][0] + np.timedelta64(int(round(chord.start * 1e9)), "ns")
                 checks.append(Check.at_most(
@@ -280,14 +327,14 @@ def run(ctx: StageContext) -> StageOutput:
     offset_tol, offset_src = ctx.tolerance("diurnal_time_offset_s", 1.0, "project default")
     if distances is not None and "total_field" in table:
         fit = usable(table) & np.isfinite(table["total_field"].to_numpy(float))
-        for b, c, dist in zip(bases, cleaned, distances):
+        for b, c, dist, levelled in zip(bases, cleaned, distances, levelled_values):
             near = fit & (dist <= cfg.offset_radius_m)
             if near.sum() < 30:
                 notes.append(f"time offset to base '{b.name}' not estimated: {int(near.sum())} usable "
                              f"readings within {cfg.offset_radius_m:g} m of it")
                 continue
             order = np.argsort(reading_time[near], kind="stable")
-            result = estimate_time_offset(b.time[c.good], b.value[c.good], reading_time[near][order],
+            result = estimate_time_offset(b.time[c.good], levelled[c.good], reading_time[near][order],
                                           table["total_field"].to_numpy(float)[near][order],
                                           highpass_s=cfg.offset_highpass_s, max_lag_s=cfg.offset_max_lag_s)
             metrics[f"base_{b.name}"]["time_offset_s"] = float(result.lag_s)
@@ -306,8 +353,11 @@ def run(ctx: StageContext) -> StageOutput:
             a, b = bases[i], bases[j]
             ca, cb = cleaned[i], cleaned[j]
             ina = ca.good & (a.time >= span[0]) & (a.time <= span[1])
-            stats = station_difference(a.time[ina], a.value[ina], b.time[cb.good], b.value[cb.good],
-                                       cfg.max_gap_s)
+            # raw records give the level difference of the sites; with datum jumps in either
+            # record, the levelled ones (the jump would otherwise read as a difference)
+            split = len(session_levels[i]) > 1 or len(session_levels[j]) > 1
+            la, lb = (levelled_values[i], levelled_values[j]) if split else (a.value, b.value)
+            stats = station_difference(a.time[ina], la[ina], b.time[cb.good], lb[cb.good], cfg.max_gap_s)
             metrics[f"station_difference_{a.name}_{b.name}"] = stats
             if stats["n"]:
                 checks.append(Check.at_most(
@@ -337,7 +387,8 @@ def run(ctx: StageContext) -> StageOutput:
                         "or outside the base record (flag_base_gap)")
     state = {
         "bases": [{"name": b.name, "file": str(b.path), "longitude": b.longitude, "latitude": b.latitude,
-                   "datum_nT": float(d)} for b, d in zip(bases, datums)],
+                   "datum_nT": float(d), "session_datums_nT": [float(x) for x in levels]}
+                  for b, d, levels in zip(bases, datums, session_levels)],
         "interpolation": cfg.interpolation,
         "datum": cfg.datum,
     }

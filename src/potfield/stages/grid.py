@@ -299,6 +299,7 @@ def run(ctx: StageContext) -> StageOutput:
                                            h_all[finite_pos]))
     result["grid_residual"] = values - predicted
     resid_rms = float(np.sqrt(np.nanmean(result["grid_residual"].to_numpy(float)[ok] ** 2)))
+    flagged_rms = _flagged_rms(table, result["grid_residual"].to_numpy(float))
 
     model_path = ctx.survey.cache / "eqs_model.npz"
     eqs.save_model(model_path, model)
@@ -334,6 +335,7 @@ def run(ctx: StageContext) -> StageOutput:
         "grid_cv_r2": float(best["r2"]),
         "grid_cv_rms": float(best["rms"]),
         "grid_residual_rms": resid_rms,
+        **flagged_rms,
     }
     if model.info.get("iterations") is not None:
         out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
@@ -389,6 +391,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     out = StageOutput(table=table.copy())
     out.table["grid_residual"] = values - result.predicted
     resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
+    flagged_rms = _flagged_rms(table, out.table["grid_residual"].to_numpy(float))
     out.grids[name] = grid
     out.tables["grid_cv"] = scores
     out.tables["grid_tiles"] = result.tiles
@@ -402,10 +405,24 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                    "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
                    "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
                    "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
-                   "grid_residual_rms": resid_rms}
+                   "grid_residual_rms": resid_rms, **flagged_rms}
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
                      f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}")
+    return out
+
+
+def _flagged_rms(table, residual) -> dict:
+    """Grid misfit at the flagged readings (left out of the fit, but predicted too): the RMS of
+    ``grid_residual`` over readings with any flag and over the spike-flagged ones, so a reviewer
+    sees whether the flags removed noise (large misfit) or signal the grid now misses."""
+    flagged = ~usable(table) & np.isfinite(residual)
+    out = {"grid_residual_rms_flagged": float(np.sqrt(np.mean(residual[flagged] ** 2)))
+           if flagged.any() else float("nan"), "grid_readings_flagged": int(flagged.sum())}
+    if "flag_spike" in table:
+        spike = table["flag_spike"].to_numpy(bool) & np.isfinite(residual)
+        out["grid_residual_rms_spikes"] = (float(np.sqrt(np.mean(residual[spike] ** 2)))
+                                           if spike.any() else float("nan"))
     return out
 
 

@@ -29,7 +29,7 @@ import math
 import numpy as np
 import pandas as pd
 
-from ..errors import InputDataError, StageError
+from ..errors import ConfigError, InputDataError, StageError
 from ..fields._numerics import sample_grid
 from ..fields.errors import BadParameter, FieldError, IllPosed, NotEnoughData
 from ..fields.harmonic import separation as sep
@@ -100,28 +100,47 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         grid = np.full((n_t, n_s), np.nan)
         grid[t_codes, st_codes] = values[c]
         arrays[c] = grid
-    ctx.progress(f"Gauss coefficients at {n_t} epochs from {n_s} stations")
-    with translate({IllPosed: Rule(InputDataError, key="separate.damping", fix=(
-                        "add stations spread in longitude and latitude, lower the degrees, or "
-                        "set a damping > 0")),
-                    FieldError: Rule(InputDataError, key="separate.internal_degree")}):
-        fit = sep.fit_gauss_coefficients(
-            arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
-            positions["latitude"].to_numpy(), positions["height"].to_numpy(),
-            internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
-            damping=cfg.damping, stations=list(st_names))
+    has_data = np.any([np.isfinite(arrays[c]).any(axis=0) for c in COMPONENTS], axis=0)
+    baselines = {c: np.zeros(n_s) for c in COMPONENTS}
+    if cfg.station_baseline == "median":  # the station's crustal bias and baseline error
+        for c in COMPONENTS:
+            col = np.isfinite(arrays[c]).any(axis=0)
+            baselines[c][col] = np.nanmedian(arrays[c][:, col], axis=0)
+            arrays[c] = arrays[c] - baselines[c][None, :]
+        # the median of a sum is not the sum of the medians: the station medians leave each
+        # station a constant misfit to any potential field. Refine each baseline by the median
+        # of its residual to the fit and fit again (twice): baselines and coefficients jointly
+        for _ in range(2):
+            first = _fit(cfg, arrays, positions, st_names)
+            for k, c in enumerate(COMPONENTS):
+                col = np.isfinite(first.residual[k]).any(axis=0)
+                shift = np.zeros(n_s)
+                shift[col] = np.nanmedian(first.residual[k][:, col], axis=0)
+                baselines[c] += shift
+                arrays[c] = arrays[c] - shift[None, :]
     out = StageOutput(table=table.copy())
+    ctx.progress(f"Gauss coefficients at {n_t} epochs from {int(has_data.sum())} stations")
+    fit, rejected, station_rms, zscore = _fit_rejecting(cfg, arrays, positions, st_names, has_data)
+    # residuals at every station, the rejected ones included (their data were left out of the fit)
+    residual = [np.stack([arrays[c] for c in COMPONENTS])[k] - fit.internal[k] - fit.external[k]
+                for k in range(3)]
     new = out.table
     for k, c in enumerate(COMPONENTS):
         new[f"sep_internal_{c}"] = fit.internal[k][t_codes, st_codes]
         new[f"sep_external_{c}"] = fit.external[k][t_codes, st_codes]
-        new[f"sep_residual_{c}"] = fit.residual[k][t_codes, st_codes]
+        new[f"sep_residual_{c}"] = residual[k][t_codes, st_codes]
     out.tables["coefficients"] = sep.coefficient_table(np.asarray(t_unique, dtype="datetime64[ns]"), fit)
 
     rows = {"station": list(st_names), "longitude": positions["longitude"].to_numpy(),
             "latitude": positions["latitude"].to_numpy(), "height": positions["height"].to_numpy()}
+    for c in COMPONENTS:
+        rows[f"baseline_{c}"] = np.where(has_data, baselines[c], np.nan)
+    rows["has_data"] = has_data
+    rows["rms_left_out"] = station_rms
+    rows["outlier_z"] = zscore
+    rows["rejected"] = rejected
     for k, c in enumerate(COMPONENTS):
-        res = fit.residual[k]
+        res = residual[k]
         count = np.isfinite(res).sum(axis=0)
         with np.errstate(invalid="ignore"):
             rows[f"rms_{c}"] = np.sqrt(np.nansum(res**2, axis=0) / np.maximum(count, 1))
@@ -131,10 +150,25 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         rows[f"epochs_{c}"] = count
     out.tables["station_residuals"] = pd.DataFrame(rows)
 
-    metrics = {"stations": int(n_s), "epochs": int(n_t), "groups": fit.groups,
+    metrics = {"stations": int(has_data.sum()), "epochs": int(n_t), "groups": fit.groups,
                "unsolved_epochs": fit.unsolved_epochs, "condition_number": fit.condition,
                "internal_degree": cfg.internal_degree, "external_degree": cfg.external_degree,
                "damping": cfg.damping}
+    metrics["station_baseline"] = cfg.station_baseline
+    metrics["stations_without_data"] = [str(x) for x in np.asarray(st_names)[~has_data]]
+    metrics["rejected_stations"] = [str(x) for x in np.asarray(st_names)[rejected]]
+    if (~has_data).any():
+        out.notes.append(f"stations with no valid data (not counted): "
+                         f"{', '.join(metrics['stations_without_data'])}")
+    if rejected.any():
+        names = ", ".join(f"{st_names[i]} (left-out RMS {station_rms[i]:.2f} nT, modified z "
+                          f"{zscore[i]:.1f})" for i in np.flatnonzero(rejected))
+        out.warnings.append(f"degraded: station(s) left out of the separation as outliers: {names}; "
+                            f"limit [separate] station_outlier_z = {cfg.station_outlier_z:g}. Check "
+                            "their baselines, orientation and timing")
+    if cfg.station_baseline == "median":
+        out.notes.append("each station's median (per component) removed before the fit: the "
+                         "coefficients are variations about the run's median level")
     all_res = []
     for k, c in enumerate(COMPONENTS):
         res = fit.residual[k][np.isfinite(fit.residual[k])]
@@ -166,10 +200,144 @@ def run_observatory(ctx: StageContext) -> StageOutput:
     if fit.unsolved_epochs:
         out.warnings.append(f"{fit.unsolved_epochs} epoch(s) had too few stations to resolve the "
                             "coefficients: NaN in the coefficients table")
+    if cfg.index_file:
+        table_idx, idx_metrics = _index_comparison(ctx, out.tables["coefficients"])
+        out.tables["index_comparison"] = table_idx
+        metrics.update(idx_metrics)
+        out.notes.append(
+            f"q10 against the hourly index '{cfg.index_column}' over {idx_metrics['index_hours']} "
+            f"hours: correlation {idx_metrics['index_correlation']:.3f}, slope "
+            f"{idx_metrics['index_slope_nT_per_unit']:.3f} nT per index unit")
     out.notes.append(f"{len(fit.names)} Gauss coefficients at {n_t} epochs ({fit.groups} station "
                      f"set(s)); residual RMS {overall:.2f} nT")
     out.metrics, out.state = metrics, state
     return out
+
+
+def _fit(cfg, arrays, positions, st_names):
+    with translate({IllPosed: Rule(InputDataError, key="separate.damping", fix=(
+                        "add stations spread in longitude and latitude, lower the degrees, or "
+                        "set a damping > 0")),
+                    FieldError: Rule(InputDataError, key="separate.internal_degree")}):
+        return sep.fit_gauss_coefficients(
+            arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
+            positions["latitude"].to_numpy(), positions["height"].to_numpy(),
+            internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
+            damping=cfg.damping, stations=list(st_names))
+
+
+def _station_rms(fit) -> np.ndarray:
+    res = np.concatenate([fit.residual[k] for k in range(3)], axis=0)
+    count = np.isfinite(res).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rms = np.sqrt(np.nansum(res**2, axis=0) / count)
+    return np.where(count > 0, rms, np.nan)
+
+
+def _leave_one_out_rms(cfg, arrays, positions, st_names, has_data) -> np.ndarray:
+    """RMS misfit of each station to the model fitted without it (its prediction error): in a
+    small network a faulty station pulls the fit towards itself and spreads its error over the
+    others, so its own fitted residual understates it; left out, it does not (cross-validation,
+    common practice)."""
+    from ..errors import PotfieldError
+
+    rms = np.full(has_data.size, np.nan)
+    for i in np.flatnonzero(has_data):  # one fit per station (a network has tens of stations)
+        kept = {c: arrays[c].copy() for c in COMPONENTS}
+        for c in COMPONENTS:
+            kept[c][:, i] = np.nan
+        try:
+            fit = _fit(cfg, kept, positions, st_names)
+        except PotfieldError:  # the network cannot be solved without this station
+            continue
+        res = np.concatenate([arrays[c][:, i] - fit.internal[k][:, i] - fit.external[k][:, i]
+                              for k, c in enumerate(COMPONENTS)])
+        res = res[np.isfinite(res)]
+        if res.size:
+            rms[i] = float(np.sqrt(np.mean(res**2)))
+    return rms
+
+
+def _fit_rejecting(cfg, arrays, positions, st_names, has_data):
+    """Fit; score each station by the modified z-score ``0.6745 (x - median) / MAD`` (Iglewicz
+    and Hoaglin 1993, How to Detect and Handle Outliers, ASQC) of its leave-one-out residual RMS
+    (:func:`_leave_one_out_rms`), leave out the stations above ``station_outlier_z`` (high side
+    only: a station that fits unusually badly) and fit again. Needs five stations with data; at
+    most a third are left out."""
+    fit = _fit(cfg, arrays, positions, st_names)
+    n_s = has_data.size
+    rms = np.full(n_s, np.nan)
+    z = np.full(n_s, np.nan)
+    rejected = np.zeros(n_s, dtype=bool)
+    if cfg.station_outlier_z > 0 and has_data.sum() >= 5:
+        rms = _leave_one_out_rms(cfg, arrays, positions, st_names, has_data)
+    valid = has_data & np.isfinite(rms)
+    if cfg.station_outlier_z > 0 and valid.sum() >= 5:
+        med = float(np.median(rms[valid]))
+        mad = float(np.median(np.abs(rms[valid] - med)))
+        mad = max(mad, 1e-3 * med, 1e-9)
+        z[valid] = 0.6745 * (rms[valid] - med) / mad
+        rejected = valid & (z > cfg.station_outlier_z)
+        limit = int(valid.sum()) // 3
+        if rejected.sum() > limit:  # keep the worst third at most
+            order = np.argsort(-np.nan_to_num(np.where(rejected, z, -np.inf), neginf=-np.inf))
+            rejected[:] = False
+            rejected[order[:limit]] = True
+        if rejected.any():
+            kept = {c: np.where(rejected[None, :], np.nan, arrays[c]) for c in COMPONENTS}
+            fit = _fit(cfg, kept, positions, st_names)
+    return fit, rejected, rms, z
+
+
+def _index_comparison(ctx: StageContext, coefficients: pd.DataFrame):
+    """Hourly means of q10 against an hourly index: Pearson correlation and the least-squares
+    line q10 = offset + slope x index (common practice: the degree-1 external coefficient
+    follows the ring-current index; Olsen, Glassmeier and Jia 2010, Space Sci. Rev. 152:135)."""
+    cfg = ctx.config.separate
+    path = ctx.survey.resolve(cfg.index_file)
+    if not path.is_file():
+        raise InputDataError("index file not found", file=path, key="separate.index_file",
+                             fix="check the file name under [separate] index_file")
+    if not cfg.index_column:
+        raise ConfigError("index_file is set but index_column is not", key="separate.index_column",
+                          fix='set index_column = "<column name>" under [separate]')
+    if "q10" not in coefficients.columns:
+        raise ConfigError("the index comparison needs the degree-1 external coefficient q10",
+                          key="separate.external_degree", fix="set external_degree >= 1")
+    try:
+        frame = pd.read_csv(path, sep=None, engine="python", comment="#")
+    except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise InputDataError(f"cannot read the index file ({exc.__class__.__name__})", file=path,
+                             fix="give a delimited text table with a header line") from None
+    for name, key in ((cfg.index_time_column, "index_time_column"), (cfg.index_column, "index_column")):
+        if name not in frame.columns:
+            raise InputDataError(f"no column '{name}' in the index file (columns: "
+                                 f"{', '.join(map(str, frame.columns))})", file=path,
+                                 key=f"separate.{key}", fix="set the column name under [separate]")
+    times = pd.to_datetime(frame[cfg.index_time_column], utc=True, errors="coerce")
+    value = pd.to_numeric(frame[cfg.index_column], errors="coerce")
+    bad = int(times.isna().sum())
+    if bad:
+        row = int(np.flatnonzero(times.isna().to_numpy())[0]) + 2
+        raise InputDataError(f"cannot read the time '{frame[cfg.index_time_column].iloc[row - 2]}'",
+                             file=path, row=row, key="separate.index_time_column",
+                             fix="use ISO 8601 times, e.g. 2025-05-10T13:00:00Z")
+    index = pd.Series(value.to_numpy(float),
+                      index=times.dt.tz_localize(None).dt.floor("h").to_numpy()).groupby(level=0).mean()
+    q10 = coefficients.set_index("time")["q10"].astype(float)
+    hourly = q10.groupby(q10.index.floor("h")).mean()
+    joined = pd.DataFrame({"index": index, "q10_hourly_mean": hourly}).dropna()
+    if len(joined) < 3:
+        raise InputDataError(f"only {len(joined)} hours of the index file overlap the coefficients",
+                             file=path, key="separate.index_file",
+                             fix="give an index covering the observatory data's days")
+    x, y = joined["index"].to_numpy(), joined["q10_hourly_mean"].to_numpy()
+    slope, offset = np.polyfit(x, y, 1)
+    r = float(np.corrcoef(x, y)[0, 1]) if np.std(x) > 0 and np.std(y) > 0 else float("nan")
+    joined["q10_fitted"] = offset + slope * x
+    joined = joined.rename_axis("time").reset_index()
+    return joined, {"index_hours": len(joined), "index_correlation": r,
+                    "index_slope_nT_per_unit": float(slope), "index_offset_nT": float(offset)}
 
 
 # ----------------------------------------------------------------------------------------------
@@ -399,6 +567,8 @@ STAGE = Stage(
                           "*": ("regional", "residual", "internal_*", "external_*")},
         provides_grids={"observatory": (),
                         "*": ("regional_*", "residual_*", "internal_*", "external_*")},
-        provides_tables={"observatory": ("coefficients", "station_residuals"), "*": ()},
+        provides_tables={"observatory": ("coefficients", "station_residuals", "index_comparison"), "*": ()},
     ),
+    inputs=lambda config, survey: ([survey.resolve(config.separate.index_file)]
+                                   if config.separate.index_file else []),
 )

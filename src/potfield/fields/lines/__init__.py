@@ -3,7 +3,7 @@
 Public API (imported lazily on first use, so importing the package costs nothing):
 
 - ``leveling``: ``find_crossovers``, ``usable_crossovers``, ``huber_weights``, ``robust_lstsq``, ``adjust_ties``, ``TieAdjustment``, ``adjust_lines``, ``LineAdjustment``, ``adjust_network``, ``line_azimuth``, ``micro_level``, ``sample_grid``, ``lowpass_along_lines``
-- ``noise``: ``fourth_difference``, ``rolling_median``, ``robust_spikes``, ``line_noise``
+- ``noise``: ``fourth_difference``, ``rolling_median``, ``robust_spikes``, ``cap_flags``, ``first_difference_spikes``, ``line_noise``
 """
 
 from __future__ import annotations
@@ -28,6 +28,8 @@ _API = {
     "fourth_difference": "noise",
     "rolling_median": "noise",
     "robust_spikes": "noise",
+    "cap_flags": "noise",
+    "first_difference_spikes": "noise",
     "line_noise": "noise",
 }
 _MODULES = ('leveling', 'noise')

@@ -13,6 +13,9 @@ import pandas as pd
 #: Fourth-difference stencil (common practice in airborne magnetic QC). A spike of height A gives
 #: A x (1, -4, 6, -4, 1); a cubic gives exactly 0.
 FOURTH_DIFFERENCE_STENCIL = np.array([1.0, -4.0, 6.0, -4.0, 1.0])
+#: Largest share of the fourth difference's energy over a spike's five samples left unexplained
+#: by the spike stencil for the sample to be called a spike (project choice).
+SPIKE_SHAPE_MISFIT = 0.25
 
 
 def fourth_difference(values, groups=None, normalised: bool = False) -> np.ndarray:
@@ -98,35 +101,176 @@ def rolling_median(values, groups, window: int) -> np.ndarray:
     return med[body]
 
 
-def robust_spikes(values, groups, window: int = 11, threshold: float = 6.0,
-                  minimum: float = 0.0, fourth=None) -> tuple[np.ndarray, np.ndarray]:
-    """Flag spikes as large departures from a rolling median, in robust standard deviations.
+def _group_rolling_median(values: np.ndarray, groups: np.ndarray, window: int) -> np.ndarray:
+    """Centred rolling median (NaN ignored, shorter windows at the ends) restarted at every
+    group; lines must be contiguous."""
+    series = pd.Series(np.asarray(values, dtype=float))
+    return (series.groupby(np.asarray(groups), sort=False)
+            .rolling(int(window), center=True, min_periods=1).median()
+            .reset_index(level=0, drop=True).sort_index().to_numpy())
 
-    The departure r = T - median_window(T) is compared with ``threshold`` x sigma, where the
-    line's noise sigma is estimated robustly from its fourth difference: for white noise the
-    fourth difference has standard deviation sqrt(70) sigma (sum of squared stencil weights), and
-    1.4826 x MAD is the normal-consistent robust scale (Rousseeuw and Croux 1993, JASA 88:1273).
-    The MAD of r itself is useless on sloping lines (the window median is then the sample itself
-    for most samples). ``minimum`` is an absolute floor (field units).
+
+def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
+    """Median of values[i - width + 1 .. i] on the same line (NaN ignored)."""
+    series = pd.Series(values)
+    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).median()
+            .reset_index(level=0, drop=True).sort_index().to_numpy())
+
+
+def _beside_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
+    """The larger of the medians of ``width`` samples left of i - 2 and right of i + 2 (same
+    line), i.e. of the neighbourhood a spike's five-sample stencil does not touch; one side
+    alone at a line end."""
+    left = _shift(_trailing_median(values, groups, width), groups, -3)
+    right = _shift(_trailing_median(values[::-1], groups[::-1], width)[::-1], groups, 3)
+    return np.fmax(left, right)
+
+
+def _shift(x: np.ndarray, groups: np.ndarray, k: int) -> np.ndarray:
+    """x[i + k] where sample i + k is on the same line as i, else NaN."""
+    if k == 0:
+        return np.asarray(x, dtype=float).copy()
+    out = np.full(x.size, np.nan)
+    if k > 0 and x.size > k:
+        out[:-k] = np.where(groups[:-k] == groups[k:], x[k:], np.nan)
+    elif k < 0 and x.size > -k:
+        out[-k:] = np.where(groups[-k:] == groups[:k], x[:k], np.nan)
+    return out
+
+
+def robust_spikes(values, groups, window: int = 11, threshold: float = 6.0,
+                  minimum: float = 0.0, fourth=None, *, return_strength: bool = False):
+    """Flag single-sample spikes from the fourth difference, against the line's own roughness.
+
+    The fourth difference d4 = T[i-2] - 4T[i-1] + 6T[i] - 4T[i+1] + T[i+2] is exactly zero for a
+    cubic and gives A x (1, -4, 6, -4, 1) for a spike of height A (common practice; references.md),
+    so ``d4 / 6`` is the departure of T[i] from the cubic through its four neighbours. A sample is
+    a spike when
+
+    * ``|d4[i]|`` exceeds ``threshold`` robust standard deviations of d4, where the scale is the
+      larger of the line's (1.4826 x median |d4| over the line: the noise) and the local one
+      (1.4826 x the running median of |d4| over ``window`` samples: the roughness of the signal
+      as sampled: the larger of the medians of |d4| over ``window // 2`` samples on either
+      side, beyond the five samples a spike's stencil touches). Smooth geology sampled coarsely
+      has a large d4 over several neighbouring samples, which raises the local scale; a spike
+      does not raise it, since its own stencil is left out. The scale is measured in samples, so it follows the
+      along-line sample spacing: the same anomaly decimated to coarser sampling has a larger d4
+      and a larger local scale alike. (Robust scale: Rousseeuw and Croux 1993, J. Am. Stat.
+      Assoc. 88:1273.)
+    * ``|d4[i]|`` is the largest within two samples (the spike's own stencil peaks at the
+      centre, 6A against 4A), so the neighbours of a spike are not flagged too;
+    * the departure ``|d4[i]| / 6`` exceeds ``minimum`` (field units).
+
+    Samples within two of a line end (no full stencil) are never flagged.
+
+    Parameters
+    ----------
+    values, groups : arrays
+        Samples and line codes (lines contiguous).
+    window : int
+        Twice the samples on each side whose median |d4| is the local roughness.
+    threshold : float
+        Robust sigmas of d4.
+    minimum : float
+        Smallest departure (field units) called a spike.
+    fourth : array, optional
+        The un-normalised fourth difference when the caller has it.
+    return_strength : bool
+        Also return ``|d4| / scale`` (robust sigmas; NaN where there is no stencil), used to keep
+        the strongest spikes when their number is capped (:func:`cap_flags`).
 
     Returns
     -------
     flags : numpy.ndarray of bool
     departure : numpy.ndarray
-        T minus the rolling median.
+        ``d4 / 6``: T minus the cubic through its four neighbours.
+    strength : numpy.ndarray
+        Only with ``return_strength``.
     """
     x = np.asarray(values, dtype=float)
     g = np.asarray(groups)
-    departure = x - rolling_median(x, g, window)
     if fourth is None:  # the caller may pass the (un-normalised) fourth difference it has
         fourth = fourth_difference(x, g)
-    d4 = pd.Series(np.abs(np.asarray(fourth, dtype=float)))
-    sigma = 1.4826 * d4.groupby(g, sort=False).transform("median").to_numpy() / np.sqrt(70.0)
-    sigma = np.nan_to_num(sigma, nan=0.0)
-    floor = max(minimum, 1e-12)  # a perfectly smooth line must not flag everything
-    limit = np.maximum(threshold * sigma, floor)
-    flags = (np.abs(departure) > limit) & np.isfinite(x)
+    d4 = np.asarray(fourth, dtype=float)
+    a = np.abs(d4)
+    line_scale = 1.4826 * pd.Series(a).groupby(g, sort=False).transform("median").to_numpy()
+    local_scale = 1.4826 * _beside_median(a, g, max(int(window) // 2, 3)) if a.size else a
+    scale = np.nan_to_num(np.fmax(line_scale, local_scale), nan=0.0)
+    scale = np.maximum(scale, 1e-12)  # a perfectly smooth line must not flag everything
+    strength = a / scale
+    peak = np.isfinite(a)
+    for k in (-2, -1, 1, 2):
+        neighbour = _shift(a, g, k)
+        peak &= ~(neighbour > a)
+    # shape: the spike stencil A (1, -4, 6, -4, 1) must explain most of d4 over the five samples
+    # (least-squares amplitude A = sum(w d4) / 70); coarsely sampled geology has another shape
+    w = FOURTH_DIFFERENCE_STENCIL
+    near = np.stack([np.nan_to_num(_shift(d4, g, k)) for k in (-2, -1, 0, 1, 2)])
+    amp = (w[:, None] * near).sum(axis=0) / 70.0
+    energy = (near**2).sum(axis=0)
+    misfit = ((near - amp[None, :] * w[:, None]) ** 2).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shaped = misfit <= SPIKE_SHAPE_MISFIT * energy
+        flags = peak & shaped & (strength > threshold) & (a / 6.0 > minimum) & np.isfinite(x)
+    departure = d4 / 6.0
+    if return_strength:
+        return flags, departure, strength
     return flags, departure
+
+
+def cap_flags(flags, strength, max_fraction: float) -> tuple[np.ndarray, int]:
+    """Keep at most ``max_fraction`` of the samples flagged: the strongest ones.
+
+    A test that flags more than a few per cent of the readings is measuring the signal, not
+    noise (common practice); beyond the cap only the ``floor(max_fraction x n)`` largest
+    ``strength`` values stay flagged.
+
+    Returns
+    -------
+    flags : numpy.ndarray of bool
+    dropped : int
+        How many flags were lifted.
+    """
+    flags = np.asarray(flags, dtype=bool).copy()
+    limit = int(np.floor(max(float(max_fraction), 0.0) * flags.size))
+    count = int(flags.sum())
+    if count <= limit:
+        return flags, 0
+    idx = np.flatnonzero(flags)
+    s = np.nan_to_num(np.asarray(strength, dtype=float)[idx], nan=0.0)
+    keep = idx[np.argsort(-s, kind="stable")[:limit]]
+    flags[:] = False
+    flags[keep] = True
+    return flags, count - limit
+
+
+def first_difference_spikes(values, groups, window: int = 11, threshold: float = 6.0,
+                            floor: float = 3.0) -> tuple[np.ndarray, np.ndarray]:
+    """Spikes in one-minute observatory variation data from first differences.
+
+    d1[i] = T[i] - T[i-1]. A spike at i is a jump away and straight back: d1[i] and d1[i+1] of
+    opposite signs, both larger than ``max(threshold x s, floor)``, where s = 1.4826 x the
+    running median of |d1| over ``window`` samples (the local rate of variation). A step (a
+    sudden commencement, a baseline jump) has one large difference only and is not a spike; the
+    floor of a few nT keeps the natural minute-to-minute variation of quiet days from being
+    flagged (common practice in observatory data checking: first differences against a robust
+    running scale; Rousseeuw and Croux 1993 for the scale).
+
+    Returns
+    -------
+    flags : numpy.ndarray of bool
+    limit : numpy.ndarray
+        The threshold in force at each sample (field units).
+    """
+    x = np.asarray(values, dtype=float)
+    g = np.asarray(groups)
+    d1 = x - _shift(x, g, -1)  # T[i] - T[i-1]
+    d1_next = _shift(d1, g, 1)  # T[i+1] - T[i]
+    scale = 1.4826 * _group_rolling_median(np.abs(d1), g, window) if x.size else x
+    limit = np.maximum(threshold * np.nan_to_num(scale, nan=0.0), float(floor))
+    with np.errstate(invalid="ignore"):
+        flags = ((np.abs(d1) > limit) & (np.abs(d1_next) > limit) & (d1 * d1_next < 0))
+    return flags & np.isfinite(x), limit
 
 
 def line_noise(fourth: np.ndarray, groups: np.ndarray, usable: np.ndarray | None = None) -> pd.DataFrame:

@@ -2,7 +2,7 @@
 
 Public API (imported lazily on first use, so importing the package costs nothing):
 
-- ``diurnal``: ``time_epoch``, ``to_seconds``, ``BaseCleaning``, ``running_median``, ``clean_base``, ``find_gaps``, ``interpolate_base``, ``base_datum``, ``diurnal_correction``, ``great_circle_distance``, ``combine_bases``, ``station_difference``, ``ChordDeviation``, ``chord_deviation``, ``highpass``, ``TimeOffset``, ``estimate_time_offset``
+- ``diurnal``: ``time_epoch``, ``to_seconds``, ``BaseCleaning``, ``running_median``, ``clean_base``, ``BaseSessions``, ``base_sessions``, ``setup_transients``, ``session_datums``, ``find_gaps``, ``interpolate_base``, ``base_datum``, ``diurnal_correction``, ``great_circle_distance``, ``combine_bases``, ``station_difference``, ``ChordDeviation``, ``chord_deviation``, ``highpass``, ``TimeOffset``, ``estimate_time_offset``
 - ``igrf``: ``IGRFField``, ``GeocentricField``, ``igrf``, ``igrf_geocentric``, ``coefficients``, ``decimal_year``, ``geodetic_to_geocentric``, ``REFERENCE_RADIUS_M``, ``FIRST_YEAR``, ``LAST_YEAR``, ``MODEL_NAME``
 """
 
@@ -17,6 +17,10 @@ _API = {
     "BaseCleaning": "diurnal",
     "running_median": "diurnal",
     "clean_base": "diurnal",
+    "BaseSessions": "diurnal",
+    "base_sessions": "diurnal",
+    "setup_transients": "diurnal",
+    "session_datums": "diurnal",
     "find_gaps": "diurnal",
     "interpolate_base": "diurnal",
     "base_datum": "diurnal",

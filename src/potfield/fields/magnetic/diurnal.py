@@ -75,6 +75,8 @@ class BaseCleaning:
     gaps : numpy.ndarray, shape (k, 2)
         Start and end (float seconds from the record's first time) of the gaps between good
         samples longer than ``max_gap_s``.
+    transient : numpy.ndarray of bool
+        Set-up transients (:func:`setup_transients`), set by the caller; empty when not tested.
     """
 
     good: np.ndarray
@@ -82,6 +84,7 @@ class BaseCleaning:
     missing: np.ndarray
     median: np.ndarray
     gaps: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))
+    transient: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
 
 
 def running_median(value, window: int) -> np.ndarray:
@@ -91,16 +94,18 @@ def running_median(value, window: int) -> np.ndarray:
     return series.rolling(int(window), center=True, min_periods=1).median().to_numpy()
 
 
-def clean_base(time, value, *, window: int = 11, threshold: float = 6.0, min_spike: float = 0.5,
+def clean_base(time, value, *, window: int = 11, threshold: float = 6.0, min_spike: float = 3.0,
                max_gap_s: float | None = None) -> BaseCleaning:
     """Flag spikes and missing samples of a base-station record.
 
     A sample is a spike when it departs from the running median of ``window`` samples by more
-    than ``threshold`` robust standard deviations (1.4826 x the running median absolute
-    deviation) and by more than ``min_spike``: the Hampel identifier (Hampel 1974, J. Am. Stat.
-    Assoc. 69:383; Davies and Gather 1993, J. Am. Stat. Assoc. 88:782). The running MAD is
-    floored at its median over the record, so that brief lulls of an active record (where the
-    local MAD nearly vanishes) do not flag ordinary samples.
+    than ``max(threshold x s, min_spike)``, with s = 1.4826 x the running median absolute
+    deviation: the Hampel identifier (Hampel 1974, J. Am. Stat. Assoc. 69:383; Davies and
+    Gather 1993, J. Am. Stat. Assoc. 88:782) with a floor. The running MAD is floored at its
+    median over the record, so that brief lulls of an active record (where the local MAD nearly
+    vanishes) do not flag ordinary samples; the floor ``min_spike`` (a few nT by default) keeps
+    samples within a few nT of the local median, which are the diurnal signal itself on an
+    active day, from ever being removed (common practice).
 
     Parameters
     ----------
@@ -112,7 +117,7 @@ def clean_base(time, value, *, window: int = 11, threshold: float = 6.0, min_spi
     threshold : float
         Robust sigmas.
     min_spike : float
-        Smallest departure (nT) ever called a spike, so a very quiet record is not over-flagged.
+        Smallest departure (nT) ever called a spike (the floor of the threshold).
     max_gap_s : float, optional
         When given, the gaps between good samples longer than this are listed.
 
@@ -133,7 +138,7 @@ def clean_base(time, value, *, window: int = 11, threshold: float = 6.0, min_spi
         # floor the local scale at its record median: in an active record the running MAD
         # drops to near zero where oscillations cross, which would flag ordinary samples
         mad = np.maximum(mad, np.median(mad))
-        spike[finite] = (dev > threshold * MAD_TO_SIGMA * mad) & (dev > min_spike)
+        spike[finite] = dev > np.maximum(threshold * MAD_TO_SIGMA * mad, min_spike)
         median[finite] = med
     good = ~missing & ~spike
     gaps = np.zeros((0, 2))
@@ -157,6 +162,212 @@ def find_gaps(seconds, good, max_gap_s: float) -> np.ndarray:
     step = np.diff(t)
     where = np.flatnonzero(step > max_gap_s)
     return np.column_stack([t[where], t[where + 1]])
+
+
+# --- sessions, datum jumps and set-up transients -------------------------------------------------
+
+@dataclass
+class BaseSessions:
+    """Result of :func:`base_sessions`.
+
+    Attributes
+    ----------
+    session : numpy.ndarray of int
+        Session number of each sample (0, 1, ...; sessions are contiguous in time).
+    jumps : list of dict
+        Level changes larger than the limit: ``index`` (first sample after it), ``kind``
+        (``"gap"``: across a recording gap, ``"step"``: inside a record), ``size_nT`` (after
+        minus before) and ``seconds`` (time of the first sample after it).
+    changes : list of dict
+        Every session boundary (the same keys), jumps or not.
+    """
+
+    session: np.ndarray
+    jumps: list
+    changes: list
+
+
+def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
+    series = pd.Series(values)
+    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).median()
+            .reset_index(level=0, drop=True).sort_index().to_numpy())
+
+
+def _trailing_count(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
+    series = pd.Series(np.isfinite(values).astype(float))
+    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).sum()
+            .reset_index(level=0, drop=True).sort_index().to_numpy())
+
+
+def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: float = 20.0,
+                  window: int = 60) -> BaseSessions:
+    """Split a base record into sessions and find datum jumps (relocations, re-set-ups).
+
+    A new session starts after a recording gap longer than ``gap_s`` and at a step inside a
+    record. A step is found by a robust two-window test: at each sample i the median of the
+    ``window`` good samples after it minus the median of the ``window`` before it, less the
+    local trend (``window`` x the median first difference over both windows, so a steady diurnal
+    slope gives no step); a run of samples where this exceeds ``jump_nT`` is one step, placed at
+    its largest single first difference. Across a gap the level change is the median of the
+    first ``window`` samples after it minus that of the last ``window`` before it, and is a jump
+    when larger than ``jump_nT`` (common practice: a base moved or set up again sits on a
+    different local field, so its level changes by the crustal field difference between the two
+    sites; medians as robust levels, Tukey 1977).
+
+    Parameters
+    ----------
+    time : array of datetime64 or float seconds, increasing
+    value : array (nT)
+    good : array of bool, optional
+        Samples to use (default: finite ones); the others take the session of the sample before.
+    gap_s : float
+        Recording gaps longer than this (s) start a new session.
+    jump_nT : float
+        Smallest level change (nT) called a jump.
+    window : int
+        Samples on each side of the step test.
+
+    Returns
+    -------
+    BaseSessions
+    """
+    t = to_seconds(time)
+    v = np.asarray(value, dtype=float)
+    ok = np.isfinite(v) if good is None else (np.asarray(good, dtype=bool) & np.isfinite(v))
+    idx = np.flatnonzero(ok)
+    session = np.zeros(v.size, dtype=np.int64)
+    if idx.size < 2:
+        return BaseSessions(session, [], [])
+    tg, vg = t[idx], v[idx]
+    k = max(int(window), 3)
+    gap_cut = np.flatnonzero(np.diff(tg) > gap_s) + 1  # positions in idx starting a session
+    part = np.zeros(idx.size, dtype=np.int64)
+    part[gap_cut] = 1
+    part = np.cumsum(part)
+    changes = []
+    # steps inside each gap-free part: medians of the k samples before and after each position
+    before = _trailing_median(vg, part, k)  # median of vg[i-k+1 .. i]
+    n_before = _trailing_count(vg, part, k)
+    after = _trailing_median(vg[::-1], part[::-1], k)[::-1]  # median of vg[i .. i+k-1]
+    n_after = _trailing_count(vg[::-1], part[::-1], k)[::-1]
+    d1 = np.r_[np.nan, np.diff(vg)]
+    d1[np.r_[True, part[1:] != part[:-1]]] = np.nan
+    slope = pd.Series(d1).groupby(part, sort=False).rolling(2 * k, center=True, min_periods=1) \
+        .median().reset_index(level=0, drop=True).sort_index().to_numpy()
+    prev_before = np.r_[np.nan, before[:-1]]
+    prev_count = np.r_[0.0, n_before[:-1]]
+    same = np.r_[False, part[1:] == part[:-1]]
+    estimate = after - prev_before - np.nan_to_num(slope) * k
+    full = same & (prev_count >= k) & (n_after >= k)
+    with np.errstate(invalid="ignore"):
+        candidate = full & (np.abs(estimate) > jump_nT)
+    steps = []
+    if candidate.any():
+        run_id = np.cumsum(np.r_[True, ~candidate[1:] | ~candidate[:-1]])
+        frame = pd.DataFrame({"run": run_id[candidate], "pos": np.flatnonzero(candidate),
+                              "d1": np.abs(d1[candidate])})
+        best = frame.loc[frame.groupby("run")["d1"].idxmax(), "pos"].to_numpy()
+        for pos in best:  # loop over steps found (a few), not samples
+            level_before = float(np.median(vg[max(pos - k, 0):pos]))
+            level_after = float(np.median(vg[pos:pos + k]))
+            steps.append(int(pos))
+            changes.append({"index": int(idx[pos]), "kind": "step", "seconds": float(tg[pos]),
+                            "size_nT": level_after - level_before, "jump": True})
+    for pos in gap_cut:  # loop over gaps (a few)
+        lo = vg[max(pos - k, 0):pos][part[max(pos - k, 0):pos] == part[pos - 1]]
+        hi = vg[pos:pos + k][part[pos:pos + k] == part[pos]]
+        size = float(np.median(hi) - np.median(lo))
+        changes.append({"index": int(idx[pos]), "kind": "gap", "seconds": float(tg[pos]),
+                        "size_nT": size, "jump": bool(abs(size) > jump_nT),
+                        "gap_s": float(tg[pos] - tg[pos - 1])})
+    changes.sort(key=lambda c: c["index"])
+    starts = np.array([c["index"] for c in changes], dtype=np.int64)
+    if starts.size:
+        session = np.searchsorted(starts, np.arange(v.size), side="right").astype(np.int64)
+    jumps = [c for c in changes if c["jump"]]
+    return BaseSessions(session, jumps, changes)
+
+
+def setup_transients(time, value, session, good=None, *, settle_s: float = 300.0,
+                     min_nT: float = 3.0) -> np.ndarray:
+    """Flag the settling transient at the start of each base session.
+
+    A magnetometer just set up drifts for its first minutes (the sensor and its electronics
+    settling, the operator walking away). The record from ``settle_s`` to ``2 settle_s`` after
+    the session's first sample is fitted with a robust straight line (median levels of its two
+    halves) and extended back to the start. With ``limit = max(min_nT, r)`` (r the largest
+    departure from the line inside the fit window: the noise and the diurnal's own curvature),
+    a session starts with a transient when the median departure of its first 30 s from the
+    line exceeds ``2 limit``;
+    the transient then runs until the running median (5 samples) first comes back within
+    ``limit`` (common practice: discard the settling minutes of a new set-up). A transient
+    smaller than the diurnal's own curvature over a few minutes cannot be told from it with one
+    base and is not flagged.
+
+    Parameters
+    ----------
+    time : array of datetime64 or float seconds, increasing
+    value : array (nT)
+    session : array of int
+        Session of each sample (:func:`base_sessions`).
+    good : array of bool, optional
+        Samples to use (default: finite ones).
+
+    Returns
+    -------
+    numpy.ndarray of bool
+    """
+    t = to_seconds(time)
+    v = np.asarray(value, dtype=float)
+    ok = np.isfinite(v) if good is None else (np.asarray(good, dtype=bool) & np.isfinite(v))
+    session = np.asarray(session)
+    out = np.zeros(v.size, dtype=bool)
+    for s in np.unique(session[ok]):  # loop over sessions (a few)
+        idx = np.flatnonzero(ok & (session == s))
+        ts, vs = t[idx], v[idx]
+        t0 = ts[0]
+        ref = (ts >= t0 + settle_s) & (ts <= t0 + 2 * settle_s)
+        early = ts < t0 + settle_s
+        if ref.sum() < 10 or early.sum() < 5:
+            continue
+        tr, vr = ts[ref], vs[ref]
+        half = tr < np.median(tr)
+        if half.all() or not half.any():
+            continue
+        slope = (np.median(vr[~half]) - np.median(vr[half])) / (np.median(tr[~half]) - np.median(tr[half]))
+        intercept = np.median(vr - slope * tr)
+        resid = vr - (intercept + slope * tr)
+        limit = max(min_nT, float(np.max(np.abs(resid))))
+        dep = np.abs(running_median(vs[early], 5) - (intercept + slope * ts[early]))
+        first = ts[early] < t0 + 30.0
+        if np.median(dep[first]) <= 2 * limit:
+            continue
+        back = np.flatnonzero(dep <= limit)
+        stop = int(back[0]) if back.size else int(early.sum())
+        out[idx[:stop]] = True
+    return out
+
+
+def session_datums(time, value, session, good=None, span=None) -> np.ndarray:
+    """Median of each session's good samples inside ``span`` (the whole session when it does
+    not overlap ``span``; NaN for a session without good samples), indexed by session number."""
+    t = _as_time_array(time)
+    v = np.asarray(value, dtype=float)
+    ok = np.isfinite(v) if good is None else (np.asarray(good, dtype=bool) & np.isfinite(v))
+    session = np.asarray(session)
+    n = int(session.max()) + 1 if session.size else 0
+    out = np.full(n, np.nan)
+    inside = np.ones(v.size, dtype=bool)
+    if span is not None:
+        inside = (t >= span[0]) & (t <= span[1])
+    for s in range(n):  # loop over sessions
+        sel = ok & (session == s)
+        pick = sel & inside
+        if pick.any():
+            out[s] = float(np.median(v[pick]))
+        elif sel.any():
+            out[s] = float(np.median(v[sel]))
+    return out
 
 
 # --- interpolation ------------------------------------------------------------------------------
