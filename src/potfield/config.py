@@ -376,14 +376,22 @@ class DeriveSection(Section):
     pad_mode: Literal["reflect", "edge"] = "reflect"
     #: Horizontal derivatives: "central" (central differences) or "fft" (wavenumber domain).
     horizontal_method: Literal["central", "fft"] = "central"
-    #: Reduction to pole: "auto" (pseudo-inclination when |I| < rtp_threshold_deg, else plain),
-    #: "plain" (Baranov) or "pseudo" (MacLeod et al. 1993).
-    rtp: Literal["auto", "plain", "pseudo"] = "auto"
-    #: |I| (degrees) below which rtp = "auto" uses the pseudo-inclination filter.
-    rtp_threshold_deg: float = Field(30.0, ge=0, le=90)
-    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = rtp_threshold_deg
-    #: (or |I| when steeper).
+    #: Reduction to pole: "auto" (equivalent-layer "sources" when |I| < rtp_threshold_deg, else
+    #: plain), "plain" (Baranov filter), "pseudo" (MacLeod et al. 1993), "filter" (regularised
+    #: inverse filter, Hansen and Pawlowski 1989) or "sources" (dipole layer fitted to the grid,
+    #: Silva 1986; Li and Oldenburg 2001). The method used is recorded in the manifest.
+    rtp: Literal["auto", "plain", "pseudo", "filter", "sources"] = "auto"
+    #: |I| (degrees) below which rtp = "auto" uses the equivalent-layer RTP.
+    rtp_threshold_deg: float = Field(35.0, ge=0, le=90)
+    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = 30 (or |I| when
+    #: steeper).
     pseudo_inclination_deg: float | None = Field(None, ge=-90, le=90)
+    #: Noise-to-signal level of rtp = "filter": conj(T) / (|T|^2 + level^2); gain <= 1/(2 level).
+    rtp_filter_level: float = Field(0.1, gt=0, le=1)
+    #: rtp = "sources": depth of the dipole layer below the grid, in grid cells (2.5-6 common).
+    rtp_layer_depth_cells: float = Field(3.0, gt=0, le=20)
+    #: rtp = "sources": Tikhonov damping relative to the layer operator's largest singular value.
+    rtp_layer_damping: float = Field(1e-2, gt=0, lt=1)
     #: Also continue upward by predicting the grid stage's equivalent-source model (when it has one).
     upward_by_model: bool = True
 
