@@ -312,8 +312,17 @@ class LevelSection(Section):
     method: Literal["two_step", "network"] = "two_step"
     #: Minimum crossovers per line for its own correction; fewer keeps the line's level.
     min_crossovers: int = Field(default=2, ge=1)
-    #: Crossovers with |height difference| above this (m) are dropped (common practice).
-    max_height_difference_m: float = 30.0
+    #: Crossovers with |height difference| above this (m) are dropped; 0 = adaptive: median
+    #: |dh| + height_gate_mads x 1.4826 MAD(|dh|), at least 10 m (robust; Huber 1981).
+    max_height_difference_m: float = Field(default=0.0, ge=0.0)
+    #: Robust standard deviations above the median |dh| of the adaptive height gate.
+    height_gate_mads: float = Field(default=3.0, gt=0.0)
+    #: Remove the height effect from each misclosure (vertical gradient estimated from the
+    #: data x height difference) before levelling.
+    height_correction: bool = True
+    #: Lines with fewer than min_crossovers usable crossovers take the correction of the lines
+    #: flown before and after them (interpolated in time) instead of none.
+    neighbour_levelling: bool = True
     #: Huber threshold of the robust (IRLS) fits, in robust sigmas (1.4826 x MAD); 0 = plain LS.
     huber_threshold: float = Field(default=1.5, ge=0.0)
     #: Longest gap (m) between consecutive readings still joined into one track segment when
