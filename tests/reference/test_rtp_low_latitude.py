@@ -16,11 +16,11 @@ import numpy as np
 import pytest
 
 from potfield.config import parse_config
+from potfield.fields.harmonic import transforms as tf
 from potfield.io.grids import make_grid
 from potfield.stages.base import StageContext
 from potfield.stages.derive import STAGE
 from potfield.survey import Survey
-from potfield.fields.harmonic import transforms as tf
 
 MU0 = 4e-7 * np.pi
 E = np.arange(-6000.0, 6001.0, 100.0)

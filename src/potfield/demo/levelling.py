@@ -62,8 +62,8 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
     rng = np.random.default_rng(seed)
     speed = 70.0
     specs = []
-    n_trav = int(round(side_n / line_spacing)) + 1
-    n_tie = int(round(side_e / tie_spacing)) + 1
+    n_trav = round(side_n / line_spacing) + 1
+    n_tie = round(side_e / tie_spacing) + 1
     for k in range(n_trav):  # loop over lines, not readings
         x = np.arange(-200.0, side_e + 200.0 + 1e-9, step)
         specs.append((f"L{1000 + 10 * k}", "traverse", x if k % 2 == 0 else x[::-1],
@@ -92,7 +92,7 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
     codes, _ = pd.factorize(table["line"])
     bounds = np.r_[0, np.flatnonzero(np.diff(codes)) + 1, codes.size]
     bias = rng.normal(0.0, 8.0, bounds.size - 1)
-    lag = int(round(150.0 / step))
+    lag = round(150.0 / step)
     for i in range(bounds.size - 1):  # loop over lines
         a, b = bounds[i], bounds[i + 1]
         smooth = gaussian_filter1d(terrain[a:b],

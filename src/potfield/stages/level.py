@@ -246,10 +246,10 @@ def run(ctx: StageContext) -> StageOutput:
         "neighbour_levelled_lines": len(neighbour_lines),
     }
     what = "height-corrected RMS misclosure" if height_corrected else "RMS misclosure"
-    notes = [f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: {what} "
-             f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({ratio:.3g}x; "
-             f"{cfg.method.replace('_', '-')}, {cfg.traverse_model} per traverse line; datum: "
-             f"mean tie correction 0){note_gravity}",
+    notes = [(f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: {what} "
+              f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({ratio:.3g}x; "
+              f"{cfg.method.replace('_', '-')}, {cfg.traverse_model} per traverse line; datum: "
+              f"mean tie correction 0){note_gravity}"),
              f"height gate {gate:.3g} m ({gate_text})"]
     if height_corrected:
         notes.append(f"misclosures corrected for height differences with the vertical gradient "

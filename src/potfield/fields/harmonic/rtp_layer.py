@@ -43,7 +43,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
-__all__ = ["LayerRTP", "layer_reduction_to_pole", "DEFAULT_DEPTH_CELLS", "DEFAULT_DAMPING"]
+__all__ = ["DEFAULT_DAMPING", "DEFAULT_DEPTH_CELLS", "LayerRTP", "layer_reduction_to_pole"]
 
 #: Depth of the dipole layer below the grid, in grid cells (Dampney 1969 recommends 2.5-6 data
 #: spacings; a shallow layer keeps short wavelengths, the damping keeps it stable). On the

@@ -1020,9 +1020,9 @@ def _layer_rtp(grid, inclination, declination, m_inc, m_dec, depth, damping) -> 
     prep = PaddedGrid(padded=values, inner=(slice(None), slice(None)), filled=values,
                       mask=~np.isfinite(values), plane=np.zeros_like(values), slope=(0.0, 0.0),
                       spacing=spacing, flipped=flipped,
-                      notes=[f"dipole layer {result.depth:g} m below the grid, one source per "
-                             f"cell, damping {result.damping:g}, {result.iterations} CGLS "
-                             f"iterations, fit RMS {result.residual_rms:.3g}"])
+                      notes=[(f"dipole layer {result.depth:g} m below the grid, one source per "
+                              f"cell, damping {result.damping:g}, {result.iterations} CGLS "
+                              f"iterations, fit RMS {result.residual_rms:.3g}")])
     units, long_name = _source(grid)
     step = ("reduction to the pole by an equivalent dipole layer (Silva 1986; Li and Oldenburg "
             f"2001), I {inclination:g} D {declination:g}")
