@@ -1029,8 +1029,9 @@ def vertical_gradient_at(easting, northing, values, at_easting, at_northing, cel
     mean_v = np.bincount(key, v, nx * ny)[filled] / count[filled]
     mean_x = np.bincount(key, x, nx * ny)[filled] / count[filled]
     mean_y = np.bincount(key, y, nx * ny)[filled] / count[filled]
-    ge = x0 + cell * (np.arange(nx) + 0.5)
-    gn = y0 + cell * (np.arange(ny) + 0.5)
+    # grid nodes on the cell corners, so the grid spans every reading (no NaN at the edges)
+    ge = x0 + cell * np.arange(nx + 1)
+    gn = y0 + cell * np.arange(ny + 1)
     ee, nn = np.meshgrid(ge, gn)
     grid = griddata((mean_x, mean_y), mean_v, (ee, nn), method="linear")
     grid = _fill_nearest(grid)
