@@ -115,7 +115,7 @@ def _kernel_spectrum(shape, spacing, depth, moment_dir, field_dir, fft_shape):
 
 def layer_reduction_to_pole(values, spacing, inclination, declination, mag_inclination=None,
                             mag_declination=None, *, depth=None, damping=DEFAULT_DAMPING,
-                            tol=1e-4, max_iter=500) -> LayerRTP:
+                            tol=3e-4, max_iter=500) -> LayerRTP:
     """Reduce a total-field anomaly grid to the pole with an equivalent dipole layer.
 
     Parameters
@@ -136,7 +136,9 @@ def layer_reduction_to_pole(values, spacing, inclination, declination, mag_incli
         Tikhonov damping relative to the operator's largest singular value.
     tol : float
         CGLS stops when the norm of the damped normal-equation residual falls below ``tol``
-        times its initial value.
+        times its initial value (3e-4 scored as 1e-4 on the test bodies, relative RMS 0.061 /
+        0.198 / 0.128 at I -29 / -10 / 5 deg, in 25 % fewer iterations; 1e-3 lost accuracy at
+        -10 deg, 0.214).
     max_iter : int
         Iteration limit.
 
