@@ -426,8 +426,17 @@ class LevelSection(Section):
     method: Literal["two_step", "network"] = "two_step"
     #: Minimum crossovers per line for its own correction; fewer keeps the line's level.
     min_crossovers: int = Field(default=2, ge=1)
-    #: Crossovers with |height difference| above this (m) are dropped (common practice).
-    max_height_difference_m: float = Field(30.0, gt=0)
+    #: Crossovers with |height difference| above this (m) are dropped; 0 = adaptive: median
+    #: |dh| + height_gate_mads x 1.4826 MAD(|dh|), at least 10 m (robust; Huber 1981).
+    max_height_difference_m: float = Field(default=0.0, ge=0.0)
+    #: Robust standard deviations above the median |dh| of the adaptive height gate.
+    height_gate_mads: float = Field(default=3.0, gt=0.0)
+    #: Remove the height effect from each misclosure (vertical gradient estimated from the
+    #: data x height difference) before levelling.
+    height_correction: bool = True
+    #: Lines with fewer than min_crossovers usable crossovers take the correction of the lines
+    #: flown before and after them (interpolated in time) instead of none.
+    neighbour_levelling: bool = True
     #: Huber threshold of the robust (IRLS) fits, in robust sigmas (1.4826 x MAD); 0 = plain LS.
     huber_threshold: float = Field(default=1.5, ge=0.0)
     #: Longest gap (m) between consecutive readings still joined into one track segment when
@@ -512,14 +521,22 @@ class DeriveSection(Section):
     pad_mode: Literal["reflect", "edge"] = "reflect"
     #: Horizontal derivatives: "central" (central differences) or "fft" (wavenumber domain).
     horizontal_method: Literal["central", "fft"] = "central"
-    #: Reduction to pole: "auto" (pseudo-inclination when |I| < rtp_threshold_deg, else plain),
-    #: "plain" (Baranov) or "pseudo" (MacLeod et al. 1993).
-    rtp: Literal["auto", "plain", "pseudo"] = "auto"
-    #: |I| (degrees) below which rtp = "auto" uses the pseudo-inclination filter.
-    rtp_threshold_deg: float = Field(30.0, ge=0, le=90)
-    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = rtp_threshold_deg
-    #: (or |I| when steeper).
+    #: Reduction to pole: "auto" (equivalent-layer "sources" when |I| < rtp_threshold_deg, else
+    #: plain), "plain" (Baranov filter), "pseudo" (MacLeod et al. 1993), "filter" (regularised
+    #: inverse filter, Hansen and Pawlowski 1989) or "sources" (dipole layer fitted to the grid,
+    #: Silva 1986; Li and Oldenburg 2001). The method used is recorded in the manifest.
+    rtp: Literal["auto", "plain", "pseudo", "filter", "sources"] = "auto"
+    #: |I| (degrees) below which rtp = "auto" uses the equivalent-layer RTP.
+    rtp_threshold_deg: float = Field(35.0, ge=0, le=90)
+    #: Amplitude inclination of the pseudo-inclination RTP (degrees); None = 30 (or |I| when
+    #: steeper).
     pseudo_inclination_deg: float | None = Field(None, ge=-90, le=90)
+    #: Noise-to-signal level of rtp = "filter": conj(T) / (|T|^2 + level^2); gain <= 1/(2 level).
+    rtp_filter_level: float = Field(0.1, gt=0, le=1)
+    #: rtp = "sources": depth of the dipole layer below the grid, in grid cells (2.5-6 common).
+    rtp_layer_depth_cells: float = Field(3.0, gt=0, le=20)
+    #: rtp = "sources": Tikhonov damping relative to the layer operator's largest singular value.
+    rtp_layer_damping: float = Field(1e-2, gt=0, lt=1)
     #: Also continue upward by predicting the grid stage's equivalent-source model (when it has one).
     upward_by_model: bool = True
 

@@ -119,12 +119,32 @@ def test_flagged_readings_are_not_used(tmp_path):
 
 def test_short_line_is_reported_and_kept(tmp_path):
     table, _ = survey_table(seed=4, short_line=True)
-    out = run(context(tmp_path, table, level={"min_crossovers": 2}))
+    out = run(context(tmp_path, table, level={"min_crossovers": 2,
+                                               "neighbour_levelling": False}))
     lines = out.tables["lines"].set_index("line")
     assert lines.loc["L99", "crossovers"] == 1
     assert "min_crossovers" in lines.loc["L99", "warning"]
     assert (out.table.loc[out.table["line"] == "L99", "level_correction"] == 0).all()
     assert any("L99" in w for w in out.warnings)
+    assert out.metrics["unlevelled_lines"] == 1 and out.state["unlevelled_lines"] == ["L99"]
+
+
+def test_short_line_is_levelled_from_its_neighbours_in_time(tmp_path):
+    table, _ = survey_table(seed=4, short_line=True)
+    out = run(context(tmp_path, table, level={"min_crossovers": 2}))
+    result = out.table
+    # L99 is flown after L11 and before the ties: it takes L11's correction (the last levelled
+    # traverse line before it; held constant after the last one). Common practice (Mauring et
+    # al. 2002 level such lines from their neighbours).
+    l11 = result.loc[result["line"] == "L11", "level_correction"].mean()
+    l99 = result.loc[result["line"] == "L99", "level_correction"].to_numpy()
+    assert l11 != 0 and np.allclose(l99, l11)
+    assert out.metrics["neighbour_levelled_lines"] == 1 and out.metrics["unlevelled_lines"] == 0
+    assert out.state["neighbour_levelled_lines"] == ["L99"]
+    assert "neighbours" not in out.warnings[0] and "L99" in out.warnings[0]
+    assert "levelled from the lines flown before and after" in out.warnings[0]
+    lines = out.tables["lines"].set_index("line")
+    assert "flown before and after" in lines.loc["L99", "warning"]
 
 
 def test_linear_model_removes_drift(tmp_path):

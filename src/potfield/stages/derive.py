@@ -45,7 +45,8 @@ def run(ctx: StageContext) -> StageOutput:
         ``rtp`` also ``ctx.state["reference"]["inclination"/"declination"]`` (degrees, at the
         centroid) and, to turn the declination to grid north, ``ctx.state["ingest"]["crs"]`` and
         ``["centroid"]``; optionally ``ctx.state["grid"]["model_path"]`` (equivalent-source
-        model) and the grid height.
+        model) and the grid height. ``[derive] rtp = "auto"`` uses the Baranov filter at
+        ``|I| >= rtp_threshold_deg`` (35) and the equivalent dipole layer below it.
 
     Returns
     -------
@@ -57,7 +58,8 @@ def run(ctx: StageContext) -> StageOutput:
     References
     ----------
     See :mod:`potfield.fields.harmonic.transforms` (Blakely 1995; Baranov 1957; MacLeod, Jones and Dai
-    1993; Nabighian 1972; Roest et al. 1992; Miller and Singh 1994; Dampney 1969).
+    1993; Hansen and Pawlowski 1989; Nabighian 1972; Roest et al. 1992; Miller and Singh 1994;
+    Dampney 1969) and :mod:`potfield.fields.harmonic.rtp_layer` (Silva 1986; Li and Oldenburg 2001).
     """
     cfg = ctx.config.derive
     out = StageOutput()
@@ -130,21 +132,49 @@ def run(ctx: StageContext) -> StageOutput:
                                  "grid north were true north")
             pseudo = cfg.pseudo_inclination_deg
             if pseudo is None:
-                pseudo = tf.default_pseudo_inclination(inc, cfg.rtp_threshold_deg)
-            rtp = tf.reduction_to_pole(source, float(inc), float(dec), method=cfg.rtp,
-                                       pseudo_inclination=pseudo,
-                                       auto_threshold=cfg.rtp_threshold_deg, **common)
+                pseudo = tf.default_pseudo_inclination(inc)
+            method = cfg.rtp
+            if method == "auto":
+                method = tf.rtp_method_for(float(inc), cfg.rtp_threshold_deg)
+            spacing = max(abs(float(grid.easting.values[1] - grid.easting.values[0])),
+                          abs(float(grid.northing.values[1] - grid.northing.values[0])))
+            # the layer is fitted to the valid cells only (masked cells are not data)
+            rtp = tf.reduction_to_pole(grid if method == "sources" else source, float(inc),
+                                       float(dec), method=method, pseudo_inclination=pseudo,
+                                       auto_threshold=cfg.rtp_threshold_deg,
+                                       wiener_level=cfg.rtp_filter_level,
+                                       layer_depth=cfg.rtp_layer_depth_cells * spacing,
+                                       layer_damping=cfg.rtp_layer_damping, **common)
             add("rtp", rtp)
             method = rtp.attrs["rtp_method"]
             out.metrics.update({"rtp_method": method, "rtp_inclination_deg": float(inc),
                                 "rtp_declination_deg": dec_true,
                                 "rtp_grid_declination_deg": float(dec)})
-            text = (f"reduction to the pole: {method} filter at I {float(inc):.2f}, "
+            label = {"plain": "plain filter (Baranov)", "pseudo": "pseudo-inclination filter",
+                     "filter": "regularised inverse filter", "sources": "equivalent dipole layer"}
+            text = (f"reduction to the pole: {label[method]} at I {float(inc):.2f}, "
                     f"D {float(dec):.2f} deg (grid)")
+            if cfg.rtp == "auto":
+                text += (f"; chosen by rtp = \"auto\" (|I| {'>=' if method == 'plain' else '<'} "
+                         f"{cfg.rtp_threshold_deg:g} deg)")
             if method == "pseudo":
                 out.metrics["rtp_pseudo_inclination_deg"] = rtp.attrs["pseudo_inclination"]
                 text += (f", amplitude inclination {rtp.attrs['pseudo_inclination']:.1f} deg "
                          "(MacLeod et al. 1993)")
+            elif method == "filter":
+                out.metrics["rtp_filter_level"] = rtp.attrs["wiener_level"]
+                text += f", noise-to-signal level {rtp.attrs['wiener_level']:g} (Hansen and Pawlowski 1989)"
+            elif method == "sources":
+                for key in ("layer_depth", "layer_damping", "layer_iterations", "layer_residual_rms"):
+                    out.metrics[f"rtp_{key}"] = rtp.attrs[key]
+                text += (f", layer {rtp.attrs['layer_depth']:g} m deep, fit RMS "
+                         f"{rtp.attrs['layer_residual_rms']:.3g} {grid.attrs.get('units', '')} "
+                         "(Silva 1986; Li and Oldenburg 2001)")
+            if method == "plain" and abs(float(inc)) < cfg.rtp_threshold_deg:
+                out.warnings.append(
+                    f"reduction to the pole with the plain Baranov filter at |I| = {abs(float(inc)):.1f} "
+                    f"< {cfg.rtp_threshold_deg:g} deg: expect stripes along the declination; "
+                    "[derive] rtp = \"sources\" is stable there")
             out.notes.append(text)
 
     for order in (1, 2):
@@ -177,7 +207,7 @@ def run(ctx: StageContext) -> StageOutput:
     out.metrics["products"] = len(made)
     out.state = {"input_grid": name, "products": made, "fill": out.metrics["fill"],
                  "upward_m": float(cfg.upward_m)}
-    for key in ("rtp_method", "rtp_pseudo_inclination_deg"):
+    for key in ("rtp_method", "rtp_pseudo_inclination_deg", "rtp_filter_level", "rtp_layer_depth"):
         if key in out.metrics:
             out.state[key] = out.metrics[key]
     return out

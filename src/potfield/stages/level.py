@@ -7,6 +7,16 @@ average level of its ties), then every traverse line is levelled to the adjusted
 robust constant or low-order polynomial in time. ``method = "network"`` solves all lines at once
 (Yarger, Robertson and Wentland 1978) with the same datum.
 
+Adaptive defaults for real tie-line surveys (rough terrain, crossovers tens of metres apart in
+height): crossovers are gated by their own height differences (``max_height_difference_m = 0``:
+median |dh| + ``height_gate_mads`` robust sigma, Huber 1981); with ``height_correction`` the
+lines are levelled twice, the second time on misclosures minus the height effect (vertical
+gradient of a grid of the first-pass levelled data x height difference); with
+``neighbour_levelling`` a traverse line with fewer than ``min_crossovers`` usable crossovers
+takes the corrections of the lines flown before and after it (interpolated in time; Mauring et
+al. 2002) and is listed in a warning. The crossovers table holds the misclosures before and
+after, raw and height-corrected (:mod:`potfield.qc.level_plots` draws their histograms).
+
 Adds ``level_correction`` (the value added; 0 where nothing was corrected) and ``anomaly_levelled``
 (value + correction). The value levelled is ``anomaly`` (magnetic) or ``bouguer_anomaly``
 (gravity); for uniformity the levelled result is called ``anomaly_levelled`` for both kinds.
@@ -99,61 +109,124 @@ def run(ctx: StageContext) -> StageOutput:
         out.tables["crossovers"] = crossovers
         return out
 
+    # Height gate: fixed, or from the crossovers' own height differences (robust).
+    candidates = leveling.usable_crossovers(crossovers)
+    if cfg.max_height_difference_m > 0:
+        gate, gate_text = float(cfg.max_height_difference_m), "fixed"
+    else:
+        gate = leveling.height_gate(crossovers["height_difference"].to_numpy(float)[candidates],
+                                    cfg.height_gate_mads)
+        gate_text = f"adaptive: median |dh| + {cfg.height_gate_mads:g} robust sigma"
+    gate_arg = gate if np.isfinite(gate) else None
+
+    def solve(cx):
+        if cfg.method == "network":
+            return leveling.adjust_network(
+                cx, model=cfg.traverse_model, lines=traverse_names, ties=tie_names,
+                huber_threshold=huber, min_crossovers=cfg.min_crossovers,
+                max_height_difference=gate_arg)
+        t = leveling.adjust_ties(cx, tie_names, huber_threshold=huber,
+                                 max_height_difference=gate_arg)
+        a = leveling.adjust_lines(cx, t.corrections, model=cfg.traverse_model,
+                                  lines=traverse_names, huber_threshold=huber,
+                                  min_crossovers=cfg.min_crossovers,
+                                  max_height_difference=gate_arg)
+        return t, a
+
+    def corrections(ties, adjust):
+        corr = adjust.evaluate(lines, time)
+        corr[is_tie] = pd.Series(lines[is_tie]).map(ties.corrections).fillna(0.0).to_numpy()
+        return corr
+
     ctx.progress(f"levelling {len(tie_names)} tie and {len(traverse_names)} traverse lines "
                  f"on {len(crossovers)} crossovers")
-    if cfg.method == "network":
-        ties, adjust = leveling.adjust_network(
-            crossovers, model=cfg.traverse_model, lines=traverse_names, ties=tie_names,
-            huber_threshold=huber, min_crossovers=cfg.min_crossovers,
-            max_height_difference=cfg.max_height_difference_m)
-    else:
-        ties = leveling.adjust_ties(crossovers, tie_names, huber_threshold=huber,
-                                    max_height_difference=cfg.max_height_difference_m)
-        adjust = leveling.adjust_lines(crossovers, ties.corrections, model=cfg.traverse_model,
-                                       lines=traverse_names, huber_threshold=huber,
-                                       min_crossovers=cfg.min_crossovers,
-                                       max_height_difference=cfg.max_height_difference_m)
+    ties, adjust = solve(crossovers)
+    gradient = np.full(len(crossovers), np.nan)
+    solved = crossovers
+    spacing = _traverse_spacing(ctx, crossovers)
+    if cfg.height_correction and height is not None and np.isfinite(height).any() and spacing:
+        # Two passes: the gradient comes from a grid of the first-pass levelled values (fewer
+        # line-level residuals in it), then the height-corrected misclosures are levelled.
+        ctx.progress("estimating the vertical gradient at the crossovers")
+        first = values + corrections(ties, adjust)
+        ok = ~flagged
+        gradient = leveling.vertical_gradient_at(
+            table["easting"].to_numpy(float)[ok], table["northing"].to_numpy(float)[ok],
+            first[ok], crossovers["easting"].to_numpy(float),
+            crossovers["northing"].to_numpy(float), 0.5 * spacing)
+        solved = crossovers.copy()
+        solved["difference"] = leveling.height_corrected_differences(crossovers, gradient)
+        ties, adjust = solve(solved)
+    height_corrected = bool(np.isfinite(gradient).any())
 
-    correction = adjust.evaluate(lines, time)
-    correction[is_tie] = pd.Series(lines[is_tie]).map(ties.corrections).fillna(0.0).to_numpy()
+    correction = corrections(ties, adjust)
+    # Chained levelling: lines without enough crossovers from the lines flown around them.
+    neighbour_lines = []
+    if cfg.neighbour_levelling and adjust.unlevelled:
+        target = np.isin(lines, adjust.unlevelled) & ~is_tie
+        source = ~is_tie & ~np.isin(lines, adjust.unlevelled)
+        filled = leveling.neighbour_corrections(lines, time, correction, source, target)
+        take = target & np.isfinite(filled)
+        correction[take] = filled[take]
+        neighbour_lines = [n for n in adjust.unlevelled if (take & (lines == n)).any()]
     out = table.copy()
     out["level_correction"] = correction
     out["anomaly_levelled"] = values + correction
 
-    # Crossover table with the misclosure after levelling.
+    # Crossover table with the misclosure after levelling (raw and height-corrected).
     kind = crossovers["kind"].to_numpy()
     cx = crossovers.copy()
+    by_reading = np.where(np.isin(cx["line"].astype(str), neighbour_lines),
+                          _at_crossing(correction, cx), np.nan)
     corr_line = np.where(kind == "traverse-tie",
                          adjust.evaluate(cx["line"].to_numpy(), cx["time_line"].to_numpy()),
                          cx["line"].map(ties.corrections).fillna(0.0).to_numpy())
+    corr_line = np.where(np.isfinite(by_reading), by_reading, corr_line)
     corr_tie = cx["tie"].map(ties.corrections).fillna(0.0).to_numpy()
     cx["correction_line"] = corr_line
     cx["correction_tie"] = corr_tie
     cx["difference_levelled"] = cx["difference"].to_numpy() + corr_line - corr_tie
-    used = leveling.usable_crossovers(crossovers, None, cfg.max_height_difference_m)
+    cx["gradient_up"] = gradient
+    cx["height_effect"] = np.where(np.isfinite(gradient),
+                                   gradient * cx["height_difference"].to_numpy(float), 0.0)
+    cx["difference_height_corrected"] = cx["difference"] - cx["height_effect"]
+    cx["difference_levelled_height_corrected"] = cx["difference_levelled"] - cx["height_effect"]
+    used = leveling.usable_crossovers(crossovers, None, gate_arg)
     cx["used"] = used
     cx["weight"] = np.where(kind == "traverse-tie", adjust.weights, ties.weights)
 
-    rms_before = _rms(cx["difference"][used])
-    rms_after = _rms(cx["difference_levelled"][used])
+    rms_before_raw = _rms(cx["difference"][used])
+    rms_after_raw = _rms(cx["difference_levelled"][used])
+    if height_corrected:
+        rms_before = _rms(cx["difference_height_corrected"][used])
+        rms_after = _rms(cx["difference_levelled_height_corrected"][used])
+    else:
+        rms_before, rms_after = rms_before_raw, rms_after_raw
     unit = _unit(ctx.config)
     line_table = _line_table(out, cx, used, adjust, ties, traverse_names, tie_names,
-                             cfg.min_crossovers)
+                             cfg.min_crossovers, neighbour_lines)
     warnings = [f"line {row.line}: {row.warning}" for row in line_table.itertuples()
                 if row.warning]
     if len(warnings) > 10:
         warnings = warnings[:10] + [f"... and {len(warnings) - 10} more (see tables/lines.csv)"]
     degraded = []
+    if adjust.unlevelled:
+        kept = [n for n in adjust.unlevelled if n not in neighbour_lines]
+        text = (f"{len(adjust.unlevelled)} traverse line(s) with fewer than min_crossovers = "
+                f"{cfg.min_crossovers} usable crossovers: {', '.join(adjust.unlevelled)}")
+        if neighbour_lines:
+            text += f"; levelled from the lines flown before and after: {', '.join(neighbour_lines)}"
+        if kept:
+            text += f"; level kept: {', '.join(kept)}"
+        warnings.insert(0, text)
+        if kept:
+            degraded.append(f"{len(kept)} traverse line(s) left unlevelled (fewer than "
+                            f"min_crossovers = {cfg.min_crossovers} usable crossovers): {', '.join(kept[:10])}"
+                            + (f" and {len(kept) - 10} more" if len(kept) > 10 else ""))
     if not used.any():
         warnings.insert(0, f"none of the {len(cx)} crossovers is usable (all flagged or above "
-                        f"max_height_difference_m = {cfg.max_height_difference_m} m): lines "
-                        "keep their level")
+                        f"the height gate of {gate:.3g} m): lines keep their level")
         degraded.append(warnings[0])
-    elif len(adjust.unlevelled):
-        names = ", ".join(map(str, list(adjust.unlevelled)[:10]))
-        more = f" and {len(adjust.unlevelled) - 10} more" if len(adjust.unlevelled) > 10 else ""
-        degraded.append(f"{len(adjust.unlevelled)} traverse line(s) left unlevelled (fewer than "
-                        f"min_crossovers = {cfg.min_crossovers} usable crossovers): {names}{more}")
     if ctx.config.kind == "gravity":
         tol, source = ctx.tolerance("crossover_rms_mGal", 1.0, "common practice (from memory)")
     else:
@@ -168,29 +241,72 @@ def run(ctx: StageContext) -> StageOutput:
         "crossover_rms_before": rms_before,
         "crossover_rms_after": rms_after,
         "crossover_rms_ratio": ratio,
+        "crossover_rms_before_raw": rms_before_raw,
+        "crossover_rms_after_raw": rms_after_raw,
+        "height_gate_m": gate if np.isfinite(gate) else None,
+        "height_gate": gate_text,
+        "height_corrected": height_corrected,
         "traverse_model": cfg.traverse_model,
         "method": cfg.method,
-        "unlevelled_lines": len(adjust.unlevelled),
+        "unlevelled_lines": len(adjust.unlevelled) - len(neighbour_lines),
+        "neighbour_levelled_lines": len(neighbour_lines),
     }
-    notes = [f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: RMS misclosure "
-             f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({cfg.method.replace('_', '-')}, "
-             f"{cfg.traverse_model} per traverse line; datum: mean tie correction 0)"
-             f"{note_gravity}"]
+    what = "height-corrected RMS misclosure" if height_corrected else "RMS misclosure"
+    notes = [(f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: {what} "
+              f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({ratio:.3g}x; "
+              f"{cfg.method.replace('_', '-')}, {cfg.traverse_model} per traverse line; datum: "
+              f"mean tie correction 0){note_gravity}"),
+             f"height gate {gate:.3g} m ({gate_text})"]
+    if height_corrected:
+        notes.append(f"misclosures corrected for height differences with the vertical gradient "
+                     f"of the data (median |dh| "
+                     f"{float(np.nanmedian(np.abs(cx['height_difference'][used]))):.3g} m); raw "
+                     f"RMS misclosure {rms_before_raw:.3g} -> {rms_after_raw:.3g} {unit}")
     state = {
         "value_column": LEVELLED_COLUMN,
         "levelled_column": value,
         "levelled": True,
         "crossover_rms_before": rms_before,
         "crossover_rms_after": rms_after,
+        "height_gate_m": gate if np.isfinite(gate) else None,
         "tie_corrections": {str(k): float(v) for k, v in ties.corrections.items()},
-        "unlevelled_lines": list(adjust.unlevelled),
+        "unlevelled_lines": [n for n in adjust.unlevelled if n not in neighbour_lines],
+        "neighbour_levelled_lines": neighbour_lines,
     }
     return StageOutput(table=out, metrics=metrics, state=state,
                        tables={"crossovers": cx, "lines": line_table}, checks=checks,
                        notes=notes, warnings=warnings, degraded=degraded)
 
 
-def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers):
+def _at_crossing(correction, cx):
+    """Per-reading correction interpolated at each crossover on its line."""
+    i = cx["index_line"].to_numpy(np.int64)
+    f = cx["fraction_line"].to_numpy(float)
+    nxt = np.minimum(i + 1, correction.size - 1)
+    return correction[i] + f * (correction[nxt] - correction[i])
+
+
+def _traverse_spacing(ctx, crossovers):
+    """Traverse-line spacing (m): from ingest, else the median distance between consecutive
+    crossovers along the tie lines."""
+    spacing = ctx.state.get("ingest", {}).get("line_spacing_m")
+    if spacing and np.isfinite(spacing) and spacing > 0:
+        return float(spacing)
+    cx = crossovers[crossovers["kind"] == "traverse-tie"]
+    if len(cx) < 3:
+        return None
+    gaps = []
+    for _, group in cx.groupby("tie"):  # loop over tie lines
+        e, n = group["easting"].to_numpy(), group["northing"].to_numpy()
+        order = np.argsort(group["index_tie"].to_numpy() + group["fraction_tie"].to_numpy())
+        gaps.append(np.hypot(np.diff(e[order]), np.diff(n[order])))
+    gaps = np.concatenate(gaps) if gaps else np.zeros(0)
+    gaps = gaps[gaps > 0]
+    return float(np.median(gaps)) if gaps.size else None
+
+
+def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers,
+                neighbour_lines=()):
     stats = table.groupby(table["line"].astype(str), sort=False)["level_correction"].agg(
         ["mean", "min", "max"])
     rows = []
@@ -211,7 +327,9 @@ def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_cr
             deg = int(adjust.degree.get(name, -1))
             if name in adjust.unlevelled:
                 warning = (f"only {int(adjust.counts.get(name, 0))} usable crossover(s) "
-                           f"(< min_crossovers = {min_crossovers}): level kept")
+                           f"(< min_crossovers = {min_crossovers}): "
+                           + ("levelled from the lines flown before and after"
+                              if name in neighbour_lines else "level kept"))
             elif deg < leveling.MODEL_DEGREE[adjust.model]:
                 warning = f"too few crossovers for a {adjust.model} correction: degree {deg} used"
         elif ties.method.get(name, "none") == "none":

@@ -106,6 +106,8 @@ FUNCTIONS = {
     "tilt": tf.tilt_angle,
     "rtp": lambda g: tf.reduction_to_pole(g, 40.0, 25.0),
     "rtp_pseudo": lambda g: tf.reduction_to_pole(g, 12.0, -15.0, method="pseudo"),
+    "rtp_filter": lambda g: tf.reduction_to_pole(g, 12.0, -15.0, method="filter"),
+    "rtp_sources": lambda g: tf.reduction_to_pole(g, 12.0, -15.0, method="sources"),
 }
 
 
@@ -210,9 +212,14 @@ def test_rtp_method_choice_and_attributes():
     auto_high = tf.reduction_to_pole(grid, 45.0, 3.0, method="auto")
     auto_low = tf.reduction_to_pole(grid, -12.0, 3.0, method="auto")
     assert auto_high.attrs["rtp_method"] == "plain" and "pseudo_inclination" not in auto_high.attrs
-    assert auto_low.attrs["rtp_method"] == "pseudo"
-    assert auto_low.attrs["pseudo_inclination"] == 30.0
-    assert "MacLeod" in auto_low.attrs["history"]
+    # below 35 deg "auto" fits an equivalent dipole layer (Silva 1986; Li and Oldenburg 2001)
+    assert auto_low.attrs["rtp_method"] == "sources" and "pseudo_inclination" not in auto_low.attrs
+    assert "Li and Oldenburg" in auto_low.attrs["history"]
+    assert tf.reduction_to_pole(grid, -34.0, 3.0, method="auto").attrs["rtp_method"] == "sources"
+    assert tf.reduction_to_pole(grid, 35.0, 3.0, method="auto").attrs["rtp_method"] == "plain"
+    pseudo = tf.reduction_to_pole(grid, -12.0, 3.0, method="pseudo")
+    assert pseudo.attrs["pseudo_inclination"] == 30.0
+    assert "MacLeod" in pseudo.attrs["history"]
     # the pseudo filter with I' = |I| is the plain filter (MacLeod et al. 1993 formula)
     same = tf.reduction_to_pole(grid, 45.0, 3.0, method="pseudo", pseudo_inclination=45.0)
     np.testing.assert_allclose(same.values, auto_high.values, atol=1e-9 * np.abs(auto_high.values).max())

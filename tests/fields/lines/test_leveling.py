@@ -516,3 +516,54 @@ def test_micro_level_oblique_lines_and_descending_grid():
     flipped = grid.isel(northing=slice(None, None, -1))
     again = lv.micro_level(flipped, 45.0, 100.0, max_amplitude=5.0)
     assert np.allclose(again.sel(northing=north).to_numpy(), good)
+
+
+# --------------------------------------------------------------------------------------------
+# adaptive levelling: height gate, vertical gradient, neighbour corrections
+# --------------------------------------------------------------------------------------------
+def test_height_gate_is_median_plus_mad_multiple():
+    dh = np.array([-2.0, 4.0, 6.0, 8.0, 10.0, 12.0, 14.0, 200.0, np.nan])
+    # |dh| = 2, 4, ..., 14, 200: median 9, |dev| = 7,5,3,1,1,3,5,191 -> MAD 4
+    # (Huber 1981, Robust Statistics, sec. 5.1: median + k * 1.4826 MAD)
+    assert lv.height_gate(dh, 3.0, floor=0.0) == pytest.approx(9.0 + 3 * 1.4826 * 4.0)
+    assert lv.height_gate(dh, 3.0, floor=50.0) == 50.0  # never below the floor
+    assert lv.height_gate([np.nan]) == np.inf
+
+
+def test_vertical_gradient_matches_a_finite_difference_of_the_dipole():
+    # readings on lines 100 m apart, 10 m along, at 120 m; gradient at scattered points
+    # against the centred difference of the analytic dipole field (Blakely 1995 eq. 4.13)
+    e, n = np.meshgrid(np.arange(0.0, 4001.0, 10.0), np.arange(0.0, 3001.0, 100.0))
+    e, n = e.ravel(), n.ravel()
+    values = dipole_tmi(e, n, np.full(e.size, 120.0), source=(2000.0, 1500.0, -400.0))
+    rng = np.random.default_rng(0)
+    pe, pn = rng.uniform(800, 3200, 200), rng.uniform(600, 2400, 200)
+    got = lv.vertical_gradient_at(e, n, values, pe, pn, cell=50.0, smoothing=0.0)
+    true = (dipole_tmi(pe, pn, np.full(pe.size, 121.0), source=(2000.0, 1500.0, -400.0))
+            - dipole_tmi(pe, pn, np.full(pe.size, 119.0), source=(2000.0, 1500.0, -400.0))) / 2.0
+    assert np.corrcoef(got, true)[0, 1] > 0.98
+    assert np.sqrt(np.mean((got - true) ** 2)) < 0.15 * np.sqrt(np.mean(true ** 2))
+
+
+def test_height_corrected_differences_remove_the_taylor_step():
+    cx = pd.DataFrame({"difference": [3.0, -1.0, 2.0], "height_difference": [10.0, -20.0, np.nan]})
+    out = lv.height_corrected_differences(cx, np.array([0.2, 0.05, 0.3]))
+    # d - g dh (first-order Taylor step): 3 - 2, -1 + 1, unknown height -> unchanged
+    np.testing.assert_allclose(out, [1.0, 0.0, 2.0])
+
+
+def test_neighbour_corrections_interpolate_in_time():
+    t0 = np.datetime64("2024-05-01T08:00:00", "ns")
+    lines = np.repeat(["A", "B", "C", "D"], 3)
+    sec = np.array([0, 10, 20, 100, 110, 120, 200, 210, 220, 300, 310, 320], float)
+    time = t0 + (sec * 1e9).astype("int64").astype("timedelta64[ns]")
+    corr = np.repeat([1.0, 0.0, 5.0, 0.0], 3)
+    source = np.isin(lines, ["A", "C"])
+    target = np.isin(lines, ["B", "D"])
+    out = lv.neighbour_corrections(lines, time, corr, source, target)
+    assert np.all(np.isnan(out[source]))
+    # B between A (mean time 10 s, 1) and C (210 s, 5): linear in time (common practice)
+    np.testing.assert_allclose(out[3:6], 1.0 + 4.0 * (sec[3:6] - 10.0) / 200.0)
+    np.testing.assert_allclose(out[9:], 5.0)  # after the last source line: held constant
+    no_time = lv.neighbour_corrections(lines, None, corr, source, target)
+    np.testing.assert_allclose(no_time[target], 3.0)  # mean of the sources without times

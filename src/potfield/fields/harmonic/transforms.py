@@ -33,8 +33,18 @@ from ..errors import BadGeometry, BadParameter, NotEnoughData
 
 #: Smallest padding per side as a fraction of the grid size (common practice: >= 25 %).
 MIN_PAD_FRACTION = 0.25
-#: |I| (degrees) below which method="auto" uses the pseudo-inclination RTP (common practice).
-AUTO_RTP_THRESHOLD_DEG = 30.0
+#: |I| (degrees) below which method="auto" uses the equivalent-layer RTP instead of the Baranov
+#: filter (potfield's choice: at 35 deg the filter's largest gain 1/sin^2 I is 3.0).
+AUTO_RTP_THRESHOLD_DEG = 35.0
+#: Default amplitude inclination of the pseudo-inclination filter (degrees; MacLeod et al. 1993
+#: use values of this order, potfield's choice).
+PSEUDO_INCLINATION_DEG = 30.0
+#: Reduction-to-pole methods of :func:`reduction_to_pole`.
+RTP_METHODS = ("auto", "plain", "pseudo", "filter", "sources")
+#: Noise-to-signal level of the regularised ("filter") RTP: the filter is
+#: conj(T) / (|T|^2 + level^2) with |T| in [sin^2 I, 1] (potfield's choice: 0.1 keeps the
+#: largest gain at 5, and leaves wavenumbers with |T| > 0.3 within 10 % of the Baranov filter).
+WIENER_LEVEL = 0.1
 
 PAD_MODES = ("reflect", "edge")
 
@@ -820,16 +830,19 @@ def grid_declination(declination: float, crs, longitude: float, latitude: float)
     return float(declination) + true_north, true_north
 
 
-def rtp_method_for(inclination: float, threshold: float = AUTO_RTP_THRESHOLD_DEG) -> str:
-    """``"plain"`` when ``|inclination| >= threshold`` degrees, else ``"pseudo"`` (common practice)."""
-    return "plain" if abs(float(inclination)) >= threshold else "pseudo"
+def rtp_method_for(inclination: float, threshold: float = AUTO_RTP_THRESHOLD_DEG,
+                   low: str = "sources") -> str:
+    """``"plain"`` when ``|inclination| >= threshold`` degrees, else ``low`` (default the
+    equivalent-layer RTP, :mod:`potfield.fields.harmonic.rtp_layer`)."""
+    return "plain" if abs(float(inclination)) >= threshold else low
 
 
-def default_pseudo_inclination(inclination: float, threshold: float = AUTO_RTP_THRESHOLD_DEG) -> float:
+def default_pseudo_inclination(inclination: float, threshold: float = PSEUDO_INCLINATION_DEG) -> float:
     """Amplitude inclination used by the pseudo-inclination RTP when none is given.
 
-    ``threshold`` degrees with the sign of ``inclination`` (or the inclination itself when it is
-    steeper): potfield's choice, equal to the ``auto`` switch so the filter is continuous there.
+    ``threshold`` degrees (default 30) with the sign of ``inclination`` (or the inclination
+    itself when it is steeper): potfield's choice, so the filter equals the plain one at and
+    above ``threshold``.
     """
     inc = float(inclination)
     return math.copysign(max(abs(inc), threshold), inc if inc != 0 else 1.0)
@@ -839,7 +852,9 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
                       mag_inclination: float | None = None, mag_declination: float | None = None,
                       method: str = "plain", pseudo_inclination: float | None = None, *,
                       auto_threshold: float = AUTO_RTP_THRESHOLD_DEG, pad_fraction: float = 0.5,
-                      pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+                      pad_mode: str = "reflect", filler=None, wiener_level: float = WIENER_LEVEL,
+                      layer_depth: float | None = None,
+                      layer_damping: float | None = None) -> xr.DataArray:
     """Reduce a total-field anomaly grid to the magnetic pole.
 
     ``method="plain"``: Baranov's filter ``1 / (Theta_m Theta_f)`` with
@@ -856,7 +871,20 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
     induced magnetisation this is MacLeod et al.'s
     ``[sin I - i cos I cos(D - t)]^2 / ([sin^2 I' + cos^2 I' cos^2(D - t)][sin^2 I + cos^2 I cos^2(D - t)])``.
 
-    ``method="auto"``: plain when ``min(|I|, |I_m|) >= auto_threshold`` degrees, else pseudo.
+    ``method="filter"``: a regularised inverse of the Baranov filter,
+    ``conj(T) / (|T|^2 + wiener_level^2)`` with ``T = Theta_m Theta_f``: the least-squares
+    (Wiener) inverse for a white noise-to-signal ratio ``wiener_level^2`` (Hansen and Pawlowski
+    1989, Geophysics 54:1607, in its simplest form). Its gain never exceeds
+    ``1 / (2 wiener_level)``.
+
+    ``method="sources"``: an equivalent layer of dipoles magnetised along the magnetisation
+    direction is fitted to the grid (damped least squares, masked cells left out) and the same
+    moments, vertical, give the pole anomaly (Silva 1986, Geophysics 51:369; Li and Oldenburg
+    2001, Geophysics 66:571); see :func:`potfield.fields.harmonic.rtp_layer.layer_reduction_to_pole`.
+    Stable at any inclination; no plane is removed and no padding is used.
+
+    ``method="auto"``: plain when ``min(|I|, |I_m|) >= auto_threshold`` degrees (35 by
+    default), else sources.
 
     Parameters
     ----------
@@ -867,20 +895,33 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
         north).
     mag_inclination, mag_declination : float, optional
         Magnetisation direction (both or neither); default: along the ambient field (induced).
-    method : {"plain", "pseudo", "auto"}
+    method : {"plain", "pseudo", "filter", "sources", "auto"}
     pseudo_inclination : float, optional
         Amplitude inclination ``I'`` in degrees (magnitude used); default
         :func:`default_pseudo_inclination`.
     auto_threshold : float
         Switch of ``method="auto"`` (degrees).
     pad_fraction, pad_mode, filler
-        See :func:`pad_grid`.
+        See :func:`pad_grid` (not used by ``method="sources"``, which leaves masked cells out
+        of its fit).
+    wiener_level : float
+        Noise-to-signal level of ``method="filter"`` (> 0).
+    layer_depth, layer_damping : float, optional
+        Depth (m) and relative damping of the ``sources`` layer; defaults in
+        :mod:`potfield.fields.harmonic.rtp_layer`.
 
     Returns
     -------
     xarray.DataArray
-        Attributes ``rtp_method`` ("plain"/"pseudo"), ``inclination``, ``declination``,
-        ``mag_inclination``, ``mag_declination`` and, for pseudo, ``pseudo_inclination``.
+        Attributes ``rtp_method`` ("plain"/"pseudo"/"filter"/"sources"), ``inclination``,
+        ``declination``, ``mag_inclination``, ``mag_declination``; for pseudo
+        ``pseudo_inclination``; for filter ``wiener_level``; for sources ``layer_depth``,
+        ``layer_damping``, ``layer_iterations`` and ``layer_residual_rms`` (field units).
+
+    References
+    ----------
+    Baranov (1957); Blakely (1995) ch. 12; MacLeod, Jones and Dai (1993); Hansen and Pawlowski
+    (1989); Silva (1986); Li and Oldenburg (2001).
     """
     _check_grid(grid)
     if (mag_inclination is None) != (mag_declination is None):
@@ -898,16 +939,33 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
     m_dec = declination if mag_declination is None else float(mag_declination)
     if method == "auto":
         method = rtp_method_for(min(abs(inclination), abs(m_inc)), auto_threshold)
-    if method not in ("plain", "pseudo"):
-        raise BadParameter(f"unknown reduction-to-pole method '{method}'", hint="use 'auto', 'plain' or 'pseudo'")
+    if method not in RTP_METHODS[1:]:
+        raise BadParameter(f"unknown reduction-to-pole method '{method}'",
+                           hint="use one of " + ", ".join(RTP_METHODS))
+    if method == "sources":
+        return _layer_rtp(grid, inclination, declination, m_inc, m_dec, layer_depth, layer_damping)
+    extra = {}
     if method == "plain":
         def kernel(ke, kn, k):
             return 1.0 / (_theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k))
 
         step = "reduction to the pole, Baranov filter 1/(Theta_m Theta_f) (Baranov 1957; Blakely 1995 ch. 12)"
+    elif method == "filter":
+        level = float(wiener_level)
+        if not level > 0:
+            raise BadParameter(f"RTP filter level {wiener_level} must be positive",
+                               hint="use e.g. 0.1")
+
+        def kernel(ke, kn, k):
+            t = _theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k)
+            return np.conj(t) / (np.abs(t) ** 2 + level ** 2)
+
+        step = (f"reduction to the pole, regularised inverse filter conj(T)/(|T|^2 + {level:g}^2) "
+                "(Hansen and Pawlowski 1989)")
+        extra["wiener_level"] = level
     else:
         if pseudo_inclination is None:
-            pseudo = abs(default_pseudo_inclination(min(abs(inclination), abs(m_inc)), auto_threshold))
+            pseudo = abs(default_pseudo_inclination(min(abs(inclination), abs(m_inc))))
         else:
             pseudo = abs(float(pseudo_inclination))
             if pseudo > 90:
@@ -936,4 +994,37 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
                    step=f"{step}, I {inclination:g} D {declination:g}",
                    rtp_method=method, inclination=float(inclination), declination=float(declination),
                    mag_inclination=float(m_inc), mag_declination=float(m_dec),
-                   pseudo_inclination=None if method == "plain" else float(pseudo))
+                   pseudo_inclination=float(pseudo) if method == "pseudo" else None, **extra)
+
+
+def _layer_rtp(grid, inclination, declination, m_inc, m_dec, depth, damping) -> xr.DataArray:
+    """The ``sources`` branch of :func:`reduction_to_pole`."""
+    from . import rtp_layer
+
+    asc, flipped = _ascending(grid)
+    values = np.asarray(asc.values, dtype=float)
+    if not np.isfinite(values).any():
+        raise NotEnoughData(f"grid '{asc.name}' has no valid (finite) cell",
+                            hint="check the gridding output and its mask distance")
+    spacing = (float(asc.northing.values[1] - asc.northing.values[0]),
+               float(asc.easting.values[1] - asc.easting.values[0]))
+    kwargs = {} if damping is None else {"damping": float(damping)}
+    result = rtp_layer.layer_reduction_to_pole(values, spacing, float(inclination),
+                                               float(declination), float(m_inc), float(m_dec),
+                                               depth=depth, **kwargs)
+    prep = PaddedGrid(padded=values, inner=(slice(None), slice(None)), filled=values,
+                      mask=~np.isfinite(values), plane=np.zeros_like(values), slope=(0.0, 0.0),
+                      spacing=spacing, flipped=flipped,
+                      notes=[(f"dipole layer {result.depth:g} m below the grid, one source per "
+                              f"cell, damping {result.damping:g}, {result.iterations} CGLS "
+                              f"iterations, fit RMS {result.residual_rms:.3g}")])
+    units, long_name = _source(grid)
+    step = ("reduction to the pole by an equivalent dipole layer (Silva 1986; Li and Oldenburg "
+            f"2001), I {inclination:g} D {declination:g}")
+    return _finish(grid, prep, result.rtp, suffix="rtp", units=units,
+                   long_name=f"{long_name} reduced to the pole", step=step,
+                   rtp_method="sources", inclination=float(inclination),
+                   declination=float(declination), mag_inclination=float(m_inc),
+                   mag_declination=float(m_dec), layer_depth=result.depth,
+                   layer_damping=result.damping, layer_iterations=int(result.iterations),
+                   layer_residual_rms=result.residual_rms)

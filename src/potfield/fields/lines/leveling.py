@@ -38,6 +38,17 @@ Minty, B. R. S. (1991). Simple micro-levelling for aeromagnetic data. Exploratio
 
 Huber, P. J. (1964). Robust estimation of a location parameter. Annals of Mathematical
 Statistics, 35(1), 73-101.
+
+Huber, P. J. (1981). Robust Statistics. Wiley (the MAD as a robust scale, sec. 5.1).
+
+Adaptive levelling over rough terrain (:func:`height_gate`, :func:`vertical_gradient_at`,
+:func:`height_corrected_differences`, :func:`neighbour_corrections`): crossovers are gated by
+the robust spread of their own height differences instead of a fixed few metres, the part of
+each misclosure due to the height difference is removed with the local vertical gradient
+estimated from the data (Luyendyk 1997 lists altitude differences among the causes of
+misclosures), and lines without enough crossovers of their own take the correction of the
+lines flown before and after them (level errors are mostly slow drifts in time; Mauring et
+al. 2002 level such lines from their neighbours' medians).
 """
 
 from __future__ import annotations
@@ -59,6 +70,10 @@ __all__ = [
     "adjust_lines",
     "LineAdjustment",
     "adjust_network",
+    "height_gate",
+    "vertical_gradient_at",
+    "height_corrected_differences",
+    "neighbour_corrections",
     "line_azimuth",
     "micro_level",
     "sample_grid",
@@ -926,6 +941,177 @@ def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber
                               dict(shape.t_min), dict(shape.t_max), shape.epoch, counts,
                               shape.degree.copy(), list(shape.unlevelled), weights)
     return TieAdjustment(a, method, weights), line_adj
+
+
+# ---------------------------------------------------------------------------------------------
+# Adaptive levelling: height gate, vertical-gradient correction, neighbour corrections
+# ---------------------------------------------------------------------------------------------
+def height_gate(height_difference, multiple=3.0, floor=10.0) -> float:
+    """Largest ``|height difference|`` (m) a crossover may have, from the data's own spread.
+
+    ``gate = max(median(|dh|) + multiple * 1.4826 * MAD(|dh|), floor)``: crossovers far out in
+    the distribution of height differences (climbs over obstacles, a line flown at the wrong
+    altitude) are dropped, while a survey whose lines differ by tens of metres everywhere keeps
+    its crossovers (their height effect is then removed by :func:`height_corrected_differences`).
+    The median and the MAD are robust (Huber 1981, Robust Statistics, Wiley, sec. 5.1).
+
+    Parameters
+    ----------
+    height_difference : array_like
+        Height differences (m) of the crossovers (NaN ignored).
+    multiple : float
+        Robust standard deviations above the median.
+    floor : float
+        Smallest gate (m): never reject crossovers closer in height than this.
+
+    Returns
+    -------
+    float
+        The gate (m); ``inf`` when no height difference is known.
+    """
+    dh = np.abs(np.asarray(height_difference, dtype=float))
+    dh = dh[np.isfinite(dh)]
+    if dh.size == 0:
+        return float("inf")
+    med = float(np.median(dh))
+    mad = MAD_TO_SIGMA * float(np.median(np.abs(dh - med)))
+    return float(max(med + multiple * mad, floor))
+
+
+def vertical_gradient_at(easting, northing, values, at_easting, at_northing, cell,
+                         smoothing=None) -> np.ndarray:
+    """Upward vertical gradient ``dT/dh`` (units per metre) of line data at given points.
+
+    The readings are averaged in square cells of side ``cell``, interpolated linearly between
+    the cell means (Delaunay triangulation) onto a regular grid, empty cells filled by their
+    nearest neighbour, continued upward by ``smoothing`` metres (default one cell, to damp what
+    line-level residuals and interpolation leave in the grid) and differentiated in the
+    wavenumber domain (``d/dz <-> |k|``, z down; Blakely 1995, Potential Theory in Gravity and
+    Magnetic Applications, CUP, ch. 12) with :mod:`potfield.fields.harmonic.transforms`. The
+    result is sampled bilinearly at the points and its sign turned to "up".
+
+    Parameters
+    ----------
+    easting, northing, values : array_like, shape (n,)
+        Readings (NaN values are skipped).
+    at_easting, at_northing : array_like, shape (m,)
+        Where the gradient is wanted (e.g. the crossovers).
+    cell : float
+        Cell size (m), about half the traverse-line spacing.
+    smoothing : float, optional
+        Upward continuation (m) before the derivative; default ``cell``.
+
+    Returns
+    -------
+    numpy.ndarray, shape (m,)
+        ``dT/dh`` (positive when the field grows upward); NaN outside the grid.
+    """
+    import xarray as xr
+    from scipy.interpolate import griddata
+
+    from ..harmonic import transforms as tf
+
+    x = np.asarray(easting, dtype=float)
+    y = np.asarray(northing, dtype=float)
+    v = np.asarray(values, dtype=float)
+    ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(v)
+    x, y, v = x[ok], y[ok], v[ok]
+    out = np.full(np.size(at_easting), np.nan)
+    if x.size < 16 or not cell > 0:
+        return out
+    x0, y0 = x.min(), y.min()
+    ix = np.floor((x - x0) / cell).astype(np.int64)
+    iy = np.floor((y - y0) / cell).astype(np.int64)
+    nx, ny = int(ix.max()) + 1, int(iy.max()) + 1
+    if nx < 4 or ny < 4:
+        return out
+    key = iy * nx + ix
+    count = np.bincount(key, minlength=nx * ny)
+    filled = count > 0
+    mean_v = np.bincount(key, v, nx * ny)[filled] / count[filled]
+    mean_x = np.bincount(key, x, nx * ny)[filled] / count[filled]
+    mean_y = np.bincount(key, y, nx * ny)[filled] / count[filled]
+    # grid nodes on the cell corners, so the grid spans every reading (no NaN at the edges)
+    ge = x0 + cell * np.arange(nx + 1)
+    gn = y0 + cell * np.arange(ny + 1)
+    ee, nn = np.meshgrid(ge, gn)
+    grid = griddata((mean_x, mean_y), mean_v, (ee, nn), method="linear")
+    grid = _fill_nearest(grid)
+    da = xr.DataArray(grid, coords={"northing": gn, "easting": ge}, dims=("northing", "easting"),
+                      name="levelling_field", attrs={"units": ""})
+    up = tf.upward_continuation(da, cell if smoothing is None else float(smoothing))
+    dz = tf.vertical_derivative(up, 1)
+    return -sample_grid(dz, at_easting, at_northing)
+
+
+def height_corrected_differences(crossovers, gradient) -> np.ndarray:
+    """Misclosures with the height effect removed: ``d - dT/dh * (h_line - h_tie)``.
+
+    Two lines crossing at different heights see the field at different distances from the
+    sources; to first order the difference is the vertical gradient times the height
+    difference (a Taylor step; Blakely 1995 ch. 12 for the gradient). Where the gradient or
+    a height is unknown the misclosure is left as it is.
+    """
+    d = crossovers["difference"].to_numpy(float)
+    effect = np.asarray(gradient, dtype=float) * crossovers["height_difference"].to_numpy(float)
+    return d - np.where(np.isfinite(effect), effect, 0.0)
+
+
+def neighbour_corrections(line_ids, time, correction, source, target) -> np.ndarray:
+    """Corrections of lines without enough crossovers, from the lines flown before and after.
+
+    Each ``source`` line (levelled by its own crossovers) contributes its mean correction at its
+    mean time; a reading of a ``target`` line gets the linear interpolation in time of those
+    (held constant before the first and after the last). Level errors that are slow drifts of
+    the system or residual diurnal variation are shared by lines flown close in time, so this
+    chains the levelling through the network instead of leaving such lines unlevelled
+    (Mauring et al. 2002 correct lines from their neighbours in the same spirit). Without
+    times the mean correction of the source lines is used.
+
+    Parameters
+    ----------
+    line_ids : array_like, shape (n,)
+    time : array_like, shape (n,) or None
+        ``datetime64`` or float seconds.
+    correction : array_like, shape (n,)
+        Current per-reading correction (used on ``source`` readings).
+    source, target : array_like of bool, shape (n,)
+        Readings of levelled lines / of lines to correct.
+
+    Returns
+    -------
+    numpy.ndarray, shape (n,)
+        Correction on ``target`` readings, NaN elsewhere (and where no source line exists).
+    """
+    lines = np.asarray(line_ids).astype(str)
+    corr = np.asarray(correction, dtype=float)
+    source = np.asarray(source, dtype=bool)
+    target = np.asarray(target, dtype=bool)
+    out = np.full(lines.size, np.nan)
+    if not source.any() or not target.any():
+        return out
+    if time is None:
+        sec = np.full(lines.size, np.nan)
+    else:
+        t = np.asarray(time)
+        if np.issubdtype(t.dtype, np.datetime64):
+            nat = np.isnat(t)
+            raw = t.astype("datetime64[ns]").astype(np.int64)
+            origin = raw[~nat].min() if (~nat).any() else 0
+            sec = np.where(nat, np.nan, (raw - origin) / 1e9)
+        else:
+            sec = t.astype(float)
+    frame = pd.DataFrame({"line": lines[source], "t": sec[source], "c": corr[source]})
+    per_line = frame.groupby("line").mean().dropna(subset=["c"])
+    if per_line.empty:
+        return out
+    known = per_line.dropna(subset=["t"]).sort_values("t")
+    if known.empty:
+        out[target] = float(per_line["c"].mean())
+        return out
+    st = np.where(np.isfinite(sec[target]), sec[target], float(known["t"].mean()))
+    out[target] = np.interp(st, known["t"].to_numpy(), known["c"].to_numpy())
+    return out
 
 
 # ---------------------------------------------------------------------------------------------
