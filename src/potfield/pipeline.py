@@ -25,7 +25,8 @@ import pandas as pd
 
 from . import __version__
 from .errors import PotfieldError, StageError
-from .io.atomic import write_csv, write_json, write_parquet
+from .io.atomic import write_csv, write_json, write_parquet  # noqa: F401
+from .io.columns import write_table
 from .qc.specs import load_spec
 from .stages.base import Check, Stage, StageContext, StageOutput
 from .survey import Survey, sha256_file
@@ -147,23 +148,11 @@ def _rel(path, survey: Survey) -> str:
         return str(path)
 
 
-def write_table_csv(path: Path, table: pd.DataFrame) -> Path:
-    """The residual table as CSV: pyarrow's writer (fast), ISO 8601 UTC times."""
-    import pyarrow as pa
-    import pyarrow.csv as pacsv
+def write_table_csv(path: Path, table: pd.DataFrame, kind: str = "magnetic") -> Path:
+    """The residual table as CSV (potfield.io.columns: ISO 8601 UTC times, rounded floats)."""
+    from .io.columns import write_table
 
-    from .io.atomic import atomic_path
-
-    import pyarrow.compute as pc
-
-    arrow = pa.Table.from_pandas(table, preserve_index=False)
-    if "time" in arrow.column_names:
-        index = arrow.column_names.index("time")
-        text = pc.strftime(arrow.column(index), format="%Y-%m-%dT%H:%M:%SZ")
-        arrow = arrow.set_column(index, "time", text)
-    with atomic_path(path) as tmp:
-        pacsv.write_csv(arrow, tmp)
-    return path
+    return write_table(path, table, kind)
 
 
 #: Text columns stored dictionary-encoded in the cache (fast to write), restored as object.
@@ -276,16 +265,31 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             say(f"{name}: done in {seconds:.1f} s")
         # Drop records of stages after the last one that ran in this order: they are stale.
         if table is not None:
-            write_table_csv(survey.tables / "readings.csv", table)
+            write_table_csv(survey.tables / "readings.csv", table, config.kind)
+            write_parquet(survey.tables / "readings.parquet", table)
+        _write_deliverables(survey, config, state, grids)
         checks = []
         for name in order:
             checks.extend(manifest["stages"].get(name, {}).get("checks", []))
-        write_csv(survey.tables / "checks.csv", pd.DataFrame(checks, columns=[
-            "check", "value", "tolerance", "sense", "unit", "result", "source", "detail", "stage"]))
+        write_table(survey.tables / "checks.csv", pd.DataFrame(checks, columns=[
+            "check", "value", "tolerance", "sense", "unit", "result", "source", "detail", "stage"]),
+            config.kind)
         manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
         manifest["outputs"] = output_checksums(survey)
         write_json(survey.manifest_path, manifest)
     return RunSummary(survey.root, records, checks, manifest)
+
+
+def _write_deliverables(survey: Survey, config, state: dict, grids: dict) -> None:
+    """The data dictionary (tables/columns.csv) and all grids in one file (grids/products.nc)."""
+    from .io.columns import write_data_dictionary
+    from .io.grids import write_products
+
+    write_data_dictionary(survey.tables, config.kind)
+    crs = state.get("ingest", {}).get("crs")
+    products = survey.grids / "products.nc"
+    if grids and crs:
+        write_products(products, dict(grids), crs, title=f"{config.survey.name}: gridded products")
 
 
 class _LazyGrids(dict):
@@ -336,7 +340,7 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
     if output.table is not None:
         write_cache_table(survey.cache / f"{name}.parquet", output.table)
     for table_name, frame in output.tables.items():
-        write_csv(survey.tables / f"{table_name}.csv", frame)
+        write_table(survey.tables / f"{table_name}.csv", frame, config.kind)
     for grid_name, grid in output.grids.items():
         grid = grid.rename(grid_name)
         write_netcdf(survey.grids / f"{grid_name}.nc", grid, crs or "EPSG:4326")

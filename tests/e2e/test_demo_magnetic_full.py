@@ -22,7 +22,7 @@ from potfield.io.grids import read_netcdf
 from .browser import chromium, render_dom
 from .demo_run import SURVEYS
 
-FAST_GRID = "[grid]\ndepth_factors = [6.0]\ndampings = [0.001]\ncv_folds = 2\n"
+FAST_GRID = "[grid]\ntrial_depths = [6.0]\ntrial_dampings = [0.001]\ncv_folds = 2\n"
 
 
 @pytest.fixture(scope="module")
@@ -36,10 +36,12 @@ def demo(tmp_path_factory):
     return root
 
 
-PROMISED_TABLES = ("readings.csv", "checks.csv", "crossovers.csv", "lines.csv", "clean_lines.csv",
+PROMISED_TABLES = ("readings.csv", "readings.parquet", "columns.csv", "checks.csv", "crossovers.csv", "lines.csv", "clean_lines.csv",
                    "diurnal_lines.csv", "base_record.csv", "grid_cv.csv")
-PROMISED_GRIDS = ("anomaly", "anomaly_rtp", "anomaly_dz1", "anomaly_dz2", "anomaly_dx", "anomaly_dy",
-                  "anomaly_thg", "anomaly_tga", "anomaly_tilt", "anomaly_upward", "regional_upward",
+PROMISED_GRIDS = ("anomaly", "anomaly_reduced_to_pole", "anomaly_vertical_derivative",
+                  "anomaly_second_vertical_derivative", "anomaly_x_derivative", "anomaly_y_derivative",
+                  "anomaly_total_horizontal_gradient", "anomaly_analytic_signal", "anomaly_tilt_angle",
+                  "anomaly_upward_500m", "products", "regional_upward",
                   "residual_upward", "regional_two_layer", "residual_two_layer")
 PROMISED_MAPS = ("tracks", "coverage", "height_deviation", "noise_profiles", "diurnal_record",
                  "crossovers", "grid_residual_map", "grid_residual_hist", "separation_panels")

@@ -302,7 +302,7 @@ def rebuild_report(root: Path) -> Path:
         if path.is_file() and manifest.get("stages", {}).get(name, {}).get("table"):
             table = read_cache_table(path)
             break
-    grid_paths = {p.stem: p for p in survey.grids.glob("*.nc")}
+    grid_paths = {p.stem: p for p in survey.grids.glob("*.nc") if p.stem != "products"}
     with survey.lock():
         path, _ = build_report(survey, config, manifest, table, grid_paths)
     return path

@@ -21,6 +21,11 @@ from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
 from .base import Stage, StageContext, StageOutput, usable
 
+#: [grid] source_layer -> the depth_type of potfield.fields.harmonic.eqsources.
+EQS_DEPTH_TYPE = {"follow_drape": "relative", "flat": "constant"}
+#: Cross-validation table columns under potfield's own names (grid_cv.csv).
+CV_COLUMNS = {"r2": "heldout_score", "r2_se": "heldout_score_se"}
+
 #: Value columns in order of preference.
 VALUE_COLUMNS = ("anomaly_levelled", "anomaly", "bouguer_anomaly")
 #: Fewest block-reduced data for a blocked cross-validation; fewer use the middle of the search.
@@ -119,7 +124,7 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 def _fit_options(cfg, height, depth):
     """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
     constant height, the layer's ceiling (:func:`potfield.fields.harmonic.eqsources.layer_ceiling`)."""
-    return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance),
+    return {"depth_type": EQS_DEPTH_TYPE[cfg.source_layer], "tol": float(cfg.tolerance),
             "ceiling": eqs.layer_ceiling(height, depth)}
 
 
@@ -160,8 +165,8 @@ CV_TOL = 1e-4
 def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
     """Depth and damping by blocked CV (on a central window of large surveys), each depth
     scored with the ceiling its final fit gets under a grid at constant ``height``."""
-    depths = [float(f) * block for f in cfg.depth_factors]
-    dampings = [float(x) for x in cfg.dampings]
+    depths = [float(f) * block for f in cfg.trial_depths]
+    dampings = [float(x) for x in cfg.trial_dampings]
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
     if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
         cv_spacing = _cv_spacing(block, depths, line_spacing, extent)
@@ -173,7 +178,7 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
         scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing,
-                                          tol=CV_TOL, depth_type=cfg.depth_type,
+                                          tol=CV_TOL, depth_type=EQS_DEPTH_TYPE[cfg.source_layer],
                                           grid_height=height)
     else:
         scores = pd.DataFrame(columns=["depth", "damping", "r2", "r2_se", "rms", "chosen"])
@@ -212,7 +217,7 @@ def run(ctx: StageContext) -> StageOutput:
     block = float(cfg.block_m) if cfg.block_m > 0 else spacing
     e, n, h, d = e_all[ok], n_all[ok], h_all[ok], values[ok]
     height, height_why = _grid_height(ctx, h)
-    if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.depth_factors) * block:
+    if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.trial_depths) * block:
         raise ConfigError(f"grid height {height} m is below the equivalent sources",
                           key="grid.height", fix="grid at or above the readings' heights")
     mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
@@ -220,8 +225,8 @@ def run(ctx: StageContext) -> StageOutput:
     gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
     name = "bouguer_anomaly" if gravity else "anomaly"
     units = "mGal" if gravity else "nT"
-    long_name = "Bouguer anomaly" if column == "bouguer_anomaly" else (
-        "gravity anomaly" if gravity else "total-field magnetic anomaly")
+    # the grid is named bouguer_anomaly for gravity, so its title names that quantity
+    long_name = "Bouguer anomaly" if gravity else "total-field magnetic anomaly"
     region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
 
     if cfg.tiled:
@@ -231,7 +236,7 @@ def run(ctx: StageContext) -> StageOutput:
     out = StageOutput()
     model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress,
                                          height)
-    history = (f"equivalent sources ({model.method}, {cfg.depth_type} depth) of '{column}': "
+    history = (f"equivalent sources ({model.method}, source layer {cfg.source_layer}) of '{column}': "
                f"depth {best['depth']:.1f} m, damping {best['damping']:g}, blocks {block:g} m")
     grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name,
                  history)
@@ -278,12 +283,12 @@ def run(ctx: StageContext) -> StageOutput:
 
     out.table = result
     out.grids[name] = grid
-    out.tables["grid_cv"] = scores
+    out.tables["grid_cv"] = scores.rename(columns=CV_COLUMNS)
     out.state = {
         "column": column,
         "grid": name,
         "method": model.method,
-        "depth_type": cfg.depth_type,
+        "source_layer": cfg.source_layer,
         "depth": float(best["depth"]),
         "damping": float(best["damping"]),
         "block_m": block,
@@ -303,7 +308,7 @@ def run(ctx: StageContext) -> StageOutput:
         "grid_spacing_m": spacing,
         "grid_depth_m": float(best["depth"]),
         "grid_damping": float(best["damping"]),
-        "grid_cv_r2": float(best["r2"]),
+        "grid_heldout_score": float(best["r2"]),
         "grid_cv_rms": float(best["rms"]),
         "grid_residual_rms": resid_rms,
     }
@@ -311,8 +316,8 @@ def run(ctx: StageContext) -> StageOutput:
         out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
-                     f"({height_why}), {model.method} equivalent sources, CV R2 "
-                     f"{best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
+                     f"({height_why}), {model.method} equivalent sources, held-out "
+                     f"score {best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
     return out
 
 
@@ -362,7 +367,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     out.table["grid_residual"] = values - result.predicted
     resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
     out.grids[name] = grid
-    out.tables["grid_cv"] = scores
+    out.tables["grid_cv"] = scores.rename(columns=CV_COLUMNS)
     out.tables["grid_tiles"] = result.tiles
     out.state = {"column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
                  "damping": float(best["damping"]), "block_m": block, "spacing_m": spacing,
@@ -373,7 +378,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                    "grid_tile_size_m": float(tile), "grid_cells": int(grid.size),
                    "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
                    "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
-                   "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
+                   "grid_heldout_score": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
                    "grid_residual_rms": resid_rms}
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
