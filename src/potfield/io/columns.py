@@ -265,7 +265,7 @@ def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic") -
         mixed = formatted.copy()
         for name in mixed.columns:
             if mixed[name].dtype == object:
-                mixed[name] = mixed[name].map(lambda v: None if v is None or v != v else
+                mixed[name] = mixed[name].map(lambda v: None if v is None or pd.isna(v) else
                                               (str(v).lower() if isinstance(v, bool) else str(v)))
         arrow = pa.Table.from_pandas(mixed, preserve_index=False)
     with atomic_path(path) as tmp:
