@@ -566,7 +566,7 @@ def plot_coefficients(coef: pd.DataFrame, path: Path, window: int = 15, dpi: int
             values = coef[name].to_numpy(float).copy()
             values[gap] = np.nan  # break the line at gaps
             smooth = pd.Series(coef[name].to_numpy(float)).rolling(window, center=True,
-                                                                     min_periods=1).median().to_numpy()
+                                                                     min_periods=1).median().to_numpy().copy()
             smooth[gap] = np.nan
             ax.plot(time, values, lw=0.4, alpha=0.35, color=colours(k))
             ax.plot(time, smooth, lw=1.2, color=colours(k), label=name)
