@@ -61,3 +61,5 @@ def test_two_folders_give_byte_identical_outputs(tmp_path):
 
     updated = json.loads((first / "out" / "manifest.json").read_text())["updated"]
     assert updated[:10].encode() not in a["report.html"]
+    # the profile's grid-residual tolerance is checked, not only listed (airborne-magnetic profile)
+    assert b"grid residual RMS" in a["tables/checks.csv"]

@@ -43,8 +43,6 @@ GRAVITY_TITLES = {"ingest": "Ingest: stations, coverage and geometry",
 NOT_CHECKED = {
     "drape_tolerance_m": "shown on the height-deviation map; the planned drape surface is not an "
                          "input, so no automatic pass/fail",
-    "grid_residual_rms_nT": "the grid residual RMS is reported in the gridding section",
-    "grid_residual_rms_mGal": "the grid residual RMS is reported in the gridding section",
     "diurnal_chord_300s_nT": "no check of a 5-minute chord is implemented yet",
     "crossover_rms_mGal": "no crossovers: a loop survey has no intersecting lines",
 }

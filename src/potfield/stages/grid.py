@@ -19,7 +19,7 @@ import pandas as pd
 from ..errors import ConfigError, StageError
 from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
-from .base import Stage, StageContext, StageOutput, usable
+from .base import Check, Stage, StageContext, StageOutput, usable
 
 #: [grid] source_layer -> the depth_type of potfield.fields.harmonic.eqsources.
 EQS_DEPTH_TYPE = {"follow_drape": "relative", "flat": "constant"}
@@ -314,11 +314,22 @@ def run(ctx: StageContext) -> StageOutput:
     }
     if model.info.get("iterations") is not None:
         out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
+    _residual_check(ctx, out, resid_rms, units)
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
                      f"({height_why}), {model.method} equivalent sources, held-out "
                      f"score {best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
     return out
+
+
+def _residual_check(ctx: StageContext, out: StageOutput, rms: float, units: str) -> None:
+    """Spec check of the grid residual RMS (reading minus model at every usable reading), when
+    the profile sets ``grid_residual_rms_<units>``."""
+    key = f"grid_residual_rms_{units}"
+    if key in ctx.spec:
+        tol, source = ctx.tolerance(key, 1.0)
+        out.checks.append(Check.at_most("grid residual RMS", rms, tol, units, source,
+                                        detail="reading minus the gridding model at each usable reading"))
 
 
 #: Target number of blocks per tile when [grid] tile_size_m is 0 (a window this size fits in
@@ -380,6 +391,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                    "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
                    "grid_heldout_score": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
                    "grid_residual_rms": resid_rms}
+    _residual_check(ctx, out, resid_rms, units)
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
                      f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}")
