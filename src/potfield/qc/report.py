@@ -137,7 +137,14 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
                                 out / "drift_rates.png", "Drift rate of each loop", "drift rate (mGal/h)",
                                 tol("gravity_drift_rate_mgal_per_h"), dpi))
     cx = _read_table(survey.tables / "crossovers.csv")
-    if cx is not None and len(cx) and "difference" in cx:
+    try:  # the level stage's own figure (qc/level_plots.py), when this version has it
+        from . import level_plots
+    except ImportError:
+        level_plots = None
+    if cx is not None and len(cx) and "difference" in cx and level_plots is not None:
+        _fig(figures, "level", "Crossover misclosures before and after levelling",
+             level_plots.plot_crossover_histograms(cx, out / level_plots.FIGURE_NAME, units, dpi))
+    elif cx is not None and len(cx) and "difference" in cx:
         series = {"before levelling": cx["difference"].to_numpy(float)}
         after = next((c for c in cx.columns if c.startswith("difference_after") or c == "difference_levelled"), None)
         if after:
