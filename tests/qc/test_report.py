@@ -17,7 +17,7 @@ def _manifest():
         # manifest keys sorted: the page must still follow the pipeline order
         "stages": {"drift": {"status": "done", "metrics": {"drift_rate_mgal_per_h": 0.0345,
                                                             "stations": 258}},
-                   "ingest": {"status": "done", "metrics": {"readings": 57030, "crs": "UTM 55S",
+                   "ingest": {"status": "done", "metrics": {"readings": 57030, "crs": "UTM 55S", "traverse_lines": 23, "tie_lines": 0,
                                                              "time_start": "2025-03-03 21:40:00"}}},
     }
 
@@ -32,6 +32,7 @@ def test_sections_in_order_and_gravity_words():
                                                 "provenance", "cautions")]
     assert order == sorted(order)
     assert "stations" in page and "traverse" not in page and "tie lines" not in page
+    assert "loops in readings" in page
     assert "qualified geophysicist" in page and "licensed" in page
     assert "kind = &#x27;gravity&#x27;" in page  # the survey.toml used, embedded
     assert "checked: repeat range (pass)" in page

@@ -251,9 +251,18 @@ def metric_unit(key: str, kind: str) -> tuple[str, str]:
     return words, ""
 
 
+#: Gravity surveys are stations in loops: line words renamed or left out (None).
+GRAVITY_WORDS = {"traverse_lines": "loops_in_readings", "tie_lines": None, "tie_spacing_m": None,
+                 "line_spacing_m": "median_station_spacing_m"}
+
+
 def _metrics(metrics: dict, kind: str) -> str:
     rows = []
     for key, value in metrics.items():
+        if kind == "gravity" and key in GRAVITY_WORDS:
+            key = GRAVITY_WORDS[key]
+            if key is None:
+                continue
         label, unit = metric_unit(str(key), kind)
         rows.append({"quantity": label, "value": value, "unit": unit})
     return _table(rows, ["quantity", "value", "unit"])
