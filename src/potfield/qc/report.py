@@ -246,6 +246,8 @@ def metric_unit(key: str, kind: str) -> tuple[str, str]:
         if key.endswith(suffix):
             return key[: -len(suffix)].replace("_", " "), unit
     words = key.replace("_", " ")
+    if key.startswith("time_"):
+        return words, "UTC"
     if any(w in key for w in ("rms", "residual", "difference", "crossover", "regional")):
         return words, field_unit(kind)
     return words, ""
@@ -320,12 +322,38 @@ def _grid_rows(manifest: dict, grid_paths: dict[str, Path], order) -> list[dict]
     return rows
 
 
+_UNIT_WORDS = {"m", "s", "nt", "mgal", "per", "h", "max", "fraction", "rms", "tolerance", "gravity"}
+
+#: What each table holds, in words (report deliverables list).
+TABLE_WORDS = {
+    "readings": "residual table: every reading with every correction, traceable to its raw line",
+    "columns": "data dictionary: unit, meaning and stage of every column",
+    "checks": "spec checks with their tolerances",
+    "clean_lines": "readings and flags per line",
+    "grid_cv": "cross-validation of the gridding: held-out score per trial depth and damping",
+    "loops": "drift and offset of each loop",
+    "stations": "adjusted gravity at each station",
+    "repeats": "repeat readings at stations",
+    "tares": "tares (steps of the meter) estimated",
+    "crossovers": "crossovers of traverse and tie lines, before and after levelling",
+    "lines": "levelling correction and crossover RMS per line",
+    "diurnal_lines": "diurnal correction per line",
+    "base_record": "cleaned base-station record",
+    "coefficients": "Gauss coefficients per epoch",
+    "station_residuals": "residual of each observatory after the fit",
+    "reference_stations": "IGRF-14 and mean disturbance at each observatory",
+    "grid_tiles": "tiles of the tiled gridding",
+}
+
+
 def _tolerance_rows(spec: dict, checks: list[dict]) -> list[dict]:
     rows = []
     for key, entry in spec.items():
         value, source = entry[0], entry[1]
-        used = [c for c in checks if c.get("source") == source and
-                isinstance(c.get("tolerance"), (int, float)) and np.isclose(c["tolerance"], value)]
+        words = {w for w in key.lower().split("_") if w not in _UNIT_WORDS}
+        used = [c for c in checks
+                if isinstance(c.get("tolerance"), (int, float)) and np.isclose(c["tolerance"], value)
+                and (c.get("source") == source or words & set(str(c.get("check", "")).lower().split()))]
         if used:
             status = "checked: " + "; ".join(f"{c['check']} ({c['result']})" for c in used)
         else:
@@ -383,10 +411,10 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
                         ["quantity", "value", "unit"]))
 
     parts.append("<h2 id='deliverables'>Deliverables</h2>")
-    parts.append("<p>Links are relative to this report (the out/ folder). "
-                 "<a href='grids/products.nc'>grids/products.nc</a> holds every grid below in one "
-                 "NetCDF-CF file.</p>")
     grid_rows = _grid_rows(manifest, grid_paths or {}, order)
+    parts.append("<p>Links are relative to this report (the out/ folder)."
+                 + (" <a href='grids/products.nc'>grids/products.nc</a> holds the grids below in "
+                    "one NetCDF-CF file." if grid_rows else "") + "</p>")
     if grid_rows:
         parts.append("<h3>Grids (NetCDF-CF)</h3>")
         parts.append(_table(grid_rows, ["file_html", "quantity", "unit", "minimum", "maximum", "cells", "stage"],
@@ -395,9 +423,7 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
     parts.append("<h3>Tables (CSV)</h3>")
     table_rows = []
     for path in tables or []:
-        words = {"readings": "residual table: every reading with every correction, traceable to its raw line",
-                 "columns": "data dictionary: unit, meaning and stage of every column",
-                 "checks": "spec checks with their tolerances"}.get(path.stem, path.stem.replace("_", " "))
+        words = TABLE_WORDS.get(path.stem, path.stem.replace("_", " "))
         table_rows.append({"file_html": f"<a href='tables/{html.escape(path.name)}'>{html.escape(path.name)}</a>",
                            "content": words})
     parts.append(_table(table_rows, ["file_html", "content"], {"file_html": "file"}))
