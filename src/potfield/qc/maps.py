@@ -488,10 +488,13 @@ def plot_line_profiles(table: pd.DataFrame, column: str, path: Path, units: str,
     pick = lines[np.linspace(0, len(lines) - 1, min(max_lines, len(lines))).astype(int)]
     fig, axes = plt.subplots(len(pick), 1, figsize=(9, 1.25 * len(pick) + 1.2), sharex=True,
                              squeeze=False)
+    flags = [c for c in table.columns if c.startswith("flag_")]
+    values = table[column].to_numpy(float).copy()
+    if flags:  # flagged readings are left out of the profile (they are marked on the track map)
+        values[table[flags].to_numpy(dtype=bool).any(axis=1)] = np.nan
     for ax, name in zip(axes[:, 0], pick):
         sel = (table["line"] == name).to_numpy()
-        ax.plot(table["distance"].to_numpy()[sel] / 1000.0, table[column].to_numpy(float)[sel],
-                lw=0.7, color="black")
+        ax.plot(table["distance"].to_numpy()[sel] / 1000.0, values[sel], lw=0.7, color="black")
         ax.set_ylabel(f"{name}\n({units})", fontsize=7, rotation=0, ha="right", va="center")
         ax.tick_params(labelsize=7)
         ax.grid(alpha=0.3)
