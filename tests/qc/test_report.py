@@ -13,6 +13,7 @@ def _manifest():
         "potfield_version": "0", "config_hash": "abc", "packages": {"numpy": "2"},
         "inputs": {"raw/a.csv": "00"},
         "spec": {"gravity_repeat_mgal": [0.03, "common practice"],
+                 "crossover_rms_mGal": [0.03, "common practice"],
                  "drape_tolerance_m": [15.0, "common practice (drape within +-15 m)"]},
         # manifest keys sorted: the page must still follow the pipeline order
         "stages": {"drift": {"status": "done", "metrics": {"drift_rate_mgal_per_h": 0.0345,
@@ -36,6 +37,8 @@ def test_sections_in_order_and_gravity_words():
     assert "qualified geophysicist" in page and "licensed" in page
     assert "kind = &#x27;gravity&#x27;" in page  # the survey.toml used, embedded
     assert "checked: repeat range (pass)" in page
+    # a check is matched to a tolerance by value and name, not by a shared "common practice" source
+    assert page.count("checked: repeat range") == 1
     assert "not checked: shown on the height-deviation map" in page
     assert "57,030" in page and "e+0" not in page and "NaN" not in page and "{" not in page.split("<body>")[1].split("<script>")[0]
 

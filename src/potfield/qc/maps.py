@@ -284,7 +284,8 @@ def plot_points(table: pd.DataFrame, column: str, path: Path, crs_name: str, tit
     return save(fig, path, dpi)
 
 
-def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110) -> Path:
+def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
+                title: str | None = None) -> Path:
     """Survey tracks (or stations) coloured by line, flagged readings marked."""
     fig, ax = plt.subplots(figsize=FIGSIZE)
     codes, names = pd.factorize(table["line"])
@@ -314,8 +315,11 @@ def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110) 
                         alpha=0.8, xytext=(3, 3), textcoords="offset points")
     if ax.get_legend_handles_labels()[0]:
         network = "station" in table and many and table["station"].nunique() <= 60
-        ax.legend(loc="best", fontsize=7, markerscale=1 if network else 4)
-    map_axes(ax, crs_name, f"Survey tracks coloured by line ({len(names)} lines)")
+        legend = ax.legend(loc="best", fontsize=7, markerscale=1 if network else 4)
+        for handle in legend.legend_handles:  # readable markers, whatever the plotted size
+            if hasattr(handle, "set_sizes"):
+                handle.set_sizes([20])
+    map_axes(ax, crs_name, title or f"Survey tracks coloured by line ({len(names)} lines)")
     return save(fig, path, dpi)
 
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import base64
 import html
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -93,7 +94,9 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
         else:
             _fig(figures, "ingest", ("Stations coloured by loop, flagged readings marked" if gravity
                                      else "Survey lines and flagged readings"),
-                 maps.plot_tracks(table, out / "tracks.png", crs_name, dpi))
+                 maps.plot_tracks(table, out / "tracks.png", crs_name, dpi,
+                                  f"Stations coloured by loop ({table['line'].nunique()} loops)"
+                                  if gravity else None))
             _fig(figures, "ingest", "Distance from every point of the area to the nearest "
                  + ("station" if gravity else "reading"),
                  maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi))
@@ -353,7 +356,7 @@ def _tolerance_rows(spec: dict, checks: list[dict]) -> list[dict]:
         words = {w for w in key.lower().split("_") if w not in _UNIT_WORDS}
         used = [c for c in checks
                 if isinstance(c.get("tolerance"), (int, float)) and np.isclose(c["tolerance"], value)
-                and (c.get("source") == source or words & set(str(c.get("check", "")).lower().split()))]
+                and words & set(re.findall(r"[a-z0-9]+", str(c.get("check", "")).lower().replace("_", " ")))]
         if used:
             status = "checked: " + "; ".join(f"{c['check']} ({c['result']})" for c in used)
         else:
@@ -403,7 +406,11 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
         summary += [("readings", im.get("readings"), ""),
                     ("lines", f"{im.get('traverse_lines')} traverse, {im.get('tie_lines')} tie", ""),
                     ("line spacing", im.get("line_spacing_m"), "m")]
-    summary += [("first reading", im.get("time_start"), "UTC"), ("last reading", im.get("time_end"), "UTC"),
+    def iso(text):  # "2025-03-03 21:40:00" -> "2025-03-03T21:40:00Z" (ISO 8601 UTC)
+        return f"{str(text).replace(' ', 'T')}Z" if text and "T" not in str(text) else text
+
+    summary += [("first reading", iso(im.get("time_start")), "UTC"),
+                ("last reading", iso(im.get("time_end")), "UTC"),
                 ("output CRS", im.get("crs"), ""),
                 ("spec checks", f"{len(checks)} run, {len(failed)} failed", ""),
                 ("stages", ", ".join(f"{n} ({stages[n].get('status')})" for n in order), "")]
