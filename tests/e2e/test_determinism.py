@@ -63,3 +63,5 @@ def test_two_folders_give_byte_identical_outputs(tmp_path):
     assert updated[:10].encode() not in a["report.html"]
     # the profile's grid-residual tolerance is checked, not only listed (airborne-magnetic profile)
     assert b"grid residual RMS" in a["tables/checks.csv"]
+    # the data dictionary describes every column the run wrote (registry in potfield.io.columns)
+    assert b"not described yet" not in a["tables/columns.csv"]

@@ -132,7 +132,7 @@ def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
     """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height)
-    progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
+    progress(f"fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
     model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
                                        damping=best["damping"], block_size=block,
                                        method=cfg.method,
@@ -170,11 +170,11 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
     if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
         cv_spacing = _cv_spacing(block, depths, line_spacing, extent)
-        progress(f"grid: cross-validating {len(depths)} depths x {len(dampings)} dampings "
+        progress(f"cross-validating {len(depths)} depths x {len(dampings)} dampings "
                  f"on {bd.size} blocks")
         ce, cn, ch, cd = _cv_window(be, bn, bh, bd)
         if cd.size < bd.size:
-            progress(f"grid: cross-validating on a central window of {cd.size} of {bd.size} blocks")
+            progress(f"cross-validating on a central window of {cd.size} of {bd.size} blocks")
         scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing,
@@ -357,7 +357,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
     tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
         20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
-    ctx.progress(f"grid: tiled fit, tiles of {tile:.0f} m")
+    ctx.progress(f"tiled fit, tiles of {tile:.0f} m")
     # the same nodes as the whole-survey grid (verde adjust="region")
     ge, gn = vd.grid_coordinates(region, spacing=spacing, adjust="region")
     nodes = (float(ge.min()), float(ge.max()), float(gn.min()), float(gn.max()))
