@@ -115,9 +115,12 @@ def cmd_run(args) -> int:
             summary = run_survey(args.directory, until=args.until, only=args.only, start=args.start,
                                  force=args.force, progress=progress)
         failed = summary.failed_checks
-        logger.warning(f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
-                       f"{len(failed)} failed") if failed else logger.info(
-            f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, 0 failed")
+        text = (f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
+                f"{len(failed)} failed")
+        if failed:
+            logger.warning(text)
+        else:
+            logger.info(text)
         for check in failed:
             logger.warning(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance "
                            f"{check['tolerance']:.4g} {check['unit']})")

@@ -33,9 +33,9 @@ def setup(verbosity: int = 0, log_file: Path | None = None, stream=None) -> logg
     console.setLevel({-1: logging.WARNING, 0: logging.INFO}.get(min(verbosity, 1), logging.DEBUG))
     console.setFormatter(logging.Formatter("%(message)s"))
     LOGGER.addHandler(console)
-    if log_file is not None:
+    if log_file is not None:  # written as NAME.partial, renamed to NAME by close()
         Path(log_file).parent.mkdir(parents=True, exist_ok=True)
-        handler = logging.FileHandler(log_file, mode="w", encoding="utf-8")
+        handler = _RenamingFileHandler(log_file)
         handler.setLevel(logging.DEBUG)
         handler.setFormatter(_UTCFormatter("%(asctime)sZ %(levelname)s %(message)s",
                                            "%Y-%m-%dT%H:%M:%S"))
@@ -43,7 +43,24 @@ def setup(verbosity: int = 0, log_file: Path | None = None, stream=None) -> logg
     return LOGGER
 
 
+class _RenamingFileHandler(logging.FileHandler):
+    """A log file written under a temporary name and renamed into place when closed, so a
+    reader never sees a half-written run.log of a finished run (outputs are atomic)."""
+
+    def __init__(self, path: Path):
+        self.final = Path(path)
+        super().__init__(self.final.with_name(self.final.name + ".partial"), mode="w",
+                         encoding="utf-8")
+
+    def close(self) -> None:
+        super().close()
+        partial = Path(self.baseFilename)
+        if partial.is_file():
+            partial.replace(self.final)
+
+
 def close() -> None:
+    """Flush and close the handlers (run.log moves into place)."""
     for handler in list(LOGGER.handlers):
         handler.close()
         LOGGER.removeHandler(handler)
