@@ -87,7 +87,11 @@ def add_north_arrow(ax) -> None:
             fontweight="bold", zorder=12)
 
 
-def map_axes(ax, crs_name: str, title: str) -> None:
+def map_axes(ax, crs_name: str, title: str, survey: str | None = None) -> None:
+    """Axes of a map: equal aspect, easting/northing with the CRS, title, scale bar, north arrow
+    and, when given, the survey name under the map."""
+    if survey:
+        ax.text(0.0, -0.16, survey, transform=ax.transAxes, fontsize=7, va="top")
     ax.set_aspect("equal", adjustable="box")
     ax.set_xlabel(f"Easting (m)   [{crs_name}]", fontsize=8)
     ax.set_ylabel("Northing (m)", fontsize=8)
@@ -267,7 +271,7 @@ def plot_grid(grid, path: Path, crs_name: str, title: str | None = None, dpi: in
 
 
 def plot_points(table: pd.DataFrame, column: str, path: Path, crs_name: str, title: str, units: str,
-                dpi: int = 110) -> Path:
+                dpi: int = 110, survey: str | None = None) -> Path:
     """Readings coloured by a value column (e.g. the anomaly before gridding)."""
     values = table[column].to_numpy(dtype=float)
     step = max(len(table) // 200_000, 1)
@@ -280,12 +284,12 @@ def plot_points(table: pd.DataFrame, column: str, path: Path, crs_name: str, tit
                     s=2 if many else 18, linewidths=0 if many else 0.3, edgecolors="black")
     bar = fig.colorbar(sc, ax=ax, shrink=0.8)
     bar.set_label(units)
-    map_axes(ax, crs_name, title)
+    map_axes(ax, crs_name, title, survey)
     return save(fig, path, dpi)
 
 
 def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
-                title: str | None = None) -> Path:
+                title: str | None = None, survey: str | None = None) -> Path:
     """Survey tracks (or stations) coloured by line, flagged readings marked."""
     fig, ax = plt.subplots(figsize=FIGSIZE)
     codes, names = pd.factorize(table["line"])
@@ -319,12 +323,13 @@ def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
         for handle in legend.legend_handles:  # readable markers, whatever the plotted size
             if hasattr(handle, "set_sizes"):
                 handle.set_sizes([20])
-    map_axes(ax, crs_name, title or f"Survey tracks coloured by line ({len(names)} lines)")
+    map_axes(ax, crs_name, title or f"Survey tracks coloured by line ({len(names)} lines)", survey)
     return save(fig, path, dpi)
 
 
 def plot_coverage(table: pd.DataFrame, path: Path, crs_name: str, line_spacing: float | None,
-                  dpi: int = 110) -> Path:
+                  dpi: int = 110, survey: str | None = None,
+                  spacing_label: str = "nominal line spacing") -> Path:
     """Distance from every point of the area to the nearest reading, and line offsets."""
     from scipy.spatial import cKDTree
 
@@ -340,8 +345,8 @@ def plot_coverage(table: pd.DataFrame, path: Path, crs_name: str, line_spacing: 
     fig.colorbar(mesh, ax=ax, shrink=0.8).set_label("distance to nearest reading (m)")
     title = "Data coverage"
     if line_spacing:
-        title += f" (nominal line spacing {line_spacing:.0f} m)"
-    map_axes(ax, crs_name, title)
+        title += f" ({spacing_label} {line_spacing:.0f} m)"
+    map_axes(ax, crs_name, title, survey)
     return save(fig, path, dpi)
 
 
@@ -591,7 +596,7 @@ def plot_coefficients(coef: pd.DataFrame, path: Path, window: int = 15, dpi: int
 
 
 def plot_grid_residual(table: pd.DataFrame, path: Path, crs_name: str, units: str,
-                       tolerance: float | None = None, dpi: int = 110) -> Path:
+                       tolerance: float | None = None, dpi: int = 110, survey: str | None = None) -> Path:
     """One figure of the grid residual (reading minus gridding model): map and histogram."""
     values = table["grid_residual"].to_numpy(dtype=float)
     ok = np.isfinite(values)
@@ -606,7 +611,7 @@ def plot_grid_residual(table: pd.DataFrame, path: Path, crs_name: str, units: st
     sc = ax.scatter(e, n, c=v, cmap=DIVERGING, norm=TwoSlopeNorm(0.0, lo, hi), s=2 if many else 18,
                     linewidths=0 if many else 0.3, edgecolors="black")
     fig.colorbar(sc, ax=ax, shrink=0.8).set_label(f"grid residual ({units})")
-    map_axes(ax, crs_name, f"Grid residual at the readings ({units})")
+    map_axes(ax, crs_name, f"Grid residual at the readings ({units})", survey)
     rms = float(np.sqrt(np.mean(v**2))) if v.size else float("nan")
     lim = float(np.percentile(np.abs(v), 99.5)) if v.size else 1.0
     hx.hist(v, bins=np.linspace(-lim, lim, 61) if lim > 0 else 30, color="grey")

@@ -96,10 +96,12 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
                                      else "Survey lines and flagged readings"),
                  maps.plot_tracks(table, out / "tracks.png", crs_name, dpi,
                                   f"Stations coloured by loop ({table['line'].nunique()} loops)"
-                                  if gravity else None))
+                                  if gravity else None, survey=name))
             _fig(figures, "ingest", "Distance from every point of the area to the nearest "
                  + ("station" if gravity else "reading"),
-                 maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi))
+                 maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi,
+                                    survey=name, spacing_label="median station spacing" if gravity
+                                    else "nominal line spacing"))
         if config.kind == "magnetic" and "height" in table and table["height"].notna().any():
             _fig(figures, "ingest", "Sensor height minus the smoothed flying surface",
                  maps.plot_height_deviation(table, out / "height_deviation.png", crs_name,
@@ -116,7 +118,7 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
             if column in table and table[column].notna().any() and config.kind != "observatory":
                 _fig(figures, "reference", caption,
                      maps.plot_points(table, column, out / f"points_{column}.png", crs_name,
-                                      f"{caption} ({unit}) - {name}", unit, dpi))
+                                      f"{caption} ({unit})", unit, dpi, survey=name))
         if (config.kind == "magnetic" and "anomaly_levelled" in table and "distance" in table
                 and table["anomaly_levelled"].notna().any()):
             _fig(figures, "level", "Levelled anomaly along a selection of lines",
@@ -125,7 +127,7 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
         if "grid_residual" in table and table["grid_residual"].notna().any():
             _fig(figures, "grid", "Grid residual: each reading minus the gridding model",
                  maps.plot_grid_residual(table, out / "grid_residual.png", crs_name, units,
-                                         tol(f"grid_residual_rms_{units}"), dpi))
+                                         tol(f"grid_residual_rms_{units}"), dpi, survey=name))
 
     base = _read_table(survey.tables / "base_record.csv")
     if base is not None and len(base) and {"time", "total_field"} <= set(base.columns):
