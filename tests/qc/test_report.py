@@ -43,6 +43,19 @@ def test_sections_in_order_and_gravity_words():
     assert "57,030" in page and "e+0" not in page and "NaN" not in page and "{" not in page.split("<body>")[1].split("<script>")[0]
 
 
+def test_residual_summary_in_the_deliverables():
+    import numpy as np
+    import pandas as pd
+
+    config = parse_config({"survey": {"kind": "gravity"}})
+    table = pd.DataFrame({"grid_residual": [0.03, -0.04, np.nan], "tide": [0.1, 0.1, 0.1]})
+    page = render_html(config, _manifest(), {}, [], {}, None, [], table)
+    deliverables = page[page.index("id='deliverables'"):page.index("id='failed-checks'")]
+    assert "Residuals and corrections at the readings" in deliverables
+    assert "<td>grid_residual</td>" in deliverables and "<td>mGal</td>" in deliverables
+    assert "0.0354" in deliverables  # RMS of 0.03 and -0.04 = sqrt(0.00125)
+
+
 def test_number_formatting_has_meaningful_digits():
     assert fmt(57030.4) == "57,030.4"
     assert fmt(0.0345124898) == "0.0345"

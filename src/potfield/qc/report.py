@@ -368,9 +368,35 @@ def _tolerance_rows(spec: dict, checks: list[dict]) -> list[dict]:
     return rows
 
 
+#: Residual and correction columns summarised in the deliverables (when present).
+RESIDUAL_COLUMNS = ("grid_residual", "drift_residual", "level_correction", "diurnal", "tide",
+                    "drift", "terrain", "residual", "disturbance_total")
+
+
+def residual_rows(table: pd.DataFrame | None, kind: str) -> list[dict]:
+    """RMS, smallest and largest value of each residual/correction column at the readings."""
+    from ..io.columns import describe
+
+    rows = []
+    if table is None:
+        return rows
+    for name in RESIDUAL_COLUMNS:
+        if name not in table:
+            continue
+        values = pd.to_numeric(table[name], errors="coerce").to_numpy(dtype=float)
+        values = values[np.isfinite(values)]
+        if not values.size:
+            continue
+        unit, meaning, _ = describe(name, kind)
+        rows.append({"column": name, "meaning": meaning, "unit": unit, "readings": int(values.size),
+                     "rms": float(np.sqrt(np.mean(values**2))), "minimum": float(values.min()),
+                     "maximum": float(values.max())})
+    return rows
+
+
 def render_html(config, manifest: dict, figures: dict, checks: list[dict],
                 grid_paths: dict[str, Path] | None = None, survey_toml: str | None = None,
-                tables: list[Path] | None = None) -> str:
+                tables: list[Path] | None = None, table: pd.DataFrame | None = None) -> str:
     """The report page: contents, deliverables, failed checks, QC per stage, provenance."""
     from ..pipeline import KIND_ORDER
 
@@ -429,6 +455,13 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
         parts.append(_table(grid_rows, ["file_html", "quantity", "unit", "minimum", "maximum", "cells", "stage"],
                             {"file_html": "file", "minimum": "minimum (unit)", "maximum": "maximum (unit)",
                              "cells": "cells (easting x northing)"}))
+    residuals = residual_rows(table, kind)
+    if residuals:
+        parts.append("<h3>Residuals and corrections at the readings</h3>")
+        parts.append("<p>Every reading with every correction is in "
+                     "<a href='tables/readings.csv'>tables/readings.csv</a> (the residual table).</p>")
+        parts.append(_table(residuals, ["column", "meaning", "unit", "readings", "rms", "minimum", "maximum"],
+                            {"rms": "RMS (unit)", "minimum": "minimum (unit)", "maximum": "maximum (unit)"}))
     parts.append("<h3>Tables (CSV)</h3>")
     table_rows = []
     for path in tables or []:
@@ -498,7 +531,7 @@ def build_report(survey, config, manifest: dict, table: pd.DataFrame | None,
     toml_path = survey.root / "survey.toml"
     survey_toml = toml_path.read_text(encoding="utf-8") if toml_path.is_file() else None
     tables = sorted(p for p in survey.tables.glob("*.csv"))
-    text = render_html(config, manifest, figures, checks, grid_paths, survey_toml, tables)
+    text = render_html(config, manifest, figures, checks, grid_paths, survey_toml, tables, table)
     write_text(survey.report_path, text)
     return survey.report_path, sum(len(v) for v in figures.values())
 
