@@ -31,12 +31,12 @@ out = {"seconds": round(seconds, 2), "peak_rss_mb": round(resource.getrusage(res
 run = folder / "run"
 out["bytes"] = {str(p.relative_to(run)): p.stat().st_size for p in sorted(run.rglob("*")) if p.is_file()}
 if kind == "magnetic":
-    raw = pd.read_csv(run / "raw" / "mag_lines.csv", usecols=["TMI"])
+    raw = pd.read_csv(run / "raw" / "mag_lines.csv", usecols=["total_field_nT"])
     truth = pd.read_csv(run / "truth" / "readings_truth.csv")
     total = truth[["igrf_total", "crustal_anomaly", "external", "level_error", "noise", "spike"]].sum(axis=1)
     out["readings"] = int(len(raw))
     out["readings_per_s"] = round(len(raw) / seconds)
-    out["max_abs_tmi_minus_sum_of_truth_nT"] = float(np.max(np.abs(total - raw["TMI"])))
+    out["max_abs_tmi_minus_sum_of_truth_nT"] = float(np.max(np.abs(total - raw["total_field_nT"])))
 print(json.dumps(out))
 """
 

@@ -81,7 +81,7 @@ def cmd_check(args) -> int:
     return 0
 
 
-FINAL_WORDS = ("done in", "skipped in", "unchanged", "does nothing", "marked stale")
+from .logs import FINAL_WORDS  # noqa: E402
 
 
 def _outcome(summary) -> tuple[str, bool]:
@@ -102,31 +102,54 @@ def _outcome(summary) -> tuple[str, bool]:
 
 
 def cmd_run(args) -> int:
-    from rich.console import Console
+    from . import logs
+    from .pipeline import KIND_ORDER, run_survey
+    from .survey import Survey
 
-    from .pipeline import run_survey
+    survey = Survey(Path(args.directory))
+    config = survey.load_config()
+    verbosity = -1 if getattr(args, "quiet", False) else getattr(args, "verbose", 0)
+    log_file = survey.root / "out" / "run.log"
+    try:
+        logger = logs.setup(verbosity, log_file)
+    except OSError:  # out/ not writable: the run itself will say so
+        logger = logs.setup(verbosity)
+    progress = logs.Progress(list(KIND_ORDER[config.kind]), logs.previous_seconds(survey.root / "out"))
+    try:
+        if sys.stdout.isatty() and verbosity == 0:
+            from rich.console import Console
 
-    console = Console(stderr=False, highlight=False)
-    with console.status("starting") as status:
-        def progress(message: str) -> None:
-            if any(word in message for word in FINAL_WORDS):
-                console.print(message, markup=False, soft_wrap=True)
-            else:
-                status.update(message)
+            console = Console(stderr=False, highlight=False)
+            with console.status("starting") as status:
+                def show(message: str) -> None:
+                    message = logs.dedupe(message)
+                    if any(word in message for word in FINAL_WORDS):
+                        progress(message)
+                    else:
+                        status.update(message)
+                        logger.debug(message)
 
-        summary = run_survey(args.directory, until=args.until, only=args.only, start=args.start,
-                             force=args.force, progress=progress)
-    failed = summary.failed_checks
-    console.print(f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
-                  f"{len(failed)} failed", markup=False)
-    for check in failed:
-        console.print(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance {check['tolerance']:.4g} "
-                      f"{check['unit']})", markup=False)
-    for step in summary.steps:
-        console.print(f"  WARNING {step['stage']} {step['result']}: {step['detail']}", markup=False,
-                      soft_wrap=True)
-    last, bad = _outcome(summary)
-    console.print(last, markup=False, soft_wrap=True)  # one line, never wrapped
+                summary = run_survey(args.directory, until=args.until, only=args.only,
+                                     start=args.start, force=args.force, progress=show)
+        else:
+            summary = run_survey(args.directory, until=args.until, only=args.only, start=args.start,
+                                 force=args.force, progress=progress)
+        failed = summary.failed_checks
+        text = (f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
+                f"{len(failed)} failed")
+        if failed:
+            logger.warning(text)
+        else:
+            logger.info(text)
+        for check in failed:
+            logger.warning(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance "
+                           f"{check['tolerance']:.4g} {check['unit']})")
+        for step in summary.steps:
+            logger.warning(f"  WARNING {step['stage']} {step['result']}: {step['detail']}")
+        last, bad = _outcome(summary)
+        (logger.warning if bad else logger.info)(last)  # the last line: what is not as specified
+    finally:
+        logs.close()
     return 1 if (bad and args.strict) else 0
 
 
@@ -174,8 +197,14 @@ def cmd_batch(args) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="potfield", description="Potential-field survey processing.")
+    parser = argparse.ArgumentParser(
+        prog="potfield", formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Potential-field survey processing: magnetic, gravity and observatory readings "
+                    "to checked grids, tables, maps and a report.",
+        epilog="example:\n  potfield demo gravity demo-gravity && potfield run demo-gravity\n\n"
+               "Results need review by a qualified geophysicist; local regulations prevail.")
     parser.add_argument("--version", action="version", version=f"potfield {__version__}")
+    _verbosity(parser, None)
     sub = parser.add_subparsers(dest="command", required=True)
 
     p = sub.add_parser("new", help="create a survey folder with a commented survey.toml")
@@ -195,6 +224,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="recompute even unchanged stages")
     p.add_argument("--strict", action="store_true",
                    help="exit with code 1 when a spec check fails or a step was skipped or degraded")
+    _verbosity(p, argparse.SUPPRESS)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("stages", help="list the stages of each survey kind")
@@ -218,7 +248,41 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", default=None, help="address of an existing Dask scheduler")
     p.add_argument("--force", action="store_true")
     p.set_defaults(func=cmd_batch)
+    for name, sp in sub.choices.items():
+        description, example = COMMAND_HELP[name]
+        sp.description = description
+        sp.epilog = f"example:\n  {example}"
+        sp.formatter_class = argparse.RawDescriptionHelpFormatter
     return parser
+
+
+#: Description and one example per command (shown by ``potfield COMMAND --help``).
+COMMAND_HELP = {
+    "new": ("Create a survey folder with a commented survey.toml for the kind and an empty raw/.",
+            "potfield new my-survey --kind magnetic"),
+    "check": ("Validate survey.toml and read the inputs without processing: files, readings, "
+              "time span, extent, CRS, lines.", "potfield check my-survey"),
+    "run": ("Run the stages of a survey in order; unchanged stages are reused from out/cache. "
+            "Writes out/tables, out/grids, out/maps, out/report.html, out/manifest.json and "
+            "out/run.log.", "potfield run my-survey --from grid -v"),
+    "stages": ("List the stages of each survey kind and what they do.", "potfield stages --kind gravity"),
+    "demo": ("Write a demo survey (invented data with known truth) to a folder.",
+             "potfield demo magnetic demo-magnetic --seed 0"),
+    "report": ("Rebuild out/maps and out/report.html from out/ without recomputing.",
+               "potfield report my-survey"),
+    "batch": ("Process many survey folders in parallel on Dask; one survey's error never stops "
+              "the others.", "potfield batch surveys/* --workers 2"),
+}
+
+
+def _verbosity(parser, default) -> None:
+    """-v/--verbose (every progress message) and -q/--quiet (warnings and errors only)."""
+    parser.add_argument("-v", "--verbose", action="count",
+                        default=0 if default is None else default,
+                        help="show every progress message")
+    parser.add_argument("-q", "--quiet", action="store_true",
+                        default=False if default is None else default,
+                        help="show only warnings and errors")
 
 
 def main(argv: list[str] | None = None) -> int:

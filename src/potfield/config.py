@@ -15,14 +15,7 @@ import tomllib
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import (
-    BaseModel,
-    ConfigDict,
-    Field,
-    ValidationError,
-    field_validator,
-    model_validator,
-)
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
 
@@ -77,6 +70,42 @@ def unit_factor(name: str, units: dict[str, str]) -> float:
     if quantity is None or name not in units:
         return 1.0
     return float(UNIT_FACTORS[quantity][units[name]])
+
+
+class RenamedKeyWarning(FutureWarning):
+    """An old name in survey.toml, still accepted; the message names the new one."""
+
+
+def warn_renamed(where: str, old: str, new: str) -> None:
+    """One-line warning that an old survey.toml name was used (it still works)."""
+    import warnings
+
+    warnings.warn(f"survey.toml {where}: '{old}' is an old name, still accepted; use '{new}'",
+                  RenamedKeyWarning, stacklevel=2)
+
+
+#: [grid] old key -> (new key, {old value: new value}).
+GRID_ALIASES = {
+    "depth_type": ("source_layer", {"relative": "follow_drape", "constant": "flat"}),
+    "depth_factors": ("trial_depths", {}),
+    "dampings": ("trial_dampings", {}),
+}
+
+
+def renamed_keys(data, section: str, aliases: dict) -> Any:
+    """Map old keys (and values) of a section to the new ones, warning once per key."""
+    if not isinstance(data, dict):
+        return data
+    data = dict(data)
+    for old, (new, values) in aliases.items():
+        if old in data:
+            value = data.pop(old)
+            if new in data:
+                raise ValueError(f"'{old}' and '{new}' both given; keep only '{new}'")
+            value = values.get(value, value) if isinstance(value, str) else value
+            warn_renamed(f"[{section}]", old, new + (f" = \"{value}\"" if values else ""))
+            data[new] = value
+    return data
 
 
 class Section(BaseModel):
@@ -459,10 +488,11 @@ class GridSection(Section):
     block_m: float = Field(0.0, ge=0)
     #: Height of the grid (m, ellipsoidal); None = median reading height. "drape" follows data.
     height: float | str | None = None
-    #: Search for source depth (multiples of block size) and damping by blocked CV.
-    depth_factors: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0], min_length=1)
-    dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1],
-                                  min_length=1)
+    #: Trial source depths (multiples of the block size) and dampings, chosen by blocked
+    #: cross-validation (old names depth_factors, dampings are accepted with a warning).
+    trial_depths: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0], min_length=1)
+    trial_dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1],
+                                        min_length=1)
     #: Number of folds of the blocked K-fold cross-validation.
     cv_folds: int = Field(4, ge=2, le=50)
     #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
@@ -470,9 +500,10 @@ class GridSection(Section):
     #: Equivalent-source solver: "auto" (dense up to 4000 sources, else FFT lattice), "dense"
     #: (sources beneath the blocks) or "fft" (lattice layer, conjugate gradients).
     method: Literal["auto", "dense", "fft"] = "auto"
-    #: Source layer: "relative" (every source the chosen depth below the readings around it, so
-    #: the layer follows a draped survey; Cordell 1992) or "constant" (one horizontal plane).
-    depth_type: Literal["relative", "constant"] = "relative"
+    #: Source layer: "follow_drape" (every source the chosen depth below the readings around it,
+    #: so the layer follows a draped survey; Cordell 1992) or "flat" (one horizontal plane).
+    #: The old key depth_type = "relative"|"constant" is accepted with a warning.
+    source_layer: Literal["follow_drape", "flat"] = "follow_drape"
     #: Stopping tolerance of the lattice solver in the final fit (relative norm of the
     #: preconditioned normal-equation residual); the search uses a looser one. On the
     #: 1e6-reading demo 2e-5 scored as 1e-5 on held-out blocks (R2 0.9999862 vs 0.9999865) in
@@ -489,29 +520,44 @@ class GridSection(Section):
             raise ValueError(f"height '{value}' is not known; give a number (m), \"drape\" or leave it out")
         return value
 
-    @field_validator("depth_factors")
+    @field_validator("trial_depths")
     @classmethod
     def _positive_factors(cls, value: list[float]) -> list[float]:
         if any(v <= 0 for v in value):
             raise ValueError("every depth factor must be > 0 (multiples of the block size)")
         return value
 
-    @field_validator("dampings")
+    @field_validator("trial_dampings")
     @classmethod
     def _positive_dampings(cls, value: list[float]) -> list[float]:
         if any(v < 0 for v in value):
             raise ValueError("every damping must be >= 0")
         return value
 
+    @model_validator(mode="before")
+    @classmethod
+    def _old_names(cls, data):
+        return renamed_keys(data, "grid", GRID_ALIASES)
 
-#: Products the derive stage can make (potfield.stages.derive).
-DERIVE_PRODUCTS = ("rtp", "dz1", "dz2", "dx", "dy", "thg", "tga", "tilt", "upward")
+
+#: Products the derive stage can make (potfield.stages.derive); each grid is named
+#: "<main grid>_<product>" (upward_continuation: "<main grid>_upward_<distance>m").
+DERIVE_PRODUCTS = ("reduced_to_pole", "vertical_derivative", "second_vertical_derivative",
+                   "x_derivative", "y_derivative", "total_horizontal_gradient", "analytic_signal",
+                   "tilt_angle", "upward_continuation")
+#: Old short product names, accepted with a warning.
+PRODUCT_ALIASES = {"rtp": "reduced_to_pole", "dz1": "vertical_derivative",
+                   "dz2": "second_vertical_derivative", "dx": "x_derivative", "dy": "y_derivative",
+                   "thg": "total_horizontal_gradient", "tga": "analytic_signal", "tilt": "tilt_angle",
+                   "upward": "upward_continuation"}
 
 
 class DeriveSection(Section):
-    #: Grids to derive from the main grid: rtp (magnetic only), dz1, dz2 (vertical derivatives,
-    #: z down), dx, dy (easting/northing derivatives), thg (total horizontal gradient), tga (total
-    #: gradient amplitude), tilt (tilt angle, degrees), upward (continued up by upward_m).
+    #: Grids to derive from the main grid: reduced_to_pole (magnetic only), vertical_derivative,
+    #: second_vertical_derivative (z down), x_derivative, y_derivative (easting/northing),
+    #: total_horizontal_gradient, analytic_signal (total gradient amplitude), tilt_angle (degrees),
+    #: upward_continuation (continued up by upward_m). Old short names (rtp, dz1, ...) are
+    #: accepted with a warning.
     products: list[str] = Field(default_factory=lambda: list(DERIVE_PRODUCTS))
     #: Upward-continuation distance (m, > 0) of the "upward" product.
     upward_m: float = Field(500.0, gt=0)
@@ -539,6 +585,17 @@ class DeriveSection(Section):
     rtp_layer_damping: float = Field(1e-2, gt=0, lt=1)
     #: Also continue upward by predicting the grid stage's equivalent-source model (when it has one).
     upward_by_model: bool = True
+
+    @field_validator("products", mode="before")
+    @classmethod
+    def _old_products(cls, value):
+        if not isinstance(value, list):
+            return value
+        old = [v for v in value if v in PRODUCT_ALIASES]
+        if old:
+            warn_renamed("derive.products", ", ".join(old),
+                         ", ".join(PRODUCT_ALIASES[v] for v in old))
+        return [PRODUCT_ALIASES.get(v, v) if isinstance(v, str) else v for v in value]
 
     @field_validator("products")
     @classmethod

@@ -24,7 +24,6 @@ import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from fnmatch import fnmatchcase
-from functools import lru_cache
 from importlib import metadata
 from pathlib import Path
 from typing import Callable
@@ -33,7 +32,8 @@ import pandas as pd
 
 from . import __version__
 from .errors import InputDataError, PotfieldError, StageError
-from .io.atomic import write_csv, write_json
+from .io.atomic import write_json, write_parquet
+from .io.columns import write_table
 from .io.tables import read_cache_table, write_cache_table, write_table_csv
 from .kinds import KIND_ORDER
 from .qc.specs import load_spec
@@ -63,15 +63,12 @@ def stages_for(kind: str) -> list[Stage]:
     return [load_stage(name) for name in KIND_ORDER[kind]]
 
 
-@lru_cache(maxsize=1)
-def code_hash() -> str:
-    """Hash of potfield's own source files: a code change invalidates the cache."""
-    root = Path(__file__).parent
-    digest = hashlib.sha256(__version__.encode())
-    for path in sorted(root.rglob("*.py")):
-        digest.update(str(path.relative_to(root)).encode())
-        digest.update(path.read_bytes())
-    return digest.hexdigest()
+def code_hash(stage: str) -> str:
+    """Hash of the potfield source files stage ``stage`` imports (potfield.codedeps): a change
+    to the code a stage runs invalidates its cache, a change elsewhere does not."""
+    from .codedeps import code_hash as module_hash
+
+    return module_hash(f"potfield.stages.{stage}", __version__)
 
 
 def package_versions() -> dict[str, str]:
@@ -162,7 +159,7 @@ def _stage_key(stage: Stage, config, survey: Survey, previous: str, checksums: d
                                          fix="check the file name in survey.toml")
                 checksums[rel] = sha256_file(Path(path))
             inputs[rel] = checksums[rel]
-    payload = {"stage": stage.name, "code": code_hash(), "config": config.section_hash(*stage.sections),
+    payload = {"stage": stage.name, "code": code_hash(stage.name), "config": config.section_hash(*stage.sections),
                "inputs": inputs, "previous": previous}
     return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest(), inputs
 
@@ -354,7 +351,7 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                 _mark_stale(manifest, order[index:], f"stage '{name}' failed in the run of {stamp}; "
                             "these results are not current")
                 try:
-                    _finish(survey, manifest, order[:index], table, hashes)
+                    _finish(survey, config, manifest, order[:index], table, hashes, state, grids)
                 except Exception:  # noqa: BLE001, S110  (the original error matters more)
                     pass
                 raise
@@ -377,26 +374,47 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
         if stale:
             say(f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
                 "run again without --until/--only to bring them back)")
-        checks, steps = _finish(survey, manifest, order[: last_index + 1], table, hashes)
+        checks, steps = _finish(survey, config, manifest, order[: last_index + 1], table, hashes, state,
+                                grids)
     return RunSummary(survey.root, records, checks, manifest, steps)
 
 
-def _finish(survey: Survey, manifest: dict, current, table: pd.DataFrame | None,
-            hashes: dict) -> tuple[list[dict], list[dict]]:
-    """Write readings.csv (the table of the last current stage), checks.csv (the checks and
-    skipped/degraded steps of the ``current`` stages) and the manifest with the outputs' checksums."""
+def _finish(survey: Survey, config, manifest: dict, current, table: pd.DataFrame | None,
+            hashes: dict, state: dict, grids: dict) -> tuple[list[dict], list[dict]]:
+    """Write readings.csv and readings.parquet (the table of the last current stage), checks.csv
+    (the checks and skipped/degraded steps of the ``current`` stages), the data dictionary, the
+    multi-variable products file of the current grids, and the manifest with the outputs'
+    checksums."""
     if table is not None:
-        write_table_csv(survey.tables / "readings.csv", table)
+        write_table_csv(survey.tables / "readings.csv", table, config.kind)
+        write_parquet(survey.tables / "readings.parquet", table)
+    _write_deliverables(survey, config, state, grids)
     checks, steps = [], []
     for name in current:
         entry = manifest["stages"].get(name, {})
         checks.extend(entry.get("checks", []))
         steps.extend(_step_rows(name, entry))
-    write_csv(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS))
+    write_table(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS),
+                config.kind)
     manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
     manifest["outputs"] = survey.output_checksums(hashes)
     write_json(survey.manifest_path, manifest)
     return checks, steps
+
+
+def _write_deliverables(survey: Survey, config, state: dict, grids: dict) -> None:
+    """The data dictionary (tables/columns.csv) and the current grids in one file
+    (grids/products.nc; removed when no grid is current)."""
+    from .io.columns import write_data_dictionary
+    from .io.grids import write_products
+
+    write_data_dictionary(survey.tables, config.kind)
+    crs = state.get("ingest", {}).get("crs")
+    products = survey.grids / "products.nc"
+    if grids and crs:
+        write_products(products, dict(grids), crs, title=f"{config.survey.name}: gridded products")
+    elif products.is_file():
+        products.unlink()
 
 
 def _loud(entry: dict) -> str:
@@ -457,7 +475,7 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
     if output.table is not None:
         write_cache_table(survey.cache / f"{name}.parquet", output.table)
     for table_name, frame in output.tables.items():
-        write_csv(survey.tables / f"{table_name}.csv", frame)
+        write_table(survey.tables / f"{table_name}.csv", frame, config.kind)
     for grid_name, grid in output.grids.items():
         grid = grid.rename(grid_name)
         write_netcdf(survey.grids / f"{grid_name}.nc", grid, crs or "EPSG:4326")

@@ -18,7 +18,7 @@ from .io.atomic import atomic_path
 def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed: int = 0,
                     lon0: float = 138.0, lat0: float = -33.0, spacing_m: float = 200.0,
                     rate_hz: float = 10.0, speed_ms: float = 60.0) -> pd.DataFrame:
-    """Lines of readings with the template's column names (LINE, UTC, LON, LAT, HEIGHT, TMI):
+    """Lines of readings with the template's column names (line, time_utc, longitude, latitude, height_m, total_field_nT):
     the IGRF-14 main field plus a smooth anomaly, a slow drift, noise and spikes."""
     rng = np.random.default_rng(seed)
     total_lines = lines + ties
@@ -48,21 +48,21 @@ def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed
         field = 50_000.0 + 30 * np.sin(x / 700.0) * np.cos(y / 900.0) + 0.02 * seconds / 60
         field = field + rng.normal(0, 0.02, per_line)
         frames.append(pd.DataFrame({
-            "LINE": name,
-            "UTC": (t0 + (seconds * 1e9).astype("int64").astype("timedelta64[ns]")),
-            "LON": lon0 + x / m_per_deg_lon,
-            "LAT": lat0 + y / m_per_deg_lat,
-            "HEIGHT": 120.0 + rng.normal(0, 1, per_line),
-            "TMI": field,
+            "line": name,
+            "time_utc": (t0 + (seconds * 1e9).astype("int64").astype("timedelta64[ns]")),
+            "longitude": lon0 + x / m_per_deg_lon,
+            "latitude": lat0 + y / m_per_deg_lat,
+            "height_m": 120.0 + rng.normal(0, 1, per_line),
+            "total_field_nT": field,
         }))
     table = pd.concat(frames, ignore_index=True)
     from .fields.magnetic.igrf import igrf
 
-    main = igrf(table["LON"].to_numpy(), table["LAT"].to_numpy(), table["HEIGHT"].to_numpy(),
-                table["UTC"].to_numpy()).total
-    table["TMI"] = table["TMI"].to_numpy() - 50_000.0 + main
+    main = igrf(table["longitude"].to_numpy(), table["latitude"].to_numpy(), table["height_m"].to_numpy(),
+                table["time_utc"].to_numpy()).total
+    table["total_field_nT"] = table["total_field_nT"].to_numpy() - 50_000.0 + main
     spikes = rng.choice(len(table), size=max(len(table) // 5000, 1), replace=False)
-    table.loc[spikes, "TMI"] += rng.choice([-1, 1], spikes.size) * 25.0
+    table.loc[spikes, "total_field_nT"] += rng.choice([-1, 1], spikes.size) * 25.0
     # a time gap of 5 s inside the first line
     if per_line > 200:
         table = table.drop(index=range(100, 150)).reset_index(drop=True)
@@ -74,7 +74,7 @@ def write_synthetic_survey(directory: Path, readings: int = 20_000, seed: int = 
     directory = Path(directory)
     (directory / "raw").mkdir(parents=True, exist_ok=True)
     table = synthetic_lines(readings, seed=seed, **kwargs)
-    table["UTC"] = pd.to_datetime(table["UTC"]).dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    table["time_utc"] = pd.to_datetime(table["time_utc"]).dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
     path = directory / "raw" / "lines.csv"
     with atomic_path(path) as tmp:
         table.to_csv(tmp, index=False, float_format="%.9f", lineterminator="\n")

@@ -15,7 +15,7 @@ def test_batch_reports_failure_and_processes_others(tmp_path, capsys):
         assert main(["new", str(root), "--kind", "magnetic"]) == 0
         write_synthetic_survey(root, readings=3000, seed=k)
         text = (root / "survey.toml").read_text()  # one depth and damping: keep the test quick
-        text = text.replace("[grid]\n", "[grid]\ndepth_factors = [4.5]\ndampings = [0.01]\n", 1)
+        text = text.replace("[grid]\n", "[grid]\ntrial_depths = [4.5]\ntrial_dampings = [0.01]\n", 1)
         (root / "survey.toml").write_text(text)
         good.append(root)
     bad = tmp_path / "bad"

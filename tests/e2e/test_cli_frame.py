@@ -135,7 +135,7 @@ def test_error_empty_file(magnetic_survey, capsys):
 
 
 def test_error_missing_mapped_column(magnetic_survey, capsys):
-    _edit(magnetic_survey, 'total_field = "TMI"', 'total_field = "MAG"')
+    _edit(magnetic_survey, 'total_field = "total_field_nT"', 'total_field = "MAG"')
     msg = _error(capsys, ["check", str(magnetic_survey)])
     assert "column 'MAG'" in msg and "input.columns.total_field" in msg
 
@@ -143,8 +143,8 @@ def test_error_missing_mapped_column(magnetic_survey, capsys):
 def test_error_non_numeric_value_rows(magnetic_survey, capsys):
     path = magnetic_survey / "raw" / "lines.csv"
     table = pd.read_csv(path)
-    table["TMI"] = table["TMI"].astype(object)
-    table.loc[[4, 9], "TMI"] = "bad"
+    table["total_field_nT"] = table["total_field_nT"].astype(object)
+    table.loc[[4, 9], "total_field_nT"] = "bad"
     table.to_csv(path, index=False)
     msg = _error(capsys, ["check", str(magnetic_survey)])
     # data row 4 (0-based) is line 6 of the file: header is line 1
@@ -154,7 +154,7 @@ def test_error_non_numeric_value_rows(magnetic_survey, capsys):
 def test_error_unparseable_time(magnetic_survey, capsys):
     path = magnetic_survey / "raw" / "lines.csv"
     table = pd.read_csv(path)
-    table.loc[2, "UTC"] = "yesterday noon"
+    table.loc[2, "time_utc"] = "yesterday noon"
     table.to_csv(path, index=False)
     msg = _error(capsys, ["check", str(magnetic_survey)])
     assert "cannot read the time 'yesterday noon'" in msg and "line 4" in msg
@@ -163,7 +163,7 @@ def test_error_unparseable_time(magnetic_survey, capsys):
 def test_error_latitude_out_of_range(magnetic_survey, capsys):
     path = magnetic_survey / "raw" / "lines.csv"
     table = pd.read_csv(path)
-    table.loc[7, "LAT"] = 123.0
+    table.loc[7, "latitude"] = 123.0
     table.to_csv(path, index=False)
     msg = _error(capsys, ["check", str(magnetic_survey)])
     assert "latitude 123 outside -90..90 at line 9" in msg

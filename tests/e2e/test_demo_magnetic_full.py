@@ -12,6 +12,7 @@ import re
 import shutil
 
 import numpy as np
+import pandas as pd
 import pytest
 import xarray as xr
 from matplotlib.image import imread
@@ -22,7 +23,7 @@ from potfield.io.grids import read_netcdf
 from .browser import chromium, render_dom
 from .demo_run import SURVEYS
 
-FAST_GRID = "[grid]\ndepth_factors = [6.0]\ndampings = [0.001]\ncv_folds = 2\n"
+FAST_GRID = "[grid]\ntrial_depths = [6.0]\ntrial_dampings = [0.001]\ncv_folds = 2\n"
 
 
 @pytest.fixture(scope="module")
@@ -36,13 +37,15 @@ def demo(tmp_path_factory):
     return root
 
 
-PROMISED_TABLES = ("readings.csv", "checks.csv", "crossovers.csv", "lines.csv", "clean_lines.csv",
+PROMISED_TABLES = ("readings.csv", "readings.parquet", "columns.csv", "checks.csv", "crossovers.csv", "lines.csv", "clean_lines.csv",
                    "diurnal_lines.csv", "base_record.csv", "grid_cv.csv")
-PROMISED_GRIDS = ("anomaly", "anomaly_rtp", "anomaly_dz1", "anomaly_dz2", "anomaly_dx", "anomaly_dy",
-                  "anomaly_thg", "anomaly_tga", "anomaly_tilt", "anomaly_upward", "regional_upward",
+PROMISED_GRIDS = ("anomaly", "anomaly_reduced_to_pole", "anomaly_vertical_derivative",
+                  "anomaly_second_vertical_derivative", "anomaly_x_derivative", "anomaly_y_derivative",
+                  "anomaly_total_horizontal_gradient", "anomaly_analytic_signal", "anomaly_tilt_angle",
+                  "anomaly_upward_500m", "regional_upward",
                   "residual_upward", "regional_two_layer", "residual_two_layer")
 PROMISED_MAPS = ("tracks", "coverage", "height_deviation", "noise_profiles", "diurnal_record",
-                 "crossovers", "grid_residual_map", "grid_residual_hist", "separation_panels")
+                 "grid_residual", "separation_panels", "line_profiles")
 
 
 def test_every_promised_file_exists(demo):
@@ -54,6 +57,9 @@ def test_every_promised_file_exists(demo):
         assert (out / "maps" / f"grid_{name}.png").is_file(), name  # every grid gets a map
     for name in PROMISED_MAPS:
         assert (out / "maps" / f"{name}.png").is_file(), name
+    # crossover figure: the level stage's own (qc/level_plots.py) or the report's histogram
+    assert any((out / "maps" / f"{n}.png").is_file() for n in ("level_crossovers", "crossovers"))
+    assert (out / "grids" / "products.nc").is_file()  # every grid in one file
     assert (out / "report.html").is_file() and (out / "manifest.json").is_file()
     manifest = json.loads((out / "manifest.json").read_text())
     assert all(manifest["stages"][s]["status"] == "done" for s in
@@ -125,6 +131,6 @@ def test_out_of_spec_survey_fails_a_check(tmp_path):
         "[survey]\n", "[survey]\nspec_overrides = { noise_fourth_difference_nT = 0.001 }\n", 1)
     (root / "survey.toml").write_text(text)
     assert main(["run", str(root), "--until", "clean"]) == 0
-    checks = (root / "out" / "tables" / "checks.csv").read_text()
-    row = [line for line in checks.splitlines() if line.startswith("noise")][0]
-    assert ",fail," in row and "survey.toml override" in row
+    checks = pd.read_csv(root / "out" / "tables" / "checks.csv")
+    row = checks[checks["check"].str.startswith("noise")].iloc[0]
+    assert row["result"] == "fail" and row["source"] == "survey.toml override"

@@ -58,9 +58,12 @@ def test_magnetic_products_masked_like_input_and_rtp_matches_pole(tmp_path):
     ctx = _ctx(tmp_path, grids={"anomaly": grid},
                state={"reference": {"inclination": inc, "declination": dec}})
     out = STAGE.run(ctx)
-    expected = {f"anomaly_{p}" for p in ("rtp", "dz1", "dz2", "dx", "dy", "thg", "tga", "tilt", "upward")}
+    expected = {f"anomaly_{p}" for p in ("reduced_to_pole", "vertical_derivative",
+                                         "second_vertical_derivative", "x_derivative", "y_derivative",
+                                         "total_horizontal_gradient", "analytic_signal", "tilt_angle",
+                                         "upward_500m")}
     assert set(out.grids) == expected
-    assert out.state["products"]["rtp"] == "anomaly_rtp"
+    assert out.state["products"]["reduced_to_pole"] == "anomaly_reduced_to_pole"
     for name, result in out.grids.items():
         assert result.name == name
         assert np.array_equal(np.isnan(result.values), np.isnan(grid.values)), name
@@ -76,12 +79,12 @@ def test_magnetic_products_masked_like_input_and_rtp_matches_pole(tmp_path):
     # Baranov RTP against the dipole's anomaly at the pole (harmonica.dipole_magnetic):
     # within 2 % of the peak away from edges and mask (measured 0.21 %).
     pole = _tfa(90.0, 0.0)
-    err = np.abs(out.grids["anomaly_rtp"].values - pole)[INNER]
+    err = np.abs(out.grids["anomaly_reduced_to_pole"].values - pole)[INNER]
     assert np.nanmax(err) < 0.02 * np.abs(pole).max()
     # upward by upward_m = 500 m (default) against harmonica at 500 m: within 1 % of the peak
     # (measured 0.30 %)
     up = _tfa(inc, dec, 500.0)
-    assert np.nanmax(np.abs(out.grids["anomaly_upward"].values - up)[INNER]) < 0.01 * np.abs(up).max()
+    assert np.nanmax(np.abs(out.grids["anomaly_upward_500m"].values - up)[INNER]) < 0.01 * np.abs(up).max()
 
 
 def test_low_inclination_uses_the_layer_and_says_so(tmp_path):
@@ -114,9 +117,9 @@ def test_low_inclination_pseudo_on_request(tmp_path):
     grid = make_grid(E, N, _tfa(12.0, 3.0), name="anomaly", units="nT", long_name="tfa")
     ctx = _ctx(tmp_path, grids={"anomaly": grid},
                state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["rtp"], "rtp": "pseudo", "pseudo_inclination_deg": 40.0})
+               derive={"products": ["reduced_to_pole"], "rtp": "pseudo", "pseudo_inclination_deg": 40.0})
     out = STAGE.run(ctx)
-    rtp = out.grids["anomaly_rtp"]
+    rtp = out.grids["anomaly_reduced_to_pole"]
     assert out.metrics["rtp_method"] == "pseudo" == rtp.attrs["rtp_method"]
     assert out.metrics["rtp_pseudo_inclination_deg"] == 40.0 == rtp.attrs["pseudo_inclination"]
     assert out.state["rtp_method"] == "pseudo"
@@ -130,7 +133,7 @@ def test_forced_plain_at_low_inclination(tmp_path):
     grid = make_grid(E, N, _tfa(12.0, 3.0), name="anomaly", units="nT", long_name="tfa")
     ctx = _ctx(tmp_path, grids={"anomaly": grid},
                state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["rtp"], "rtp": "plain"})
+               derive={"products": ["reduced_to_pole"], "rtp": "plain"})
     out = STAGE.run(ctx)
     assert out.metrics["rtp_method"] == "plain"
     assert any("stripes" in w for w in out.warnings)  # 1/sin^2 I gain (Blakely 1995 ch. 12)
@@ -139,13 +142,14 @@ def test_forced_plain_at_low_inclination(tmp_path):
 def test_gravity_skips_rtp_and_uses_bouguer_grid(tmp_path):
     grid = make_grid(E, N, _point_gz(), name="bouguer_anomaly", units="mGal", long_name="Bouguer")
     ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
-               derive={"products": ["rtp", "dz1", "upward"], "upward_m": 300.0})
+               derive={"products": ["reduced_to_pole", "vertical_derivative", "upward_continuation"],
+                       "upward_m": 300.0})
     out = STAGE.run(ctx)
-    assert set(out.grids) == {"bouguer_anomaly_dz1", "bouguer_anomaly_upward"}
+    assert set(out.grids) == {"bouguer_anomaly_vertical_derivative", "bouguer_anomaly_upward_300m"}
     assert any("rtp skipped" in note for note in out.notes)
     # analytic point mass at 300 m (Blakely 1995): within 1 % of the peak away from the edges
     truth = _point_gz(300.0)
-    assert np.abs(out.grids["bouguer_anomaly_upward"].values - truth)[INNER].max() < 0.01 * truth.max()
+    assert np.abs(out.grids["bouguer_anomaly_upward_300m"].values - truth)[INNER].max() < 0.01 * truth.max()
 
 
 def test_missing_inputs_are_stage_errors(tmp_path):
@@ -158,7 +162,7 @@ def test_missing_inputs_are_stage_errors(tmp_path):
 
 
 def test_config_rejects_unknown_product_and_small_padding():
-    with pytest.raises(ConfigError, match="did you mean 'tilt'"):
+    with pytest.raises(ConfigError, match="did you mean 'tilt_angle'"):
         parse_config({"survey": {"kind": "magnetic"}, "derive": {"products": ["tilts"]}})
     with pytest.raises(ConfigError, match="pad_fraction"):
         parse_config({"survey": {"kind": "magnetic"}, "derive": {"pad_fraction": 0.1}})
@@ -179,10 +183,10 @@ def test_equivalent_source_model_fills_and_continues_upward(tmp_path):
     grid = make_grid(E, N, _mask(_point_gz()), name="bouguer_anomaly", units="mGal", long_name="B")
     ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
                state={"grid": {"model_path": str(path.relative_to(tmp_path)), "height": 0.0}},
-               derive={"products": ["upward", "dz1"], "upward_m": 400.0})
+               derive={"products": ["upward_continuation", "vertical_derivative"], "upward_m": 400.0})
     out = STAGE.run(ctx)
     assert out.metrics["fill"] == "equivalent-source prediction"
-    exact = out.grids["bouguer_anomaly_upward_model"]
+    exact = out.grids["bouguer_anomaly_upward_400m_by_model"]
     assert np.array_equal(np.isnan(exact.values), np.isnan(grid.values))
     # analytic point mass at 400 m (Blakely 1995): the model prediction has no edge effect, so
     # it holds to 1 % of the peak over the whole unmasked grid, edges included (measured
@@ -196,7 +200,7 @@ def test_missing_model_file_falls_back_with_warning(tmp_path):
     grid = make_grid(E, N, _mask(_point_gz()), name="bouguer_anomaly", units="mGal", long_name="B")
     ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
                state={"grid": {"model_path": "out/cache/none.npz", "height": 0.0}},
-               derive={"products": ["dz1"]})
+               derive={"products": ["vertical_derivative"]})
     out = STAGE.run(ctx)
     assert out.metrics["fill"] == "smooth fill"
     assert any("missing" in w for w in out.warnings)
@@ -212,11 +216,23 @@ def test_rtp_uses_the_grid_declination(tmp_path):
     ctx = _ctx(tmp_path, grids={"anomaly": grid},
                state={"reference": {"inclination": inc, "declination": dec},
                       "ingest": {"crs": "EPSG:32633", "centroid": [lon, lat]}},
-               derive={"products": ["rtp"]})
+               derive={"products": ["reduced_to_pole"]})
     out = STAGE.run(ctx)
     assert out.metrics["rtp_declination_deg"] == dec
     assert out.metrics["rtp_grid_declination_deg"] == pytest.approx(dec - convergence, abs=0.01)
-    assert out.grids["anomaly_rtp"].attrs["declination"] == pytest.approx(dec - convergence, abs=0.01)
+    assert out.grids["anomaly_reduced_to_pole"].attrs["declination"] == pytest.approx(dec - convergence, abs=0.01)
     pole = _tfa(90.0, 0.0)
-    err = np.abs(out.grids["anomaly_rtp"].values - pole)[INNER]
+    err = np.abs(out.grids["anomaly_reduced_to_pole"].values - pole)[INNER]
     assert err.max() < 0.02 * np.abs(pole).max()  # harmonica dipole at the pole
+
+
+def test_old_product_names_are_accepted_with_a_warning():
+    # renamed products (own vocabulary): the old short names still work, with one warning
+    from potfield.config import PRODUCT_ALIASES, RenamedKeyWarning, parse_config
+
+    with pytest.warns(RenamedKeyWarning, match="'dz1, upward' is an old name") as caught:
+        config = parse_config({"survey": {"kind": "magnetic"},
+                               "derive": {"products": ["dz1", "upward", "tilt_angle"]}})
+    assert len(caught) == 1
+    assert config.derive.products == ["vertical_derivative", "upward_continuation", "tilt_angle"]
+    assert set(PRODUCT_ALIASES.values()) <= set(type(config.derive).model_fields["products"].default_factory())

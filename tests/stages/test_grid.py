@@ -52,9 +52,9 @@ def context(tmp_path, **grid):
     return StageContext(config=config, survey=survey, table=make_table(), state=state)
 
 
-@pytest.mark.parametrize("grid", [{"depth_factors": [2.5, 6.0], "dampings": [1e-3, 1e-1],
-                                   "cv_folds": 3}, {"method": "fft", "depth_factors": [6.0],
-                                       "dampings": [1e-2], "height": 300.0}])
+@pytest.mark.parametrize("grid", [{"trial_depths": [2.5, 6.0], "trial_dampings": [1e-3, 1e-1],
+                                   "cv_folds": 3}, {"method": "fft", "trial_depths": [6.0],
+                                       "trial_dampings": [1e-2], "height": 300.0}])
 def test_grid_stage(tmp_path, grid):
     ctx = context(tmp_path, **grid)
     out = STAGE.run(ctx)
@@ -92,15 +92,15 @@ def test_grid_stage(tmp_path, grid):
     assert out.metrics["grid_readings_flagged"] == 2
     assert out.metrics["grid_residual_rms_flagged"] == pytest.approx(500.0, rel=0.05)
     assert out.metrics["grid_residual_rms_spikes"] == out.metrics["grid_residual_rms_flagged"]
-    if len(ctx.config.grid.dampings) > 1:
+    if len(ctx.config.grid.trial_dampings) > 1:
         cv = out.tables["grid_cv"]
-        assert len(cv) == 4 and set(cv.columns) >= {"depth", "damping", "r2", "rms"}
-        assert out.metrics["grid_cv_r2"] == pytest.approx(cv.r2.max())
+        assert len(cv) == 4 and set(cv.columns) >= {"depth", "damping", "heldout_score", "rms"}
+        assert out.metrics["grid_heldout_score"] == pytest.approx(cv.heldout_score.max())
     assert STAGE.sections == ("grid", "level")
 
 
 def test_grid_stage_mask(tmp_path):
-    ctx = context(tmp_path, mask_distance_m=30.0, depth_factors=[4.5], dampings=[1e-2])
+    ctx = context(tmp_path, mask_distance_m=30.0, trial_depths=[4.5], trial_dampings=[1e-2])
     anomaly = STAGE.run(ctx).grids["anomaly"]
     # Grid rows every 50 m, lines every 200 m: a 30 m mask keeps only the rows on the lines, so
     # about 3 rows in 4 are masked.
@@ -119,7 +119,7 @@ def test_grid_stage_errors(tmp_path):
 
 def test_grid_stage_micro_levelling(tmp_path):
     config = parse_config({"survey": {"kind": "magnetic"}, "level": {"micro_levelling": True},
-                           "grid": {"depth_factors": [4.5], "dampings": [1e-2]}})
+                           "grid": {"trial_depths": [4.5], "trial_dampings": [1e-2]}})
     ctx = context(tmp_path)
     ctx.config = config
     # A 3 nT step on one line: a line-parallel corrugation that micro-levelling reduces
@@ -149,7 +149,7 @@ def test_cv_window_keeps_a_central_square_of_blocks():
 def test_tiled_grid_agrees_with_whole(tmp_path):
     # Whole and tiled fits of the same survey (the blend is a partition of unity, tested in
     # tests/fields/test_tiles.py); both against the forward model (harmonica dipole).
-    grid = {"depth_factors": [6.0], "dampings": [1e-2], "height": 300.0, "method": "fft"}
+    grid = {"trial_depths": [6.0], "trial_dampings": [1e-2], "height": 300.0, "method": "fft"}
     whole = STAGE.run(context(tmp_path / "a", **grid))
     tiled = STAGE.run(context(tmp_path / "b", tiled=True, tile_size_m=1500.0, **grid))
     assert tiled.state["model_path"] is None and tiled.metrics["grid_tiles"] >= 2

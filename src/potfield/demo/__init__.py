@@ -4,8 +4,7 @@ All data made here are invented, for a fictional area ("Marrowvale Downs") and f
 observatories. Each scenario writes a complete survey folder -- ``survey.toml``, ``raw/`` (the
 inputs the pipeline reads) and ``truth/`` (every true component, the scenario parameters and
 true grids, never read by the pipeline) -- so a processing run can be checked term by term.
-The same seed gives the same bytes (NetCDF files: the same content; their ``history`` stamp
-records when they were written).
+The same seed gives the same bytes, NetCDF files included.
 """
 
 from __future__ import annotations

@@ -9,8 +9,8 @@ Determinism: every generator draws from ``numpy.random.default_rng(seed)`` only,
 rounded to a fixed number of decimals before they are written (pandas then writes the shortest
 repr of the rounded double, which is the same on every run), times are formatted by numpy, JSON
 is written with sorted keys, lines end in ``"\\n"``, and no file holds the time of its making
-(except the ``history`` attribute that :func:`potfield.io.grids.write_netcdf` stamps into NetCDF
-files; compare those by content, :func:`same_netcdf`).
+(NetCDF included: :func:`potfield.io.grids.write_netcdf` writes no wall-clock stamp, so the
+same seed gives the same bytes; :func:`same_netcdf` compares by content all the same).
 """
 
 from __future__ import annotations

@@ -408,14 +408,14 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     h_rec = h_true + herr
 
     survey = pd.DataFrame({
-        "STN": names[occ_station],
-        "LOOP": np.asarray(occ_loop),
-        "TIME_UTC": common.iso_times(times, "s"),
-        "LONG": lon[occ_station],
-        "LAT": lat[occ_station],
-        "H_ELL": np.round(h_rec[occ_station], 3),
-        "HI": ih,
-        "RDG": counter,
+        "station": names[occ_station],
+        "loop": np.asarray(occ_loop),
+        "time_utc": common.iso_times(times, "s"),
+        "longitude": lon[occ_station],
+        "latitude": lat[occ_station],
+        "height_m": np.round(h_rec[occ_station], 3),
+        "instrument_height_m": ih,
+        "reading_cu": counter,
     })
     common.write_table(raw / SURVEY_FILE, survey)
     common.write_table(raw / CAL_FILE, cal)
@@ -511,14 +511,14 @@ def _survey_toml(base_g: dict, tare_iso: str) -> str:
 {common.survey_tables("ground gravity", "gravity", SURVEY_FILE)}
 
 [input.columns]
-station = "STN"
-loop = "LOOP"
-time = "TIME_UTC"
-longitude = "LONG"
-latitude = "LAT"
-height = "H_ELL"
-instrument_height = "HI"
-reading = "RDG"
+station = "station"
+loop = "loop"
+time = "time_utc"
+longitude = "longitude"
+latitude = "latitude"
+height = "height_m"
+instrument_height = "instrument_height_m"
+reading = "reading_cu"
 
 [input.units]
 reading = "cu"
@@ -568,8 +568,9 @@ seed gives the same files.
 ## What is in it
 
 - `raw/{SURVEY_FILE}`: {n_occ} readings at {n_st} stations and two bases (BASE-A, BASE-B) in
-  loops over {n_days} days. Columns: STN, LOOP, TIME_UTC (ISO 8601), LONG, LAT, H_ELL (m above the
-  ellipsoid, with a few cm of error), HI (instrument height, m), RDG (counter units).
+  loops over {n_days} days. Columns: station, loop, time_utc (ISO 8601), longitude, latitude, height_m
+  (m above the ellipsoid, with a few cm of error), instrument_height_m, reading_cu (counter
+  units).
 - `raw/{CAL_FILE}`: the meter's interval table (counter, mgal, factor).
 - `raw/{DEM_FILE}`: a 250 m DEM (NetCDF-CF, UTM 55S, heights above the ellipsoid) covering the
   survey plus 21 km.

@@ -427,15 +427,16 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     line_names = names[line_idx]
     fid = (np.round(seconds * RATE_HZ).astype(np.int64) % 10_000_000)
     survey = pd.DataFrame({
-        "LINE": line_names,
-        "FID": fid,
-        "UTC": common.iso_times(times, "ms"),
-        "LON": lon,
-        "LAT": lat,
-        "HEIGHT_WGS84": height,
-        "TMI": tmi,
+        "line": line_names,
+        "fiducial": fid,
+        "time_utc": common.iso_times(times, "ms"),
+        "longitude": lon,
+        "latitude": lat,
+        "height_m": height,
+        "total_field_nT": tmi,
     })
-    common.write_table(raw / SURVEY_FILE, survey, {"LON": 7, "LAT": 7, "HEIGHT_WGS84": 2, "TMI": 3})
+    common.write_table(raw / SURVEY_FILE, survey, {"longitude": 7, "latitude": 7, "height_m": 2,
+                                                   "total_field_nT": 3})
 
     truth_table = pd.DataFrame({
         "source_file": SURVEY_FILE,
@@ -471,9 +472,9 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     base_value = np.round(base_main.total + base_crust + base_ext + base_noise, 2)
     day = base_times.astype("datetime64[D]")
     base = pd.DataFrame({
-        "DATE": np.datetime_as_string(day, unit="D"),
-        "SOD": np.round((base_times - day).astype("int64") / 1e9, 1),
-        "BASEMAG": base_value,
+        "date": np.datetime_as_string(day, unit="D"),
+        "seconds_of_day": np.round((base_times - day).astype("int64") / 1e9, 1),
+        "base_total_field_nT": base_value,
     })
     common.write_table(raw / BASE_FILE, base)
     base_truth = pd.DataFrame({
@@ -545,7 +546,7 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
             "noise": "sensor noise incl. rounding to 0.001 nT (nT)",
             "spike": "spike (nT, 0 where none)",
             "terrain_height": "ground height below the aircraft (m above the ellipsoid)",
-            "sum": "TMI = igrf_total + crustal_anomaly + external + level_error + noise + spike",
+            "sum": "total_field_nT = igrf_total + crustal_anomaly + external + level_error + noise + spike",
         },
     }
     common.write_params(truth / "parameters.json", params)
@@ -606,12 +607,12 @@ def _survey_toml(base_lon: float, base_lat: float, obs_files: list[str]) -> str:
 {common.survey_tables("airborne magnetic", "magnetic", SURVEY_FILE)}
 
 [input.columns]
-line = "LINE"
-time = "UTC"
-longitude = "LON"
-latitude = "LAT"
-height = "HEIGHT_WGS84"
-total_field = "TMI"
+line = "line"
+time = "time_utc"
+longitude = "longitude"
+latitude = "latitude"
+height = "height_m"
+total_field = "total_field_nT"
 
 [input.units]
 total_field = "nT"
@@ -639,9 +640,9 @@ latitude = {base_lat}
 delimiter = ","
 
 [diurnal.bases.columns]
-date = "DATE"
-time = "SOD"
-total_field = "BASEMAG"
+date = "date"
+time = "seconds_of_day"
+total_field = "base_total_field_nT"
 
 [diurnal.bases.units]
 total_field = "nT"
@@ -673,15 +674,16 @@ seed gives the same bytes.
 - `raw/{SURVEY_FILE}`: {n:,} total-field readings at 10 Hz on east-west traverse lines
   (200 m apart, 1010, 1020, ...) and north-south tie lines (2000 m apart, 9010, 9020, ...) over a
   {side / 1000:.1f} km square, flown in alternating directions at about 70 m/s, {flights}
-  flight(s), draped 80 m over a synthetic terrain. Columns: LINE, FID, UTC (ISO 8601), LON,
-  LAT (WGS 84), HEIGHT_WGS84 (m above the ellipsoid), TMI (nT).
-- `raw/{BASE_FILE}`: the base-station record at the airstrip, 1 s (DATE, SOD = seconds of
-  day, BASEMAG nT).
+  flight(s), draped 80 m over a synthetic terrain. Columns: line, fiducial,
+  time_utc (ISO 8601), longitude, latitude (WGS 84), height_m (m above the ellipsoid),
+  total_field_nT.
+- `raw/{BASE_FILE}`: the base-station record at the airstrip, 1 s (date, seconds_of_day,
+  base_total_field_nT).
 - `raw/{OBSERVATORY_CODE.lower()}*vmin.min`: a distant fictional observatory, IAGA-2002, 1-minute XYZF
   (an alternative remote reference; not used by the default configuration).
 - `truth/readings_truth.csv`: per reading (keyed by source_file, source_row = line in the file)
   the true crustal anomaly, IGRF total, external (diurnal) variation, level error, noise and
-  spike; TMI is their sum.
+  spike; total_field_nT is their sum.
 - `truth/base_truth.csv`, `truth/parameters.json` (bodies, terrain, events, per-line level
   errors), `truth/crustal_anomaly.nc` (true crustal anomaly at the median flight height).
 

@@ -10,26 +10,18 @@ from pathlib import Path
 
 import pandas as pd
 
-from .atomic import atomic_path, write_parquet
+from .atomic import write_parquet
 
 #: Text columns stored dictionary-encoded in the cache (fast to write), restored as object.
 CACHE_TEXT = ("line", "line_type", "source_file", "station", "loop")
 
 
-def write_table_csv(path: Path, table: pd.DataFrame) -> Path:
-    """The residual table as CSV: pyarrow's writer (fast), ISO 8601 UTC times."""
-    import pyarrow as pa
-    import pyarrow.compute as pc
-    import pyarrow.csv as pacsv
+def write_table_csv(path: Path, table: pd.DataFrame, kind: str = "magnetic") -> Path:
+    """The residual table as CSV (:func:`potfield.io.columns.write_table`: ISO 8601 UTC times,
+    lower-case booleans, floats rounded to the precision of their unit)."""
+    from .columns import write_table
 
-    arrow = pa.Table.from_pandas(table, preserve_index=False)
-    if "time" in arrow.column_names:
-        index = arrow.column_names.index("time")
-        text = pc.strftime(arrow.column(index), format="%Y-%m-%dT%H:%M:%SZ")
-        arrow = arrow.set_column(index, "time", text)
-    with atomic_path(path) as tmp:
-        pacsv.write_csv(arrow, tmp)
-    return path
+    return write_table(path, table, kind)
 
 
 def write_cache_table(path: Path, table: pd.DataFrame) -> Path:

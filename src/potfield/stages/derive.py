@@ -22,6 +22,24 @@ from .gridmodel import grid_height, load_grid_model
 #: How masked cells were filled (potfield.fields.harmonic.transforms.fill_masked "fill" attribute).
 FILL_TEXT = {"none": "none", "smooth fill": "smooth fill", "filler": "equivalent-source prediction",
              "filler + smooth fill": "equivalent-source prediction + smooth fill"}
+#: [derive] products (potfield.config.DERIVE_PRODUCTS) -> the short codes used below.
+PRODUCT_CODES = {"reduced_to_pole": "rtp", "vertical_derivative": "dz1",
+                 "second_vertical_derivative": "dz2", "x_derivative": "dx", "y_derivative": "dy",
+                 "total_horizontal_gradient": "thg", "analytic_signal": "tga",
+                 "tilt_angle": "tilt", "upward_continuation": "upward"}
+
+
+PRODUCT_NAMES = {v: k for k, v in PRODUCT_CODES.items()}
+
+
+def grid_suffix(code: str, upward_m: float) -> str:
+    """Descriptive grid-name suffix of a product code (e.g. "upward" -> "upward_500m")."""
+    names = {v: k for k, v in PRODUCT_CODES.items()}
+    if code == "upward":
+        return f"upward_{upward_m:g}m"
+    if code == "upward_model":
+        return f"upward_{upward_m:g}m_by_model"
+    return names[code]
 
 
 def _main_grid(ctx: StageContext):
@@ -51,8 +69,8 @@ def run(ctx: StageContext) -> StageOutput:
     Returns
     -------
     StageOutput
-        One grid per product named ``<main grid>_<product>`` (plus ``_upward_model`` when the
-        model continued the field), masked like the input; metrics and state say which RTP
+        One grid per product named ``<main grid>_<product>`` (``_upward_<distance>m``, plus
+        ``_upward_<distance>m_by_model`` when the model continued the field), masked like the input; metrics and state say which RTP
         filter was used.
 
     References
@@ -65,7 +83,7 @@ def run(ctx: StageContext) -> StageOutput:
     out = StageOutput()
     name, grid = _main_grid(ctx)
     grid = grid.transpose("northing", "easting")
-    products = list(dict.fromkeys(cfg.products))
+    products = [PRODUCT_CODES.get(p, p) for p in dict.fromkeys(cfg.products)]
     common = dict(pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
 
     model = load_grid_model(
@@ -96,12 +114,12 @@ def run(ctx: StageContext) -> StageOutput:
     made: dict[str, str] = {}
 
     def add(product: str, result) -> None:
-        key = f"{name}_{product}"
+        key = f"{name}_{grid_suffix(product, cfg.upward_m)}"
         result = result.copy(data=np.where(valid, result.values, np.nan)).rename(key)
         if masked:
             result.attrs["history"] += f"; masked cells filled ({fill_text}) and masked again"
         out.grids[key] = result
-        made[product] = key
+        made[PRODUCT_NAMES.get(product, product)] = key
 
     if "rtp" in products:
         if ctx.config.kind != "magnetic":

@@ -18,8 +18,13 @@ import pandas as pd
 from ..errors import ConfigError, StageError
 from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
-from .base import ANOMALY_COLUMN, Contract, Stage, StageContext, StageOutput, usable, value_column
+from .base import ANOMALY_COLUMN, Check, Contract, Stage, StageContext, StageOutput, usable, value_column
 from .microlevel import micro_level_table
+
+#: [grid] source_layer -> the depth_type of potfield.fields.harmonic.eqsources.
+EQS_DEPTH_TYPE = {"follow_drape": "relative", "flat": "constant"}
+#: Cross-validation table columns under potfield's own names (grid_cv.csv).
+CV_COLUMNS = {"r2": "heldout_score", "r2_se": "heldout_score_se"}
 
 #: Fewest block-reduced data for a blocked cross-validation; fewer use the middle of the search.
 MIN_CV_DATA = 40
@@ -146,7 +151,7 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 def _fit_options(cfg, height, depth):
     """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
     constant height, the layer's ceiling (:func:`potfield.fields.harmonic.eqsources.layer_ceiling`)."""
-    return {"depth_type": cfg.depth_type, "tol": float(cfg.tolerance),
+    return {"depth_type": EQS_DEPTH_TYPE[cfg.source_layer], "tol": float(cfg.tolerance),
             "ceiling": eqs.layer_ceiling(height, depth)}
 
 
@@ -154,7 +159,7 @@ def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
     """Block-reduce (block medians), cross-validate depth and damping, fit on all blocks."""
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height)
-    progress(f"grid: fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
+    progress(f"fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
     model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
                                        damping=best["damping"], block_size=block,
                                        method=cfg.method,
@@ -187,20 +192,20 @@ CV_TOL = 1e-4
 def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
     """Depth and damping by blocked CV (on a central window of large surveys), each depth
     scored with the ceiling its final fit gets under a grid at constant ``height``."""
-    depths = [float(f) * block for f in cfg.depth_factors]
-    dampings = [float(x) for x in cfg.dampings]
+    depths = [float(f) * block for f in cfg.trial_depths]
+    dampings = [float(x) for x in cfg.trial_dampings]
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
     if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
         cv_spacing = _cv_spacing(block, depths, line_spacing, extent)
-        progress(f"grid: cross-validating {len(depths)} depths x {len(dampings)} dampings "
+        progress(f"cross-validating {len(depths)} depths x {len(dampings)} dampings "
                  f"on {bd.size} blocks")
         ce, cn, ch, cd = _cv_window(be, bn, bh, bd)
         if cd.size < bd.size:
-            progress(f"grid: cross-validating on a central window of {cd.size} of {bd.size} blocks")
+            progress(f"cross-validating on a central window of {cd.size} of {bd.size} blocks")
         scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
                                           block_size=block, method=cfg.method,
                                           folds=cfg.cv_folds, cv_spacing=cv_spacing,
-                                          tol=CV_TOL, depth_type=cfg.depth_type,
+                                          tol=CV_TOL, depth_type=EQS_DEPTH_TYPE[cfg.source_layer],
                                           grid_height=height)
     else:
         scores = pd.DataFrame(columns=["depth", "damping", "r2", "r2_se", "rms", "chosen"])
@@ -245,7 +250,7 @@ def run(ctx: StageContext) -> StageOutput:
     block = float(cfg.block_m) if cfg.block_m > 0 else spacing
     e, n, h, d = e_all[ok], n_all[ok], h_all[ok], values[ok]
     height, height_why = _grid_height(ctx, h)
-    if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.depth_factors) * block:
+    if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.trial_depths) * block:
         raise ConfigError(f"grid height {height} m is below the equivalent sources",
                           key="grid.height", fix="grid at or above the readings' heights")
     mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
@@ -253,8 +258,8 @@ def run(ctx: StageContext) -> StageOutput:
     gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
     name = ANOMALY_COLUMN["gravity" if gravity else "magnetic"]  # the main grid
     units = "mGal" if gravity else "nT"
-    long_name = "Bouguer anomaly" if column == "bouguer_anomaly" else (
-        "gravity anomaly" if gravity else "total-field magnetic anomaly")
+    # the grid is named bouguer_anomaly for gravity, so its title names that quantity
+    long_name = "Bouguer anomaly" if gravity else "total-field magnetic anomaly"
     region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
 
     if cfg.tiled:
@@ -264,7 +269,7 @@ def run(ctx: StageContext) -> StageOutput:
     out = StageOutput()
     model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress,
                                          height)
-    history = (f"equivalent sources ({model.method}, {cfg.depth_type} depth) of '{column}': "
+    history = (f"equivalent sources ({model.method}, source layer {cfg.source_layer}) of '{column}': "
                f"depth {best['depth']:.1f} m, damping {best['damping']:g}, blocks {block:g} m")
     grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name,
                  history)
@@ -306,13 +311,13 @@ def run(ctx: StageContext) -> StageOutput:
 
     out.table = result
     out.grids[name] = grid
-    out.tables["grid_cv"] = scores
+    out.tables["grid_cv"] = scores.rename(columns=CV_COLUMNS)
     out.state = {
         "column": column,
         "value_column": column,
         "grid": name,
         "method": model.method,
-        "depth_type": cfg.depth_type,
+        "source_layer": cfg.source_layer,
         "depth": float(best["depth"]),
         "damping": float(best["damping"]),
         "block_m": block,
@@ -332,18 +337,29 @@ def run(ctx: StageContext) -> StageOutput:
         "grid_spacing_m": spacing,
         "grid_depth_m": float(best["depth"]),
         "grid_damping": float(best["damping"]),
-        "grid_cv_r2": float(best["r2"]),
+        "grid_heldout_score": float(best["r2"]),
         "grid_cv_rms": float(best["rms"]),
         "grid_residual_rms": resid_rms,
         **flagged_rms,
     }
     if model.info.get("iterations") is not None:
         out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
+    _residual_check(ctx, out, resid_rms, units)
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
-                     f"({height_why}), {model.method} equivalent sources, CV R2 "
-                     f"{best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
+                     f"({height_why}), {model.method} equivalent sources, held-out "
+                     f"score {best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
     return out
+
+
+def _residual_check(ctx: StageContext, out: StageOutput, rms: float, units: str) -> None:
+    """Spec check of the grid residual RMS (reading minus model at every usable reading), when
+    the profile sets ``grid_residual_rms_<units>``."""
+    key = f"grid_residual_rms_{units}"
+    if key in ctx.spec:
+        tol, source = ctx.tolerance(key, 1.0)
+        out.checks.append(Check.at_most("grid residual RMS", rms, tol, units, source,
+                                        detail="reading minus the gridding model at each usable reading"))
 
 
 #: Target number of blocks per tile when [grid] tile_size_m is 0 (a window this size fits in
@@ -371,7 +387,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
     tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
         20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
-    ctx.progress(f"grid: tiled fit, tiles of {tile:.0f} m")
+    ctx.progress(f"tiled fit, tiles of {tile:.0f} m")
     # the same nodes as the whole-survey grid (verde adjust="region")
     ge, gn = vd.grid_coordinates(region, spacing=spacing, adjust="region")
     nodes = (float(ge.min()), float(ge.max()), float(gn.min()), float(gn.max()))
@@ -393,7 +409,7 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
     flagged_rms = _flagged_rms(table, out.table["grid_residual"].to_numpy(float))
     out.grids[name] = grid
-    out.tables["grid_cv"] = scores
+    out.tables["grid_cv"] = scores.rename(columns=CV_COLUMNS)
     out.tables["grid_tiles"] = result.tiles
     out.state = {"column": column, "value_column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
                  "damping": float(best["damping"]), "block_m": block, "spacing_m": spacing,
@@ -404,8 +420,9 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
                    "grid_tile_size_m": float(tile), "grid_cells": int(grid.size),
                    "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
                    "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
-                   "grid_cv_r2": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
+                   "grid_heldout_score": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
                    "grid_residual_rms": resid_rms, **flagged_rms}
+    _residual_check(ctx, out, resid_rms, units)
     out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
                      f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
                      f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}")

@@ -1,0 +1,290 @@
+"""One registry of the columns potfield writes, and the table writer that uses it.
+
+Every table in ``out/tables`` is written by :func:`write_table`:
+
+- times as ISO 8601 UTC with milliseconds, ``2025-03-03T22:28:40.000Z`` (ISO 8601-1:2019, the
+  extended format with the ``Z`` designator), the same in every table;
+- booleans lower case (``true``/``false``), missing values as empty fields;
+- floats rounded to the precision of the quantity (:data:`DECIMALS`: nT to 3 decimals, mGal to 4,
+  metres to 2, degrees to 7 (about 1 cm), ...), unknown columns to 10 significant digits.
+
+:func:`write_data_dictionary` writes ``out/tables/columns.csv`` (table, name, unit, meaning,
+stage) for every column of every table, from :data:`COLUMNS`. A column missing from the
+registry is listed with the meaning "not described yet" (a test keeps the demos complete).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .atomic import atomic_path
+
+#: Decimals kept per unit (instrument precision; common practice). "field" = nT or mGal by kind.
+DECIMALS = {"nT": 3, "mGal": 4, "m": 2, "degrees": 7, "s": 3, "h": 4, "mGal/h": 4, "nT/m": 6,
+            "mGal/m": 6, "nT/s": 4, "cu": 3, "1": 6, "count": 0, "kg/m^3": 1, "km": 4}
+
+#: Columns measured more finely than their unit's default (instrument heights to the mm).
+DECIMALS_BY_NAME = {"height": 3, "instrument_height": 3, "elevation": 3}
+
+#: Time format of every table (ISO 8601 UTC, milliseconds).
+TIME_FORMAT = "%Y-%m-%dT%H:%M:%S.%LZ"
+TIME_FORMAT_PANDAS = "%Y-%m-%dT%H:%M:%S.%fZ"  # trimmed to milliseconds by format_times
+
+# name -> (unit, meaning, stage). Unit "field" means nT (magnetic) or mGal (gravity).
+COLUMNS: dict[str, tuple[str, str, str]] = {
+    # ingest
+    "time": ("UTC", "time of the reading, ISO 8601 UTC", "ingest"),
+    "longitude": ("degrees", "longitude east, WGS84", "ingest"),
+    "latitude": ("degrees", "latitude north, WGS84", "ingest"),
+    "height": ("m", "sensor (or station mark) height above the WGS84 ellipsoid", "ingest"),
+    "elevation": ("m", "station elevation from the input file", "ingest"),
+    "easting": ("m", "easting in the output CRS", "ingest"),
+    "northing": ("m", "northing in the output CRS", "ingest"),
+    "line": ("", "line (or station network) name", "ingest"),
+    "line_type": ("", "traverse or tie", "ingest"),
+    "distance": ("m", "distance along the line from its first reading", "ingest"),
+    "station": ("", "station name", "ingest"),
+    "loop": ("", "gravity loop name", "ingest"),
+    "instrument_height": ("m", "gravimeter sensor height above the station mark", "ingest"),
+    "reading": ("cu", "gravimeter reading as recorded (counter units or mGal)", "ingest"),
+    "total_field": ("nT", "measured total magnetic field", "ingest"),
+    "mag_north": ("nT", "measured northward field component X", "ingest"),
+    "mag_east": ("nT", "measured eastward field component Y", "ingest"),
+    "mag_down": ("nT", "measured downward field component Z", "ingest"),
+    "source_file": ("", "raw file the reading came from", "ingest"),
+    "source_row": ("count", "line number in the raw file (header = line 1)", "ingest"),
+    # clean
+    "fourth_difference": ("field", "fourth difference T[i-2]-4T[i-1]+6T[i]-4T[i+1]+T[i+2] along the line", "clean"),
+    # diurnal
+    "diurnal": ("nT", "diurnal variation removed (base record minus its datum)", "diurnal"),
+    "total_field_diurnal": ("nT", "total field after the diurnal correction", "diurnal"),
+    "diurnal_mean": ("nT", "mean diurnal correction on the line", "diurnal"),
+    "diurnal_min": ("nT", "smallest diurnal correction on the line", "diurnal"),
+    "diurnal_max": ("nT", "largest diurnal correction on the line", "diurnal"),
+    "base": ("", "base station name", "diurnal"),
+    "total_field_min": ("nT", "smallest base reading in the interval", "diurnal"),
+    "total_field_max": ("nT", "largest base reading in the interval", "diurnal"),
+    "samples": ("count", "base readings in the interval", "diurnal"),
+    "spikes": ("count", "base spikes removed", "diurnal"),
+    "missing": ("count", "missing base readings", "diurnal"),
+    # drift
+    "reading_mgal": ("mGal", "reading converted to mGal with the calibration table", "drift"),
+    "instrument_height_correction": ("mGal", "instrument height times the free-air gradient, added", "drift"),
+    "tide": ("mGal", "Earth-tide correction (Longman 1959), added", "drift"),
+    "drift": ("mGal", "instrument drift, subtracted", "drift"),
+    "loop_offset": ("mGal", "loop offset from the network adjustment, subtracted", "drift"),
+    "gravity": ("mGal", "observed (absolute) gravity", "drift"),
+    "drift_residual": ("mGal", "residual of the reading in the drift / network adjustment", "drift"),
+    "offset_mgal": ("mGal", "loop offset", "drift"),
+    "offset_sigma_mgal": ("mGal", "standard deviation of the loop offset", "drift"),
+    "drift_rate_mgal_per_h": ("mGal/h", "drift rate of the loop", "drift"),
+    "drift_rate_sigma_mgal_per_h": ("mGal/h", "standard deviation of the drift rate", "drift"),
+    "drift_estimated": ("", "true when the loop's drift was estimated", "drift"),
+    "closure_mgal": ("mGal", "loop misclosure at the base before the adjustment", "drift"),
+    "residual_closure_mgal": ("mGal", "loop misclosure after the adjustment", "drift"),
+    "hours": ("h", "duration", "drift"),
+    "occupations": ("count", "readings at the station", "drift"),
+    "loops": ("count", "loops that visited the station", "drift"),
+    "range_mgal": ("mGal", "range of the repeat readings", "drift"),
+    "std_mgal": ("mGal", "standard deviation of the repeat readings", "drift"),
+    "sigma_mgal": ("mGal", "standard deviation", "drift"),
+    "step_mgal": ("mGal", "tare step", "drift"),
+    "estimated": ("", "true when estimated by the adjustment", "drift"),
+    # reference
+    "normal_gravity": ("mGal", "normal gravity at the station (closed form at height)", "reference"),
+    "atmospheric": ("mGal", "atmospheric correction (Hinze et al. 2005), added", "reference"),
+    "disturbance": ("mGal", "gravity disturbance: observed minus normal gravity at the station", "reference"),
+    "free_air_anomaly": ("mGal", "free-air anomaly", "reference"),
+    "bouguer": ("mGal", "Bouguer correction (slab or spherical cap), subtracted", "reference"),
+    "terrain": ("mGal", "terrain correction, added", "reference"),
+    "bouguer_anomaly": ("mGal", "complete Bouguer anomaly", "reference"),
+    "igrf": ("nT", "IGRF-14 total field at the reading", "reference"),
+    "igrf_north": ("nT", "IGRF-14 northward component", "reference"),
+    "igrf_east": ("nT", "IGRF-14 eastward component", "reference"),
+    "igrf_down": ("nT", "IGRF-14 downward component", "reference"),
+    "igrf_inclination": ("degrees", "IGRF-14 inclination", "reference"),
+    "igrf_declination": ("degrees", "IGRF-14 declination", "reference"),
+    "anomaly": ("nT", "total-field anomaly: corrected field minus IGRF", "reference"),
+    "disturbance_north": ("nT", "north component minus IGRF", "reference"),
+    "disturbance_east": ("nT", "east component minus IGRF", "reference"),
+    "disturbance_down": ("nT", "down component minus IGRF", "reference"),
+    "disturbance_total": ("nT", "total field minus IGRF", "reference"),
+    # level
+    "level_correction": ("field", "levelling correction, added", "level"),
+    "anomaly_levelled": ("field", "anomaly after levelling", "level"),
+    "kind": ("", "crossover kind", "level"),
+    "tie": ("", "tie line at the crossover", "level"),
+    "time_line": ("UTC", "time on the traverse line at the crossover", "level"),
+    "time_tie": ("UTC", "time on the tie line at the crossover", "level"),
+    "value_line": ("field", "value on the traverse line at the crossover", "level"),
+    "value_tie": ("field", "value on the tie line at the crossover", "level"),
+    "difference": ("field", "crossover difference, line minus tie, before levelling", "level"),
+    "difference_levelled": ("field", "crossover difference after levelling", "level"),
+    "height_line": ("m", "height on the traverse line at the crossover", "level"),
+    "height_tie": ("m", "height on the tie line at the crossover", "level"),
+    "height_difference": ("m", "height difference at the crossover", "level"),
+    "index_line": ("count", "reading index on the traverse line", "level"),
+    "index_tie": ("count", "reading index on the tie line", "level"),
+    "fraction_line": ("1", "position between two readings on the traverse line", "level"),
+    "fraction_tie": ("1", "position between two readings on the tie line", "level"),
+    "flagged": ("", "true when the crossover was left out", "level"),
+    "correction_line": ("field", "correction of the traverse line at the crossover", "level"),
+    "correction_tie": ("field", "correction of the tie line at the crossover", "level"),
+    "used": ("", "true when the crossover was used in the adjustment", "level"),
+    "weight": ("1", "robust weight of the crossover", "level"),
+    "type": ("", "traverse or tie", "level"),
+    "crossovers": ("count", "crossovers on the line", "level"),
+    "correction_mean": ("field", "mean correction of the line", "level"),
+    "correction_min": ("field", "smallest correction of the line", "level"),
+    "correction_max": ("field", "largest correction of the line", "level"),
+    "crossover_rms_before": ("field", "RMS crossover difference before levelling", "level"),
+    "crossover_rms_after": ("field", "RMS crossover difference after levelling", "level"),
+    "warning": ("", "warning about the line", "level"),
+    # grid
+    "grid_residual": ("field", "reading minus the gridding model at the reading", "grid"),
+    "depth": ("m", "trial source depth", "grid"),
+    "damping": ("1", "trial damping (dimensionless)", "grid"),
+    "heldout_score": ("1", "coefficient of determination on held-out blocks", "grid"),
+    "heldout_score_se": ("1", "standard error of the held-out score", "grid"),
+    "rms": ("field", "RMS of the held-out residuals", "grid"),
+    "chosen": ("", "true for the depth and damping used", "grid"),
+    # separate
+    "regional": ("field", "regional field at the reading", "separate"),
+    "residual": ("field", "residual field at the reading (value minus regional)", "separate"),
+    # tables of several stages
+    "readings": ("count", "readings", "clean"),
+    "start": ("UTC", "first reading", "clean"),
+    "end": ("UTC", "last reading", "clean"),
+    # checks.csv
+    "check": ("", "spec check", "report"),
+    "value": ("", "measured value (unit in the unit column)", "report"),
+    "tolerance": ("", "tolerance from the spec profile (unit in the unit column)", "report"),
+    "sense": ("", "how value and tolerance compare for a pass", "report"),
+    "unit": ("", "unit of value and tolerance", "report"),
+    "result": ("", "pass or fail", "report"),
+    "source": ("", "where the tolerance comes from", "report"),
+    "detail": ("", "details of the check", "report"),
+    "stage": ("", "stage that made the check", "report"),
+    "name": ("", "name", "report"),
+    "table": ("", "table the column belongs to", "report"),
+    "meaning": ("", "what the column holds", "report"),
+}
+
+#: Patterns for families of columns: (regular expression, unit, meaning template, stage).
+PATTERNS: tuple[tuple[str, str, str, str], ...] = (
+    (r"^flag_(.+)$", "", "true when the reading is flagged: {0}", "clean"),
+    (r"^flagged_(.+)$", "count", "readings flagged: {0}", "clean"),
+    (r"^fourth_difference_(max|p95|rms)_?(.*)$", "field", "fourth difference {0} {1}", "clean"),
+    (r"^fourth_difference_(.+)$", "nT", "fourth difference of {0}", "clean"),
+    (r"^sep_(internal|external|residual)_(.+)$", "nT", "{0} part of the {1} disturbance", "separate"),
+    (r"^(mean|rms)_(?:disturbance_)?(.+)$", "nT", "{0} of the {1} residual or disturbance", "separate"),
+    (r"^epochs_(.+)$", "count", "epochs used for {0}", "separate"),
+    (r"^[gh]\d+$|^[qs]\d+$", "nT", "Gauss coefficient (Schmidt semi-normalised)", "separate"),
+    (r"^(.+)_mgal$", "mGal", "{0}", ""),
+    (r"^(.+)_m$", "m", "{0}", ""),
+    (r"^(.+)_deg$", "degrees", "{0}", ""),
+    (r"^(.+)_s$", "s", "{0}", ""),
+)
+
+#: Tables whose columns carry the units of the "unit" column (no rounding by name).
+_FREE_UNITS = {"value", "tolerance"}
+
+
+def describe(name: str, kind: str = "magnetic") -> tuple[str, str, str]:
+    """(unit, meaning, stage) of a column; unit "field" resolved to nT or mGal by survey kind."""
+    field = "mGal" if kind == "gravity" else "nT"
+    if name in COLUMNS:
+        unit, meaning, stage = COLUMNS[name]
+    else:
+        for pattern, unit, meaning, stage in PATTERNS:
+            match = re.match(pattern, name)
+            if match:
+                words = [g.replace("_", " ") for g in match.groups() if g is not None]
+                meaning = meaning.format(*words, *([""] * 3)).strip()
+                break
+        else:
+            return "", "not described yet", ""
+    return (field if unit == "field" else unit), meaning, stage
+
+
+def decimals_for(name: str, kind: str = "magnetic") -> int | None:
+    """Decimals kept for a float column, None = 10 significant digits."""
+    if name in _FREE_UNITS:
+        return None
+    if name in DECIMALS_BY_NAME:
+        return DECIMALS_BY_NAME[name]
+    unit, meaning, _ = describe(name, kind)
+    if meaning == "not described yet":
+        return None
+    return DECIMALS.get(unit)
+
+
+def _significant(values: np.ndarray, digits: int = 10) -> np.ndarray:
+    finite = np.abs(values[np.isfinite(values)])
+    if finite.size == 0 or not finite.max():
+        return values
+    decimals = max(0, digits - 1 - int(math.floor(math.log10(float(finite.max())))))
+    return np.round(values, decimals)
+
+
+def format_table(frame: pd.DataFrame, kind: str = "magnetic") -> pd.DataFrame:
+    """A copy ready to write: rounded floats, ISO 8601 UTC millisecond times (text)."""
+    out = {}
+    for name in frame.columns:
+        column = frame[name]
+        if pd.api.types.is_datetime64_any_dtype(column):
+            if getattr(column.dt, "tz", None) is not None:
+                column = column.dt.tz_convert("UTC").dt.tz_localize(None)
+            text = column.dt.strftime(TIME_FORMAT_PANDAS)
+            out[name] = text.str.slice(0, 23) + "Z"
+            out[name] = out[name].where(column.notna(), None)
+        elif pd.api.types.is_float_dtype(column):
+            values = column.to_numpy(dtype=float)
+            places = decimals_for(str(name), kind)
+            rounded = np.round(values, places) if places is not None else _significant(values)
+            out[name] = rounded + 0.0  # no "-0"
+        else:
+            out[name] = column
+    return pd.DataFrame(out, index=frame.index)
+
+
+def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic") -> Path:
+    """Write a table as CSV with pyarrow (fast; booleans lower case), atomically."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    formatted = format_table(frame, kind)
+    try:
+        arrow = pa.Table.from_pandas(formatted, preserve_index=False)
+    except (pa.ArrowInvalid, pa.ArrowTypeError):  # mixed object columns: as text
+        mixed = formatted.copy()
+        for name in mixed.columns:
+            if mixed[name].dtype == object:
+                mixed[name] = mixed[name].map(lambda v: None if v is None or pd.isna(v) else
+                                              (str(v).lower() if isinstance(v, bool) else str(v)))
+        arrow = pa.Table.from_pandas(mixed, preserve_index=False)
+    with atomic_path(path) as tmp:
+        pacsv.write_csv(arrow, tmp, pacsv.WriteOptions(quoting_style="needed"))
+    return Path(path)
+
+
+def write_data_dictionary(tables: Path, kind: str = "magnetic") -> Path:
+    """``columns.csv``: table, name, unit, meaning, stage of every column of every CSV table."""
+    rows = []
+    for path in sorted(Path(tables).glob("*.csv")):
+        if path.name == "columns.csv":
+            continue
+        with open(path, encoding="utf-8") as handle:
+            header = handle.readline().strip()
+        for name in header.split(","):
+            name = name.strip().strip('"')
+            unit, meaning, stage = describe(name, kind)
+            rows.append({"table": path.stem, "name": name, "unit": unit, "meaning": meaning,
+                         "stage": stage})
+    frame = pd.DataFrame(rows, columns=["table", "name", "unit", "meaning", "stage"])
+    return write_table(Path(tables) / "columns.csv", frame, kind)
