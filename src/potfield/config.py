@@ -591,7 +591,7 @@ class DeriveSection(Section):
     def _old_products(cls, value):
         if not isinstance(value, list):
             return value
-        old = [v for v in value if v in PRODUCT_ALIASES]
+        old = [v for v in value if isinstance(v, str) and v in PRODUCT_ALIASES]
         if old:
             warn_renamed("derive.products", ", ".join(old),
                          ", ".join(PRODUCT_ALIASES[v] for v in old))
@@ -602,6 +602,10 @@ class DeriveSection(Section):
     def _known_products(cls, value: list[str]) -> list[str]:
         for name in value:
             if name not in DERIVE_PRODUCTS:
+                close = difflib.get_close_matches(name, list(PRODUCT_ALIASES), n=1, cutoff=0.6)
+                if close:  # a typo of an old short name: suggest the new name it stands for
+                    raise ValueError(f"unknown derive product '{name}'; did you mean "
+                                     f"'{PRODUCT_ALIASES[close[0]]}'?")
                 raise ValueError(_unknown(name, DERIVE_PRODUCTS, "derive product"))
         return value
 

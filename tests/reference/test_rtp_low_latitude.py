@@ -55,7 +55,7 @@ def relative_rms(result, truth):
 def run_derive(tmp_path, values, inc, dec, derive=None):
     grid = make_grid(E, N, values, name="anomaly", units="nT", long_name="total-field anomaly")
     config = parse_config({"survey": {"name": "t", "kind": "magnetic"},
-                           "derive": {"products": ["rtp"], **(derive or {})}})
+                           "derive": {"products": ["reduced_to_pole"], **(derive or {})}})
     ctx = StageContext(config=config, survey=Survey(tmp_path), table=None,
                        state={"reference": {"inclination": inc, "declination": dec}},
                        grids={"anomaly": grid})
@@ -74,7 +74,7 @@ def test_auto_rtp_at_low_inclination_matches_the_pole_anomaly(tmp_path, low_lati
     values = data.copy()
     values[:8, :15] = np.nan  # a masked corner: left out of the fit, masked in the result
     out = run_derive(tmp_path, values, inc, dec)
-    rtp = out.grids["anomaly_rtp"].values
+    rtp = out.grids["anomaly_reduced_to_pole"].values
     assert out.metrics["rtp_method"] == "sources" == out.state["rtp_method"]
     assert np.array_equal(np.isnan(rtp), np.isnan(values))
     assert any("equivalent dipole layer" in n and "auto" in n for n in out.notes)
@@ -86,12 +86,12 @@ def test_auto_rtp_at_low_inclination_matches_the_pole_anomaly(tmp_path, low_lati
 
 def test_filters_are_worse_than_the_layer_at_low_inclination(tmp_path, low_latitude):
     inc, dec, data, pole = low_latitude
-    layer = relative_rms(run_derive(tmp_path, data, inc, dec).grids["anomaly_rtp"].values, pole)
+    layer = relative_rms(run_derive(tmp_path, data, inc, dec).grids["anomaly_reduced_to_pole"].values, pole)
     scores = {}
     for method in ("plain", "pseudo", "filter"):
         out = run_derive(tmp_path, data, inc, dec, {"rtp": method})
         assert out.metrics["rtp_method"] == method
-        scores[method] = relative_rms(out.grids["anomaly_rtp"].values, pole)
+        scores[method] = relative_rms(out.grids["anomaly_reduced_to_pole"].values, pole)
     # measured: plain 0.37, pseudo 0.36, filter 0.35 against 0.06 for the layer (harmonica
     # prism model at the pole); the filters lose the long wavelengths (plane removed, zero mean)
     assert all(score > 2 * layer for score in scores.values()), scores

@@ -15,8 +15,8 @@ from potfield.io.delimited import read_delimited
 
 def _set_line_names(root, text: str) -> None:
     path = root / "raw" / "lines.csv"
-    table = pd.read_csv(path, dtype={"LINE": str})
-    table.loc[table["LINE"] == table["LINE"].iloc[0], "LINE"] = text
+    table = pd.read_csv(path, dtype={"line": str})
+    table.loc[table["line"] == table["line"].iloc[0], "line"] = text
     return table, path
 
 

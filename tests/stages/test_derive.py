@@ -91,9 +91,9 @@ def test_low_inclination_uses_the_layer_and_says_so(tmp_path):
     grid = make_grid(E, N, _mask(_tfa(12.0, 3.0)), name="anomaly", units="nT", long_name="tfa")
     ctx = _ctx(tmp_path, grids={"anomaly": grid},
                state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["rtp"]})
+               derive={"products": ["reduced_to_pole"]})
     out = STAGE.run(ctx)
-    rtp = out.grids["anomaly_rtp"]
+    rtp = out.grids["anomaly_reduced_to_pole"]
     assert out.metrics["rtp_method"] == "sources" == rtp.attrs["rtp_method"] == out.state["rtp_method"]
     assert out.metrics["rtp_layer_depth"] == 300.0  # 3 cells of 100 m (default)
     assert any("equivalent dipole layer" in n for n in out.notes)
@@ -108,9 +108,9 @@ def test_low_inclination_uses_the_layer_and_says_so(tmp_path):
 
     pseudo = STAGE.run(_ctx(tmp_path, grids={"anomaly": grid},
                             state={"reference": {"inclination": 12.0, "declination": 3.0}},
-                            derive={"products": ["rtp"], "rtp": "pseudo"}))
+                            derive={"products": ["reduced_to_pole"], "rtp": "pseudo"}))
     assert rel(rtp.values) <= 0.2
-    assert rel(rtp.values) < 0.5 * rel(pseudo.grids["anomaly_rtp"].values)
+    assert rel(rtp.values) < 0.5 * rel(pseudo.grids["anomaly_reduced_to_pole"].values)
 
 
 def test_low_inclination_pseudo_on_request(tmp_path):

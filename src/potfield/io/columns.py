@@ -128,6 +128,10 @@ COLUMNS: dict[str, tuple[str, str, str]] = {
     "height_line": ("m", "height on the traverse line at the crossover", "level"),
     "height_tie": ("m", "height on the tie line at the crossover", "level"),
     "height_difference": ("m", "height difference at the crossover", "level"),
+    "gradient_up": ("field/m", "upward vertical gradient of the levelled field at the crossover", "level"),
+    "height_effect": ("field", "gradient times height difference: the part of the misclosure due to height", "level"),
+    "difference_height_corrected": ("field", "crossover difference before levelling, height effect removed", "level"),
+    "difference_levelled_height_corrected": ("field", "crossover difference after levelling, height effect removed", "level"),
     "index_line": ("count", "reading index on the traverse line", "level"),
     "index_tie": ("count", "reading index on the tie line", "level"),
     "fraction_line": ("1", "position between two readings on the traverse line", "level"),
@@ -209,7 +213,7 @@ def describe(name: str, kind: str = "magnetic") -> tuple[str, str, str]:
                 break
         else:
             return "", "not described yet", ""
-    return (field if unit == "field" else unit), meaning, stage
+    return unit.replace("field", field) if unit.startswith("field") else unit, meaning, stage
 
 
 def decimals_for(name: str, kind: str = "magnetic") -> int | None:
