@@ -1,4 +1,5 @@
-"""Delimited-text readers (comma, semicolon, tab, whitespace; optionally gzip-compressed).
+"""Delimited-text readers (comma, semicolon, tab, whitespace; optionally compressed: .gz, .bz2,
+.xz, or a .zip holding one file).
 
 The reader maps the user's column names to canonical names, parses times, converts units and
 reports every problem as one line naming the file, the line number and the fix. Line numbers
@@ -7,7 +8,13 @@ count from 1 at the top of the file (the header line included), as a text editor
 
 from __future__ import annotations
 
+import bz2
 import gzip
+import io
+import lzma
+import re
+import zipfile
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -17,13 +24,124 @@ from ..config import COLUMN_QUANTITY, UNIT_FACTORS, TimeSection
 from ..errors import InputDataError, format_rows
 
 #: Columns that stay text.
-TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time"}
+TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time", "quality"}
+#: Pass-through columns ([input] keep_columns) are read as text under this prefix.
+KEEP_PREFIX = "raw_"
+#: Compressed files read transparently (by suffix).
+COMPRESSED_SUFFIXES = (".gz", ".bz2", ".xz", ".zip")
 
 
 def _open_text(path: Path):
-    if path.suffix == ".gz":
+    suffix = path.suffix.lower()
+    if suffix == ".gz":
         return gzip.open(path, "rt", encoding="utf-8", errors="replace")
+    if suffix == ".bz2":
+        return bz2.open(path, "rt", encoding="utf-8", errors="replace")
+    if suffix == ".xz":
+        return lzma.open(path, "rt", encoding="utf-8", errors="replace")
+    if suffix == ".zip":
+        try:
+            archive = zipfile.ZipFile(path)
+        except zipfile.BadZipFile:
+            raise InputDataError("not a readable zip archive", file=path,
+                                 fix="check the file, or unpack it into raw/") from None
+        members = [m for m in archive.namelist() if not m.endswith("/")]
+        if len(members) != 1:
+            raise InputDataError(f"zip archive holds {len(members)} files, not one", file=path,
+                                 fix="zip one data file per archive, or unpack it into raw/")
+        return io.TextIOWrapper(archive.open(members[0]), encoding="utf-8", errors="replace")
     return open(path, encoding="utf-8", errors="replace")
+
+
+def is_text_column(canon: str) -> bool:
+    """True for canonical columns read as text (and pass-through ``raw_*`` columns)."""
+    return canon in TEXT_COLUMNS or canon.startswith(KEEP_PREFIX)
+
+
+#: A line under the header made of dashes or equals signs only (an underline).
+_UNDERLINE = re.compile(r"^(?=.*[-=])[\s\-=_|+,;]+$")
+
+
+@dataclass
+class HeaderLayout:
+    """Where the header and the data of a delimited file are (see :func:`locate_header`)."""
+
+    text: str            #: the header line, comment character removed
+    line: int            #: its 1-based line number
+    skip: list[int]      #: 0-based line numbers pandas skips before the header
+    data_line: int       #: 1-based line number of the first data line
+    from_comment: bool   #: the header sits in the comment block: names are given to pandas
+    underline: int | None = None  #: 0-based line number of a dash underline, skipped
+
+
+def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
+                  wanted=()) -> HeaderLayout:
+    """Find the header line after ``skip_rows`` lines and a leading block of comment lines.
+
+    Lines starting with ``comment`` (e.g. ``/`` or ``#``) before the data are skipped; when the
+    first other line is data rather than the header (it holds none of the ``wanted`` column
+    names while the last comment line does), the last comment line is the header (``/ X Y MAG``).
+    A line of dashes under the header is skipped.
+    """
+    with _open_text(path) as handle:
+        lines = []
+        for _ in range(skip_rows + 400):  # the header is near the top
+            line = handle.readline()
+            if not line:
+                break
+            lines.append(line.rstrip("\r\n"))
+    index = skip_rows
+    block: list[int] = []
+    if comment:
+        while index < len(lines) and (lines[index].lstrip().startswith(comment) or not lines[index].strip()):
+            content = lines[index].lstrip()[len(comment):].strip()
+            if content and not _UNDERLINE.match(content):
+                block.append(index)  # a comment line with text (underlines are not headers)
+            index += 1
+    if index >= len(lines) and not block:
+        raise InputDataError("file is empty", file=path, fix="check that the right file is named")
+    first = lines[index] if index < len(lines) else ""
+    from_comment = False
+    if block:
+        candidate = lines[block[-1]].lstrip()[len(comment):].strip()
+        hits = lambda text: sum(_normal(w) in {_normal(t) for t in re.split(r"[\s,;\t]+", text)}  # noqa: E731
+                                for w in wanted)
+        if hits(candidate) > hits(first) or index >= len(lines):
+            from_comment = True
+    if from_comment:
+        header_index = block[-1]
+        text = lines[header_index].lstrip()[len(comment):].strip()
+        data = header_index + 1
+    else:
+        header_index, text, data = index, first, index + 1
+    while data < len(lines) and comment and (lines[data].lstrip().startswith(comment) or not lines[data].strip()):
+        data += 1  # comment (or blank) lines between a commented header and the data
+    underline = None
+    if data < len(lines) and lines[data].strip() and _UNDERLINE.match(lines[data]):
+        underline, data = data, data + 1
+    skip = [i for i in range(header_index) if not from_comment]
+    return HeaderLayout(text=text, line=header_index + 1, skip=skip, data_line=data + 1,
+                        from_comment=from_comment, underline=underline)
+
+
+def _normal(name: str) -> str:
+    """Column name folded for a tolerant match: case, spaces, dashes and underscores ignored."""
+    return re.sub(r"[\s\-_]+", "", str(name)).casefold()
+
+
+def match_columns(header: list[str], wanted) -> dict[str, str]:
+    """Each wanted name -> the header name it matches: exactly, else the one header name equal
+    to it ignoring case, spaces, dashes and underscores (``Mag-Total`` ~ ``mag_total``)."""
+    found = {}
+    folded: dict[str, list[str]] = {}
+    for h in header:
+        folded.setdefault(_normal(h), []).append(h)
+    for name in wanted:
+        if name in header:
+            found[name] = name
+        elif len(folded.get(_normal(name), [])) == 1:
+            found[name] = folded[_normal(name)][0]
+    return found
 
 
 def sniff_delimiter(path: Path, skip_rows: int = 0) -> str:
@@ -32,6 +150,10 @@ def sniff_delimiter(path: Path, skip_rows: int = 0) -> str:
         for _ in range(skip_rows):
             handle.readline()
         header = handle.readline()
+    return _sniff(header, path)
+
+
+def _sniff(header: str, path: Path) -> str:
     if not header.strip():
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     for candidate in (",", ";", "\t"):
@@ -41,7 +163,8 @@ def sniff_delimiter(path: Path, skip_rows: int = 0) -> str:
 
 
 def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "auto",
-                   skip_rows: int = 0, missing_values=(), required=()) -> pd.DataFrame:
+                   skip_rows: int = 0, missing_values=(), required=(), comment: str | None = None,
+                   decimal: str = ".") -> pd.DataFrame:
     """Read the mapped columns of one delimited file, renamed to canonical names.
 
     Parameters
@@ -53,6 +176,11 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         ``"auto"``, ``","``, ``";"``, ``"\\t"`` or ``"whitespace"``.
     required : iterable of str
         Canonical names that must be mapped and present.
+    comment : str, optional
+        Leading lines starting with it are skipped; the header may be the last of them
+        (:func:`locate_header`).
+    decimal : str
+        Decimal mark of the numbers (``","`` for decimal commas).
 
     Returns
     -------
@@ -70,31 +198,46 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
                 f"no input column is mapped to '{name}'", file=path, key=f"input.columns.{name}",
                 fix=f"add {name} = \"<your column>\" under [input.columns]",
             )
-    sep = sniff_delimiter(path, skip_rows) if delimiter == "auto" else delimiter
     wanted = list(dict.fromkeys(columns.values()))
-    kwargs = dict(skiprows=skip_rows, na_values=list(missing_values), keep_default_na=True,
-                  dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
-                         if canon in TEXT_COLUMNS})
+    layout = locate_header(path, skip_rows, comment, wanted)
+    plain = not layout.from_comment and layout.line == skip_rows + 1 and layout.underline is None
+    sep = _sniff(layout.text, path) if delimiter == "auto" else delimiter
+    skip = skip_rows if plain else layout.skip + ([layout.underline] if layout.underline is not None else [])
     try:
-        if sep == "whitespace":
-            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip_rows).columns
+        if layout.from_comment:
+            parts = layout.text.split() if sep == "whitespace" else layout.text.split(sep)
+            header = [p.strip().strip('"') for p in parts]
+        elif sep == "whitespace":
+            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip).columns
         else:
-            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip_rows).columns
+            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip).columns
     except pd.errors.EmptyDataError:
         raise InputDataError("file is empty", file=path, fix="check that the right file is named") from None
     header = [str(h).strip() for h in header]
-    missing = [c for c in wanted if c not in header]
+    found = match_columns(header, wanted)
+    missing = [c for c in wanted if c not in found]
     if missing:
         canon = [k for k, v in columns.items() if v == missing[0]][0]
         raise InputDataError(
             f"column '{missing[0]}' (mapped to {canon}) is not in the file; its columns are: "
-            f"{', '.join(header[:20])}", file=path, key=f"input.columns.{canon}",
+            f"{', '.join(header[:20])}", file=path,
+            key="input.keep_columns" if canon.startswith(KEEP_PREFIX) else f"input.columns.{canon}",
             fix="correct the column name under [input.columns]",
         )
+    columns = {canon: found[col] for canon, col in columns.items()}
+    wanted = list(dict.fromkeys(columns.values()))
+    kwargs = dict(skiprows=skip, na_values=list(missing_values), keep_default_na=True,
+                  dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
+                         if is_text_column(canon)})
+    if decimal != ".":
+        kwargs["decimal"] = decimal
+    if layout.from_comment:
+        kwargs.update(header=None, names=header, skiprows=layout.data_line - 1)
     try:
         if sep == "whitespace":
             frame = pd.read_csv(path, sep=r"\s+", usecols=lambda c: str(c).strip() in wanted, **kwargs)
-        elif len(sep) == 1 and not skip_rows and path.suffix != ".gz":
+        elif (len(sep) == 1 and not skip_rows and plain and decimal == "."
+              and path.suffix.lower() not in COMPRESSED_SUFFIXES):
             try:  # pyarrow's reader is several times faster on large files
                 frame = pd.read_csv(path, sep=sep, usecols=wanted, engine="pyarrow", **kwargs)
             except (ValueError, TypeError, KeyError):
@@ -112,7 +255,7 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     for canon, col in columns.items():
         out[canon] = frame[col].to_numpy()
     out["source_file"] = path.name
-    out["source_row"] = np.arange(len(frame), dtype=np.int64) + skip_rows + 2
+    out["source_row"] = np.arange(len(frame), dtype=np.int64) + layout.data_line
     return out
 
 
@@ -142,60 +285,9 @@ def convert_units(values: np.ndarray, name: str, units: dict[str, str]) -> np.nd
     return values * UNIT_FACTORS[quantity][units[name]]
 
 
-def _parse_date(text: pd.Series) -> pd.Series:
-    text = text.astype("string").str.strip()
-    compact = text.str.fullmatch(r"\d{8}").fillna(False)
-    text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
-    text = text.str.replace("/", "-", regex=False)
-    return pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
+def parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path, names: dict | None = None,
+               key: str = "input.time") -> np.ndarray:
+    """Readings' times as datetime64[ns] (UTC, timezone-naive); see :mod:`potfield.io.timefmt`."""
+    from .timefmt import parse_times
 
-
-def parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
-    """Readings' times as datetime64[ns] (UTC, timezone-naive).
-
-    Formats: ISO 8601 (``time`` column), ``date_seconds`` (``date`` column or ``spec.date`` plus
-    seconds of day in ``time``), ``decimal_hours`` (hours of day in ``time``; a drop of more than
-    12 h between consecutive readings is taken as a day roll-over).
-    """
-    if "time" not in frame:
-        raise InputDataError("no input column is mapped to 'time'", file=path, key="input.columns.time",
-                             fix='add time = "<your time column>" under [input.columns]')
-    raw = frame["time"]
-    if spec.format == "iso":
-        text = raw.astype("string").str.strip()
-        parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
-        result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
-        bad = np.isnat(result)
-        example_source = text
-    else:
-        seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
-        if spec.format == "decimal_hours":
-            hours = seconds
-            jumps = np.zeros_like(hours)
-            if hours.size > 1:
-                drop = np.diff(hours) < -12.0
-                jumps[1:] = np.cumsum(drop) * 24.0
-            seconds = (hours + jumps) * 3600.0
-        if "date" in frame:
-            day = _parse_date(frame["date"]).astype("datetime64[ns]").to_numpy()
-        elif spec.date:
-            day = np.full(len(frame), np.datetime64(pd.Timestamp(spec.date).to_datetime64(), "ns"))
-        else:
-            raise InputDataError(
-                f"time format '{spec.format}' needs a date", file=path, key="input.time.date",
-                fix='map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [input.time]',
-            )
-        ns = np.round(seconds * 1e9)
-        good = np.isfinite(ns) & ~np.isnat(day)
-        result = np.full(len(frame), np.datetime64("NaT"), dtype="datetime64[ns]")
-        result[good] = day[good] + ns[good].astype("int64").astype("timedelta64[ns]")
-        bad = np.isnat(result)
-        example_source = raw.astype("string")
-    if bad.any():
-        rows = frame["source_row"].to_numpy()[bad]
-        raise InputDataError(
-            f"cannot read the time '{example_source[bad].iloc[0]}' as {spec.format} at line "
-            f"{format_rows(rows)}", file=path,
-            fix="use ISO 8601 (2024-05-01T10:00:00Z) or set [input.time] format to the one the file uses",
-        )
-    return result
+    return parse_times(frame, spec, path, names=names, key=key)

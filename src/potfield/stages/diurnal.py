@@ -17,7 +17,7 @@ from ..errors import ConfigError, InputDataError
 from ..fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
                               estimate_time_offset, great_circle_distance, interpolate_base,
                               station_difference)
-from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
+from ..io.baselog import read_delimited_base
 from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
 from .base import Check, Stage, StageContext, StageOutput, usable
 
@@ -38,6 +38,7 @@ class BaseRecord:
     longitude: float | None
     latitude: float | None
     key: str
+    rejected: int = 0
 
 
 def _time_text(t) -> str:
@@ -48,13 +49,14 @@ def _span_text(start, end) -> str:
     return f"{_time_text(start)} to {_time_text(end)}"
 
 
-def read_base(base, survey, index: int) -> BaseRecord:
+def read_base(base, survey, index: int, quality=(None, ())) -> BaseRecord:
     """Read one ``[[diurnal.bases]]`` entry into times (datetime64[ns], UTC) and total field (nT).
 
     Delimited files go through the same reader, time formats and units as the survey files
     (:mod:`potfield.io.delimited`); IAGA-2002 files give F (or, without a scalar F, the vector
     intensity) and, unless the config sets them, the base position from their header. The
-    base's ``time_offset_s`` is added to its times.
+    base's ``time_offset_s`` is added to its times. ``quality`` = ([diurnal]
+    base_quality_column, base_quality_accepted) for delimited files (:mod:`potfield.io.baselog`).
     """
     key = f"diurnal.bases[{index}]"
     path = survey.resolve(base.file)
@@ -65,6 +67,7 @@ def read_base(base, survey, index: int) -> BaseRecord:
     if fmt == "auto":
         fmt = "iaga2002" if looks_like_iaga2002(path) else "delimited"
     lon, lat = base.longitude, base.latitude
+    rejected = 0
     if fmt == "iaga2002":
         record = read_iaga2002(path)
         times = record.data["time"].to_numpy(dtype="datetime64[ns]")
@@ -78,19 +81,7 @@ def read_base(base, survey, index: int) -> BaseRecord:
         if lat is None and np.isfinite(record.header.get("latitude", np.nan)):
             lat = float(record.header["latitude"])
     else:
-        for name in ("time", "total_field"):
-            if name not in base.columns:
-                raise ConfigError(f"no base file column is mapped to '{name}'",
-                                  key=f"{key}.columns.{name}",
-                                  fix=f'add {name} = "<column>" under [diurnal.bases.columns]')
-        if base.time.format != "iso" and "date" not in base.columns and not base.time.date:
-            raise ConfigError(f"time format '{base.time.format}' needs a date",
-                              key=f"{key}.time.date",
-                              fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
-        frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
-                               skip_rows=base.skip_rows, missing_values=base.missing_values)
-        times = parse_time(frame, base.time, path)
-        value = convert_units(to_numeric(frame, "total_field", path), "total_field", base.units)
+        times, value, rejected = read_delimited_base(path, base, key, *quality)
     if base.time_offset_s:
         times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
     order = np.argsort(times, kind="stable")
@@ -98,7 +89,7 @@ def read_base(base, survey, index: int) -> BaseRecord:
     if times.size == 0 or not np.isfinite(value).any():
         raise InputDataError("base record has no usable total-field value", file=path,
                              fix="check the file and its column mapping")
-    return BaseRecord(base.name, path, times, value, lon, lat, key)
+    return BaseRecord(base.name, path, times, value, lon, lat, key, rejected)
 
 
 def _datums(ctx, bases, cleaned, span) -> list[float]:
@@ -203,7 +194,8 @@ def run(ctx: StageContext) -> StageOutput:
         if name in names[:i]:
             raise ConfigError(f"base name '{name}' is used twice", key=f"diurnal.bases[{i}].name",
                               fix="give every [[diurnal.bases]] its own name")
-    bases = [read_base(b, ctx.survey, i) for i, b in enumerate(cfg.bases)]
+    quality = (cfg.base_quality_column, cfg.base_quality_accepted)
+    bases = [read_base(b, ctx.survey, i, quality) for i, b in enumerate(cfg.bases)]
     for b in bases:
         if b.time[-1] < span[0] or b.time[0] > span[1]:
             raise InputDataError(
@@ -229,6 +221,7 @@ def run(ctx: StageContext) -> StageOutput:
         metrics[f"base_{b.name}"] = {
             "samples": int(b.time.size), "spikes": int(c.spike.sum()), "missing": int(c.missing.sum()),
             "gaps": int(len(c.gaps)), "datum_nT": float(d), "start": str(b.time[0]), "end": str(b.time[-1]),
+            "quality_rejected": b.rejected,
         }
 
     distances = None  # (n_bases, n_readings) m, when every base has a position
