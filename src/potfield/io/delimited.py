@@ -106,8 +106,9 @@ def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
         candidate = lines[block[-1]].lstrip()[len(comment):].strip()
         hits = lambda text: sum(_normal(w) in {_normal(t) for t in re.split(r"[\s,;\t]+", text)}  # noqa: E731
                                 for w in wanted)
-        if hits(candidate) > hits(first) or index >= len(lines):
-            from_comment = True
+        if hits(candidate) > hits(first) or index >= len(lines) or (
+                hits(candidate) == hits(first) and _numeric_share(first) > 0.5 >= _numeric_share(candidate)):
+            from_comment = True  # the first other line is data: the header is commented out
     if from_comment:
         header_index = block[-1]
         text = lines[header_index].lstrip()[len(comment):].strip()
@@ -122,6 +123,13 @@ def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
     skip = [i for i in range(header_index) if not from_comment]
     return HeaderLayout(text=text, line=header_index + 1, skip=skip, data_line=data + 1,
                         from_comment=from_comment, underline=underline)
+
+
+def _numeric_share(text: str) -> float:
+    """Fraction of the fields of a line that are numbers (a data line is mostly numbers)."""
+    tokens = [t for t in re.split(r"[\s,;\t]+", text.strip()) if t]
+    numbers = sum(bool(re.fullmatch(r"[-+]?(\d+[.,]?\d*|[.,]\d+)([eEdD][-+]?\d+)?", t)) for t in tokens)
+    return numbers / len(tokens) if tokens else 0.0
 
 
 def _normal(name: str) -> str:
