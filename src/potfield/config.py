@@ -81,7 +81,8 @@ class SurveySection(Section):
     kind: Literal["magnetic", "gravity", "observatory"]
     #: CRS of the input coordinates: "EPSG:4326" (default), an EPSG code or a PROJ string.
     crs: str = "EPSG:4326"
-    #: CRS of easting/northing in outputs; "auto" = UTM zone of the survey centroid.
+    #: CRS of easting/northing in outputs; "auto" = UTM zone (WGS 84) of the survey centroid,
+    #: also for projected input; "input" = keep the input CRS.
     output_crs: str = "auto"
     #: Height reference of the input heights: "ellipsoid" or "geoid" (then geoid_undulation).
     height_reference: Literal["ellipsoid", "geoid"] = "ellipsoid"
