@@ -10,7 +10,7 @@ size of the Earth tide (never above about 0.35 mGal).
 from __future__ import annotations
 
 import json
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from importlib import resources
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -125,7 +125,7 @@ def test_aseg_gdf2_pair(tmp_path, capsys):
             lat = -34.90 + 0.0005 * (i if k % 2 == 0 else 19 - i)
             lon = 138.50 + 0.002 * k
             mag = -99999.999 if (line, i) == (20, 5) else 56000.0 + 0.5 * i
-            lines.append("%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f"
+            lines.append("%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f"  # noqa: UP031
                          % (fid, line, 20240501, 36000.0 + fid - 100.0, lon, lat, 328.1, mag))
             fid += 1.0
     (root / "raw" / "survey.dat").write_text("\n".join(lines) + "\n")
@@ -161,7 +161,7 @@ def test_comment_header_local_time_and_fiducial(tmp_path, capsys):
     assert first["source_row"] == 4
     # 09:30:15 in Adelaide on 1 May (no daylight saving then, UTC+9:30; IANA tzdb via zoneinfo)
     local = datetime(2024, 5, 1, 9, 30, 15, tzinfo=ZoneInfo("Australia/Adelaide"))
-    assert _times(pd.Series([first["time"]]))[0] == pd.Timestamp(local.astimezone(timezone.utc).replace(tzinfo=None))
+    assert _times(pd.Series([first["time"]]))[0] == pd.Timestamp(local.astimezone(UTC).replace(tzinfo=None))
     assert set(readings["raw_Fid"].str.len()) == {4}  # carried unchanged (leading zeros kept)
 
 
@@ -219,3 +219,27 @@ def test_observatory_delimited_stations(tmp_path, capsys):
     assert (aaa["longitude"] == 10.0).all() and (aaa["latitude"] == 45.0).all()
     assert (aaa["height"] == 100.0).all()
     assert aaa["mag_down"].isna().sum() == 1  # 99999 = missing (IAGA-2002 convention)
+
+
+# --- compressed input through the command line --------------------------------------------------
+
+@pytest.mark.parametrize("suffix", [".xz", ".bz2", ".zip"])
+def test_compressed_survey_file_with_auto_delimiter(magnetic_survey, capsys, suffix):
+    import bz2
+    import lzma
+    import zipfile
+
+    raw = magnetic_survey / "raw"
+    text = (raw / "lines.csv").read_text()
+    (raw / "lines.csv").unlink()
+    target = raw / f"lines.csv{suffix}" if suffix != ".zip" else raw / "lines.zip"
+    if suffix == ".zip":
+        with zipfile.ZipFile(target, "w", compression=zipfile.ZIP_DEFLATED) as archive:
+            archive.writestr("lines.csv", text)
+    else:
+        with (lzma.open if suffix == ".xz" else bz2.open)(target, "wt") as handle:
+            handle.write(text)
+    toml = magnetic_survey / "survey.toml"
+    toml.write_text(toml.read_text().replace('files = ["raw/*.csv"]', f'files = ["raw/{target.name}"]'))
+    readings = _run(magnetic_survey, "ingest", capsys)
+    assert len(readings) == text.count("\n") - 1  # every data line, none lost

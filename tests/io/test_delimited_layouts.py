@@ -12,7 +12,6 @@ import bz2
 import gzip
 import lzma
 import zipfile
-from pathlib import Path
 
 import numpy as np
 import pytest

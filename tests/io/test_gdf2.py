@@ -41,7 +41,7 @@ RECORDS = [
 def _write(folder: Path, records=RECORDS, des: str = DES) -> Path:
     lines = ["COMM invented survey for a test, not real data"]
     for r in records:
-        lines.append("%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f%12.4E%12.4E%4s" % r)
+        lines.append("%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f%12.4E%12.4E%4s" % r)  # noqa: UP031 (Fortran-like widths)
     (folder / "survey.des").write_text(des)
     dat = folder / "survey.dat"
     dat.write_text("\n".join(lines) + "\n")

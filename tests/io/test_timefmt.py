@@ -6,7 +6,7 @@ the IANA time-zone database), an implementation independent of the pandas code u
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
@@ -30,7 +30,7 @@ def _frame(**columns) -> pd.DataFrame:
 def _utc(dt: datetime) -> np.datetime64:
     """A stdlib datetime (aware, or naive = UTC) as datetime64[ns] UTC."""
     if dt.tzinfo is not None:
-        dt = dt.astimezone(timezone.utc).replace(tzinfo=None)
+        dt = dt.astimezone(UTC).replace(tzinfo=None)
     return np.datetime64(dt, "ns")
 
 
@@ -148,3 +148,9 @@ def test_bad_settings_are_config_errors():
         parse_times(_frame(time=["2024-05-01T10:00:00"]), TimeSection(timezone="Nowhere/Atlantis"), PATH)
     with pytest.raises(PotfieldError, match="no date"):
         parse_times(_frame(time=["10:00:00"]), TimeSection(format="%H:%M:%S"), PATH)
+
+
+def test_iso_timestamps_win_over_a_mapped_date_column():
+    # files that map a date column beside full ISO timestamps keep reading as before
+    frame = _frame(date=["2024-05-01"], time=["2024-05-01T10:00:00Z"])
+    assert parse_times(frame, TimeSection(), PATH)[0] == _utc(datetime(2024, 5, 1, 10))

@@ -104,8 +104,11 @@ def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
     from_comment = False
     if block:
         candidate = lines[block[-1]].lstrip()[len(comment):].strip()
-        hits = lambda text: sum(_normal(w) in {_normal(t) for t in re.split(r"[\s,;\t]+", text)}  # noqa: E731
-                                for w in wanted)
+
+        def hits(text: str) -> int:
+            tokens = {_normal(t) for t in re.split(r"[\s,;\t]+", text)}
+            return sum(_normal(w) in tokens for w in wanted)
+
         if hits(candidate) > hits(first) or index >= len(lines) or (
                 hits(candidate) == hits(first) and _numeric_share(first) > 0.5 >= _numeric_share(candidate)):
             from_comment = True  # the first other line is data: the header is commented out

@@ -198,6 +198,11 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
         raw = frame["time"]
         text = _text(raw)
         if fmt == "iso":
+            # a time column that carries its own day (ISO date) wins over a mapped date column
+            own_day = has_date and bool(text.head(50).str.contains(r"\d{4}-\d{2}-\d{2}", regex=True)
+                                         .fillna(False).all())
+            if own_day:
+                has_date = False
             if has_date:
                 tod_td = pd.to_timedelta(text.str.replace(",", ".", regex=False), errors="coerce")
                 tod = tod_td.to_numpy(dtype="timedelta64[ns]").astype(np.int64)
@@ -210,7 +215,8 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
             else:
                 parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
                 full = _naive_ns(parsed)
-                naive = ~text.str.contains(_ZONE_SUFFIX, regex=True).fillna(False).to_numpy(bool)
+                if spec.utc_offset_h or spec.timezone:  # only then do zone-less rows matter
+                    naive = ~text.str.contains(_ZONE_SUFFIX, regex=True).fillna(False).to_numpy(bool)
                 bad = np.isnat(full)
                 if bad.any():
                     _fail(path, frame, bad, text, f"time in {time_col} as iso",
@@ -315,5 +321,5 @@ def _to_utc(values: np.ndarray, naive, spec, frame, path, key) -> np.ndarray:
         values = np.where(mask, values - shift.astype("timedelta64[ns]"), values)
     clock = float(getattr(spec, "clock_offset_s", 0.0) or 0.0)
     if clock:
-        values = values - np.timedelta64(int(round(clock * _NS_PER_S)), "ns")
+        values = values - np.timedelta64(round(clock * _NS_PER_S), "ns")
     return values.astype("datetime64[ns]")
