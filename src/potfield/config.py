@@ -237,7 +237,7 @@ class BaseStation(Section):
     #: Time format of a delimited file (as [input.time]).
     time: TimeSection = Field(default_factory=TimeSection)
     #: Seconds added to the base file's times to bring its clock to UTC (e.g. -3600 for a logger
-    #: kept on UTC+1).
+    #: kept on UTC+1). Applied after time.utc_offset_h / time.clock_offset_s (which subtract).
     time_offset_s: float = 0.0
     #: Leading comment character of a delimited file's header block (as [input] comment).
     comment: str | None = None

@@ -139,6 +139,10 @@ def test_aseg_gdf2_pair(tmp_path, capsys):
     assert _times(pd.Series([first["time"]]))[0] == pd.Timestamp("2024-05-01T10:00:00")  # 36000 s of day
     # UTM zone of 138.5 E: floor((138.5 + 180) / 6) + 1 = 54, south -> EPSG:32754 (EPSG registry)
     assert _manifest(root)["stages"]["ingest"]["state"]["crs_code"] == "EPSG:32754"
+    # a pattern matching the .des too reads the pair once
+    toml = root / "survey.toml"
+    toml.write_text(toml.read_text().replace('files = ["raw/*.dat"]', 'files = ["raw/survey.*"]'))
+    assert len(_run(root, "ingest", capsys)) == 60
 
 
 # --- comment-block header, hhmmss in local time --------------------------------------------------

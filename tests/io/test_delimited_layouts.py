@@ -93,3 +93,12 @@ def test_missing_column_names_the_file_columns(tmp_path):
     path.write_text("/ Fid X MAG\n1 2.0 3.5\n")
     with pytest.raises(InputDataError, match="column 'TMI' .* its columns are: Fid, X, MAG"):
         read_delimited(path, columns={"total_field": "TMI"}, comment="/", delimiter="whitespace")
+
+
+def test_decimal_comma_with_comma_delimiter_refused(tmp_path):
+    from potfield.errors import ConfigError
+
+    path = tmp_path / "base.csv"
+    path.write_text("time,F\n10:00:00,56012\n")
+    with pytest.raises(ConfigError, match="delimiter and the decimal mark are both ','"):
+        read_delimited(path, columns={"total_field": "F"}, decimal=",")

@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ..config import COLUMN_QUANTITY, UNIT_FACTORS, TimeSection
-from ..errors import InputDataError, format_rows
+from ..errors import ConfigError, InputDataError, format_rows
 
 #: Columns that stay text.
 TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time", "quality"}
@@ -213,6 +213,9 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     layout = locate_header(path, skip_rows, comment, wanted)
     plain = not layout.from_comment and layout.line == skip_rows + 1 and layout.underline is None
     sep = _sniff(layout.text, path) if delimiter == "auto" else delimiter
+    if decimal != "." and sep == decimal:
+        raise ConfigError(f"the delimiter and the decimal mark are both '{decimal}'", file=path,
+                          fix="set the delimiter (';', tab or whitespace) the file uses")
     skip = skip_rows if plain else layout.skip + ([layout.underline] if layout.underline is not None else [])
     try:
         if layout.from_comment:

@@ -95,8 +95,8 @@ def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
     columns = dict(config.input.columns)
     keep = {f"{KEEP_PREFIX}{name}": name for name in config.input.keep_columns}
     # an ASEG-GDF2 descriptor matched by a glob beside its .dat is not a data file
-    names = {p.name for p in files}
-    files = [p for p in files if not (p.suffix.lower() == ".des" and p.with_suffix(".dat").name in names)]
+    data = {(p.parent, p.stem.lower()) for p in files if p.suffix.lower() == ".dat"}
+    files = [p for p in files if not (p.suffix.lower() == ".des" and (p.parent, p.stem.lower()) in data)]
     frames = []
     for path in files:
         units = dict(config.input.units)
