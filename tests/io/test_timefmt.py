@@ -154,3 +154,9 @@ def test_iso_timestamps_win_over_a_mapped_date_column():
     # files that map a date column beside full ISO timestamps keep reading as before
     frame = _frame(date=["2024-05-01"], time=["2024-05-01T10:00:00Z"])
     assert parse_times(frame, TimeSection(), PATH)[0] == _utc(datetime(2024, 5, 1, 10))
+
+
+def test_iso_time_of_day_with_the_date_in_the_config():
+    frame = _frame(time=["23:59:59", "00:00:01"])
+    got = parse_times(frame, TimeSection(date="2024-05-01"), PATH)
+    assert list(got) == [_utc(datetime(2024, 5, 1, 23, 59, 59)), _utc(datetime(2024, 5, 2, 0, 0, 1))]

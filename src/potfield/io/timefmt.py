@@ -7,8 +7,9 @@ Python loop over readings.
 
 Layouts
 -------
-* ``format = "iso"``: ISO 8601 in the ``time`` column; with a ``date`` column mapped as well,
-  the ``time`` column holds the time of day (``hh:mm:ss[.fff]``).
+* ``format = "iso"``: ISO 8601 in the ``time`` column. When it holds times of day only
+  (``hh:mm:ss[.fff]``), the day comes from the ``date`` column or ``[input.time] date``; full
+  ISO timestamps keep their own day (a mapped date column is then not used).
 * ``format = "date_seconds"``: seconds of day (0..86,400) in ``time``; the day from the ``date``
   column or ``[input.time] date``. A value above 86,400, or a time column whose name reads like
   an hhmmss pattern (``HHMMSS``, ``hh:mm:ss``), is refused: ``120204`` is 12:02:04, not
@@ -198,12 +199,14 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
         raw = frame["time"]
         text = _text(raw)
         if fmt == "iso":
-            # a time column that carries its own day (ISO date) wins over a mapped date column
-            own_day = has_date and bool(text.head(50).str.contains(r"\d{4}-\d{2}-\d{2}", regex=True)
-                                         .fillna(False).all())
+            # a time column that carries its own day (ISO date) wins over a mapped date column;
+            # without one, it holds the time of day when the day comes from elsewhere
+            head = text.head(50).dropna()
+            own_day = bool(head.str.contains(r"\d{4}-?\d{2}-?\d{2}[T\s]|^\d{4}-\d{2}-\d{2}$",
+                                             regex=True).mean() > 0.5) if len(head) else True
             if own_day:
                 has_date = False
-            if has_date:
+            if not own_day and (has_date or spec.date):
                 tod_td = pd.to_timedelta(text.str.replace(",", ".", regex=False), errors="coerce")
                 tod = tod_td.to_numpy(dtype="timedelta64[ns]").astype(np.int64)
                 bad = np.isnat(tod_td.to_numpy(dtype="timedelta64[ns]")) | (tod < 0) | (
