@@ -39,6 +39,10 @@ CANONICAL_COLUMNS = (
     "instrument_height",
     "loop",
     "elevation",
+    # gravimeter exports: the meter's standard deviation of a reading and the tide correction
+    # the meter has already added to it (mGal, converted like reading)
+    "reading_sd",
+    "meter_tide",
 )
 
 #: Units accepted per physical quantity, with the factor to potfield's internal unit.
@@ -54,6 +58,8 @@ COLUMN_QUANTITY = {
     "mag_east": "magnetic",
     "mag_down": "magnetic",
     "reading": "gravity",
+    "reading_sd": "gravity",
+    "meter_tide": "gravity",
     "height": "length",
     "instrument_height": "length",
     "elevation": "length",
@@ -120,7 +126,8 @@ class SurveySection(Section):
     kind: Literal["magnetic", "gravity", "observatory"]
     #: CRS of the input coordinates: "EPSG:4326" (default), an EPSG code or a PROJ string.
     crs: str = "EPSG:4326"
-    #: CRS of easting/northing in outputs; "auto" = UTM zone of the survey centroid.
+    #: CRS of easting/northing in outputs; "auto" = UTM zone (WGS 84) of the survey centroid,
+    #: also for projected input; "input" = keep the input CRS.
     output_crs: str = "auto"
     #: Height reference of the input heights: "ellipsoid" or "geoid" (then geoid_undulation).
     height_reference: Literal["ellipsoid", "geoid"] = "ellipsoid"
@@ -142,15 +149,47 @@ class SurveySection(Section):
 
 class TimeSection(Section):
     #: "iso" (ISO 8601 in the time column), "date_seconds" (date column + seconds of day in the
-    #: time column) or "decimal_hours" (hours of day in the time column + date column or `date`).
-    format: Literal["iso", "date_seconds", "decimal_hours"] = "iso"
+    #: time column) or "decimal_hours" (hours of day in the time column + date column or `date`),
+    #: or a strftime pattern of the time column ("%Y/%m/%d %H:%M:%S", "%H%M%S", "%d/%m/%Y");
+    #: see potfield.io.timefmt.
+    format: str = "iso"
     #: Date for decimal_hours / date_seconds when the file has no date column (YYYY-MM-DD).
     date: str | None = None
+    #: strftime pattern of the date column (e.g. "%d/%m/%Y"); None = YYYY-MM-DD, YYYY/MM/DD or
+    #: YYYYMMDD.
+    date_format: str | None = None
+    #: Hours the recorded (zone-less) times are ahead of UTC: 10 for a logger on UTC+10.
+    utc_offset_h: float = 0.0
+    #: IANA time zone of the recorded times instead of utc_offset_h (follows daylight saving).
+    timezone: str | None = None
+    #: Seconds the instrument clock is ahead of the reference clock (GNSS or the base);
+    #: subtracted from every time (the sign of the diurnal stage's time-offset estimate).
+    clock_offset_s: float = 0.0
+
+    @field_validator("format")
+    @classmethod
+    def _known_format(cls, value: str) -> str:
+        from .io.timefmt import check_format
+
+        return check_format(value)
 
     @field_validator("date")
     @classmethod
     def _iso_date(cls, value: str | None) -> str | None:
         return None if value is None else _check_date(value)
+
+
+class StationFile(Section):
+    """One station file of an observatory survey given as delimited text (not IAGA-2002)."""
+
+    #: File name or glob pattern (relative to the survey folder, or a bare file name).
+    file: str
+    #: Station code (e.g. "ABC"), used as the line and station names.
+    station: str
+    #: Geodetic position (degrees) and elevation (m above mean sea level, as IAGA-2002).
+    longitude: float
+    latitude: float = Field(ge=-90, le=90)
+    elevation: float = 0.0
 
 
 class InputSection(Section):
@@ -170,6 +209,20 @@ class InputSection(Section):
     #: Canonical name -> unit of that input column.
     units: dict[str, str] = Field(default_factory=dict)
     time: TimeSection = Field(default_factory=TimeSection)
+    #: "auto" (ASEG-GDF2 for a .dat file with its .des beside it, IAGA-2002 for observatory files
+    #: that start with its Format record, else delimited text), "delimited" or "aseg-gdf2".
+    format: Literal["auto", "delimited", "aseg-gdf2"] = "auto"
+    #: Leading lines starting with this are a comment block ("/" or "#"); the header line may
+    #: be the last of them ("/ X Y MAG"). None = no comment block.
+    comment: str | None = None
+    #: Decimal mark of the numbers: "." or "," (decimal commas; then the delimiter is not ",").
+    decimal: Literal[".", ","] = "."
+    #: Input columns carried unchanged (as text) to the readings table as raw_<name>
+    #: (e.g. ["Fid"] -> raw_Fid); the prefix keeps them apart from canonical names.
+    keep_columns: list[str] = Field(default_factory=list)
+    #: Observatory surveys with delimited station files: the station of each file and its
+    #: position ([[input.stations]] tables).
+    stations: list[StationFile] = Field(default_factory=list)
 
     @field_validator("files")
     @classmethod
@@ -281,8 +334,12 @@ class BaseStation(Section):
     #: Time format of a delimited file (as [input.time]).
     time: TimeSection = Field(default_factory=TimeSection)
     #: Seconds added to the base file's times to bring its clock to UTC (e.g. -3600 for a logger
-    #: kept on UTC+1).
+    #: kept on UTC+1). Applied after time.utc_offset_h / time.clock_offset_s (which subtract).
     time_offset_s: float = 0.0
+    #: Leading comment character of a delimited file's header block (as [input] comment).
+    comment: str | None = None
+    #: Decimal mark of a delimited file: "." or "," (decimal commas).
+    decimal: Literal[".", ","] = "."
 
     @field_validator("delimiter")
     @classmethod
@@ -344,6 +401,10 @@ class DiurnalSection(Section):
     offset_radius_m: float = Field(500.0, gt=0)
     offset_highpass_s: float = Field(60.0, gt=0)
     offset_max_lag_s: float = Field(30.0, ge=0)
+    #: Delimited base files with a quality code per sample: the column holding it, and the codes
+    #: accepted (compared as text after stripping); other samples are treated as missing.
+    base_quality_column: str | None = None
+    base_quality_accepted: list[str] = Field(default_factory=list)
 
 
 class GravityBase(Section):
@@ -370,6 +431,10 @@ class DriftSection(Section):
     calibration_file: str | None = None
     #: Correct the Earth tide (Longman 1959) before the drift.
     tide: bool = True
+    #: The gravimeter already added its own tide correction to the readings: true, false, or
+    #: None = true when a meter_tide column is mapped and not all zero. Then potfield does not
+    #: add a second tide correction (tide = 0; the meter's is kept in meter_tide).
+    meter_tide_applied: bool | None = None
     #: Gravimetric factor 1 + h2 - 3/2 k2 applied to the rigid-Earth tide (common practice 1.16).
     gravimetric_factor: float = Field(1.16, gt=0, le=2)
     #: "linear" (per loop, first/last base), "piecewise" (through every base repeat) or "network".

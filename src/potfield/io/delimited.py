@@ -7,25 +7,157 @@ count from 1 at the top of the file (the header line included), as a text editor
 
 from __future__ import annotations
 
+import bz2
 import codecs
 import csv
 import gzip
+import io
+import lzma
+import re
+import zipfile
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Protocol
 
 import numpy as np
 import pandas as pd
 
-from ..errors import InputDataError, format_rows
+from ..errors import ConfigError, InputDataError, format_rows
 
 #: Columns that stay text.
-TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time"}
+TEXT_COLUMNS = {"line", "line_type", "station", "loop", "date", "time", "quality"}
+#: Pass-through columns ([input] keep_columns) are read as text under this prefix.
+KEEP_PREFIX = "raw_"
+#: Compressed files read transparently (by suffix).
+COMPRESSED_SUFFIXES = (".gz", ".bz2", ".xz", ".zip")
 
 
 def _open_text(path: Path, encoding: str = "utf-8"):
-    if path.suffix == ".gz":
+    suffix = path.suffix.lower()
+    if suffix == ".gz":
         return gzip.open(path, "rt", encoding=encoding, errors="replace")
+    if suffix == ".bz2":
+        return bz2.open(path, "rt", encoding=encoding, errors="replace")
+    if suffix == ".xz":
+        return lzma.open(path, "rt", encoding=encoding, errors="replace")
+    if suffix == ".zip":
+        try:
+            archive = zipfile.ZipFile(path)
+        except zipfile.BadZipFile:
+            raise InputDataError("not a readable zip archive", file=path,
+                                 fix="check the file, or unpack it into raw/") from None
+        members = [m for m in archive.namelist() if not m.endswith("/")]
+        if len(members) != 1:
+            raise InputDataError(f"zip archive holds {len(members)} files, not one", file=path,
+                                 fix="zip one data file per archive, or unpack it into raw/")
+        return io.TextIOWrapper(archive.open(members[0]), encoding=encoding, errors="replace")
     return open(path, encoding=encoding, errors="replace")
+
+
+
+
+def is_text_column(canon: str) -> bool:
+    """True for canonical columns read as text (and pass-through ``raw_*`` columns)."""
+    return canon in TEXT_COLUMNS or canon.startswith(KEEP_PREFIX)
+
+
+#: A line under the header made of dashes or equals signs only (an underline).
+_UNDERLINE = re.compile(r"^(?=.*[-=])[\s\-=_|+,;]+$")
+
+
+@dataclass
+class HeaderLayout:
+    """Where the header and the data of a delimited file are (see :func:`locate_header`)."""
+
+    text: str            #: the header line, comment character removed
+    line: int            #: its 1-based line number
+    skip: list[int]      #: 0-based line numbers pandas skips before the header
+    data_line: int       #: 1-based line number of the first data line
+    from_comment: bool   #: the header sits in the comment block: names are given to pandas
+    underline: int | None = None  #: 0-based line number of a dash underline, skipped
+
+
+def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
+                  wanted=(), encoding: str = "utf-8") -> HeaderLayout:
+    """Find the header line after ``skip_rows`` lines and a leading block of comment lines.
+
+    Lines starting with ``comment`` (e.g. ``/`` or ``#``) before the data are skipped; when the
+    first other line is data rather than the header (it holds none of the ``wanted`` column
+    names while the last comment line does), the last comment line is the header (``/ X Y MAG``).
+    A line of dashes under the header is skipped.
+    """
+    with _open_text(path, encoding) as handle:
+        lines = []
+        for _ in range(skip_rows + 400):  # the header is near the top
+            line = handle.readline()
+            if not line:
+                break
+            lines.append(line.rstrip("\r\n"))
+    index = skip_rows
+    block: list[int] = []
+    if comment:
+        while index < len(lines) and (lines[index].lstrip().startswith(comment) or not lines[index].strip()):
+            content = lines[index].lstrip()[len(comment):].strip()
+            if content and not _UNDERLINE.match(content):
+                block.append(index)  # a comment line with text (underlines are not headers)
+            index += 1
+    if index >= len(lines) and not block:
+        raise InputDataError("file is empty", file=path, fix="check that the right file is named")
+    first = lines[index] if index < len(lines) else ""
+    from_comment = False
+    if block:
+        candidate = lines[block[-1]].lstrip()[len(comment):].strip()
+
+        def hits(text: str) -> int:
+            tokens = {_normal(t) for t in re.split(r"[\s,;\t]+", text)}
+            return sum(_normal(w) in tokens for w in wanted)
+
+        if hits(candidate) > hits(first) or index >= len(lines) or (
+                hits(candidate) == hits(first) and _numeric_share(first) > 0.5 >= _numeric_share(candidate)):
+            from_comment = True  # the first other line is data: the header is commented out
+    if from_comment:
+        header_index = block[-1]
+        text = lines[header_index].lstrip()[len(comment):].strip()
+        data = header_index + 1
+    else:
+        header_index, text, data = index, first, index + 1
+    while data < len(lines) and comment and (lines[data].lstrip().startswith(comment) or not lines[data].strip()):
+        data += 1  # comment (or blank) lines between a commented header and the data
+    underline = None
+    if data < len(lines) and lines[data].strip() and _UNDERLINE.match(lines[data]):
+        underline, data = data, data + 1
+    skip = [i for i in range(header_index) if not from_comment]
+    return HeaderLayout(text=text, line=header_index + 1, skip=skip, data_line=data + 1,
+                        from_comment=from_comment, underline=underline)
+
+
+def _numeric_share(text: str) -> float:
+    """Fraction of the fields of a line that are numbers (a data line is mostly numbers)."""
+    tokens = [t for t in re.split(r"[\s,;\t]+", text.strip()) if t]
+    numbers = sum(bool(re.fullmatch(r"[-+]?(\d+[.,]?\d*|[.,]\d+)([eEdD][-+]?\d+)?", t)) for t in tokens)
+    return numbers / len(tokens) if tokens else 0.0
+
+
+def _normal(name: str) -> str:
+    """Column name folded for a tolerant match: case, spaces, dashes and underscores ignored."""
+    return re.sub(r"[\s\-_]+", "", str(name)).casefold()
+
+
+def match_columns(header: list[str], wanted) -> dict[str, str]:
+    """Each wanted name -> the header name it matches: exactly, else the one header name equal
+    to it ignoring case, spaces, dashes and underscores (``Mag-Total`` ~ ``mag_total``)."""
+    found = {}
+    folded: dict[str, list[str]] = {}
+    for h in header:
+        folded.setdefault(_normal(h), []).append(h)
+    for name in wanted:
+        if name in header:
+            found[name] = name
+        elif len(folded.get(_normal(name), [])) == 1:
+            found[name] = folded[_normal(name)][0]
+    return found
+
+
 
 
 def _open_binary(path: Path):
@@ -167,6 +299,10 @@ def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> 
         for _ in range(skip_rows):
             handle.readline()
         header = handle.readline()
+    return _sniff(header, path, skip_rows)
+
+
+def _sniff(header: str, path: Path, skip_rows: int = 0) -> str:
     if not header.strip():
         if skip_rows:
             raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
@@ -180,7 +316,8 @@ def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> 
 
 def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "auto",
                    skip_rows: int = 0, missing_values=(), required=(), encoding: str = "utf-8",
-                   encoding_key: str = "input.encoding", columns_key: str = "input.columns") -> pd.DataFrame:
+                   encoding_key: str = "input.encoding", columns_key: str = "input.columns",
+                   comment: str | None = None, decimal: str = ".") -> pd.DataFrame:
     """Read the mapped columns of one delimited file, renamed to canonical names.
 
     Parameters
@@ -198,6 +335,11 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         so; another declared encoding that fails is an error naming the line and byte offset.
     encoding_key, columns_key : str
         survey.toml keys of the encoding and of the column mapping, for messages.
+    comment : str, optional
+        Leading lines starting with it are skipped; the header may be the last of them
+        (:func:`locate_header`).
+    decimal : str
+        Decimal mark of the numbers (``","`` for decimal commas).
 
     Returns
     -------
@@ -221,7 +363,8 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
         raise InputDataError(f"cannot read the file ({_first_line(err)})", file=path,
                              fix="check that the file is complete (re-copy or re-compress it)") from None
     if failure is None:
-        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding, columns_key)
+        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding, columns_key,
+                              comment, decimal)
     line, offset, byte = failure
     if codecs.lookup(encoding).name != "utf-8":
         raise InputDataError(
@@ -229,7 +372,8 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
             file=path, key=encoding_key,
             fix="set the encoding the file was written in (e.g. utf-8, latin-1, cp1252)",
         )
-    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key)
+    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key,
+                           comment, decimal)
     frame.attrs["warnings"] = [
         f"{path.name}: not valid UTF-8 (byte 0x{byte:02x} at line {line}, byte offset {offset}); "
         f"read as latin-1 -- check the text columns, or declare the file's encoding with "
@@ -238,18 +382,24 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
 
 
 def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_rows: int,
-                    missing_values, encoding: str, columns_key: str = "input.columns") -> pd.DataFrame:
-    sep = sniff_delimiter(path, skip_rows, encoding) if delimiter == "auto" else delimiter
+                    missing_values, encoding: str, columns_key: str = "input.columns",
+                    comment: str | None = None, decimal: str = ".") -> pd.DataFrame:
     wanted = list(dict.fromkeys(columns.values()))
-    kwargs = dict(skiprows=skip_rows, na_values=list(missing_values), keep_default_na=True,
-                  encoding=encoding,
-                  dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
-                         if canon in TEXT_COLUMNS})
+    layout = locate_header(path, skip_rows, comment, wanted, encoding)
+    plain = not layout.from_comment and layout.line == skip_rows + 1 and layout.underline is None
+    sep = _sniff(layout.text, path, skip_rows) if delimiter == "auto" else delimiter
+    if decimal != "." and sep == decimal:
+        raise ConfigError(f"the delimiter and the decimal mark are both '{decimal}'", file=path,
+                          fix="set the delimiter (';', tab or whitespace) the file uses")
+    skip = skip_rows if plain else layout.skip + ([layout.underline] if layout.underline is not None else [])
     try:
-        if sep == "whitespace":
-            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip_rows, encoding=encoding).columns
+        if layout.from_comment:
+            parts = layout.text.split() if sep == "whitespace" else layout.text.split(sep)
+            header = [p.strip().strip('"') for p in parts]
+        elif sep == "whitespace":
+            header = pd.read_csv(path, sep=r"\s+", nrows=0, skiprows=skip, encoding=encoding).columns
         else:
-            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip_rows, encoding=encoding).columns
+            header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip, encoding=encoding).columns
     except pd.errors.EmptyDataError:
         where = f" after skipping {skip_rows} line(s)" if skip_rows else ""
         raise InputDataError(f"file has no header line{where}", file=path,
@@ -257,21 +407,34 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
     except (pd.errors.ParserError, ValueError, csv.Error) as err:
         if isinstance(err, UnicodeDecodeError):
             raise
-        raise InputDataError(f"cannot read the header line {skip_rows + 1} ({_first_line(err)})",
+        raise InputDataError(f"cannot read the header line {layout.line} ({_first_line(err)})",
                              file=path, fix="check the delimiter and input.skip_rows") from None
     header = [str(h).strip() for h in header]
-    missing = [c for c in wanted if c not in header]
+    found = match_columns(header, wanted)
+    missing = [c for c in wanted if c not in found]
     if missing:
         canon = [k for k, v in columns.items() if v == missing[0]][0]
+        key = "input.keep_columns" if canon.startswith(KEEP_PREFIX) else f"{columns_key}.{canon}"
         raise InputDataError(
             f"column '{missing[0]}' (mapped to {canon}) is not in the file; its columns are: "
-            f"{', '.join(header[:20])}", file=path, key=f"{columns_key}.{canon}",
+            f"{', '.join(header[:20])}", file=path, key=key,
             fix=f"correct the column name under [{columns_key}]",
         )
+    columns = {canon: found[col] for canon, col in columns.items()}
+    wanted = list(dict.fromkeys(columns.values()))
+    kwargs = dict(skiprows=skip, na_values=list(missing_values), keep_default_na=True,
+                  encoding=encoding,
+                  dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
+                         if is_text_column(canon)})
+    if decimal != ".":
+        kwargs["decimal"] = decimal
+    if layout.from_comment:
+        kwargs.update(header=None, names=header, skiprows=layout.data_line - 1)
+
     def refuse_ragged() -> None:
         # pandas' C parser fills short rows with NaN silently; pyarrow refuses them (and then
         # this runs before the fallback), so the byte scan is only needed off the pyarrow path
-        ragged = _ragged_row(path, sep, skip_rows, encoding)
+        ragged = _ragged_row(path, sep, skip_rows, encoding) if plain else None
         if ragged is not None:
             line, fields, expected, others = ragged
             more = f" (and {others} more such line(s))" if others else ""
@@ -285,7 +448,8 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
         if sep == "whitespace":
             refuse_ragged()
             frame = pd.read_csv(path, sep=r"\s+", usecols=lambda c: str(c).strip() in wanted, **kwargs)
-        elif len(sep) == 1 and not skip_rows and path.suffix != ".gz":
+        elif (len(sep) == 1 and not skip_rows and plain and decimal == "."
+              and path.suffix.lower() not in COMPRESSED_SUFFIXES):
             try:  # pyarrow's reader is several times faster on large files
                 frame = pd.read_csv(path, sep=sep, usecols=wanted, engine="pyarrow", **kwargs)
             except (ValueError, TypeError, KeyError):
@@ -307,7 +471,7 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
     for canon, col in columns.items():
         out[canon] = frame[col].to_numpy()
     out["source_file"] = path.name
-    out["source_row"] = np.arange(len(frame), dtype=np.int64) + skip_rows + 2
+    out["source_row"] = np.arange(len(frame), dtype=np.int64) + layout.data_line
     return out
 
 
@@ -357,90 +521,18 @@ def convert_units(values: np.ndarray, factor: float) -> np.ndarray:
     return values if factor == 1.0 else values * factor
 
 
-def _parse_date(text: pd.Series) -> pd.Series:
-    text = text.astype("string").str.strip()
-    compact = text.str.fullmatch(r"\d{8}").fillna(False)
-    text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
-    text = text.str.replace("/", "-", regex=False)
-    return pd.to_datetime(_drop_out_of_range_years(text), format="%Y-%m-%d", errors="coerce")
+def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | None = None,
+               key: str = "input.time") -> np.ndarray:
+    """Readings' times as datetime64[ns] (UTC, timezone-naive); the layouts are those of
+    :mod:`potfield.io.timefmt` (ISO 8601, date + seconds of day, decimal hours, strftime
+    patterns, separate date and time columns, UTC offsets, clock offsets)."""
+    from .timefmt import parse_times
 
-
-def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
-    """Dates whose year datetime64[ns] cannot hold (outside 1678..2261) as missing, so they are
-    reported as unreadable at their lines (pandas raises on them even with errors="coerce")."""
-    year = pd.to_numeric(text.str.extract(r"^\s*([+-]?\d{4,})-", expand=False), errors="coerce")
-    return text.where(~((year < 1678) | (year > 2261)).fillna(False).astype(bool), pd.NA)
-
-
-def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
-    """Readings' times as datetime64[ns] (UTC, timezone-naive).
-
-    Formats: ISO 8601 (``time`` column), ``date_seconds`` (``date`` column or ``spec.date`` plus
-    seconds of day in ``time``), ``decimal_hours`` (hours of day in ``time``; a drop of more than
-    12 h between consecutive readings is taken as a day roll-over).
-    """
     try:
-        return _parse_time(frame, spec, path)
+        return parse_times(frame, spec, path, names=names, key=key)
     except (ValueError, OverflowError, pd.errors.OutOfBoundsDatetime) as err:
         # pandas' DateParseError and OutOfBoundsDatetime are ValueErrors
         if isinstance(err, InputDataError):
             raise
         raise InputDataError(f"cannot read the times as {spec.format} ({_first_line(err)})",
                              file=path, fix="check the time column and [input.time] format") from None
-
-
-#: Largest |offset| (s) from the date accepted in date_seconds/decimal_hours times (400 days):
-#: keeps the nanosecond arithmetic far from int64 overflow.
-MAX_SECONDS = 400 * 86400.0
-
-
-def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
-    if "time" not in frame:
-        raise InputDataError("no input column is mapped to 'time'", file=path, key="input.columns.time",
-                             fix='add time = "<your time column>" under [input.columns]')
-    raw = frame["time"]
-    if spec.format == "iso":
-        text = raw.astype("string").str.strip()
-        # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
-        # to_datetime raises on them even with errors="coerce"
-        text = _drop_out_of_range_years(text)
-        parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
-        result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
-        bad = np.isnat(result)
-        example_source = raw.astype("string").str.strip()
-    else:
-        seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
-        if spec.format == "decimal_hours":
-            hours = seconds
-            jumps = np.zeros_like(hours)
-            if hours.size > 1:
-                drop = np.diff(hours) < -12.0
-                jumps[1:] = np.cumsum(drop) * 24.0
-            seconds = (hours + jumps) * 3600.0
-        if "date" in frame:
-            day = _parse_date(frame["date"]).astype("datetime64[ns]").to_numpy()
-        elif spec.date:
-            day = np.full(len(frame), np.datetime64(pd.Timestamp(spec.date).to_datetime64(), "ns"))
-        else:
-            raise InputDataError(
-                f"time format '{spec.format}' needs a date", file=path, key="input.time.date",
-                fix='map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [input.time]',
-            )
-        ns = np.round(seconds * 1e9)
-        good = np.isfinite(ns) & (np.abs(seconds) <= MAX_SECONDS) & ~np.isnat(day)
-        day_ns = day.astype("int64").astype(float)
-        good &= np.abs(day_ns + np.where(good, ns, 0.0)) < 9.2e18  # inside datetime64[ns]
-        result = np.full(len(frame), np.datetime64("NaT"), dtype="datetime64[ns]")
-        result[good] = day[good] + ns[good].astype("int64").astype("timedelta64[ns]")
-        bad = np.isnat(result)
-        example_source = raw.astype("string")
-        if "date" in frame:
-            example_source = frame["date"].astype("string").str.strip() + " " + example_source
-    if bad.any():
-        rows = frame["source_row"].to_numpy()[bad]
-        raise InputDataError(
-            f"cannot read the time '{example_source[bad].iloc[0]}' as {spec.format} at line "
-            f"{format_rows(rows)}", file=path,
-            fix="use ISO 8601 (2024-05-01T10:00:00Z) or set [input.time] format to the one the file uses",
-        )
-    return result

@@ -20,7 +20,7 @@ from ..fields.magnetic.diurnal import (base_datum, base_sessions, chord_deviatio
                               combine_bases, estimate_time_offset, great_circle_distance,
                               interpolate_base, session_datums, setup_transients,
                               station_difference)
-from ..io.delimited import convert_units, parse_time, read_delimited, to_numeric
+from ..io.baselog import read_delimited_base
 from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
 from .base import Check, Contract, Stage, StageContext, StageOutput, usable
 
@@ -41,6 +41,7 @@ class BaseRecord:
     longitude: float | None
     latitude: float | None
     key: str
+    rejected: int = 0
 
 
 def _time_text(t) -> str:
@@ -51,13 +52,14 @@ def _span_text(start, end) -> str:
     return f"{_time_text(start)} to {_time_text(end)}"
 
 
-def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
+def read_base(base, survey, index: int, quality=(None, ()), encoding: str = "utf-8") -> BaseRecord:
     """Read one ``[[diurnal.bases]]`` entry into times (datetime64[ns], UTC) and total field (nT).
 
     Delimited files go through the same reader, time formats and units as the survey files
     (:mod:`potfield.io.delimited`); IAGA-2002 files give F (or, without a scalar F, the vector
     intensity) and, unless the config sets them, the base position from their header. The
-    base's ``time_offset_s`` is added to its times.
+    base's ``time_offset_s`` is added to its times. ``quality`` = ([diurnal]
+    base_quality_column, base_quality_accepted) for delimited files (:mod:`potfield.io.baselog`).
     """
     key = f"diurnal.bases[{index}]"
     path = survey.resolve(base.file)
@@ -68,6 +70,7 @@ def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
     if fmt == "auto":
         fmt = "iaga2002" if looks_like_iaga2002(path) else "delimited"
     lon, lat = base.longitude, base.latitude
+    rejected = 0
     if fmt == "iaga2002":
         record = read_iaga2002(path)
         times = record.data["time"].to_numpy(dtype="datetime64[ns]")
@@ -81,22 +84,8 @@ def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
         if lat is None and np.isfinite(record.header.get("latitude", np.nan)):
             lat = float(record.header["latitude"])
     else:
-        for name in ("time", "total_field"):
-            if name not in base.columns:
-                raise ConfigError(f"no base file column is mapped to '{name}'",
-                                  key=f"{key}.columns.{name}",
-                                  fix=f'add {name} = "<column>" under [diurnal.bases.columns]')
-        if base.time.format != "iso" and "date" not in base.columns and not base.time.date:
-            raise ConfigError(f"time format '{base.time.format}' needs a date",
-                              key=f"{key}.time.date",
-                              fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
-        frame = read_delimited(path, columns=dict(base.columns), delimiter=base.delimiter,
-                               skip_rows=base.skip_rows, missing_values=base.missing_values,
-                               encoding=encoding, encoding_key="input.encoding",
-                               columns_key=f"{key}.columns")
-        times = parse_time(frame, base.time, path)
-        value = convert_units(to_numeric(frame, "total_field", path),
-                              unit_factor("total_field", base.units))
+        times, value, rejected = read_delimited_base(path, base, key, *quality, encoding=encoding,
+                                                     factor=unit_factor("total_field", base.units))
     if base.time_offset_s:
         times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
     order = np.argsort(times, kind="stable")
@@ -104,7 +93,7 @@ def read_base(base, survey, index: int, encoding: str = "utf-8") -> BaseRecord:
     if times.size == 0 or not np.isfinite(value).any():
         raise InputDataError("base record has no usable total-field value", file=path,
                              fix="check the file and its column mapping")
-    return BaseRecord(base.name, path, times, value, lon, lat, key)
+    return BaseRecord(base.name, path, times, value, lon, lat, key, rejected)
 
 
 def _datums(ctx, bases, cleaned, span) -> list[float]:
@@ -216,7 +205,8 @@ def run(ctx: StageContext) -> StageOutput:
         if name in names[:i]:
             raise ConfigError(f"base name '{name}' is used twice", key=f"diurnal.bases[{i}].name",
                               fix="give every [[diurnal.bases]] its own name")
-    bases = [read_base(b, ctx.survey, i, ctx.config.input.encoding) for i, b in enumerate(cfg.bases)]
+    quality = (cfg.base_quality_column, cfg.base_quality_accepted)
+    bases = [read_base(b, ctx.survey, i, quality, ctx.config.input.encoding) for i, b in enumerate(cfg.bases)]
     for b in bases:
         if b.time[-1] < span[0] or b.time[0] > span[1]:
             raise InputDataError(
@@ -272,6 +262,7 @@ def run(ctx: StageContext) -> StageOutput:
             "transient_samples": int(c.transient.sum()),
             "jumps": [{"time": _time_text(b.time[j["index"]]), "kind": j["kind"],
                        "size_nT": round(float(j["size_nT"]), 2)} for j in split.jumps],
+            "quality_rejected": b.rejected,
         }
         for j in split.jumps:
             where = "across a recording gap" if j["kind"] == "gap" else "inside the record"

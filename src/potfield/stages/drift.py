@@ -351,8 +351,15 @@ def run(ctx: StageContext) -> StageOutput:
     else:
         table["instrument_height_correction"] = 0.0
         notes.append("no instrument_height column: readings taken as at the station mark")
-    # 3. tide
-    if cfg.tide:
+    # 3. tide (not twice: a tide the gravimeter already added stays in meter_tide)
+    meter = cfg.meter_tide_applied
+    if meter is None:
+        meter = "meter_tide" in src and bool(np.nan_to_num(src["meter_tide"].to_numpy(float)).any())
+    if meter and cfg.tide:
+        table["tide"] = 0.0
+        notes.append("Earth tide already corrected by the gravimeter (meter_tide / [drift] "
+                     "meter_tide_applied): potfield adds none")
+    elif cfg.tide:
         table["tide"] = _tide(ctx, table)
         notes.append(f"Earth tide (Longman 1959) corrected, gravimetric factor "
                      f"{cfg.gravimetric_factor:g}")
@@ -461,6 +468,7 @@ def run(ctx: StageContext) -> StageOutput:
         "loop_rule": rule,
         "bases": {name: g for name, (g, _) in bases.items()},
         "tide": bool(cfg.tide),
+        "tide_by_meter": bool(meter),
         "gravimetric_factor": float(cfg.gravimetric_factor),
         "sigma0": metrics["sigma0"],
     }

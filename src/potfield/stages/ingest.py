@@ -17,11 +17,13 @@ import pyproj
 
 from ..config import SurveyConfig, unit_factor
 from ..errors import ConfigError, CRSError, InputDataError, format_rows
-from ..io.delimited import TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
+from ..io.delimited import (KEEP_PREFIX, TEXT_COLUMNS, convert_units, parse_time, read_delimited,
+                            to_numeric)
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
 NUMERIC_COLUMNS = ("longitude", "latitude", "easting", "northing", "height", "total_field",
-                   "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation")
+                   "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation",
+                   "reading_sd", "meter_tide")
 
 
 def parse_crs(text: str, key: str) -> pyproj.CRS:
@@ -34,15 +36,15 @@ def parse_crs(text: str, key: str) -> pyproj.CRS:
 
 
 def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs: pyproj.CRS) -> pyproj.CRS:
-    """The output CRS: as configured, the input CRS when it is projected, else the UTM zone of
-    the survey centroid (pyproj's UTM database query)."""
+    """The output CRS: as configured, ``"input"`` = the input CRS, ``"auto"`` = the UTM zone
+    (WGS 84) of the survey centroid (pyproj's UTM database query), whatever the input CRS."""
+    if config.survey.output_crs == "input":
+        _require_metric(input_crs, config.survey.crs, "survey.crs")
+        return input_crs
     if config.survey.output_crs != "auto":
         crs = parse_crs(config.survey.output_crs, "survey.output_crs")
         _require_metric(crs, config.survey.output_crs, "survey.output_crs")
         return crs
-    if input_crs.is_projected:
-        _require_metric(input_crs, config.survey.crs, "survey.crs")
-        return input_crs
     lon0, lat0 = float(np.nanmean(lon)), float(np.nanmean(lat))
     from pyproj.aoi import AreaOfInterest
     from pyproj.database import query_utm_crs_info
@@ -142,20 +144,48 @@ def _tie_mask(lines: pd.Series, config: SurveyConfig) -> np.ndarray:
     return mask
 
 
+def input_format(config: SurveyConfig, path: Path) -> str:
+    """``"aseg-gdf2"`` or ``"delimited"`` for one input file (``[input] format``; ``"auto"`` =
+    ASEG-GDF2 for a ``.dat`` file with its ``.des`` beside it)."""
+    if config.input.format != "auto":
+        return config.input.format
+    from ..io.gdf2 import descriptor_path
+
+    if path.suffix.lower() == ".dat" and descriptor_path(path) is not None:
+        return "aseg-gdf2"
+    return "delimited"
+
+
 def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
-    """Read, map, parse and convert every input file; concatenated in file order."""
+    """Read, map, parse and convert every input file; concatenated in file order.
+
+    ``[input] keep_columns`` are carried unchanged (as text) under ``raw_<name>``.
+    """
     columns = dict(config.input.columns)
     check_value_columns(config)
+    keep = {f"{KEEP_PREFIX}{name}": name for name in config.input.keep_columns}
+    # an ASEG-GDF2 descriptor matched by a glob beside its .dat is not a data file
+    data = {(p.parent, p.stem.lower()) for p in files if p.suffix.lower() == ".dat"}
+    files = [p for p in files if not (p.suffix.lower() == ".des" and (p.parent, p.stem.lower()) in data)]
     frames = []
     warnings: list[str] = []
     for path in files:
-        frame = read_delimited(path, columns=columns, delimiter=config.input.delimiter,
-                               skip_rows=config.input.skip_rows,
-                               missing_values=config.input.missing_values,
-                               encoding=config.input.encoding)
+        units = dict(config.input.units)
+        if input_format(config, path) == "aseg-gdf2":
+            from ..io.gdf2 import read_gdf2
+
+            frame, declared = read_gdf2(path, columns={**columns, **keep},
+                                        missing_values=config.input.missing_values, units=units)
+            units = {**declared, **units}
+        else:
+            frame = read_delimited(path, columns={**columns, **keep}, delimiter=config.input.delimiter,
+                                   skip_rows=config.input.skip_rows,
+                                   missing_values=config.input.missing_values,
+                                   encoding=config.input.encoding,
+                                   comment=config.input.comment, decimal=config.input.decimal)
         warnings += frame.attrs.get("warnings", [])
         if "time" in columns:
-            out = pd.DataFrame({"time": parse_time(frame, config.input.time, path)})
+            out = pd.DataFrame({"time": parse_time(frame, config.input.time, path, names=columns)})
         else:  # a survey without time (station lists): no time column, no diurnal correction
             out = pd.DataFrame(index=pd.RangeIndex(len(frame)))
         for name in columns:
@@ -164,14 +194,53 @@ def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
             if name in TEXT_COLUMNS:
                 out[name] = frame[name].astype("string").str.strip().astype(object).to_numpy()
             else:
-                out[name] = convert_units(to_numeric(frame, name, path),
-                                          unit_factor(name, config.input.units))
+                out[name] = convert_units(to_numeric(frame, name, path), unit_factor(name, units))
+        for name in keep:
+            out[name] = frame[name].astype(object).to_numpy()
         out["source_file"] = frame["source_file"].to_numpy()
         out["source_row"] = frame["source_row"].to_numpy()
         frames.append(out)
     table = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
     table.attrs["warnings"] = warnings
     return table
+
+
+def read_observatory(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
+    """Observatory station files: IAGA-2002 as they are, delimited text through the column
+    mapping with each file's station and position from ``[[input.stations]]``."""
+    import fnmatch
+
+    from ..io.iaga2002 import looks_like_iaga2002, observatory_table
+
+    iaga = [p for p in files if config.input.format == "auto" and looks_like_iaga2002(p)]
+    frames = [observatory_table(iaga, geoid_undulation=config.survey.geoid_undulation)] if iaga else []
+    for path in (p for p in files if p not in iaga):
+        spec = next((s for s in config.input.stations
+                     if fnmatch.fnmatch(path.name, Path(s.file).name)
+                     or fnmatch.fnmatch(str(path), str(Path(s.file)))
+                     or str(path).endswith(s.file)), None)
+        if spec is None:
+            raise InputDataError("not an IAGA-2002 file and no [[input.stations]] entry names it",
+                                 file=path, key="input.stations",
+                                 fix='add [[input.stations]] with file, station, longitude, latitude '
+                                     '(and map time, mag_north, mag_east, mag_down, total_field)')
+        table = read_readings(config, [path])
+        n = len(table)
+        for name in ("mag_north", "mag_east", "mag_down", "total_field"):
+            if name not in table:
+                table[name] = np.full(n, np.nan)
+        table["line"] = spec.station
+        table["station"] = spec.station
+        table["longitude"] = np.full(n, ((spec.longitude + 180.0) % 360.0) - 180.0)
+        table["latitude"] = np.full(n, float(spec.latitude))
+        table["elevation"] = np.full(n, float(spec.elevation))
+        table["height"] = np.full(n, float(spec.elevation) + config.survey.geoid_undulation)
+        frames.append(table)
+    if not frames:
+        raise InputDataError("no station files given", key="input.files",
+                             fix="list the station files in [input] files")
+    table = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+    return table.sort_values(["line", "time"], kind="mergesort").reset_index(drop=True)
 
 
 def _check_range(table: pd.DataFrame, name: str, low: float, high: float, fix: str) -> None:
@@ -357,10 +426,8 @@ def run(ctx: StageContext) -> StageOutput:
     files = ctx.survey.input_files(config)
     ctx.progress(f"reading {len(files)} file(s)")
     if config.kind == "observatory":
-        from ..io.iaga2002 import observatory_table
-
-        table = observatory_table(files, geoid_undulation=config.survey.geoid_undulation)
-        warnings = []
+        table = read_observatory(config, files)
+        warnings = list(table.attrs.pop("warnings", []))
         in_crs = parse_crs(config.survey.crs, "survey.crs")
         _check_range(table, "latitude", -90, 90, "check the station's Geodetic Latitude header")
         check_readings(table, config)
