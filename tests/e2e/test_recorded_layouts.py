@@ -133,7 +133,8 @@ def test_aseg_gdf2_pair(tmp_path, capsys):
     readings = _run(root, "ingest", capsys)
     assert len(readings) == 60
     # the international foot: 0.3048 m exactly (1959 agreement)
-    np.testing.assert_allclose(readings["height"], 328.1 * 0.3048)
+    # the international foot: 0.3048 m exactly (1959 agreement); readings.csv keeps heights to 1 mm
+    np.testing.assert_allclose(readings["height"], 328.1 * 0.3048, rtol=0, atol=0.0006)
     assert readings["total_field"].isna().sum() == 1  # the NULL value
     first = readings.sort_values("raw_FID").iloc[0]
     assert _times(pd.Series([first["time"]]))[0] == pd.Timestamp("2024-05-01T10:00:00")  # 36000 s of day
@@ -174,7 +175,7 @@ def test_comment_header_local_time_and_fiducial(tmp_path, capsys):
 def test_base_log_decimal_commas_quality_codes(magnetic_survey, capsys):
     root = magnetic_survey
     lines = pd.read_csv(root / "raw" / "lines.csv")
-    utc = pd.to_datetime(lines["UTC"]).dt.tz_localize(None)
+    utc = pd.to_datetime(lines["time_utc"]).dt.tz_localize(None)
     start = utc.min().floor("min") - pd.Timedelta(minutes=2)
     seconds = np.arange(int((utc.max() - start).total_seconds()) + 180)
     times = start + pd.to_timedelta(seconds, unit="s")
@@ -200,7 +201,7 @@ def test_base_log_decimal_commas_quality_codes(magnetic_survey, capsys):
     # linear ramp of 0.01 nT/s: the correction differs between readings by 0.01 nT per second
     # (the rejected +5 nT block never reaches the correction)
     d = readings["diurnal"].to_numpy()[ok] - 0.01 * t[ok]
-    assert np.ptp(d) < 1e-6
+    assert np.ptp(d) < 2e-3  # readings.csv rounds nT to 0.001
     in_block = (t >= 240) & (t < 360)
     assert readings["flag_base_gap"].to_numpy(bool)[in_block].all() and in_block.any()
 

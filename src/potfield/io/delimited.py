@@ -102,6 +102,9 @@ def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
                 block.append(index)  # a comment line with text (underlines are not headers)
             index += 1
     if index >= len(lines) and not block:
+        if skip_rows:
+            raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
+                                 file=path, fix="check input.skip_rows and that the right file is named")
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     first = lines[index] if index < len(lines) else ""
     from_comment = False
@@ -357,6 +360,8 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
                 f"no input column is mapped to '{name}'", file=path, key=f"{columns_key}.{name}",
                 fix=f"add {name} = \"<your column>\" under [{columns_key}]",
             )
+    if path.suffix.lower() == ".zip":
+        _open_text(path).close()  # one member, or a one-line error naming the archive
     try:
         failure = _decode_failure(path, encoding)
     except (OSError, EOFError, ValueError) as err:  # a damaged compressed file
@@ -529,6 +534,8 @@ def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | No
     from .timefmt import parse_times
 
     try:
+        if _legacy_layout(frame, spec):
+            return _parse_time(frame, spec, path)
         return parse_times(frame, spec, path, names=names, key=key)
     except (ValueError, OverflowError, pd.errors.OutOfBoundsDatetime) as err:
         # pandas' DateParseError and OutOfBoundsDatetime are ValueErrors
@@ -536,3 +543,94 @@ def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | No
             raise
         raise InputDataError(f"cannot read the times as {spec.format} ({_first_line(err)})",
                              file=path, fix="check the time column and [input.time] format") from None
+
+
+def _legacy_layout(frame: pd.DataFrame, spec) -> bool:
+    """True for the three named layouts without the options of :mod:`potfield.io.timefmt`
+    (pattern, date pattern, UTC offset, time zone, clock offset, ISO times of day with a date
+    column): read by :func:`_parse_time`, which bounds the offsets and out-of-range years."""
+    if spec.format not in ("iso", "date_seconds", "decimal_hours"):
+        return False
+    if any(getattr(spec, name, None) for name in ("date_format", "utc_offset_h", "timezone",
+                                                   "clock_offset_s")):
+        return False
+    return not (spec.format == "iso" and "date" in frame)
+
+
+def _parse_date(text: pd.Series) -> pd.Series:
+    text = text.astype("string").str.strip()
+    compact = text.str.fullmatch(r"\d{8}").fillna(False)
+    text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
+    text = text.str.replace("/", "-", regex=False)
+    return pd.to_datetime(_drop_out_of_range_years(text), format="%Y-%m-%d", errors="coerce")
+
+
+def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
+    """Dates whose year datetime64[ns] cannot hold (outside 1678..2261) as missing, so they are
+    reported as unreadable at their lines (pandas raises on them even with errors="coerce")."""
+    year = pd.to_numeric(text.str.extract(r"^\s*([+-]?\d{4,})-", expand=False), errors="coerce")
+    return text.where(~((year < 1678) | (year > 2261)).fillna(False).astype(bool), pd.NA)
+
+
+#: Largest |offset| (s) from the date accepted in date_seconds/decimal_hours times (400 days):
+#: keeps the nanosecond arithmetic far from int64 overflow.
+MAX_SECONDS = 400 * 86400.0
+
+
+def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
+    if "time" not in frame:
+        raise InputDataError("no input column is mapped to 'time'", file=path, key="input.columns.time",
+                             fix='add time = "<your time column>" under [input.columns]')
+    raw = frame["time"]
+    if spec.format == "iso":
+        text = raw.astype("string").str.strip()
+        # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
+        # to_datetime raises on them even with errors="coerce"
+        text = _drop_out_of_range_years(text)
+        parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
+        result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
+        bad = np.isnat(result)
+        example_source = raw.astype("string").str.strip()
+    else:
+        seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
+        if spec.format == "decimal_hours":
+            hours = seconds
+            jumps = np.zeros_like(hours)
+            if hours.size > 1:
+                drop = np.diff(hours) < -12.0
+                jumps[1:] = np.cumsum(drop) * 24.0
+            seconds = (hours + jumps) * 3600.0
+        elif (over := np.isfinite(seconds) & (np.abs(seconds) <= MAX_SECONDS)
+              & ((seconds < 0) | (seconds > 86400.0))).any():
+            rows = frame["source_row"].to_numpy()[over]
+            raise InputDataError(
+                f"time {raw[over].iloc[0]} is not seconds of day (0..86,400) as date_seconds at line "
+                f"{format_rows(rows)}", file=path,
+                fix="if it is hhmmss (120204 = 12:02:04) set [input.time] format = '%H%M%S'")
+        if "date" in frame:
+            day = _parse_date(frame["date"]).astype("datetime64[ns]").to_numpy()
+        elif spec.date:
+            day = np.full(len(frame), np.datetime64(pd.Timestamp(spec.date).to_datetime64(), "ns"))
+        else:
+            raise InputDataError(
+                f"time format '{spec.format}' needs a date", file=path, key="input.time.date",
+                fix='map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [input.time]',
+            )
+        ns = np.round(seconds * 1e9)
+        good = np.isfinite(ns) & (np.abs(seconds) <= MAX_SECONDS) & ~np.isnat(day)
+        day_ns = day.astype("int64").astype(float)
+        good &= np.abs(day_ns + np.where(good, ns, 0.0)) < 9.2e18  # inside datetime64[ns]
+        result = np.full(len(frame), np.datetime64("NaT"), dtype="datetime64[ns]")
+        result[good] = day[good] + ns[good].astype("int64").astype("timedelta64[ns]")
+        bad = np.isnat(result)
+        example_source = raw.astype("string")
+        if "date" in frame:
+            example_source = frame["date"].astype("string").str.strip() + " " + example_source
+    if bad.any():
+        rows = frame["source_row"].to_numpy()[bad]
+        raise InputDataError(
+            f"cannot read the time '{example_source[bad].iloc[0]}' as {spec.format} at line "
+            f"{format_rows(rows)}", file=path,
+            fix="use ISO 8601 (2024-05-01T10:00:00Z) or set [input.time] format to the one the file uses",
+        )
+    return result

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..config import COLUMN_QUANTITY, UNIT_FACTORS
+from ..units import COLUMN_QUANTITY, UNIT_FACTORS
 from ..errors import InputDataError, format_rows
 from .delimited import is_text_column
 

@@ -352,10 +352,10 @@ def run(ctx: StageContext) -> StageOutput:
         table["instrument_height_correction"] = 0.0
         notes.append("no instrument_height column: readings taken as at the station mark")
     # 3. tide (not twice: a tide the gravimeter already added stays in meter_tide)
-    meter = cfg.meter_tide_applied
-    if meter is None:
-        meter = "meter_tide" in src and bool(np.nan_to_num(src["meter_tide"].to_numpy(float)).any())
-    if meter and cfg.tide:
+    tide_by_meter = cfg.meter_tide_applied
+    if tide_by_meter is None:
+        tide_by_meter = "meter_tide" in src and bool(np.nan_to_num(src["meter_tide"].to_numpy(float)).any())
+    if tide_by_meter and cfg.tide:
         table["tide"] = 0.0
         notes.append("Earth tide already corrected by the gravimeter (meter_tide / [drift] "
                      "meter_tide_applied): potfield adds none")
@@ -468,7 +468,7 @@ def run(ctx: StageContext) -> StageOutput:
         "loop_rule": rule,
         "bases": {name: g for name, (g, _) in bases.items()},
         "tide": bool(cfg.tide),
-        "tide_by_meter": bool(meter),
+        "tide_by_meter": bool(tide_by_meter),
         "gravimetric_factor": float(cfg.gravimetric_factor),
         "sigma0": metrics["sigma0"],
     }
