@@ -5,7 +5,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.potfield-installed
 DEMOS  := surveys/demo-magnetic surveys/demo-gravity surveys/demo-observatory
 
-.PHONY: venv demo test bench clean-demo
+.PHONY: venv demo lint test bench clean-demo
 
 $(STAMP): pyproject.toml
 	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -24,7 +24,11 @@ demo: $(STAMP)
 	done
 	@echo "Demo results: surveys/*/out/report.html (tables in out/tables, grids in out/grids)"
 
-test: $(STAMP)
+lint: $(STAMP)
+	$(BIN)/ruff check src tests benchmarks
+	$(BIN)/ruff format --check src tests benchmarks
+
+test: lint
 	$(BIN)/python -m pytest -q -n 2 --dist loadfile
 
 bench: $(STAMP)

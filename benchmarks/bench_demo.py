@@ -13,7 +13,6 @@ import os
 import subprocess
 import sys
 import tempfile
-from pathlib import Path
 
 _CHILD = r"""
 import json, resource, sys, time
@@ -43,8 +42,9 @@ print(json.dumps(out))
 
 def _run(kind: str, n) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
-        proc = subprocess.run([sys.executable, "-c", _CHILD, kind, tmp, str(n)], capture_output=True,
-                              text=True, timeout=3600)
+        proc = subprocess.run(
+            [sys.executable, "-c", _CHILD, kind, tmp, str(n)], capture_output=True, text=True, timeout=3600
+        )
     if proc.returncode != 0:
         return {"error": proc.stderr[-2000:]}
     return json.loads(proc.stdout.strip().splitlines()[-1])
@@ -57,8 +57,9 @@ def bench_demo_magnetic():
         row = {"requested_readings": n, **_run("magnetic", n)}
         rows.append(row)
     million = [r for r in rows if r["requested_readings"] == 1_000_000 and "seconds" in r]
-    summary = ", ".join(f"{r.get('readings', r['requested_readings']):,}: {r.get('seconds', 'error')} s"
-                        for r in rows)
+    summary = ", ".join(
+        f"{r.get('readings', r['requested_readings']):,}: {r.get('seconds', 'error')} s" for r in rows
+    )
     if million:
         summary += f" (1M target < 120 s: {'met' if million[0]['seconds'] < 120 else 'MISSED'})"
     return {"sizes": rows, "summary": summary}
@@ -66,8 +67,9 @@ def bench_demo_magnetic():
 
 def bench_demo_gravity_observatory():
     out = {kind: _run(kind, "none") for kind in ("gravity", "observatory")}
-    out["summary"] = ", ".join(f"{k}: {v.get('seconds', 'error')} s, {v.get('peak_rss_mb', '?')} MB"
-                               for k, v in out.items())
+    out["summary"] = ", ".join(
+        f"{k}: {v.get('seconds', 'error')} s, {v.get('peak_rss_mb', '?')} MB" for k, v in out.items()
+    )
     return out
 
 
@@ -94,8 +96,10 @@ def bench_demo_physics_accuracy():
         ours = observatory.synth_field(coeffs, r, th, ph, source=source)
         t_ours = time.perf_counter() - t0
         ref = cpm.synth_values(coeffs, r, th, ph, source=source)
-        errs[source] = {"max_abs_nT": float(max(np.max(np.abs(a - b)) for a, b in zip(ours, ref))),
-                        "seconds_100k_points_degree6": round(t_ours, 3)}
+        errs[source] = {
+            "max_abs_nT": float(max(np.max(np.abs(a - b)) for a, b in zip(ours, ref))),
+            "seconds_100k_points_degree6": round(t_ours, 3),
+        }
     # gravity topography kernel (prism < 3 km, line mass beyond) vs harmonica prisms, flat Earth
     cells = np.arange(-9875.0, 10000.0, 250.0)
     E, N = np.meshgrid(cells, cells)
@@ -112,18 +116,25 @@ def bench_demo_physics_accuracy():
         t_mine = time.perf_counter() - t0
     finally:
         gravity.EARTH_RADIUS, gravity.FAR_RADIUS = saved
-    prisms = np.column_stack([E.ravel() - 125, E.ravel() + 125, N.ravel() - 125, N.ravel() + 125,
-                              np.zeros(E.size), dem.ravel()])
+    prisms = np.column_stack(
+        [E.ravel() - 125, E.ravel() + 125, N.ravel() - 125, N.ravel() + 125, np.zeros(E.size), dem.ravel()]
+    )
     t0 = time.perf_counter()
     ref = hm.prism_gravity((x, y, z), prisms, np.full(E.size, 2670.0), field="g_z")
     t_ref = time.perf_counter() - t0
     return {
         "observatory_vs_chaosmagpy": errs,
-        "topography_vs_harmonica": {"stations": 50, "prisms": int(E.size),
-                                    "max_abs_mGal": float(np.max(np.abs(mine - ref))),
-                                    "seconds_ours": round(t_mine, 3), "seconds_harmonica": round(t_ref, 3)},
-        "summary": (f"SH synthesis vs chaosmagpy {max(e['max_abs_nT'] for e in errs.values()):.1e} nT; "
-                    f"terrain kernel vs harmonica {float(np.max(np.abs(mine - ref))):.1e} mGal"),
+        "topography_vs_harmonica": {
+            "stations": 50,
+            "prisms": int(E.size),
+            "max_abs_mGal": float(np.max(np.abs(mine - ref))),
+            "seconds_ours": round(t_mine, 3),
+            "seconds_harmonica": round(t_ref, 3),
+        },
+        "summary": (
+            f"SH synthesis vs chaosmagpy {max(e['max_abs_nT'] for e in errs.values()):.1e} nT; "
+            f"terrain kernel vs harmonica {float(np.max(np.abs(mine - ref))):.1e} mGal"
+        ),
     }
 
 

@@ -39,8 +39,7 @@ def _survey(size, seed=0):
     north = north + rng.normal(0, 8, north.shape)
     up = HEIGHT + rng.normal(0, 10, east.shape)
     count = max(20, int(side * side / 4e6 * 3))  # ~3 sources per 2 km x 2 km
-    sources = (rng.uniform(0, side, count), rng.uniform(0, side, count),
-               -rng.uniform(300, 1500, count))
+    sources = (rng.uniform(0, side, count), rng.uniform(0, side, count), -rng.uniform(300, 1500, count))
     masses = rng.normal(0, 1e11, count)
 
     def truth(coordinates):
@@ -85,20 +84,27 @@ def bench_grid(sizes=(1e4, 1e5, 1e6), gb_max=1e5, spline_max=1e4, seed=0):
     for size in sizes:
         size = int(size)
         coords, data, truth, side = _survey(size, seed)
-        (blocked, bdata), t_block, _ = _measure(lambda: vd.BlockReduce(
-            np.median, spacing=BLOCK, drop_coords=False).filter(coords, data))
+        (blocked, bdata), t_block, _ = _measure(
+            lambda: vd.BlockReduce(np.median, spacing=BLOCK, drop_coords=False).filter(coords, data)
+        )
         blocked = tuple(np.asarray(c, dtype=float).ravel() for c in blocked)
         bdata = np.asarray(bdata, dtype=float).ravel()
-        kfold = vd.BlockKFold(spacing=2.5 * LINE_SPACING, n_splits=5, shuffle=True,
-                              random_state=seed)
+        kfold = vd.BlockKFold(spacing=2.5 * LINE_SPACING, n_splits=5, shuffle=True, random_state=seed)
         train, test = next(kfold.split(np.column_stack(blocked[:2])))
-        grid = vd.grid_coordinates((0.1 * side, 0.9 * side, 0.1 * side, 0.9 * side),
-                                   spacing=BLOCK * 4, extra_coords=HEIGHT)
+        grid = vd.grid_coordinates(
+            (0.1 * side, 0.9 * side, 0.1 * side, 0.9 * side), spacing=BLOCK * 4, extra_coords=HEIGHT
+        )
         true_grid = truth(grid)
-        near = vd.distance_mask(tuple(c[train] for c in blocked[:2]), maxdist=1.5 * LINE_SPACING,
-                                coordinates=grid[:2])
-        entry = {"readings": size, "blocks": int(bdata.size), "train": int(train.size),
-                 "block_reduce_s": round(t_block, 2), "methods": {}}
+        near = vd.distance_mask(
+            tuple(c[train] for c in blocked[:2]), maxdist=1.5 * LINE_SPACING, coordinates=grid[:2]
+        )
+        entry = {
+            "readings": size,
+            "blocks": int(bdata.size),
+            "train": int(train.size),
+            "block_reduce_s": round(t_block, 2),
+            "methods": {},
+        }
 
         def record(name, fit):
             model, seconds, peak = _measure(fit)
@@ -108,25 +114,41 @@ def bench_grid(sizes=(1e4, 1e5, 1e6), gb_max=1e5, spline_max=1e4, seed=0):
                 "fit_s": round(seconds, 2),
                 "peak_mb": round(peak, 1),
                 "cv_r2": round(_r2(bdata[test], pred), 6),
-                "grid_rel_rms": round(float(np.sqrt(np.mean((grid_pred - true_grid)[near] ** 2))
-                                            / np.std(true_grid[near])), 5),
+                "grid_rel_rms": round(
+                    float(np.sqrt(np.mean((grid_pred - true_grid)[near] ** 2)) / np.std(true_grid[near])), 5
+                ),
             }
             if hasattr(model, "info"):
-                entry["methods"][name]["info"] = {k: v for k, v in model.info.items()
-                                                  if isinstance(v, (int, float, bool))}
+                entry["methods"][name]["info"] = {
+                    k: v for k, v in model.info.items() if isinstance(v, (int, float, bool))
+                }
             print(json.dumps({size: {name: entry["methods"][name]}}), file=sys.stderr, flush=True)
 
         tc = tuple(c[train] for c in blocked)
-        record("potfield_lattice", lambda: eqs.fit_equivalent_sources(
-            *tc, bdata[train], depth=DEPTH, damping=DAMPING, block_size=BLOCK, method="fft"))
+        record(
+            "potfield_lattice",
+            lambda: eqs.fit_equivalent_sources(
+                *tc, bdata[train], depth=DEPTH, damping=DAMPING, block_size=BLOCK, method="fft"
+            ),
+        )
         if size <= gb_max:
-            record("harmonica_gb", lambda: hm.EquivalentSourcesGB(
-                damping=DAMPING, depth=DEPTH, random_state=seed).fit(tc, bdata[train]))
+            record(
+                "harmonica_gb",
+                lambda: hm.EquivalentSourcesGB(damping=DAMPING, depth=DEPTH, random_state=seed).fit(
+                    tc, bdata[train]
+                ),
+            )
         if size <= spline_max:
             record("verde_spline", lambda: vd.Spline(damping=1e-5).fit(tc[:2], bdata[train]))
         results.append(entry)
-    return {"benchmark": "grid", "line_spacing_m": LINE_SPACING, "block_m": BLOCK,
-            "depth_m": DEPTH, "damping": DAMPING, "results": results}
+    return {
+        "benchmark": "grid",
+        "line_spacing_m": LINE_SPACING,
+        "block_m": BLOCK,
+        "depth_m": DEPTH,
+        "damping": DAMPING,
+        "results": results,
+    }
 
 
 if __name__ == "__main__":
@@ -185,59 +207,98 @@ def bench_grid_vs_harmonica_demo(readings=1_000_000, seed=1, gb_damping=1e-4, fo
     ok = usable(table) & np.isfinite(values)
     block = line_spacing / 4.0  # the stage's default cell and block size (common practice)
     (be, bn, bh), bd = eqs.block_median(e[ok], n[ok], h[ok], values[ok], block)
-    kfold = vd.BlockKFold(spacing=line_spacing, n_splits=folds, shuffle=True, random_state=seed,
-                          balance=True)
+    kfold = vd.BlockKFold(spacing=line_spacing, n_splits=folds, shuffle=True, random_state=seed, balance=True)
     train, test = next(kfold.split(np.column_stack([be, bn])))
     ge, gn = np.meshgrid(truth.easting.values, truth.northing.values)
     near = vd.distance_mask((be[train], bn[train]), maxdist=2 * line_spacing, coordinates=(ge, gn))
     grid_points = (ge[near], gn[near], np.full(int(near.sum()), truth_height))
     true_values = truth.values[near]
     tc = (be[train], bn[train], bh[train])
-    out = {"readings": int(ok.sum()), "blocks": int(bd.size), "train": int(train.size),
-           "test": int(test.size), "block_m": block, "line_spacing_m": line_spacing,
-           "load_before": os.getloadavg()[0], "methods": {}}
+    out = {
+        "readings": int(ok.sum()),
+        "blocks": int(bd.size),
+        "train": int(train.size),
+        "test": int(test.size),
+        "block_m": block,
+        "line_spacing_m": line_spacing,
+        "load_before": os.getloadavg()[0],
+        "methods": {},
+    }
 
     def score(name, model, seconds, extra):
         pred = model.predict((be[test], bn[test], bh[test]))
         grid_pred = model.predict(grid_points)
         diff = grid_pred - true_values
         diff -= diff.mean()  # the diurnal datum is a constant (see tests/e2e)
-        out["methods"][name] = {"fit_s": round(seconds, 1), "cv_r2": round(_r2(bd[test], pred), 7),
-                                "truth_rel_rms": round(float(np.sqrt(np.mean(diff ** 2))
-                                                             / true_values.std()), 5), **extra}
+        out["methods"][name] = {
+            "fit_s": round(seconds, 1),
+            "cv_r2": round(_r2(bd[test], pred), 7),
+            "truth_rel_rms": round(float(np.sqrt(np.mean(diff**2)) / true_values.std()), 5),
+            **extra,
+        }
         print(_json.dumps({name: out["methods"][name]}), file=sys.stderr, flush=True)
 
     cfg = GridSection()
     few = slice(0, 3000)  # warm-up: numba compilation of both methods, untimed
-    eqs.fit_equivalent_sources(*(c[few] for c in tc), bd[train][few], depth=4 * block,
-                               damping=1e-3, block_size=block, method="fft", maxiter=3)
+    eqs.fit_equivalent_sources(
+        *(c[few] for c in tc),
+        bd[train][few],
+        depth=4 * block,
+        damping=1e-3,
+        block_size=block,
+        method="fft",
+        maxiter=3,
+    )
     hm.EquivalentSourcesGB(damping=gb_damping, depth=4 * block, random_state=seed).fit(
-        tuple(c[few] for c in tc), bd[train][few])
+        tuple(c[few] for c in tc), bd[train][few]
+    )
     height = float(np.median(bh[train]))  # the stage's default grid height
     start = time.perf_counter()
-    _, best = grid_stage._search(*tc, bd[train], cfg, block, line_spacing, lambda m: None,
-                                 height)
+    _, best = grid_stage._search(*tc, bd[train], cfg, block, line_spacing, lambda m: None, height)
     search_s = time.perf_counter() - start
-    model = eqs.fit_equivalent_sources(*tc, bd[train], depth=best["depth"],
-                                       damping=best["damping"], block_size=block,
-                                       **grid_stage._fit_options(cfg, height, best["depth"]))
+    model = eqs.fit_equivalent_sources(
+        *tc,
+        bd[train],
+        depth=best["depth"],
+        damping=best["damping"],
+        block_size=block,
+        **grid_stage._fit_options(cfg, height, best["depth"]),
+    )
     seconds = time.perf_counter() - start
-    score("potfield_grid_stage", model, seconds,
-          {"search_s": round(search_s, 1), "depth_m": best["depth"], "damping": best["damping"],
-           "sources": model.n_sources, "iterations": model.info.get("iterations")})
+    score(
+        "potfield_grid_stage",
+        model,
+        seconds,
+        {
+            "search_s": round(search_s, 1),
+            "depth_m": best["depth"],
+            "damping": best["damping"],
+            "sources": model.n_sources,
+            "iterations": model.info.get("iterations"),
+        },
+    )
     start = time.perf_counter()
-    gb = hm.EquivalentSourcesGB(damping=gb_damping, depth=best["depth"],
-                                random_state=seed).fit(tc, bd[train])
+    gb = hm.EquivalentSourcesGB(damping=gb_damping, depth=best["depth"], random_state=seed).fit(tc, bd[train])
     seconds = time.perf_counter() - start
-    score("harmonica_gb", gb, seconds, {"depth_m": best["depth"], "damping": gb_damping,
-                                        "window_m": round(float(gb.window_size_), 1),
-                                        "sources": int(gb.points_[0].size)})
+    score(
+        "harmonica_gb",
+        gb,
+        seconds,
+        {
+            "depth_m": best["depth"],
+            "damping": gb_damping,
+            "window_m": round(float(gb.window_size_), 1),
+            "sources": int(gb.points_[0].size),
+        },
+    )
     ours, theirs = out["methods"]["potfield_grid_stage"], out["methods"]["harmonica_gb"]
     out["speedup"] = round(theirs["fit_s"] / ours["fit_s"], 2)
     met = out["speedup"] >= 3.0 and ours["cv_r2"] >= theirs["cv_r2"]
     out["target"] = ("met" if met else "missed") + " (>= 3x faster at equal or better CV R2)"
-    out["summary"] = (f"{out['blocks']:,} blocks of {out['readings']:,} readings: potfield "
-                      f"{ours['fit_s']} s (CV R2 {ours['cv_r2']}, truth {ours['truth_rel_rms']:.2%}) "
-                      f"vs harmonica GB {theirs['fit_s']} s (CV R2 {theirs['cv_r2']}, truth "
-                      f"{theirs['truth_rel_rms']:.2%}): {out['speedup']}x; target {out['target']}")
+    out["summary"] = (
+        f"{out['blocks']:,} blocks of {out['readings']:,} readings: potfield "
+        f"{ours['fit_s']} s (CV R2 {ours['cv_r2']}, truth {ours['truth_rel_rms']:.2%}) "
+        f"vs harmonica GB {theirs['fit_s']} s (CV R2 {theirs['cv_r2']}, truth "
+        f"{theirs['truth_rel_rms']:.2%}): {out['speedup']}x; target {out['target']}"
+    )
     return out

@@ -83,13 +83,17 @@ def bench_igrf(sizes=(10_000, 100_000, 1_000_000), ppigrf_max: int = 100_000, re
         lon, lat, height, year = _points(n)
         ours_s = _best(lambda: igrf(lon, lat, height, year), repeat)
         ours_peak = _peak_bytes(lambda: igrf(lon, lat, height, year))
-        times = np.datetime64("2020-01-01", "ns") + (
-            (year - 2020.0) * 365.25 * 86400e9).astype("timedelta64[ns]")
+        times = np.datetime64("2020-01-01", "ns") + ((year - 2020.0) * 365.25 * 86400e9).astype(
+            "timedelta64[ns]"
+        )
         ours_dt_s = _best(lambda: igrf(lon, lat, height, times), repeat)
-        row = {"points": n, "ours_seconds": round(ours_s, 4),
-               "ours_points_per_second": round(n / ours_s),
-               "ours_seconds_datetime64_input": round(ours_dt_s, 4),
-               "ours_peak_memory_mb": round(ours_peak / 2**20, 1)}
+        row = {
+            "points": n,
+            "ours_seconds": round(ours_s, 4),
+            "ours_points_per_second": round(n / ours_s),
+            "ours_seconds_datetime64_input": round(ours_dt_s, 4),
+            "ours_peak_memory_mb": round(ours_peak / 2**20, 1),
+        }
         single = 2022.37
         if n <= ppigrf_max:
             start = time.perf_counter()
@@ -98,26 +102,41 @@ def bench_igrf(sizes=(10_000, 100_000, 1_000_000), ppigrf_max: int = 100_000, re
             ppigrf_rate = pp_s / n
             pp_peak = _peak_bytes(lambda: _ppigrf_run(lon[:10_000], lat[:10_000], height[:10_000], single))
             same = igrf(lon, lat, height, single)
-            diff = max(float(np.max(np.abs(same.north - ref[0]))), float(np.max(np.abs(same.east - ref[1]))),
-                       float(np.max(np.abs(same.down - ref[2]))),
-                       float(np.max(np.abs(same.total - np.sqrt((ref**2).sum(axis=0))))))
-            row.update({"ppigrf_seconds": round(pp_s, 3), "ppigrf_measured": True,
-                        "ppigrf_peak_memory_mb_per_10k_points": round(pp_peak / 2**20, 1),
-                        "max_abs_difference_nT": diff})
+            diff = max(
+                float(np.max(np.abs(same.north - ref[0]))),
+                float(np.max(np.abs(same.east - ref[1]))),
+                float(np.max(np.abs(same.down - ref[2]))),
+                float(np.max(np.abs(same.total - np.sqrt((ref**2).sum(axis=0))))),
+            )
+            row.update(
+                {
+                    "ppigrf_seconds": round(pp_s, 3),
+                    "ppigrf_measured": True,
+                    "ppigrf_peak_memory_mb_per_10k_points": round(pp_peak / 2**20, 1),
+                    "max_abs_difference_nT": diff,
+                }
+            )
         else:
             pp_s = ppigrf_rate * n if ppigrf_rate else float("nan")
-            row.update({"ppigrf_seconds": round(pp_s, 3), "ppigrf_measured": False,
-                        "ppigrf_note": f"scaled linearly from its {ppigrf_max}-point run"})
+            row.update(
+                {
+                    "ppigrf_seconds": round(pp_s, 3),
+                    "ppigrf_measured": False,
+                    "ppigrf_note": f"scaled linearly from its {ppigrf_max}-point run",
+                }
+            )
         row["speedup"] = round(pp_s / ours_s, 1)
         rows.append(row)
     top = rows[-1]
     return {
         "sizes": list(sizes),
         "rows": rows,
-        "summary": (f"{top['points']} points: {top['ours_seconds']} s "
-                    f"({top['ours_points_per_second'] / 1e6:.2f} M points/s), "
-                    f"{top['speedup']}x ppigrf"
-                    f"{'' if top.get('ppigrf_measured') else ' (ppigrf time scaled)'}"),
+        "summary": (
+            f"{top['points']} points: {top['ours_seconds']} s "
+            f"({top['ours_points_per_second'] / 1e6:.2f} M points/s), "
+            f"{top['speedup']}x ppigrf"
+            f"{'' if top.get('ppigrf_measured') else ' (ppigrf time scaled)'}"
+        ),
     }
 
 

@@ -132,9 +132,10 @@ def bench_micro_level(n=1000, spacing=100.0, cell=25.0):
     coords = np.arange(n) * cell
     ee, nn = np.meshgrid(coords, coords)
     stripes = np.where(np.floor(nn / spacing) % 2 == 0, 1.0, -1.0)
-    smooth = 200.0 * np.exp(-((ee - ee.mean()) ** 2 + (nn - nn.mean()) ** 2) / (2 * 2000.0 ** 2))
-    grid = xr.DataArray(smooth + stripes, coords={"northing": coords, "easting": coords},
-                        dims=("northing", "easting"))
+    smooth = 200.0 * np.exp(-((ee - ee.mean()) ** 2 + (nn - nn.mean()) ** 2) / (2 * 2000.0**2))
+    grid = xr.DataArray(
+        smooth + stripes, coords={"northing": coords, "easting": coords}, dims=("northing", "easting")
+    )
     t0 = time.perf_counter()
     corr = micro_level(grid, 90.0, spacing, 3.0, max_amplitude=2.0).to_numpy()
     seconds = time.perf_counter() - t0
@@ -147,9 +148,10 @@ def bench_micro_level(n=1000, spacing=100.0, cell=25.0):
         "peak_memory_mb": round(peak / 2**20, 1),
         "accuracy": {
             "stripe_rms_before": float(np.sqrt(np.mean(stripes[core] ** 2))),
-            "stripe_rms_after": float(np.sqrt(np.mean(residual ** 2))),
-            "smooth_peak_to_peak_change": float(np.ptp((smooth + stripes - corr)[core])
-                                                / np.ptp(smooth[core]) - 1.0),
+            "stripe_rms_after": float(np.sqrt(np.mean(residual**2))),
+            "smooth_peak_to_peak_change": float(
+                np.ptp((smooth + stripes - corr)[core]) / np.ptp(smooth[core]) - 1.0
+            ),
         },
     }
 
@@ -157,5 +159,13 @@ def bench_micro_level(n=1000, spacing=100.0, cell=25.0):
 if __name__ == "__main__":  # pragma: no cover
     import json
 
-    print(json.dumps({"crossovers": bench_crossovers(), "levelling": bench_levelling(),
-                      "micro_level": bench_micro_level()}, indent=2))
+    print(
+        json.dumps(
+            {
+                "crossovers": bench_crossovers(),
+                "levelling": bench_levelling(),
+                "micro_level": bench_micro_level(),
+            },
+            indent=2,
+        )
+    )

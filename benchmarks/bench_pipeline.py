@@ -130,8 +130,12 @@ def _child_generate(readings: int, folder: Path, tiled: bool) -> dict:
         write_text(toml, text)  # the benchmark's own temporary survey, not a raw/ file
     params = json.loads((root / "truth" / "parameters.json").read_text())
     size = sum(p.stat().st_size for p in root.rglob("*") if p.is_file())
-    return {"seconds": round(seconds, 3), "peak_rss_mb": round(_maxrss_mb(), 1),
-            "folder_mb": round(size / 2 ** 20, 1), "parameters_keys": sorted(params)[:20]}
+    return {
+        "seconds": round(seconds, 3),
+        "peak_rss_mb": round(_maxrss_mb(), 1),
+        "folder_mb": round(size / 2**20, 1),
+        "parameters_keys": sorted(params)[:20],
+    }
 
 
 def _last_table(out: Path, order) -> Path | None:
@@ -158,8 +162,11 @@ def _accuracy(root: Path, order) -> dict:
     flags = [c for c in names if c.startswith("flag_")]
     table = pd.read_parquet(table_path, columns=["source_file", "source_row", *value_cols, *flags])
     usable = ~table[flags].to_numpy(dtype=bool).any(axis=1) if flags else np.ones(len(table), bool)
-    truth = pd.read_csv(root / "truth" / "readings_truth.csv", engine="pyarrow",
-                        usecols=["source_file", "source_row", "crustal_anomaly"])
+    truth = pd.read_csv(
+        root / "truth" / "readings_truth.csv",
+        engine="pyarrow",
+        usecols=["source_file", "source_row", "crustal_anomaly"],
+    )
     table["source_file"] = table["source_file"].astype(str).map(lambda s: Path(s).name)
     truth["source_file"] = truth["source_file"].astype(str).map(lambda s: Path(s).name)
     merged = table[usable].merge(truth, on=["source_file", "source_row"], how="inner")
@@ -212,13 +219,21 @@ def _child_pipeline(folder: Path) -> dict:
     seconds = time.perf_counter() - started
     peak = _maxrss_mb()
     for name, entry in manifest.get("stages", {}).items():
-        stages[name] = {"status": entry.get("status"), "seconds": entry.get("seconds"),
-                        "peak_rss_mb": round(sampler.peaks.get(name, float("nan")), 1),
-                        "metrics": entry.get("metrics", {})}
+        stages[name] = {
+            "status": entry.get("status"),
+            "seconds": entry.get("seconds"),
+            "peak_rss_mb": round(sampler.peaks.get(name, float("nan")), 1),
+            "metrics": entry.get("metrics", {}),
+        }
     outputs_peak = max([v for k, v in sampler.peaks.items() if k.startswith("after ")] or [0.0])
-    return {"seconds": round(seconds, 3), "peak_rss_mb": round(peak, 1),
-            "outputs_peak_rss_mb": round(outputs_peak, 1), "stages": stages, "error": error,
-            "accuracy": _accuracy(folder, KIND_ORDER["magnetic"])}
+    return {
+        "seconds": round(seconds, 3),
+        "peak_rss_mb": round(peak, 1),
+        "outputs_peak_rss_mb": round(outputs_peak, 1),
+        "stages": stages,
+        "error": error,
+        "accuracy": _accuracy(folder, KIND_ORDER["magnetic"]),
+    }
 
 
 def _child_main(argv) -> int:
@@ -238,9 +253,12 @@ def _run_child(args, timeout) -> dict:
     with tempfile.NamedTemporaryFile(suffix=".json", delete=False) as handle:
         out = Path(handle.name)
     try:
-        proc = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--child", *args[:3],
-                               str(out), *args[3:]], capture_output=True, text=True,
-                              timeout=timeout)
+        proc = subprocess.run(
+            [sys.executable, str(Path(__file__).resolve()), "--child", *args[:3], str(out), *args[3:]],
+            capture_output=True,
+            text=True,
+            timeout=timeout,
+        )
         if proc.returncode != 0 or not out.stat().st_size:
             return {"error": f"child exited {proc.returncode}: {proc.stderr[-2000:]}"}
         return json.loads(out.read_text())
@@ -251,9 +269,21 @@ def _run_child(args, timeout) -> dict:
             # Keep the stages that finished before the limit (the runner writes the manifest
             # after every stage).
             stages = json.loads(manifest.read_text()).get("stages", {})
-            record.update({"seconds": None, "peak_rss_mb": None, "accuracy": {}, "stages": {
-                name: {"status": entry.get("status"), "seconds": entry.get("seconds"),
-                       "metrics": entry.get("metrics", {})} for name, entry in stages.items()}})
+            record.update(
+                {
+                    "seconds": None,
+                    "peak_rss_mb": None,
+                    "accuracy": {},
+                    "stages": {
+                        name: {
+                            "status": entry.get("status"),
+                            "seconds": entry.get("seconds"),
+                            "metrics": entry.get("metrics", {}),
+                        }
+                        for name, entry in stages.items()
+                    },
+                }
+            )
         return record
     finally:
         out.unlink(missing_ok=True)
@@ -280,8 +310,11 @@ def _load() -> list[float]:
 def _slope(runs, lo=10_000, hi=1_300_000):
     import numpy as np
 
-    pts = [(r["readings"], r["pipeline"]["seconds"]) for r in runs
-           if lo <= r["readings"] <= hi and r.get("pipeline", {}).get("seconds")]
+    pts = [
+        (r["readings"], r["pipeline"]["seconds"])
+        for r in runs
+        if lo <= r["readings"] <= hi and r.get("pipeline", {}).get("seconds")
+    ]
     if len(pts) < 2:
         return None
     x, y = np.log([p[0] for p in pts]), np.log([p[1] for p in pts])
@@ -293,9 +326,11 @@ def _estimate(previous: dict, readings: int) -> dict:
     slope = previous.get("local_slope") or 1.0
     pipe = previous["pipeline"]
     gen = previous["generate"]
-    return {"seconds": (pipe["seconds"] + gen["seconds"]) * factor ** max(slope, 1.0),
-            "peak_rss_mb": max(pipe["peak_rss_mb"], gen["peak_rss_mb"]) * factor,
-            "disk_mb": gen.get("folder_mb", 0.0) * factor * 2.5}  # raw + truth + out/
+    return {
+        "seconds": (pipe["seconds"] + gen["seconds"]) * factor ** max(slope, 1.0),
+        "peak_rss_mb": max(pipe["peak_rss_mb"], gen["peak_rss_mb"]) * factor,
+        "disk_mb": gen.get("folder_mb", 0.0) * factor * 2.5,
+    }  # raw + truth + out/
 
 
 def _targets(runs) -> dict:
@@ -306,34 +341,59 @@ def _targets(runs) -> dict:
     one = by_size[min(near, key=lambda n: abs(n - 1_000_000))] if near else None
     if one:
         sec = one["pipeline"]["seconds"]
-        out["seconds_1e6"] = {"target": TARGET_SECONDS_1E6, "value": sec,
-                              "met": sec <= TARGET_SECONDS_1E6,
-                              "by": round(sec - TARGET_SECONDS_1E6, 1),
-                              "complete": not one["pipeline"].get("error")}
+        out["seconds_1e6"] = {
+            "target": TARGET_SECONDS_1E6,
+            "value": sec,
+            "met": sec <= TARGET_SECONDS_1E6,
+            "by": round(sec - TARGET_SECONDS_1E6, 1),
+            "complete": not one["pipeline"].get("error"),
+        }
         peak = one["pipeline"]["peak_rss_mb"]
-        out["peak_mb_1e6"] = {"target": TARGET_PEAK_MB, "value": peak, "met": peak <= TARGET_PEAK_MB,
-                              "by": round(peak - TARGET_PEAK_MB, 1)}
+        out["peak_mb_1e6"] = {
+            "target": TARGET_PEAK_MB,
+            "value": peak,
+            "met": peak <= TARGET_PEAK_MB,
+            "by": round(peak - TARGET_PEAK_MB, 1),
+        }
     else:
-        timed_out = [r for r in runs if abs(r["readings"] / 1_000_000 - 1.0) <= 0.3
-                     and "timed out" in str(r.get("pipeline", {}).get("error"))]
-        note = ("1e6 did not finish: " + timed_out[0]["pipeline"]["error"]) if timed_out else \
-            "1e6 was not run"
-        out["seconds_1e6"] = {"target": TARGET_SECONDS_1E6, "value": None,
-                              "met": False if timed_out else None, "note": note}
+        timed_out = [
+            r
+            for r in runs
+            if abs(r["readings"] / 1_000_000 - 1.0) <= 0.3
+            and "timed out" in str(r.get("pipeline", {}).get("error"))
+        ]
+        note = (
+            ("1e6 did not finish: " + timed_out[0]["pipeline"]["error"]) if timed_out else "1e6 was not run"
+        )
+        out["seconds_1e6"] = {
+            "target": TARGET_SECONDS_1E6,
+            "value": None,
+            "met": False if timed_out else None,
+            "note": note,
+        }
         out["peak_mb_1e6"] = {"target": TARGET_PEAK_MB, "value": None, "met": None, "note": note}
-    peaks = [r["pipeline"]["peak_rss_mb"] for r in runs
-             if r.get("pipeline", {}).get("peak_rss_mb") is not None]
+    peaks = [
+        r["pipeline"]["peak_rss_mb"] for r in runs if r.get("pipeline", {}).get("peak_rss_mb") is not None
+    ]
     if peaks:
-        out["peak_mb_all"] = {"target": TARGET_PEAK_MB, "value": max(peaks),
-                              "met": max(peaks) <= TARGET_PEAK_MB}
+        out["peak_mb_all"] = {
+            "target": TARGET_PEAK_MB,
+            "value": max(peaks),
+            "met": max(peaks) <= TARGET_PEAK_MB,
+        }
     slope = _slope(runs)
-    sizes = [r["readings"] for r in runs if r.get("pipeline", {}).get("seconds")
-             and 10_000 <= r["readings"] <= 1_300_000]
-    out["slope_1e4_1e6"] = {"target": TARGET_SLOPE, "value": None if slope is None else round(slope, 3),
-                            "met": None if slope is None else slope <= TARGET_SLOPE,
-                            "sizes": sizes,
-                            "note": "" if any(s >= 700_000 for s in sizes)
-                            else "fitted over the sizes run (1e6 missing)"}
+    sizes = [
+        r["readings"]
+        for r in runs
+        if r.get("pipeline", {}).get("seconds") and 10_000 <= r["readings"] <= 1_300_000
+    ]
+    out["slope_1e4_1e6"] = {
+        "target": TARGET_SLOPE,
+        "value": None if slope is None else round(slope, 3),
+        "met": None if slope is None else slope <= TARGET_SLOPE,
+        "sizes": sizes,
+        "note": "" if any(s >= 700_000 for s in sizes) else "fitted over the sizes run (1e6 missing)",
+    }
     return out
 
 
@@ -347,27 +407,42 @@ def bench_pipeline(sizes=DEFAULT_SIZES):
     for readings in sorted(sizes):  # loop over sizes
         tiled = readings >= TILED_FROM
         if readings > 1_000_000:
-            done = [r for r in runs if r.get("pipeline", {}).get("seconds")
-                    and not r["pipeline"].get("error")]
+            done = [
+                r for r in runs if r.get("pipeline", {}).get("seconds") and not r["pipeline"].get("error")
+            ]
             if not done:
-                skipped.append({"readings": readings, "reason": "no complete smaller run to "
-                                "estimate its time and memory from"})
+                skipped.append(
+                    {
+                        "readings": readings,
+                        "reason": "no complete smaller run to estimate its time and memory from",
+                    }
+                )
                 continue
             est = _estimate(done[-1], readings)
-            free_disk = shutil.disk_usage(tempfile.gettempdir()).free / 2 ** 20
+            free_disk = shutil.disk_usage(tempfile.gettempdir()).free / 2**20
             reasons = []
             if est["seconds"] > max_seconds:
-                reasons.append(f"estimated {est['seconds']:.0f} s > limit {max_seconds:.0f} s "
-                               "(POTFIELD_BENCH_MAX_SECONDS)")
+                reasons.append(
+                    f"estimated {est['seconds']:.0f} s > limit {max_seconds:.0f} s "
+                    "(POTFIELD_BENCH_MAX_SECONDS)"
+                )
             if est["peak_rss_mb"] > 0.8 * _available_mb():
-                reasons.append(f"estimated peak {est['peak_rss_mb']:.0f} MB > 80 % of the "
-                               f"available {_available_mb():.0f} MB")
+                reasons.append(
+                    f"estimated peak {est['peak_rss_mb']:.0f} MB > 80 % of the "
+                    f"available {_available_mb():.0f} MB"
+                )
             if est["disk_mb"] > 0.8 * free_disk:
-                reasons.append(f"estimated {est['disk_mb']:.0f} MB on disk > 80 % of the free "
-                               f"{free_disk:.0f} MB")
+                reasons.append(
+                    f"estimated {est['disk_mb']:.0f} MB on disk > 80 % of the free {free_disk:.0f} MB"
+                )
             if reasons:
-                skipped.append({"readings": readings, "reason": "; ".join(reasons),
-                                "estimate": {k: round(v, 1) for k, v in est.items()}})
+                skipped.append(
+                    {
+                        "readings": readings,
+                        "reason": "; ".join(reasons),
+                        "estimate": {k: round(v, 1) for k, v in est.items()},
+                    }
+                )
                 print(f"skip {readings}: {skipped[-1]['reason']}", flush=True)
                 continue
         tmp = Path(tempfile.mkdtemp(prefix="potfield-bench-"))
@@ -375,8 +450,9 @@ def bench_pipeline(sizes=DEFAULT_SIZES):
             folder = tmp / f"mag{readings}"
             record = {"readings_requested": readings, "tiled": tiled, "load_before": _load()}
             timeout = max(600.0, max_seconds)
-            record["generate"] = _run_child(["generate", str(readings), str(folder),
-                                             "tiled" if tiled else "plain"], timeout)
+            record["generate"] = _run_child(
+                ["generate", str(readings), str(folder), "tiled" if tiled else "plain"], timeout
+            )
             if record["generate"].get("error"):
                 record["readings"] = readings
                 runs.append(record)
@@ -385,23 +461,33 @@ def bench_pipeline(sizes=DEFAULT_SIZES):
             record["load_after"] = _load()
             ingest = record["pipeline"].get("stages", {}).get("ingest", {}).get("metrics", {})
             record["readings"] = int(ingest.get("readings", readings))
-            if (runs and runs[-1].get("pipeline", {}).get("seconds")
-                    and record["pipeline"].get("seconds")):
+            if runs and runs[-1].get("pipeline", {}).get("seconds") and record["pipeline"].get("seconds"):
                 prev = runs[-1]
-                record["local_slope"] = math.log(record["pipeline"]["seconds"]
-                                                 / prev["pipeline"]["seconds"]) / math.log(
-                    record["readings"] / prev["readings"])
+                record["local_slope"] = math.log(
+                    record["pipeline"]["seconds"] / prev["pipeline"]["seconds"]
+                ) / math.log(record["readings"] / prev["readings"])
             runs.append(record)
-            print(json.dumps({k: record.get(k) for k in ("readings", "tiled")}
-                             | {"generate_s": record["generate"].get("seconds"),
-                                "pipeline_s": record["pipeline"].get("seconds"),
-                                "peak_mb": record["pipeline"].get("peak_rss_mb"),
-                                "error": record["pipeline"].get("error")}), flush=True)
+            print(
+                json.dumps(
+                    {k: record.get(k) for k in ("readings", "tiled")}
+                    | {
+                        "generate_s": record["generate"].get("seconds"),
+                        "pipeline_s": record["pipeline"].get("seconds"),
+                        "peak_mb": record["pipeline"].get("peak_rss_mb"),
+                        "error": record["pipeline"].get("error"),
+                    }
+                ),
+                flush=True,
+            )
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
-    result = {"runs": runs, "skipped": skipped, "targets": _targets(runs),
-              "memory_method": "VmRSS sampled every 20 ms per stage; ru_maxrss per subprocess",
-              "cpus": os.cpu_count()}
+    result = {
+        "runs": runs,
+        "skipped": skipped,
+        "targets": _targets(runs),
+        "memory_method": "VmRSS sampled every 20 ms per stage; ru_maxrss per subprocess",
+        "cpus": os.cpu_count(),
+    }
     sys.path.insert(0, str(HERE))
     from plot import write_pipeline_report
 
@@ -418,8 +504,11 @@ def _dipole_survey(side, line_spacing, step, seed=0):
 
     rng = np.random.default_rng(seed)
     count = 60
-    dipoles = (rng.uniform(0.07 * side, 0.93 * side, count),
-               rng.uniform(0.07 * side, 0.93 * side, count), rng.uniform(-1500.0, -500.0, count))
+    dipoles = (
+        rng.uniform(0.07 * side, 0.93 * side, count),
+        rng.uniform(0.07 * side, 0.93 * side, count),
+        rng.uniform(-1500.0, -500.0, count),
+    )
     inc, dec = np.radians(-60.0), np.radians(10.0)
     f_hat = np.array([np.cos(inc) * np.sin(dec), np.cos(inc) * np.cos(dec), -np.sin(inc)])
     moments = tuple(rng.uniform(1e9, 4e9, count) * c for c in f_hat)
@@ -435,8 +524,16 @@ def _dipole_survey(side, line_spacing, step, seed=0):
     return e, n, u, tfa(e, n, u), tfa
 
 
-def bench_tiled_grid(side=30_000.0, line_spacing=200.0, step=20.0, spacing=100.0,
-                     tile_size=10_000.0, overlap=2_000.0, depth=400.0, damping=1e-3):
+def bench_tiled_grid(
+    side=30_000.0,
+    line_spacing=200.0,
+    step=20.0,
+    spacing=100.0,
+    tile_size=10_000.0,
+    overlap=2_000.0,
+    depth=400.0,
+    damping=1e-3,
+):
     """Tiled (potfield.fields.harmonic.tiles, Dask threads) against one whole equivalent-source fit on
     a synthetic line survey over 60 dipoles; both against harmonica's forward model at the grid
     nodes (reference library), RMS relative to the field's standard deviation, 1 km inside."""
@@ -447,22 +544,44 @@ def bench_tiled_grid(side=30_000.0, line_spacing=200.0, step=20.0, spacing=100.0
 
     e, n, u, d, tfa = _dipole_survey(side, line_spacing, step)
     region = (0.0, side, 0.0, side)
-    out = {"readings": int(e.size), "region_m": list(region), "spacing_m": spacing,
-           "tile_size_m": tile_size, "overlap_m": overlap, "depth_m": depth, "damping": damping,
-           "load_before": _load()}
+    out = {
+        "readings": int(e.size),
+        "region_m": list(region),
+        "spacing_m": spacing,
+        "tile_size_m": tile_size,
+        "overlap_m": overlap,
+        "depth_m": depth,
+        "damping": damping,
+        "load_before": _load(),
+    }
     with _StageSampler() as sampler:
         sampler.label = "whole"
         t0 = time.perf_counter()
         model = fit_equivalent_sources(e, n, u, d, depth=depth, damping=damping, block_size=spacing)
         whole = model.grid(region, spacing=spacing, height=300.0)
         out["whole_seconds"] = round(time.perf_counter() - t0, 2)
-        out["whole_info"] = {"method": model.method, "sources": model.n_sources,
-                             **{k: v for k, v in model.info.items() if k != "levels"}}
+        out["whole_info"] = {
+            "method": model.method,
+            "sources": model.n_sources,
+            **{k: v for k, v in model.info.items() if k != "levels"},
+        }
         sampler.label = "tiled"
         t0 = time.perf_counter()
-        tiled = fit_tiled(e, n, u, d, region=region, spacing=spacing, height=300.0,
-                          tile_size=tile_size, overlap=overlap, depth=depth, damping=damping,
-                          residuals=True, scheduler="threads")
+        tiled = fit_tiled(
+            e,
+            n,
+            u,
+            d,
+            region=region,
+            spacing=spacing,
+            height=300.0,
+            tile_size=tile_size,
+            overlap=overlap,
+            depth=depth,
+            damping=damping,
+            residuals=True,
+            scheduler="threads",
+        )
         out["tiled_seconds"] = round(time.perf_counter() - t0, 2)
         sampler.label = "done"
     out["whole_peak_rss_mb"] = round(sampler.peaks.get("whole", float("nan")), 1)
@@ -473,7 +592,7 @@ def bench_tiled_grid(side=30_000.0, line_spacing=200.0, step=20.0, spacing=100.0
     out["windows_not_converged"] = int(sum(1 for v in conv if v is False or v == False))  # noqa: E712
     ge, gn = np.meshgrid(whole.easting.values, whole.northing.values)
     truth = tfa(ge, gn, np.full(ge.shape, 300.0))
-    inner = ((ge > 1000.0) & (ge < side - 1000.0) & (gn > 1000.0) & (gn < side - 1000.0))
+    inner = (ge > 1000.0) & (ge < side - 1000.0) & (gn > 1000.0) & (gn < side - 1000.0)
     std = float(truth[inner].std())
 
     def rel(a, b):
@@ -483,12 +602,14 @@ def bench_tiled_grid(side=30_000.0, line_spacing=200.0, step=20.0, spacing=100.0
     out["whole_vs_harmonica_rel_rms"] = rel(whole.values, truth)
     out["tiled_vs_harmonica_rel_rms"] = rel(tiled.grid.values, truth)
     out["tiled_vs_whole_rel_rms"] = rel(tiled.grid.values, whole.values)
-    out["tiled_residual_rms_nT"] = round(float(np.sqrt(np.nanmean(tiled.residual ** 2))), 4)
-    out["summary"] = (f"{e.size:,} readings: whole {out['whole_seconds']} s "
-                      f"({out['whole_vs_harmonica_rel_rms']:.2%} of std vs harmonica), tiled "
-                      f"{out['windows']} windows {out['tiled_seconds']} s "
-                      f"({out['tiled_vs_harmonica_rel_rms']:.2%}); tiled vs whole "
-                      f"{out['tiled_vs_whole_rel_rms']:.2%}")
+    out["tiled_residual_rms_nT"] = round(float(np.sqrt(np.nanmean(tiled.residual**2))), 4)
+    out["summary"] = (
+        f"{e.size:,} readings: whole {out['whole_seconds']} s "
+        f"({out['whole_vs_harmonica_rel_rms']:.2%} of std vs harmonica), tiled "
+        f"{out['windows']} windows {out['tiled_seconds']} s "
+        f"({out['tiled_vs_harmonica_rel_rms']:.2%}); tiled vs whole "
+        f"{out['tiled_vs_whole_rel_rms']:.2%}"
+    )
     return out
 
 

@@ -18,8 +18,7 @@ RESULTS = HERE / "results"
 #: Pipeline stages in run order (magnetic surveys), for column order and colours.
 #: Marker per series (with line styles, so series stay apart where colours are close).
 MARKERS = ("o", "s", "^", "v", "D", "P", "X", "*", "h", "<", ">", "p")
-STAGE_ORDER = ("ingest", "clean", "diurnal", "reference", "level", "grid", "separate", "derive",
-               "report")
+STAGE_ORDER = ("ingest", "clean", "diurnal", "reference", "level", "grid", "separate", "derive", "report")
 
 
 def markdown_table(header: list[str], rows: list[list]) -> str:
@@ -42,8 +41,16 @@ def markdown_table(header: list[str], rows: list[list]) -> str:
     return "\n".join(lines)
 
 
-def loglog_plot(path: Path, series: dict[str, tuple[list, list]], *, xlabel: str, ylabel: str,
-                title: str, reference_slope: float | None = 1.0, styles: dict | None = None) -> Path:
+def loglog_plot(
+    path: Path,
+    series: dict[str, tuple[list, list]],
+    *,
+    xlabel: str,
+    ylabel: str,
+    title: str,
+    reference_slope: float | None = 1.0,
+    styles: dict | None = None,
+) -> Path:
     """Log-log line plot of several (x, y) series, with an optional slope guide; PNG, atomic."""
     import matplotlib
 
@@ -65,15 +72,25 @@ def loglog_plot(path: Path, series: dict[str, tuple[list, list]], *, xlabel: str
         x, y = zip(*pts)
         xs_all += list(x)
         ys_all += list(y)
-        style = {"marker": MARKERS[k % len(MARKERS)], "ls": ("-", "--", "-.")[k % 3],
-                 "color": cmap(k / max(len(names) - 1, 1)), "lw": 1.2}
+        style = {
+            "marker": MARKERS[k % len(MARKERS)],
+            "ls": ("-", "--", "-.")[k % 3],
+            "color": cmap(k / max(len(names) - 1, 1)),
+            "lw": 1.2,
+        }
         style.update(styles.get(name, {}))
         ax.plot(x, y, label=name, **style)
     if reference_slope and xs_all:
         x0, x1 = min(xs_all), max(xs_all)
         y0 = max(ys_all)
-        ax.plot([x0, x1], [y0 * (x0 / x1) ** reference_slope, y0], color="0.5", ls=":", lw=1,
-                label=f"slope {reference_slope:g} guide")
+        ax.plot(
+            [x0, x1],
+            [y0 * (x0 / x1) ** reference_slope, y0],
+            color="0.5",
+            ls=":",
+            lw=1,
+            label=f"slope {reference_slope:g} guide",
+        )
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel(xlabel)
@@ -101,12 +118,25 @@ def pipeline_markdown(result: dict) -> str:
     """The markdown report of :func:`bench_pipeline.bench_pipeline`'s result."""
     runs = [r for r in result.get("runs", []) if "pipeline" in r]
     stages = _stages_seen(runs)
-    lines = ["# Whole-pipeline benchmark (magnetic demo survey)", "",
-             f"Machine: {result.get('cpus')} CPUs (shared; load averages before/after each run "
-             "are listed). Each size ran in fresh subprocesses (generator, then pipeline).",
-             f"Memory: {result.get('memory_method')}.", "", "## Time (s) and peak memory", ""]
-    header = ["readings", "generator s", "pipeline s", "peak MB", *[f"{s} s" for s in stages],
-              "status", "load 1/5/15 min"]
+    lines = [
+        "# Whole-pipeline benchmark (magnetic demo survey)",
+        "",
+        f"Machine: {result.get('cpus')} CPUs (shared; load averages before/after each run "
+        "are listed). Each size ran in fresh subprocesses (generator, then pipeline).",
+        f"Memory: {result.get('memory_method')}.",
+        "",
+        "## Time (s) and peak memory",
+        "",
+    ]
+    header = [
+        "readings",
+        "generator s",
+        "pipeline s",
+        "peak MB",
+        *[f"{s} s" for s in stages],
+        "status",
+        "load 1/5/15 min",
+    ]
     rows = []
     for r in runs:
         p = r["pipeline"]
@@ -121,29 +151,54 @@ def pipeline_markdown(result: dict) -> str:
     lines.append(markdown_table(header, rows))
     lines += ["", "## Peak resident memory per stage (MB, VmRSS sampled every 20 ms)", ""]
     header = ["readings", "generator", *stages]
-    rows = [[r["readings"], r["generate"].get("peak_rss_mb"),
-             *[r["pipeline"].get("stages", {}).get(s, {}).get("peak_rss_mb") for s in stages]]
-            for r in runs]
+    rows = [
+        [
+            r["readings"],
+            r["generate"].get("peak_rss_mb"),
+            *[r["pipeline"].get("stages", {}).get(s, {}).get("peak_rss_mb") for s in stages],
+        ]
+        for r in runs
+    ]
     lines.append(markdown_table(header, rows))
-    lines += ["", "## Accuracy against the scenario's truth", "",
-              "RMS after removing the mean difference (the anomaly datum is arbitrary up to a "
-              "constant); grid: interpolated to the truth grid nodes > 1 km inside the survey.", ""]
-    header = ["readings", "anomaly rms nT", "anomaly_levelled rms nT", "grid rms nT",
-              "truth std nT (readings)", "grid nodes compared"]
+    lines += [
+        "",
+        "## Accuracy against the scenario's truth",
+        "",
+        "RMS after removing the mean difference (the anomaly datum is arbitrary up to a "
+        "constant); grid: interpolated to the truth grid nodes > 1 km inside the survey.",
+        "",
+    ]
+    header = [
+        "readings",
+        "anomaly rms nT",
+        "anomaly_levelled rms nT",
+        "grid rms nT",
+        "truth std nT (readings)",
+        "grid nodes compared",
+    ]
     rows = []
     for r in runs:
         a = r["pipeline"].get("accuracy", {})
-        rows.append([r["readings"], a.get("anomaly_rms_nT"), a.get("anomaly_levelled_rms_nT"),
-                     a.get("grid_rms_nT", a.get("grid_note")), a.get("truth_crustal_std_nT"),
-                     a.get("grid_nodes_compared")])
+        rows.append(
+            [
+                r["readings"],
+                a.get("anomaly_rms_nT"),
+                a.get("anomaly_levelled_rms_nT"),
+                a.get("grid_rms_nT", a.get("grid_note")),
+                a.get("truth_crustal_std_nT"),
+                a.get("grid_nodes_compared"),
+            ]
+        )
     lines.append(markdown_table(header, rows))
     t = result.get("targets", {})
     lines += ["", "## Targets", ""]
     rows = []
-    for key, label in (("seconds_1e6", "1e6 readings end to end <= 120 s"),
-                       ("peak_mb_1e6", "peak memory at 1e6 <= 2048 MB"),
-                       ("peak_mb_all", "peak memory at every size run <= 2048 MB"),
-                       ("slope_1e4_1e6", "log-log slope of time, 1e4..1e6, <= 1.1")):
+    for key, label in (
+        ("seconds_1e6", "1e6 readings end to end <= 120 s"),
+        ("peak_mb_1e6", "peak memory at 1e6 <= 2048 MB"),
+        ("peak_mb_all", "peak memory at every size run <= 2048 MB"),
+        ("slope_1e4_1e6", "log-log slope of time, 1e4..1e6, <= 1.1"),
+    ):
         entry = t.get(key, {})
         met = entry.get("met")
         verdict = "not measured" if met is None else ("met" if met else "missed")
@@ -151,12 +206,12 @@ def pipeline_markdown(result: dict) -> str:
         if key == "seconds_1e6" and entry.get("complete") is False:
             extra = (extra + " pipeline incomplete at 1e6").strip()
         rows.append([label, entry.get("value"), verdict, entry.get("by"), extra])
-    lines.append(markdown_table(["target", "measured", "verdict", "over (+) / under (-)", "note"],
-                                rows))
+    lines.append(markdown_table(["target", "measured", "verdict", "over (+) / under (-)", "note"], rows))
     if result.get("skipped"):
         lines += ["", "## Skipped sizes", ""]
-        lines.append(markdown_table(["readings", "reason"],
-                                    [[s["readings"], s["reason"]] for s in result["skipped"]]))
+        lines.append(
+            markdown_table(["readings", "reason"], [[s["readings"], s["reason"]] for s in result["skipped"]])
+        )
     errors = [r for r in runs if r["pipeline"].get("error")]
     if errors:
         lines += ["", "## Runs that stopped", ""]
@@ -168,12 +223,20 @@ def pipeline_markdown(result: dict) -> str:
 def pipeline_series(result: dict) -> dict:
     runs = [r for r in result.get("runs", []) if "pipeline" in r]
     x = [r["readings"] for r in runs]
-    series = {"total (pipeline)": (x, [r["pipeline"].get("seconds") for r in runs]),
-              "generator": (x, [r["generate"].get("seconds") for r in runs])}
+    series = {
+        "total (pipeline)": (x, [r["pipeline"].get("seconds") for r in runs]),
+        "generator": (x, [r["generate"].get("seconds") for r in runs]),
+    }
     for s in _stages_seen(runs):
-        series[s] = (x, [r["pipeline"].get("stages", {}).get(s, {}).get("seconds")
-                         if r["pipeline"].get("stages", {}).get(s, {}).get("status") == "done"
-                         else None for r in runs])
+        series[s] = (
+            x,
+            [
+                r["pipeline"].get("stages", {}).get(s, {}).get("seconds")
+                if r["pipeline"].get("stages", {}).get(s, {}).get("status") == "done"
+                else None
+                for r in runs
+            ],
+        )
     return series
 
 
@@ -183,10 +246,14 @@ def write_pipeline_report(result: dict, folder: Path = RESULTS) -> list[Path]:
 
     folder = Path(folder)
     md = write_text(folder / "pipeline.md", pipeline_markdown(result))
-    png = loglog_plot(folder / "pipeline.png", pipeline_series(result), xlabel="readings",
-                      ylabel="seconds", title="potfield pipeline: time against readings (log-log)",
-                      styles={"total (pipeline)": {"color": "black", "lw": 2.5},
-                              "generator": {"color": "0.4", "ls": "--"}})
+    png = loglog_plot(
+        folder / "pipeline.png",
+        pipeline_series(result),
+        xlabel="readings",
+        ylabel="seconds",
+        title="potfield pipeline: time against readings (log-log)",
+        styles={"total (pipeline)": {"color": "black", "lw": 2.5}, "generator": {"color": "0.4", "ls": "--"}},
+    )
     return [md, png]
 
 

@@ -13,7 +13,7 @@ import platform
 import sys
 import time
 import traceback
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 HERE = Path(__file__).parent
@@ -32,7 +32,9 @@ def write_summary() -> None:
             continue
         result = record.get("result", {})
         brief = result.get("summary", "") if isinstance(result, dict) else ""
-        rows.append(f"| {record['benchmark']} | {record.get('status', '')} | {record.get('date', '')} | {brief} |")
+        rows.append(
+            f"| {record['benchmark']} | {record.get('status', '')} | {record.get('date', '')} | {brief} |"
+        )
     (RESULTS / "summary.md").write_text("\n".join(rows) + "\n")
 
 
@@ -66,9 +68,12 @@ def main(argv: list[str]) -> int:
                 "benchmark": f"{topic}.{name}",
                 "status": status,
                 "seconds_total": round(time.perf_counter() - started, 3),
-                "machine": {"python": platform.python_version(), "processor": platform.machine(),
-                            "cpus": __import__("os").cpu_count()},
-                "date": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                "machine": {
+                    "python": platform.python_version(),
+                    "processor": platform.machine(),
+                    "cpus": __import__("os").cpu_count(),
+                },
+                "date": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
                 "result": result,
             }
             out = RESULTS / f"{topic}.{name}.json"

@@ -75,9 +75,12 @@ def test_templates_are_valid(kind):
 
 
 def test_spec_profiles_and_overrides():
-    assert {"airborne-magnetic", "ground-magnetic", "ground-gravity", "observatory"} <= set(available_profiles())
-    config = parse_config({"survey": {"kind": "magnetic",
-                                      "spec_overrides": {"noise_fourth_difference_nT": 0.3}}})
+    assert {"airborne-magnetic", "ground-magnetic", "ground-gravity", "observatory"} <= set(
+        available_profiles()
+    )
+    config = parse_config(
+        {"survey": {"kind": "magnetic", "spec_overrides": {"noise_fourth_difference_nT": 0.3}}}
+    )
     spec = load_spec(config)
     assert spec["noise_fourth_difference_nT"] == (0.3, "survey.toml override")
     assert spec["diurnal_chord_15s_nT"][0] == 0.5  # common practice (references.md QC tolerances)

@@ -152,8 +152,12 @@ def test_lower_layers_do_not_import_higher_ones():
         "fields": {"pipeline", "cli", "batch"},
         "stages": {"pipeline", "cli", "batch"},
     }
-    bad = [(module, target) for module, targets in EVERY.items()
-           for target in targets if _layer(target) in forbidden.get(_layer(module), ())]
+    bad = [
+        (module, target)
+        for module, targets in EVERY.items()
+        for target in targets
+        if _layer(target) in forbidden.get(_layer(module), ())
+    ]
     assert bad == []
 
 

@@ -15,9 +15,12 @@ from potfield.errors import ConfigError
 
 def test_old_grid_keys_are_accepted_with_one_warning_each():
     with pytest.warns(RenamedKeyWarning) as caught:
-        config = parse_config({"survey": {"kind": "magnetic"},
-                               "grid": {"depth_type": "constant", "depth_factors": [3.0],
-                                        "dampings": [0.1]}})
+        config = parse_config(
+            {
+                "survey": {"kind": "magnetic"},
+                "grid": {"depth_type": "constant", "depth_factors": [3.0], "dampings": [0.1]},
+            }
+        )
     assert len(caught) == 3
     assert "use 'source_layer = \"flat\"'" in str(caught[0].message)
     assert config.grid.source_layer == "flat"
@@ -27,12 +30,14 @@ def test_old_grid_keys_are_accepted_with_one_warning_each():
 def test_new_names_give_no_warning_and_both_names_are_refused():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        config = parse_config({"survey": {"kind": "magnetic"},
-                               "grid": {"source_layer": "follow_drape", "trial_depths": [4.5]}})
+        config = parse_config(
+            {"survey": {"kind": "magnetic"}, "grid": {"source_layer": "follow_drape", "trial_depths": [4.5]}}
+        )
     assert config.grid.source_layer == "follow_drape"
     with pytest.raises(ConfigError, match="keep only 'trial_depths'"):
-        parse_config({"survey": {"kind": "magnetic"},
-                      "grid": {"depth_factors": [3.0], "trial_depths": [4.5]}})
+        parse_config(
+            {"survey": {"kind": "magnetic"}, "grid": {"depth_factors": [3.0], "trial_depths": [4.5]}}
+        )
 
 
 @pytest.mark.parametrize("kind", ["magnetic", "gravity", "observatory"])

@@ -41,8 +41,10 @@ def _template(kind: str) -> str:
 def cmd_new(args) -> int:
     root = Path(args.directory)
     if (root / "survey.toml").exists():
-        raise ConfigError(f"{root / 'survey.toml'} already exists",
-                          fix="choose a new folder or edit the existing survey.toml")
+        raise ConfigError(
+            f"{root / 'survey.toml'} already exists",
+            fix="choose a new folder or edit the existing survey.toml",
+        )
     (root / "raw").mkdir(parents=True, exist_ok=True)
     name = root.resolve().name
     text = _template(args.kind).replace('name = "my survey"', f'name = "{name}"')
@@ -51,8 +53,7 @@ def cmd_new(args) -> int:
     write_text(root / "survey.toml", text)
     write_text(root / "raw" / "README.md", f"# raw/\n\n{RAW_README[args.kind]}")
     print(f"created {root}/survey.toml and {root}/raw/ for a {args.kind} survey")
-    print("next: put your files in raw/, map their columns in survey.toml, then run "
-          f"'potfield check {root}'")
+    print(f"next: put your files in raw/, map their columns in survey.toml, then run 'potfield check {root}'")
     return 0
 
 
@@ -74,8 +75,10 @@ def cmd_check(args) -> int:
     print(f"region   easting {r[0]:.0f} .. {r[1]:.0f} m, northing {r[2]:.0f} .. {r[3]:.0f} m")
     print(f"crs      input {info['input_crs']}, output {info['output_crs']}")
     spacing = info["line_spacing_m"]
-    print(f"lines    {info['lines']} ({info['traverse_lines']} traverse, {info['tie_lines']} tie)"
-          + (f", spacing {spacing:.0f} m" if spacing else ""))
+    print(
+        f"lines    {info['lines']} ({info['traverse_lines']} traverse, {info['tie_lines']} tie)"
+        + (f", spacing {spacing:.0f} m" if spacing else "")
+    )
     print(f"stages   {', '.join(info['stages'])}")
     print("ok: configuration and inputs are valid")
     return 0
@@ -121,6 +124,7 @@ def cmd_run(args) -> int:
 
             console = Console(stderr=False, highlight=False)
             with console.status("starting") as status:
+
                 def show(message: str) -> None:
                     message = logs.dedupe(message)
                     if any(word in message for word in FINAL_WORDS):
@@ -129,21 +133,34 @@ def cmd_run(args) -> int:
                         status.update(message)
                         logger.debug(message)
 
-                summary = run_survey(args.directory, until=args.until, only=args.only,
-                                     start=args.start, force=args.force, progress=show)
+                summary = run_survey(
+                    args.directory,
+                    until=args.until,
+                    only=args.only,
+                    start=args.start,
+                    force=args.force,
+                    progress=show,
+                )
         else:
-            summary = run_survey(args.directory, until=args.until, only=args.only, start=args.start,
-                                 force=args.force, progress=progress)
+            summary = run_survey(
+                args.directory,
+                until=args.until,
+                only=args.only,
+                start=args.start,
+                force=args.force,
+                progress=progress,
+            )
         failed = summary.failed_checks
-        text = (f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, "
-                f"{len(failed)} failed")
+        text = f"outputs in {summary.survey / 'out'}; {len(summary.checks)} spec checks, {len(failed)} failed"
         if failed:
             logger.warning(text)
         else:
             logger.info(text)
         for check in failed:
-            logger.warning(f"  FAIL {check['check']}: {check['value']:.4g} (tolerance "
-                           f"{check['tolerance']:.4g} {check['unit']})")
+            logger.warning(
+                f"  FAIL {check['check']}: {check['value']:.4g} (tolerance "
+                f"{check['tolerance']:.4g} {check['unit']})"
+            )
         for step in summary.steps:
             logger.warning(f"  WARNING {step['stage']} {step['result']}: {step['detail']}")
         last, bad = _outcome(summary)
@@ -191,18 +208,21 @@ def cmd_batch(args) -> int:
         from .batch import run_batch
     except ModuleNotFoundError:
         raise ConfigError("batch processing is not available in this version of potfield") from None
-    failures = run_batch([Path(d) for d in args.directories], workers=args.workers,
-                         scheduler=args.scheduler, force=args.force)
+    failures = run_batch(
+        [Path(d) for d in args.directories], workers=args.workers, scheduler=args.scheduler, force=args.force
+    )
     return 1 if failures else 0
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="potfield", formatter_class=argparse.RawDescriptionHelpFormatter,
+        prog="potfield",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
         description="Potential-field survey processing: magnetic, gravity and observatory readings "
-                    "to checked grids, tables, maps and a report.",
+        "to checked grids, tables, maps and a report.",
         epilog="example:\n  potfield demo gravity demo-gravity && potfield run demo-gravity\n\n"
-               "Results need review by a qualified geophysicist; local regulations prevail.")
+        "Results need review by a qualified geophysicist; local regulations prevail.",
+    )
     parser.add_argument("--version", action="version", version=f"potfield {__version__}")
     _verbosity(parser, None)
     sub = parser.add_subparsers(dest="command", required=True)
@@ -222,8 +242,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--only", metavar="STAGE", help="run only this stage (earlier ones must be up to date)")
     p.add_argument("--from", dest="start", metavar="STAGE", help="start at this stage")
     p.add_argument("--force", action="store_true", help="recompute even unchanged stages")
-    p.add_argument("--strict", action="store_true",
-                   help="exit with code 1 when a spec check fails or a step was skipped or degraded")
+    p.add_argument(
+        "--strict",
+        action="store_true",
+        help="exit with code 1 when a spec check fails or a step was skipped or degraded",
+    )
     _verbosity(p, argparse.SUPPRESS)
     p.set_defaults(func=cmd_run)
 
@@ -258,31 +281,53 @@ def build_parser() -> argparse.ArgumentParser:
 
 #: Description and one example per command (shown by ``potfield COMMAND --help``).
 COMMAND_HELP = {
-    "new": ("Create a survey folder with a commented survey.toml for the kind and an empty raw/.",
-            "potfield new my-survey --kind magnetic"),
-    "check": ("Validate survey.toml and read the inputs without processing: files, readings, "
-              "time span, extent, CRS, lines.", "potfield check my-survey"),
-    "run": ("Run the stages of a survey in order; unchanged stages are reused from out/cache. "
-            "Writes out/tables, out/grids, out/maps, out/report.html, out/manifest.json and "
-            "out/run.log.", "potfield run my-survey --from grid -v"),
+    "new": (
+        "Create a survey folder with a commented survey.toml for the kind and an empty raw/.",
+        "potfield new my-survey --kind magnetic",
+    ),
+    "check": (
+        "Validate survey.toml and read the inputs without processing: files, readings, "
+        "time span, extent, CRS, lines.",
+        "potfield check my-survey",
+    ),
+    "run": (
+        "Run the stages of a survey in order; unchanged stages are reused from out/cache. "
+        "Writes out/tables, out/grids, out/maps, out/report.html, out/manifest.json and "
+        "out/run.log.",
+        "potfield run my-survey --from grid -v",
+    ),
     "stages": ("List the stages of each survey kind and what they do.", "potfield stages --kind gravity"),
-    "demo": ("Write a demo survey (invented data with known truth) to a folder.",
-             "potfield demo magnetic demo-magnetic --seed 0"),
-    "report": ("Rebuild out/maps and out/report.html from out/ without recomputing.",
-               "potfield report my-survey"),
-    "batch": ("Process many survey folders in parallel on Dask; one survey's error never stops "
-              "the others.", "potfield batch surveys/* --workers 2"),
+    "demo": (
+        "Write a demo survey (invented data with known truth) to a folder.",
+        "potfield demo magnetic demo-magnetic --seed 0",
+    ),
+    "report": (
+        "Rebuild out/maps and out/report.html from out/ without recomputing.",
+        "potfield report my-survey",
+    ),
+    "batch": (
+        "Process many survey folders in parallel on Dask; one survey's error never stops the others.",
+        "potfield batch surveys/* --workers 2",
+    ),
 }
 
 
 def _verbosity(parser, default) -> None:
     """-v/--verbose (every progress message) and -q/--quiet (warnings and errors only)."""
-    parser.add_argument("-v", "--verbose", action="count",
-                        default=0 if default is None else default,
-                        help="show every progress message")
-    parser.add_argument("-q", "--quiet", action="store_true",
-                        default=False if default is None else default,
-                        help="show only warnings and errors")
+    parser.add_argument(
+        "-v",
+        "--verbose",
+        action="count",
+        default=0 if default is None else default,
+        help="show every progress message",
+    )
+    parser.add_argument(
+        "-q",
+        "--quiet",
+        action="store_true",
+        default=False if default is None else default,
+        help="show only warnings and errors",
+    )
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import ast
 import hashlib
-from functools import lru_cache
+from functools import cache
 from pathlib import Path
 
 PACKAGE = "potfield"
@@ -73,7 +73,7 @@ def module_closure(name: str, root: Path = ROOT, package: str = PACKAGE) -> list
     return sorted(set(seen.values()))
 
 
-@lru_cache(maxsize=None)
+@cache
 def code_hash(name: str, version: str = "") -> str:
     """SHA-256 over the relative paths and contents of ``module_closure(name)`` (and a version)."""
     digest = hashlib.sha256(version.encode())

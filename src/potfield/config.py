@@ -66,8 +66,11 @@ def warn_renamed(where: str, old: str, new: str) -> None:
     """One-line warning that an old survey.toml name was used (it still works)."""
     import warnings
 
-    warnings.warn(f"survey.toml {where}: '{old}' is an old name, still accepted; use '{new}'",
-                  RenamedKeyWarning, stacklevel=2)
+    warnings.warn(
+        f"survey.toml {where}: '{old}' is an old name, still accepted; use '{new}'",
+        RenamedKeyWarning,
+        stacklevel=2,
+    )
 
 
 #: [grid] old key -> (new key, {old value: new value}).
@@ -89,7 +92,7 @@ def renamed_keys(data, section: str, aliases: dict) -> Any:
             if new in data:
                 raise ValueError(f"'{old}' and '{new}' both given; keep only '{new}'")
             value = values.get(value, value) if isinstance(value, str) else value
-            warn_renamed(f"[{section}]", old, new + (f" = \"{value}\"" if values else ""))
+            warn_renamed(f"[{section}]", old, new + (f' = "{value}"' if values else ""))
             data[new] = value
     return data
 
@@ -208,7 +211,7 @@ class InputSection(Section):
     @classmethod
     def _files_named(cls, value: list[str]) -> list[str]:
         if any(not f.strip() for f in value):
-            raise ValueError("a file name is empty; give a file or glob pattern such as \"raw/*.csv\"")
+            raise ValueError('a file name is empty; give a file or glob pattern such as "raw/*.csv"')
         return value
 
     @field_validator("delimiter")
@@ -243,9 +246,7 @@ class InputSection(Section):
                 raise ValueError(_unknown(key, tuple(COLUMN_QUANTITY), "column with a unit"))
             allowed = UNIT_FACTORS[COLUMN_QUANTITY[key]]
             if unit not in allowed:
-                raise ValueError(
-                    f"unit '{unit}' for {key} is not known; use one of {', '.join(allowed)}"
-                )
+                raise ValueError(f"unit '{unit}' for {key} is not known; use one of {', '.join(allowed)}")
         return value
 
 
@@ -285,8 +286,10 @@ class CleanSection(Section):
     @model_validator(mode="after")
     def _height_band(self):
         if self.height_min is not None and self.height_max is not None and self.height_min >= self.height_max:
-            raise ValueError(f"height_min {self.height_min:g} must be below height_max "
-                             f"{self.height_max:g} (fix: swap or correct them under [clean])")
+            raise ValueError(
+                f"height_min {self.height_min:g} must be below height_max "
+                f"{self.height_max:g} (fix: swap or correct them under [clean])"
+            )
         return self
 
 
@@ -352,6 +355,7 @@ class DiurnalSection(Section):
     @classmethod
     def _datum_time(cls, value: str | None) -> str | None:
         return None if value is None else _check_time(value)
+
     #: Two or more bases: "nearest" or "distance" (inverse-distance weights).
     combine: Literal["nearest", "distance"] = "nearest"
     #: Exponent p of the inverse-distance weights d**-p (combine = "distance").
@@ -430,6 +434,7 @@ class DriftSection(Section):
     @classmethod
     def _tare_times(cls, value: list[str]) -> list[str]:
         return [_check_time(t) for t in value]
+
     #: How readings are grouped into loops: "auto" (the loop column, else a mapped line column,
     #: else the local solar day at the mean longitude), "loop", "line" or "day".
     loops: Literal["auto", "loop", "line", "day"] = "auto"
@@ -484,9 +489,11 @@ class ReferenceSection(Section):
     @model_validator(mode="after")
     def _terrain_zones(self):
         if self.terrain_inner_radius_m > self.terrain_radius_m:
-            raise ValueError(f"terrain_inner_radius_m {self.terrain_inner_radius_m:g} exceeds "
-                             f"terrain_radius_m {self.terrain_radius_m:g} (fix: make the inner "
-                             "radius the smaller one under [reference])")
+            raise ValueError(
+                f"terrain_inner_radius_m {self.terrain_inner_radius_m:g} exceeds "
+                f"terrain_radius_m {self.terrain_radius_m:g} (fix: make the inner "
+                "radius the smaller one under [reference])"
+            )
         return self
 
 
@@ -536,8 +543,9 @@ class GridSection(Section):
     #: Trial source depths (multiples of the block size) and dampings, chosen by blocked
     #: cross-validation (old names depth_factors, dampings are accepted with a warning).
     trial_depths: list[float] = Field(default_factory=lambda: [2.5, 4.5, 8.0], min_length=1)
-    trial_dampings: list[float] = Field(default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1],
-                                        min_length=1)
+    trial_dampings: list[float] = Field(
+        default_factory=lambda: [1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1], min_length=1
+    )
     #: Number of folds of the blocked K-fold cross-validation.
     cv_folds: int = Field(4, ge=2, le=50)
     #: Cells farther than this from data are masked (m); 0 = 2 x line spacing.
@@ -587,14 +595,29 @@ class GridSection(Section):
 
 #: Products the derive stage can make (potfield.stages.derive); each grid is named
 #: "<main grid>_<product>" (upward_continuation: "<main grid>_upward_<distance>m").
-DERIVE_PRODUCTS = ("reduced_to_pole", "vertical_derivative", "second_vertical_derivative",
-                   "x_derivative", "y_derivative", "total_horizontal_gradient", "analytic_signal",
-                   "tilt_angle", "upward_continuation")
+DERIVE_PRODUCTS = (
+    "reduced_to_pole",
+    "vertical_derivative",
+    "second_vertical_derivative",
+    "x_derivative",
+    "y_derivative",
+    "total_horizontal_gradient",
+    "analytic_signal",
+    "tilt_angle",
+    "upward_continuation",
+)
 #: Old short product names, accepted with a warning.
-PRODUCT_ALIASES = {"rtp": "reduced_to_pole", "dz1": "vertical_derivative",
-                   "dz2": "second_vertical_derivative", "dx": "x_derivative", "dy": "y_derivative",
-                   "thg": "total_horizontal_gradient", "tga": "analytic_signal", "tilt": "tilt_angle",
-                   "upward": "upward_continuation"}
+PRODUCT_ALIASES = {
+    "rtp": "reduced_to_pole",
+    "dz1": "vertical_derivative",
+    "dz2": "second_vertical_derivative",
+    "dx": "x_derivative",
+    "dy": "y_derivative",
+    "thg": "total_horizontal_gradient",
+    "tga": "analytic_signal",
+    "tilt": "tilt_angle",
+    "upward": "upward_continuation",
+}
 
 
 class DeriveSection(Section):
@@ -638,8 +661,7 @@ class DeriveSection(Section):
             return value
         old = [v for v in value if isinstance(v, str) and v in PRODUCT_ALIASES]
         if old:
-            warn_renamed("derive.products", ", ".join(old),
-                         ", ".join(PRODUCT_ALIASES[v] for v in old))
+            warn_renamed("derive.products", ", ".join(old), ", ".join(PRODUCT_ALIASES[v] for v in old))
         return [PRODUCT_ALIASES.get(v, v) if isinstance(v, str) else v for v in value]
 
     @field_validator("products")
@@ -649,8 +671,9 @@ class DeriveSection(Section):
             if name not in DERIVE_PRODUCTS:
                 close = difflib.get_close_matches(name, list(PRODUCT_ALIASES), n=1, cutoff=0.6)
                 if close:  # a typo of an old short name: suggest the new name it stands for
-                    raise ValueError(f"unknown derive product '{name}'; did you mean "
-                                     f"'{PRODUCT_ALIASES[close[0]]}'?")
+                    raise ValueError(
+                        f"unknown derive product '{name}'; did you mean '{PRODUCT_ALIASES[close[0]]}'?"
+                    )
                 raise ValueError(_unknown(name, DERIVE_PRODUCTS, "derive product"))
         return value
 
@@ -743,8 +766,10 @@ class SurveyConfig(Section):
                 used.append(("reference.dem_file", "gravity"))
         if used:
             key, owner = used[0]
-            raise ValueError(f"'{key}' is only used by {owner} surveys but survey.kind is "
-                             f"'{kind}' (fix: correct survey.kind or remove {key})")
+            raise ValueError(
+                f"'{key}' is only used by {owner} surveys but survey.kind is "
+                f"'{kind}' (fix: correct survey.kind or remove {key})"
+            )
         return self
 
     @property
@@ -757,17 +782,15 @@ class SurveyConfig(Section):
         return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest()
 
     def full_hash(self) -> str:
-        return hashlib.sha256(
-            json.dumps(self.model_dump(mode="json"), sort_keys=True).encode()
-        ).hexdigest()
+        return hashlib.sha256(json.dumps(self.model_dump(mode="json"), sort_keys=True).encode()).hexdigest()
 
 
 def _check_delimiter(value: str) -> str:
     """``auto``, ``whitespace`` or one character that is not a quote or a line break."""
-    if value in ("auto", "whitespace") or (len(value) == 1 and value not in "\"\r\n"):
+    if value in ("auto", "whitespace") or (len(value) == 1 and value not in '"\r\n'):
         return value
     shown = "an empty delimiter" if not value else f"delimiter {value!r}"
-    raise ValueError(f"{shown} is not usable; use \"auto\", \",\", \";\", \"\\t\" or \"whitespace\"")
+    raise ValueError(f'{shown} is not usable; use "auto", ",", ";", "\\t" or "whitespace"')
 
 
 def _check_date(value: str) -> str:
@@ -826,8 +849,11 @@ def _model_at(model: type[BaseModel], loc: tuple) -> type[BaseModel] | None:
 def _format_validation(err: ValidationError, path: Path) -> str:
     first = err.errors()[0]
     # drop the union-member tags pydantic adds to the location (grid.height.float -> grid.height)
-    loc = tuple(p for p in first["loc"] if not (isinstance(p, str) and (
-        p in ("float", "int", "str", "bool", "none") or "[" in p)))
+    loc = tuple(
+        p
+        for p in first["loc"]
+        if not (isinstance(p, str) and (p in ("float", "int", "str", "bool", "none") or "[" in p))
+    )
     key = ".".join(str(p) for p in loc)
     kind = first["type"]
     if kind == "extra_forbidden":
@@ -844,23 +870,36 @@ def _format_validation(err: ValidationError, path: Path) -> str:
     if kind in _RANGE_ERRORS:
         ctx = first.get("ctx", {})
         bound = " and ".join(f"{_RANGE_ERRORS[k]} {ctx[k]}" for k in ("gt", "ge", "lt", "le") if k in ctx)
-        return (f"{path}: key '{key}' = {got!r} is out of range; it must be {bound} "
-                f"(fix: change it in survey.toml)")
+        return (
+            f"{path}: key '{key}' = {got!r} is out of range; it must be {bound} "
+            f"(fix: change it in survey.toml)"
+        )
     if kind == "finite_number":
-        return (f"{path}: key '{key}' = {got!r} is not a finite number "
-                f"(fix: give a finite number in survey.toml)")
+        return (
+            f"{path}: key '{key}' = {got!r} is not a finite number (fix: give a finite number in survey.toml)"
+        )
     if kind == "string_too_short":
         return f"{path}: key '{key}' must not be empty (fix: give it a value in survey.toml)"
     if kind == "too_short":
         least = first.get("ctx", {}).get("min_length", 1)
-        return (f"{path}: key '{key}' is too short ({got!r}); it needs at least {least} "
-                f"value(s) (fix: give at least {least} in survey.toml)")
+        return (
+            f"{path}: key '{key}' is too short ({got!r}); it needs at least {least} "
+            f"value(s) (fix: give at least {least} in survey.toml)"
+        )
     return f"{path}: key '{key}' has the wrong type or value ({got!r}); {expected}"
 
 
 #: pydantic error types of a numeric bound (Field(gt=, ge=, lt=, le=)).
-_RANGE_ERRORS = {"greater_than": ">", "greater_than_equal": ">=", "less_than": "<", "less_than_equal": "<=",
-                 "gt": ">", "ge": ">=", "lt": "<", "le": "<="}
+_RANGE_ERRORS = {
+    "greater_than": ">",
+    "greater_than_equal": ">=",
+    "less_than": "<",
+    "less_than_equal": "<=",
+    "gt": ">",
+    "ge": ">=",
+    "lt": "<",
+    "le": "<=",
+}
 
 
 def parse_config(data: dict, path: Path | str = "survey.toml") -> SurveyConfig:
@@ -883,8 +922,9 @@ def load_config(path: Path | str) -> SurveyConfig:
     try:
         raw = path.read_bytes()
     except OSError as err:
-        raise ConfigError(f"{path}: cannot read the file ({err.strerror or err})",
-                          fix="check the file's permissions") from None
+        raise ConfigError(
+            f"{path}: cannot read the file ({err.strerror or err})", fix="check the file's permissions"
+        ) from None
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as err:

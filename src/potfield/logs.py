@@ -37,8 +37,7 @@ def setup(verbosity: int = 0, log_file: Path | None = None, stream=None) -> logg
         Path(log_file).parent.mkdir(parents=True, exist_ok=True)
         handler = _RenamingFileHandler(log_file)
         handler.setLevel(logging.DEBUG)
-        handler.setFormatter(_UTCFormatter("%(asctime)sZ %(levelname)s %(message)s",
-                                           "%Y-%m-%dT%H:%M:%S"))
+        handler.setFormatter(_UTCFormatter("%(asctime)sZ %(levelname)s %(message)s", "%Y-%m-%dT%H:%M:%S"))
         LOGGER.addHandler(handler)
     return LOGGER
 
@@ -49,8 +48,7 @@ class _RenamingFileHandler(logging.FileHandler):
 
     def __init__(self, path: Path):
         self.final = Path(path)
-        super().__init__(self.final.with_name(self.final.name + ".partial"), mode="w",
-                         encoding="utf-8")
+        super().__init__(self.final.with_name(self.final.name + ".partial"), mode="w", encoding="utf-8")
 
     def close(self) -> None:
         super().close()
@@ -70,7 +68,7 @@ def dedupe(message: str) -> str:
     """Drop a repeated ``stage:`` prefix ("grid: grid: fitting" -> "grid: fitting")."""
     head, sep, rest = message.partition(": ")
     while sep and rest.startswith(head + ": "):
-        rest = rest[len(head) + 2:]
+        rest = rest[len(head) + 2 :]
     return f"{head}{sep}{rest}" if sep else message
 
 
@@ -80,8 +78,11 @@ def previous_seconds(out: Path) -> dict[str, float]:
         stages = json.loads((Path(out) / "manifest.json").read_text()).get("stages", {})
     except (OSError, ValueError):
         return {}
-    return {k: float(v["seconds"]) for k, v in stages.items()
-            if isinstance(v, dict) and isinstance(v.get("seconds"), (int, float))}
+    return {
+        k: float(v["seconds"])
+        for k, v in stages.items()
+        if isinstance(v, dict) and isinstance(v.get("seconds"), (int, float))
+    }
 
 
 FINAL_WORDS = ("done in", "skipped in", "unchanged", "does nothing", "marked stale")
@@ -90,8 +91,9 @@ FINAL_WORDS = ("done in", "skipped in", "unchanged", "does nothing", "marked sta
 class Progress:
     """Progress callback for :func:`potfield.pipeline.run_survey` (messages "stage: text")."""
 
-    def __init__(self, order: list[str], previous: dict[str, float] | None = None,
-                 logger: logging.Logger = LOGGER):
+    def __init__(
+        self, order: list[str], previous: dict[str, float] | None = None, logger: logging.Logger = LOGGER
+    ):
         self.order = list(order)
         self.previous = previous or {}
         self.logger = logger
@@ -100,7 +102,7 @@ class Progress:
     def eta(self, stage: str) -> str:
         if stage not in self.order:
             return ""
-        rest = self.order[self.order.index(stage):]
+        rest = self.order[self.order.index(stage) :]
         known = [self.previous[s] for s in rest if s in self.previous]
         if not known or len(known) < len(rest):
             return "time left unknown (no previous run)"

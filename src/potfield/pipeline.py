@@ -21,12 +21,12 @@ import importlib
 import json
 import platform
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from fnmatch import fnmatchcase
 from importlib import metadata
 from pathlib import Path
-from typing import Callable
 
 import pandas as pd
 
@@ -40,8 +40,21 @@ from .qc.specs import load_spec
 from .stages.base import Check, Stage, StageContext, StageOutput
 from .survey import Survey, sha256_file
 
-PACKAGES = ("numpy", "scipy", "pandas", "pyproj", "verde", "harmonica", "boule", "xarray",
-            "matplotlib", "pydantic", "pyarrow", "numba", "dask")
+PACKAGES = (
+    "numpy",
+    "scipy",
+    "pandas",
+    "pyproj",
+    "verde",
+    "harmonica",
+    "boule",
+    "xarray",
+    "matplotlib",
+    "pydantic",
+    "pyarrow",
+    "numba",
+    "dask",
+)
 
 #: Columns of out/tables/checks.csv. Spec checks have result pass/fail; a skipped or degraded
 #: step is a row with result "skipped" / "degraded" and the reason in ``detail``.
@@ -81,28 +94,34 @@ def package_versions() -> dict[str, str]:
     return versions
 
 
-def select_stages(order: tuple[str, ...], until: str | None = None, only: str | None = None,
-                  start: str | None = None) -> list[str]:
+def select_stages(
+    order: tuple[str, ...], until: str | None = None, only: str | None = None, start: str | None = None
+) -> list[str]:
     """Names of the stages to run, in order, from the --until/--only/--from options.
 
     Contradictory choices are refused: --only with --until or --from, and --from after --until.
     """
     for option, value in (("--until", until), ("--only", only), ("--from", start)):
         if value is not None and value not in order:
-            raise StageError(f"{option} {value}: no such stage for this survey kind",
-                             fix=f"use one of: {', '.join(order)}")
+            raise StageError(
+                f"{option} {value}: no such stage for this survey kind", fix=f"use one of: {', '.join(order)}"
+            )
     if only and (until or start):
         other = "--until" if until else "--from"
-        raise StageError(f"--only {only} cannot be combined with {other}",
-                         fix="use --only alone, or --from/--until for a range of stages")
+        raise StageError(
+            f"--only {only} cannot be combined with {other}",
+            fix="use --only alone, or --from/--until for a range of stages",
+        )
     if only:
         return [only]
     first = order.index(start) if start else 0
     last = order.index(until) if until else len(order) - 1
     if first > last:
-        raise StageError(f"--from {start} comes after --until {until} in the stage order",
-                         fix=f"choose a range in the order {' -> '.join(order)}")
-    return list(order[first:last + 1])
+        raise StageError(
+            f"--from {start} comes after --until {until} in the stage order",
+            fix=f"choose a range in the order {' -> '.join(order)}",
+        )
+    return list(order[first : last + 1])
 
 
 @dataclass
@@ -155,12 +174,18 @@ def _stage_key(stage: Stage, config, survey: Survey, previous: str, checksums: d
             rel = survey.rel(path)
             if rel not in checksums:
                 if not Path(path).is_file():
-                    raise InputDataError("file not found", file=path,
-                                         fix="check the file name in survey.toml")
+                    raise InputDataError(
+                        "file not found", file=path, fix="check the file name in survey.toml"
+                    )
                 checksums[rel] = sha256_file(Path(path))
             inputs[rel] = checksums[rel]
-    payload = {"stage": stage.name, "code": code_hash(stage.name), "config": config.section_hash(*stage.sections),
-               "inputs": inputs, "previous": previous}
+    payload = {
+        "stage": stage.name,
+        "code": code_hash(stage.name),
+        "config": config.section_hash(*stage.sections),
+        "inputs": inputs,
+        "previous": previous,
+    }
     return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest(), inputs
 
 
@@ -175,43 +200,60 @@ def _provider(order: tuple[str, ...], before: str, column: str, kind: str) -> st
         if kind not in stage.kinds:
             continue
         if column in stage.contract.provides(kind) or (
-                name != "ingest" and stage.contract.may_add(kind, column)):  # ingest's extra
-            return name                                                     # columns are mapped ones
+            name != "ingest" and stage.contract.may_add(kind, column)
+        ):  # ingest's extra
+            return name  # columns are mapped ones
 
     return None
 
 
-def _check_requires(stage: Stage, kind: str, order: tuple[str, ...], table: pd.DataFrame | None,
-                    state: dict, manifest: dict, root: Path) -> None:
+def _check_requires(
+    stage: Stage,
+    kind: str,
+    order: tuple[str, ...],
+    table: pd.DataFrame | None,
+    state: dict,
+    manifest: dict,
+    root: Path,
+) -> None:
     """A StageError naming the stage and what to run first when a requirement is missing."""
     contract = stage.contract
     missing = [c for c in contract.requires(kind) if table is None or c not in table.columns]
     for column in missing:
         provider = _provider(order, stage.name, column, kind)
         if provider is None:
-            raise StageError(f"stage '{stage.name}' needs the column '{column}', which no earlier "
-                             "stage provides", key=f"input.columns.{column}",
-                             fix=f"map an input column to '{column}' under [input.columns]")
+            raise StageError(
+                f"stage '{stage.name}' needs the column '{column}', which no earlier stage provides",
+                key=f"input.columns.{column}",
+                fix=f"map an input column to '{column}' under [input.columns]",
+            )
         entry = manifest["stages"].get(provider, {})
         why = f" (it was skipped: {entry.get('summary')})" if entry.get("status") == "skipped" else ""
-        raise StageError(f"stage '{stage.name}' needs the column '{column}' of stage "
-                         f"'{provider}'{why}",
-                         fix=f"run 'potfield run {root} --from {provider}' first")
+        raise StageError(
+            f"stage '{stage.name}' needs the column '{column}' of stage '{provider}'{why}",
+            fix=f"run 'potfield run {root} --from {provider}' first",
+        )
     for name in contract.requires_state:
         if name in KIND_ORDER[kind] and name not in state:
-            raise StageError(f"stage '{stage.name}' needs the record of stage '{name}'",
-                             fix=f"run 'potfield run {root} --until {name}' first")
+            raise StageError(
+                f"stage '{stage.name}' needs the record of stage '{name}'",
+                fix=f"run 'potfield run {root} --until {name}' first",
+            )
 
 
 def _check_provides(stage: Stage, kind: str, before: pd.DataFrame | None, output: StageOutput) -> list[str]:
     """The columns the stage added; a ContractError when it broke its contract."""
     contract = stage.contract
-    for what, names, declared in (("grid", output.grids, contract.grids(kind)),
-                                  ("table", output.tables, contract.tables(kind))):
+    for what, names, declared in (
+        ("grid", output.grids, contract.grids(kind)),
+        ("table", output.tables, contract.tables(kind)),
+    ):
         extra = [n for n in names if not any(fnmatchcase(n, p) for p in declared)]
         if extra:
-            raise ContractError(f"stage '{stage.name}' wrote {what}(s) {extra} it does not declare "
-                                f"(declared: {list(declared)})")
+            raise ContractError(
+                f"stage '{stage.name}' wrote {what}(s) {extra} it does not declare "
+                f"(declared: {list(declared)})"
+            )
     if output.table is None:
         return []
     received = list(before.columns) if before is not None else []
@@ -233,13 +275,33 @@ def _step_rows(name: str, entry: dict) -> list[dict]:
     """checks.csv rows of a stage's skipped / degraded steps."""
     rows = []
     if entry.get("status") == "skipped":
-        rows.append({"check": f"step {name}", "value": float("nan"), "tolerance": float("nan"),
-                     "sense": "", "unit": "", "result": "skipped", "source": "potfield",
-                     "detail": entry.get("summary", ""), "stage": name})
+        rows.append(
+            {
+                "check": f"step {name}",
+                "value": float("nan"),
+                "tolerance": float("nan"),
+                "sense": "",
+                "unit": "",
+                "result": "skipped",
+                "source": "potfield",
+                "detail": entry.get("summary", ""),
+                "stage": name,
+            }
+        )
     for text in entry.get("degraded", []):
-        rows.append({"check": f"step {name}", "value": float("nan"), "tolerance": float("nan"),
-                     "sense": "", "unit": "", "result": "degraded", "source": "potfield",
-                     "detail": text, "stage": name})
+        rows.append(
+            {
+                "check": f"step {name}",
+                "value": float("nan"),
+                "tolerance": float("nan"),
+                "sense": "",
+                "unit": "",
+                "result": "degraded",
+                "source": "potfield",
+                "detail": text,
+                "stage": name,
+            }
+        )
     return rows
 
 
@@ -254,9 +316,15 @@ def _mark_stale(manifest: dict, names, reason: str) -> None:
         entry["stale_reason"] = reason
 
 
-def run_survey(root: Path | str, *, until: str | None = None, only: str | None = None,
-               start: str | None = None, force: bool = False,
-               progress: Callable[[str], None] | None = None) -> RunSummary:
+def run_survey(
+    root: Path | str,
+    *,
+    until: str | None = None,
+    only: str | None = None,
+    start: str | None = None,
+    force: bool = False,
+    progress: Callable[[str], None] | None = None,
+) -> RunSummary:
     """Run the stages of a survey folder. See the module docstring for caching rules."""
     say = progress or (lambda message: None)
     survey = Survey(Path(root))
@@ -287,11 +355,13 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
         previous_key = ""
         records: list[StageRecord] = []
         last_index = order.index(selected[-1])
-        later = order[last_index + 1:]
-        stamp = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-        stale_reason = (f"the run of {stamp} stopped after '{selected[-1]}': these results are "
-                        "not in readings.csv/checks.csv; run again without --until/--only to "
-                        "bring them back (unchanged ones are reused)")
+        later = order[last_index + 1 :]
+        stamp = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+        stale_reason = (
+            f"the run of {stamp} stopped after '{selected[-1]}': these results are "
+            "not in readings.csv/checks.csv; run again without --until/--only to "
+            "bring them back (unchanged ones are reused)"
+        )
         for index, name in enumerate(order[: last_index + 1]):
             stage = load_stage(name)
             if config.kind not in stage.kinds:
@@ -304,19 +374,24 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             manifest["inputs"].update(inputs)
             previous_key = key
             cached = manifest["stages"].get(name, {})
-            status = cached.get("status_before_stale") if cached.get("status") == "stale" \
-                else cached.get("status")
+            status = (
+                cached.get("status_before_stale") if cached.get("status") == "stale" else cached.get("status")
+            )
             cache_file = survey.cache / f"{name}.parquet"
             # --force recomputes the selected stages only; earlier ones must still be up to date
-            is_cached = (not (force and name in selected) and cached.get("key") == key
-                         and status in CURRENT
-                         and (not cached.get("table") or cache_file.is_file())
-                         and all((survey.grids / f"{g}.nc").is_file() for g in cached.get("grids", [])))
+            is_cached = (
+                not (force and name in selected)
+                and cached.get("key") == key
+                and status in CURRENT
+                and (not cached.get("table") or cache_file.is_file())
+                and all((survey.grids / f"{g}.nc").is_file() for g in cached.get("grids", []))
+            )
             if name not in selected or is_cached:
                 if not is_cached:
                     raise StageError(
                         f"stage '{name}' has no up-to-date result to start '{selected[0]}' from",
-                        fix=f"run 'potfield run {survey.root}' (or with --until {selected[0]}) first")
+                        fix=f"run 'potfield run {survey.root}' (or with --until {selected[0]}) first",
+                    )
                 if cached.get("status") == "stale":  # an unchanged result comes back
                     cached["status"] = cached.pop("status_before_stale", "done")
                     cached.pop("stale_reason", None)
@@ -326,18 +401,31 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                 for g in cached.get("grids", []):
                     grids[g] = survey.grids / f"{g}.nc"
                 if name in selected:
-                    records.append(StageRecord(name, "cached", notes=cached.get("notes", []),
-                                               skipped=cached.get("summary") if status == "skipped" else None,
-                                               degraded=list(cached.get("degraded", []))))
+                    records.append(
+                        StageRecord(
+                            name,
+                            "cached",
+                            notes=cached.get("notes", []),
+                            skipped=cached.get("summary") if status == "skipped" else None,
+                            degraded=list(cached.get("degraded", [])),
+                        )
+                    )
                     say(f"{name}: unchanged, reused" + _loud(cached))
                 continue
             # Whatever follows this stage was made from results about to change: stale until rerun.
-            _mark_stale(manifest, order[index + 1:], stale_reason)
+            _mark_stale(manifest, order[index + 1 :], stale_reason)
             _check_requires(stage, config.kind, order, table, state, manifest, survey.root)
             say(f"{name}: running")
-            ctx = StageContext(config=config, survey=survey, table=table, state=state, spec=spec,
-                               grids=_LazyGrids(grids), progress=lambda m, n=name: say(f"{n}: {m}"),
-                               manifest=manifest)
+            ctx = StageContext(
+                config=config,
+                survey=survey,
+                table=table,
+                state=state,
+                spec=spec,
+                grids=_LazyGrids(grids),
+                progress=lambda m, n=name: say(f"{n}: {m}"),
+                manifest=manifest,
+            )
             started = time.perf_counter()
             try:
                 output = stage.run(ctx)
@@ -348,8 +436,11 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
                 entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
             except BaseException:
                 # out/ keeps describing what is current: the stages before this one
-                _mark_stale(manifest, order[index:], f"stage '{name}' failed in the run of {stamp}; "
-                            "these results are not current")
+                _mark_stale(
+                    manifest,
+                    order[index:],
+                    f"stage '{name}' failed in the run of {stamp}; these results are not current",
+                )
                 try:
                     _finish(survey, config, manifest, order[:index], table, hashes, state, grids)
                 except Exception:  # noqa: BLE001, S110  (the original error matters more)
@@ -365,22 +456,42 @@ def run_survey(root: Path | str, *, until: str | None = None, only: str | None =
             # a later failure keeps this stage's record; the checksums follow the files written
             manifest["outputs"] = survey.output_checksums(hashes)
             write_json(survey.manifest_path, manifest)
-            records.append(StageRecord(name, entry["status"], seconds, output.notes, output.warnings,
-                                       output.skipped, list(output.degraded)))
+            records.append(
+                StageRecord(
+                    name,
+                    entry["status"],
+                    seconds,
+                    output.notes,
+                    output.warnings,
+                    output.skipped,
+                    list(output.degraded),
+                )
+            )
             verb = "skipped" if entry["status"] == "skipped" else "done"
             say(f"{name}: {verb} in {seconds:.1f} s" + _loud(entry))
         _mark_stale(manifest, later, stale_reason)
         stale = [n for n in later if manifest["stages"].get(n, {}).get("status") == "stale"]
         if stale:
-            say(f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
-                "run again without --until/--only to bring them back)")
-        checks, steps = _finish(survey, config, manifest, order[: last_index + 1], table, hashes, state,
-                                grids)
+            say(
+                f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
+                "run again without --until/--only to bring them back)"
+            )
+        checks, steps = _finish(
+            survey, config, manifest, order[: last_index + 1], table, hashes, state, grids
+        )
     return RunSummary(survey.root, records, checks, manifest, steps)
 
 
-def _finish(survey: Survey, config, manifest: dict, current, table: pd.DataFrame | None,
-            hashes: dict, state: dict, grids: dict) -> tuple[list[dict], list[dict]]:
+def _finish(
+    survey: Survey,
+    config,
+    manifest: dict,
+    current,
+    table: pd.DataFrame | None,
+    hashes: dict,
+    state: dict,
+    grids: dict,
+) -> tuple[list[dict], list[dict]]:
     """Write readings.csv and readings.parquet (the table of the last current stage), checks.csv
     (the checks and skipped/degraded steps of the ``current`` stages), the data dictionary, the
     multi-variable products file of the current grids, and the manifest with the outputs'
@@ -394,9 +505,10 @@ def _finish(survey: Survey, config, manifest: dict, current, table: pd.DataFrame
         entry = manifest["stages"].get(name, {})
         checks.extend(entry.get("checks", []))
         steps.extend(_step_rows(name, entry))
-    write_table(survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS),
-                config.kind)
-    manifest["updated"] = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    write_table(
+        survey.tables / "checks.csv", pd.DataFrame(checks + steps, columns=CHECK_COLUMNS), config.kind
+    )
+    manifest["updated"] = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     manifest["outputs"] = survey.output_checksums(hashes)
     write_json(survey.manifest_path, manifest)
     return checks, steps
@@ -466,8 +578,16 @@ class _LazyGrids(dict):
         return [(k, self[k]) for k in self._paths]
 
 
-def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: dict, key: str,
-                 seconds: float, ctx: StageContext) -> dict:
+def _write_stage(
+    survey: Survey,
+    config,
+    name: str,
+    output: StageOutput,
+    state: dict,
+    key: str,
+    seconds: float,
+    ctx: StageContext,
+) -> dict:
     from .io.grids import write_geotiff, write_netcdf
 
     crs = state.get("ingest", {}).get("crs") or output.state.get("crs")
@@ -490,7 +610,7 @@ def _write_stage(survey: Survey, config, name: str, output: StageOutput, state: 
         "status": "skipped" if output.skipped else "done",
         "key": key,
         "seconds": round(seconds, 3),
-        "finished": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "finished": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "table": output.table is not None,
         "metrics": output.metrics,
         "state": output.state,
@@ -525,7 +645,9 @@ def check_survey(root: Path | str) -> dict:
         if stage.inputs is not None and name != "ingest":
             for path in stage.inputs(config, survey):
                 if not Path(path).is_file():
-                    raise InputDataError("file not found", file=path, fix="check the file name in survey.toml")
+                    raise InputDataError(
+                        "file not found", file=path, fix="check the file name in survey.toml"
+                    )
     table = output.table
     info = {
         "survey": config.survey.name,
@@ -533,8 +655,12 @@ def check_survey(root: Path | str) -> dict:
         "files": {_rel(p, survey): int((table["source_file"] == p.name).sum()) for p in files},
         "readings": len(table),
         "time_span": output.state["time_span"],
-        "extent_lonlat": [float(table.longitude.min()), float(table.longitude.max()),
-                          float(table.latitude.min()), float(table.latitude.max())],
+        "extent_lonlat": [
+            float(table.longitude.min()),
+            float(table.longitude.max()),
+            float(table.latitude.min()),
+            float(table.latitude.max()),
+        ],
         "region_m": output.state["region"],
         "input_crs": config.survey.crs,
         "output_crs": output.state["crs_name"],
@@ -547,5 +673,13 @@ def check_survey(root: Path | str) -> dict:
     return info
 
 
-__all__ = ["KIND_ORDER", "PotfieldError", "RunSummary", "check_survey", "load_stage", "run_survey",
-           "select_stages", "stages_for"]
+__all__ = [
+    "KIND_ORDER",
+    "PotfieldError",
+    "RunSummary",
+    "check_survey",
+    "load_stage",
+    "run_survey",
+    "select_stages",
+    "stages_for",
+]

@@ -98,8 +98,13 @@ class Survey:
         ``cache`` (path -> (size, mtime_ns, digest)) lets the runner skip re-hashing files
         that did not change since its last call.
         """
-        paths = [p for folder in (self.tables, self.grids, self.maps) if folder.is_dir()
-                 for p in sorted(folder.glob("*")) if p.is_file() and not p.name.startswith(".")]
+        paths = [
+            p
+            for folder in (self.tables, self.grids, self.maps)
+            if folder.is_dir()
+            for p in sorted(folder.glob("*"))
+            if p.is_file() and not p.name.startswith(".")
+        ]
         if self.report_path.is_file():
             paths.append(self.report_path)
         files = {}
@@ -152,11 +157,16 @@ class Survey:
                 if any(ch in pattern for ch in "*?["):
                     raise InputDataError(
                         f"no file matches '{pattern}'",
-                        file=self.config_path, key="input.files",
+                        file=self.config_path,
+                        key="input.files",
                         fix="put the survey files in raw/ or correct the pattern",
                     )
-                raise InputDataError("file not found", file=self.resolve(pattern),
-                                     key="input.files", fix="check the file name in survey.toml")
+                raise InputDataError(
+                    "file not found",
+                    file=self.resolve(pattern),
+                    key="input.files",
+                    fix="check the file name in survey.toml",
+                )
             found.extend(matches)
         # unique, keep order
         seen, unique = set(), []
@@ -211,8 +221,16 @@ class Survey:
         """A write failure under out/ (not, e.g., an input file that vanished mid-run)."""
         import errno
 
-        if err.errno not in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQUOT,
-                             errno.ENOTDIR, errno.EISDIR, errno.EEXIST):
+        if err.errno not in (
+            errno.EACCES,
+            errno.EPERM,
+            errno.EROFS,
+            errno.ENOSPC,
+            errno.EDQUOT,
+            errno.ENOTDIR,
+            errno.EISDIR,
+            errno.EEXIST,
+        ):
             return False
         if not err.filename:
             return True

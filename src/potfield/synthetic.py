@@ -15,9 +15,17 @@ import pandas as pd
 from .io.atomic import atomic_path
 
 
-def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed: int = 0,
-                    lon0: float = 138.0, lat0: float = -33.0, spacing_m: float = 200.0,
-                    rate_hz: float = 10.0, speed_ms: float = 60.0) -> pd.DataFrame:
+def synthetic_lines(
+    readings: int = 20_000,
+    lines: int = 10,
+    ties: int = 2,
+    seed: int = 0,
+    lon0: float = 138.0,
+    lat0: float = -33.0,
+    spacing_m: float = 200.0,
+    rate_hz: float = 10.0,
+    speed_ms: float = 60.0,
+) -> pd.DataFrame:
     """Lines of readings with the template's column names (line, time_utc, longitude, latitude, height_m, total_field_nT):
     the IGRF-14 main field plus a smooth anomaly, a slow drift, noise and spikes."""
     rng = np.random.default_rng(seed)
@@ -47,19 +55,27 @@ def synthetic_lines(readings: int = 20_000, lines: int = 10, ties: int = 2, seed
         clock = seconds[-1] + 120.0
         field = 50_000.0 + 30 * np.sin(x / 700.0) * np.cos(y / 900.0) + 0.02 * seconds / 60
         field = field + rng.normal(0, 0.02, per_line)
-        frames.append(pd.DataFrame({
-            "line": name,
-            "time_utc": (t0 + (seconds * 1e9).astype("int64").astype("timedelta64[ns]")),
-            "longitude": lon0 + x / m_per_deg_lon,
-            "latitude": lat0 + y / m_per_deg_lat,
-            "height_m": 120.0 + rng.normal(0, 1, per_line),
-            "total_field_nT": field,
-        }))
+        frames.append(
+            pd.DataFrame(
+                {
+                    "line": name,
+                    "time_utc": (t0 + (seconds * 1e9).astype("int64").astype("timedelta64[ns]")),
+                    "longitude": lon0 + x / m_per_deg_lon,
+                    "latitude": lat0 + y / m_per_deg_lat,
+                    "height_m": 120.0 + rng.normal(0, 1, per_line),
+                    "total_field_nT": field,
+                }
+            )
+        )
     table = pd.concat(frames, ignore_index=True)
     from .fields.magnetic.igrf import igrf
 
-    main = igrf(table["longitude"].to_numpy(), table["latitude"].to_numpy(), table["height_m"].to_numpy(),
-                table["time_utc"].to_numpy()).total
+    main = igrf(
+        table["longitude"].to_numpy(),
+        table["latitude"].to_numpy(),
+        table["height_m"].to_numpy(),
+        table["time_utc"].to_numpy(),
+    ).total
     table["total_field_nT"] = table["total_field_nT"].to_numpy() - 50_000.0 + main
     spikes = rng.choice(len(table), size=max(len(table) // 5000, 1), replace=False)
     table.loc[spikes, "total_field_nT"] += rng.choice([-1, 1], spikes.size) * 25.0

@@ -99,6 +99,7 @@ def test_unknown_kind_and_bad_size_are_one_line_errors(tmp_path):
 
 # --- magnetic ---------------------------------------------------------------------------------
 
+
 @pytest.fixture(scope="module")
 def mag(regenerated):
     folder = regenerated["magnetic"]
@@ -123,7 +124,14 @@ def test_magnetic_geometry_is_a_realistic_survey(mag):
     folder, raw, truth, params = mag
     fwd, _ = common.transformers()
     e, n = fwd.transform(raw["longitude"].to_numpy(), raw["latitude"].to_numpy())
-    t = pd.to_datetime(raw["time_utc"]).dt.tz_convert(None).to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
+    t = (
+        pd.to_datetime(raw["time_utc"])
+        .dt.tz_convert(None)
+        .to_numpy()
+        .astype("datetime64[ns]")
+        .astype(np.int64)
+        / 1e9
+    )
     same = raw["line"].to_numpy()[1:] == raw["line"].to_numpy()[:-1]
     dt = np.diff(t)[same]
     speed = np.hypot(np.diff(e), np.diff(n))[same] / dt
@@ -145,12 +153,20 @@ def test_magnetic_igrf_is_potfield_igrf_and_agrees_with_ppigrf(mag):
     _, raw, truth, _ = mag
     idx = np.linspace(0, len(raw) - 1, 7).astype(int)
     times = pd.to_datetime(raw["time_utc"].iloc[idx]).dt.tz_convert(None).to_numpy()
-    ours = igrf(raw["longitude"].to_numpy()[idx], raw["latitude"].to_numpy()[idx],
-                raw["height_m"].to_numpy()[idx], times)
+    ours = igrf(
+        raw["longitude"].to_numpy()[idx],
+        raw["latitude"].to_numpy()[idx],
+        raw["height_m"].to_numpy()[idx],
+        times,
+    )
     np.testing.assert_allclose(ours.total, truth["igrf_total"].to_numpy()[idx], atol=1e-3)
     for k, i in enumerate(idx[:3]):  # reference library: ppigrf (IGRF-14), chunked per point
-        be, bn, bu = ppigrf.igrf(raw["longitude"].iat[i], raw["latitude"].iat[i], raw["height_m"].iat[i] / 1000.0,
-                                 pd.Timestamp(times[k]).to_pydatetime())
+        be, bn, bu = ppigrf.igrf(
+            raw["longitude"].iat[i],
+            raw["latitude"].iat[i],
+            raw["height_m"].iat[i] / 1000.0,
+            pd.Timestamp(times[k]).to_pydatetime(),
+        )
         total = float(np.sqrt(be**2 + bn**2 + bu**2).ravel()[0])
         assert total == pytest.approx(truth["igrf_total"].iat[i], abs=1.0)
 
@@ -166,8 +182,10 @@ def test_magnetic_total_field_anomaly_of_a_small_body_is_the_dipole_projection()
     field = igrf(145.6, -32.4, 300.0, np.datetime64("2024-11-19"))
     inc, dec, F = float(field.inclination), float(field.declination), float(field.total)
     model = magnetic.crustal_model(np.random.default_rng(0), 6000.0, 250.0, inc, dec, F)
-    one = {"prisms": np.array([[-10.0, 10.0, -10.0, 10.0, -520.0, -500.0]]),
-           "magnetization": tuple(m[:1] for m in model["magnetization"])}  # the dyke's M
+    one = {
+        "prisms": np.array([[-10.0, 10.0, -10.0, 10.0, -520.0, -500.0]]),
+        "magnetization": tuple(m[:1] for m in model["magnetization"]),
+    }  # the dyke's M
     east = np.array([300.0, -200.0, 0.0])
     north = np.array([100.0, 250.0, 0.0])
     up = np.array([300.0, 300.0, 300.0])
@@ -181,8 +199,12 @@ def test_magnetic_total_field_anomaly_of_a_small_body_is_the_dipole_projection()
     f_hat = np.stack([fields.east, fields.north, -fields.down], axis=1) / fields.total[:, None]
     expected = np.sum(b * f_hat, axis=1)
     np.testing.assert_allclose(got, expected, rtol=2e-3)
-    be, bn, bu = hm.dipole_magnetic((east, north, up), (np.array([0.0]), np.array([0.0]), np.array([-510.0])),
-                                    tuple(np.array([c]) for c in m), field="b")
+    be, bn, bu = hm.dipole_magnetic(
+        (east, north, up),
+        (np.array([0.0]), np.array([0.0]), np.array([-510.0])),
+        tuple(np.array([c]) for c in m),
+        field="b",
+    )
     np.testing.assert_allclose(got, (be * f_hat[:, 0] + bn * f_hat[:, 1] + bu * f_hat[:, 2]), rtol=2e-3)
     # induced magnetisation M = chi F / mu0 along F (Blakely 1995, eq. 5.13)
     chi = model["bodies"][0]["susceptibility_SI"]
@@ -194,10 +216,17 @@ def test_magnetic_external_field_is_regional_and_of_realistic_size(mag):
     base = pd.read_csv(folder / "raw" / magnetic.BASE_FILE)
     base_truth = pd.read_csv(folder / "truth" / "base_truth.csv")
     # the base record is IGRF + its crustal value + the same external field + noise
-    assert np.std(base["base_total_field_nT"] - base_truth[["igrf_total", "crustal_anomaly", "external"]].sum(axis=1)) < 0.03
+    assert (
+        np.std(
+            base["base_total_field_nT"]
+            - base_truth[["igrf_total", "crustal_anomaly", "external"]].sum(axis=1)
+        )
+        < 0.03
+    )
     t_read = pd.to_datetime(raw["time_utc"]).dt.round("1s").dt.strftime("%Y-%m-%dT%H:%M:%SZ")
     merged = pd.DataFrame({"time": t_read, "external": truth["external"]}).merge(
-        base_truth[["time", "external"]], on="time", suffixes=("", "_base"))
+        base_truth[["time", "external"]], on="time", suffixes=("", "_base")
+    )
     assert len(merged) > 1000
     # regional: the aircraft and base see the same variation within a fraction of a nT
     # (differences: local time over a few km, sub-second timing, the F direction)
@@ -208,8 +237,9 @@ def test_magnetic_external_field_is_regional_and_of_realistic_size(mag):
     from potfield.fields.magnetic.igrf import igrf
 
     f = igrf(common.CENTRE_LON, common.CENTRE_LAT, 300.0, np.datetime64("2024-11-19T00:00"))
-    n_, e_, d_ = magnetic.external_vector(sec, common.CENTRE_LON,
-                                          {**params["external"], "pulsations": [], "bays": []})
+    n_, e_, d_ = magnetic.external_vector(
+        sec, common.CENTRE_LON, {**params["external"], "pulsations": [], "bays": []}
+    )
     daily = magnetic.project_on(f, n_, e_, d_)
     assert 15.0 < np.ptp(daily) < 45.0
 
@@ -249,6 +279,7 @@ def test_magnetic_truth_grid_matches_readings_near_grid_height(mag):
 
 # --- gravity ----------------------------------------------------------------------------------
 
+
 @pytest.fixture(scope="module")
 def grav(regenerated):
     folder = regenerated["gravity"]
@@ -270,7 +301,9 @@ def test_gravity_readings_decompose_and_calibrate(grav):
     terms = truth[["g_true", "instrument_height_effect", "tide", "meter_offset", "drift", "tare", "noise"]]
     np.testing.assert_allclose(terms.sum(axis=1), truth["reading_mgal"], atol=1e-4)
     # instrument height effect = -0.3086 mGal/m x HI (common practice free-air gradient)
-    np.testing.assert_allclose(truth["instrument_height_effect"], -0.3086 * raw["instrument_height_m"], atol=1e-5)
+    np.testing.assert_allclose(
+        truth["instrument_height_effect"], -0.3086 * raw["instrument_height_m"], atol=1e-5
+    )
     # loops start and end at a base
     for _, loop in raw.groupby("loop", sort=False):
         assert loop["station"].iat[0].startswith("BASE") and loop["station"].iat[-1] == loop["station"].iat[0]
@@ -292,8 +325,11 @@ def test_gravity_tide_agrees_with_tidegravity(grav):
     idx = np.arange(0, len(raw), 17)
     time = pd.to_datetime(raw["time_utc"].iloc[idx]).dt.tz_convert(None)
     _, _, g0 = tidegravity.solve_longman_tide(
-        raw["latitude"].to_numpy()[idx].copy(), raw["longitude"].to_numpy()[idx].copy(),
-        raw["height_m"].to_numpy()[idx].copy(), np.array(pd.DatetimeIndex(time).to_pydatetime()))
+        raw["latitude"].to_numpy()[idx].copy(),
+        raw["longitude"].to_numpy()[idx].copy(),
+        raw["height_m"].to_numpy()[idx].copy(),
+        np.array(pd.DatetimeIndex(time).to_pydatetime()),
+    )
     # tidegravity returns Longman's upward acceleration x its 1 + h2 - 1.5 k2: the meter sees
     # minus that (Longman 1959); scaled to our factor 1.16.
     expected = -np.asarray(g0) * 1.16 / tidegravity.tidegravity.love
@@ -308,15 +344,23 @@ def test_gravity_normal_gravity_is_wgs84(grav):
     # boule's WGS84 against the published check values (references.md: NIMA TR8350.2 / Moritz)
     g = boule.WGS84.normal_gravity((None, np.array([0.0, 45.0, 90.0]), np.zeros(3)))
     np.testing.assert_allclose(g, [978032.5336, 980619.7769, 983218.4938], atol=2e-3)
-    expected = boule.WGS84.normal_gravity((None, stations["latitude"].to_numpy(),
-                                           stations["height_true"].to_numpy()))
+    expected = boule.WGS84.normal_gravity(
+        (None, stations["latitude"].to_numpy(), stations["height_true"].to_numpy())
+    )
     np.testing.assert_allclose(stations["normal_gravity"], expected, atol=1e-4)
     # the terms add up; the true Bouguer anomaly is bodies + regional
-    total = (stations["normal_gravity"] - stations["atmospheric_correction"] + stations["topography"]
-             + stations["bodies"] + stations["regional"])
+    total = (
+        stations["normal_gravity"]
+        - stations["atmospheric_correction"]
+        + stations["topography"]
+        + stations["bodies"]
+        + stations["regional"]
+    )
     np.testing.assert_allclose(total, stations["g_true"], atol=1e-4)
     # atmospheric correction of Hinze et al. (2005): 0.874 mGal at 0 m, 0.77856 at 1000 m
-    assert gravity.atmospheric_correction(np.array([0.0, 1000.0])) == pytest.approx([0.874, 0.77856], abs=1e-5)
+    assert gravity.atmospheric_correction(np.array([0.0, 1000.0])) == pytest.approx(
+        [0.874, 0.77856], abs=1e-5
+    )
 
 
 def test_gravity_topography_kernel_against_disc_formula_and_harmonica():
@@ -330,8 +374,9 @@ def test_gravity_topography_kernel_against_disc_formula_and_harmonica():
     saved = gravity.EARTH_RADIUS
     try:
         gravity.EARTH_RADIUS = 1e15
-        got = gravity.topography_gravity(np.array([60.0]), np.array([-40.0]), np.array([300.0]),
-                                         cells, cells, flat, 300.0)[0]
+        got = gravity.topography_gravity(
+            np.array([60.0]), np.array([-40.0]), np.array([300.0]), cells, cells, flat, 300.0
+        )[0]
     finally:
         gravity.EARTH_RADIUS = saved
     R, h = gravity.FAR_RADIUS, 300.0
@@ -343,8 +388,9 @@ def test_gravity_topography_kernel_against_disc_formula_and_harmonica():
     # the station's horizon. potfield.fields.gravity.reductions.bouguer_cap (LaFehr's closed form, another
     # engineer's code) gives the same value.
     flat15 = np.full_like(flat, 1500.0)
-    curved = gravity.topography_gravity(np.array([0.0]), np.array([0.0]), np.array([1500.0]),
-                                        cells, cells, flat15, 1500.0)[0]
+    curved = gravity.topography_gravity(
+        np.array([0.0]), np.array([0.0]), np.array([1500.0]), cells, cells, flat15, 1500.0
+    )[0]
     slab = 2 * np.pi * gravity.G * 2670.0 * 1500.0 * 1e5
     assert curved - slab == pytest.approx(1.5, abs=0.3)
     from potfield.fields.gravity.reductions import bouguer_cap
@@ -366,10 +412,21 @@ def test_gravity_topography_kernel_against_disc_formula_and_harmonica():
     ref = []
     for i in range(2):
         use = d2[:, i] <= 4000.0**2
-        prisms = np.column_stack([E.ravel()[use] - 125, E.ravel()[use] + 125, N.ravel()[use] - 125,
-                                  N.ravel()[use] + 125, np.zeros(use.sum()), rough.ravel()[use]])
-        ref.append(hm.prism_gravity((x[i:i + 1], y[i:i + 1], z[i:i + 1]), prisms,
-                                    np.full(use.sum(), 2670.0), field="g_z")[0])
+        prisms = np.column_stack(
+            [
+                E.ravel()[use] - 125,
+                E.ravel()[use] + 125,
+                N.ravel()[use] - 125,
+                N.ravel()[use] + 125,
+                np.zeros(use.sum()),
+                rough.ravel()[use],
+            ]
+        )
+        ref.append(
+            hm.prism_gravity(
+                (x[i : i + 1], y[i : i + 1], z[i : i + 1]), prisms, np.full(use.sum(), 2670.0), field="g_z"
+            )[0]
+        )
     np.testing.assert_allclose(mine, ref, atol=2e-3)
 
 
@@ -390,6 +447,7 @@ def test_gravity_dem_covers_the_terrain_radius(grav):
 
 
 # --- observatory ------------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("source", ("internal", "external"))
 def test_observatory_synthesis_matches_chaosmagpy(source):
@@ -440,8 +498,12 @@ def test_observatory_files_hold_the_true_components(obs):
     table = observatory_table(files)
     assert len(table) == len(st)
     st = st.sort_values(["station", "time"], kind="mergesort").reset_index(drop=True)
-    main = igrf(table["longitude"].to_numpy(), table["latitude"].to_numpy(),
-                table["height"].to_numpy(), table["time"].to_numpy())
+    main = igrf(
+        table["longitude"].to_numpy(),
+        table["latitude"].to_numpy(),
+        table["height"].to_numpy(),
+        table["time"].to_numpy(),
+    )
     st["main_north"], st["main_east"], st["main_down"] = main.north, main.east, main.down
     parts = ["main", "external", "induced", "nonpotential"]
     for comp, col in (("north", "mag_north"), ("east", "mag_east"), ("down", "mag_down")):

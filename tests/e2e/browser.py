@@ -7,9 +7,17 @@ import subprocess
 import tempfile
 from pathlib import Path
 
-FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-         "--disable-background-networking", "--disable-component-update", "--disable-sync",
-         "--virtual-time-budget=10000"]
+FLAGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--virtual-time-budget=10000",
+]
 
 
 def chromium() -> str | None:
@@ -24,7 +32,10 @@ def render_dom(page: Path, timeout: float = 90.0) -> str:
     exe = chromium()
     assert exe, "chromium not installed (.ci/run installs Debian's chromium package)"
     with tempfile.TemporaryDirectory() as profile:
-        result = subprocess.run([exe, *FLAGS, f"--user-data-dir={profile}", "--dump-dom",
-                                 Path(page).resolve().as_uri()],
-                                capture_output=True, text=True, timeout=timeout)
+        result = subprocess.run(
+            [exe, *FLAGS, f"--user-data-dir={profile}", "--dump-dom", Path(page).resolve().as_uri()],
+            capture_output=True,
+            text=True,
+            timeout=timeout,
+        )
     return result.stdout

@@ -9,18 +9,19 @@ from __future__ import annotations
 import gzip
 import hashlib
 import json
-import shutil
 from pathlib import Path
 
 import pandas as pd
-import pytest
 
 from potfield.cli import main
 
 
 def _digest(folder: Path) -> dict[str, str]:
-    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(folder.rglob("*")) if p.is_file()}
+    return {
+        str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file()
+    }
 
 
 def _error(capsys, argv) -> str:
@@ -43,8 +44,15 @@ def test_new_check_run_clean(magnetic_survey, capsys):
     assert main(["run", str(root), "--until", "clean"]) == 0
     tables = root / "out" / "tables"
     readings = pd.read_csv(tables / "readings.csv")
-    assert {"time", "easting", "northing", "line_type", "flag_spike", "fourth_difference",
-            "source_row"} <= set(readings.columns)
+    assert {
+        "time",
+        "easting",
+        "northing",
+        "line_type",
+        "flag_spike",
+        "fourth_difference",
+        "source_row",
+    } <= set(readings.columns)
     assert (readings["line_type"] == "tie").any()
     manifest = json.loads((root / "out" / "manifest.json").read_text())
     assert manifest["stages"]["clean"]["status"] == "done"
@@ -103,7 +111,11 @@ def test_gzip_and_semicolon_input(magnetic_survey, capsys):
     (raw / "lines.csv").unlink()
     with gzip.open(raw / "lines.csv.gz", "wt") as handle:
         table.to_csv(handle, sep=";", index=False)
-    text = (magnetic_survey / "survey.toml").read_text().replace('files = ["raw/*.csv"]', 'files = ["raw/*.csv.gz"]')
+    text = (
+        (magnetic_survey / "survey.toml")
+        .read_text()
+        .replace('files = ["raw/*.csv"]', 'files = ["raw/*.csv.gz"]')
+    )
     (magnetic_survey / "survey.toml").write_text(text)
     assert main(["run", str(magnetic_survey), "--until", "ingest"]) == 0
     readings = pd.read_csv(magnetic_survey / "out" / "tables" / "readings.csv")
@@ -111,6 +123,7 @@ def test_gzip_and_semicolon_input(magnetic_survey, capsys):
 
 
 # ---- bad input: one line, exit code 2, no traceback -------------------------------------------
+
 
 def _edit(root: Path, old: str, new: str) -> None:
     path = root / "survey.toml"
@@ -193,7 +206,7 @@ def test_manifest_keeps_finished_stages_when_a_later_one_fails(magnetic_survey, 
     # --until reference finishes; then a broken [reference] date makes the next run fail there,
     # and the manifest must still hold the stages that finished before it.
     assert main(["run", str(magnetic_survey), "--until", "clean"]) == 0
-    _edit(magnetic_survey, "[reference]\n", "[reference]\nigrf_date = \"1850-01-01\"\n")
+    _edit(magnetic_survey, "[reference]\n", '[reference]\nigrf_date = "1850-01-01"\n')
     msg = _error(capsys, ["run", str(magnetic_survey), "--until", "reference"])
     assert "1900" in msg
     manifest = json.loads((magnetic_survey / "out" / "manifest.json").read_text())

@@ -34,7 +34,8 @@ def test_every_seed_adjusts_within_spec(tmp_path, seed):
     assert {"gravity_drift_rate", "gravity_repeat_difference", "gravity_loop_closure"} <= names
     tables = folder / "out" / "tables"
     stations = pd.read_csv(tables / "stations.csv").merge(
-        pd.read_csv(folder / "truth" / "stations_truth.csv"), on="station", suffixes=("", "_true"))
+        pd.read_csv(folder / "truth" / "stations_truth.csv"), on="station", suffixes=("", "_true")
+    )
     # 5 uGal reading noise, every station tied: station gravity within 0.02 mGal RMS of the
     # truth (about 3x the adjustment's own standard deviations)
     error = stations["gravity"] - stations["g_true"]

@@ -37,15 +37,44 @@ def demo(tmp_path_factory):
     return root
 
 
-PROMISED_TABLES = ("readings.csv", "readings.parquet", "columns.csv", "checks.csv", "crossovers.csv", "lines.csv", "clean_lines.csv",
-                   "diurnal_lines.csv", "base_record.csv", "grid_cv.csv")
-PROMISED_GRIDS = ("anomaly", "anomaly_reduced_to_pole", "anomaly_vertical_derivative",
-                  "anomaly_second_vertical_derivative", "anomaly_x_derivative", "anomaly_y_derivative",
-                  "anomaly_total_horizontal_gradient", "anomaly_analytic_signal", "anomaly_tilt_angle",
-                  "anomaly_upward_500m", "regional_upward",
-                  "residual_upward", "regional_two_layer", "residual_two_layer")
-PROMISED_MAPS = ("tracks", "coverage", "height_deviation", "noise_profiles", "diurnal_record",
-                 "grid_residual", "separation_panels", "line_profiles")
+PROMISED_TABLES = (
+    "readings.csv",
+    "readings.parquet",
+    "columns.csv",
+    "checks.csv",
+    "crossovers.csv",
+    "lines.csv",
+    "clean_lines.csv",
+    "diurnal_lines.csv",
+    "base_record.csv",
+    "grid_cv.csv",
+)
+PROMISED_GRIDS = (
+    "anomaly",
+    "anomaly_reduced_to_pole",
+    "anomaly_vertical_derivative",
+    "anomaly_second_vertical_derivative",
+    "anomaly_x_derivative",
+    "anomaly_y_derivative",
+    "anomaly_total_horizontal_gradient",
+    "anomaly_analytic_signal",
+    "anomaly_tilt_angle",
+    "anomaly_upward_500m",
+    "regional_upward",
+    "residual_upward",
+    "regional_two_layer",
+    "residual_two_layer",
+)
+PROMISED_MAPS = (
+    "tracks",
+    "coverage",
+    "height_deviation",
+    "noise_profiles",
+    "diurnal_record",
+    "grid_residual",
+    "separation_panels",
+    "line_profiles",
+)
 
 
 def test_every_promised_file_exists(demo):
@@ -62,8 +91,10 @@ def test_every_promised_file_exists(demo):
     assert (out / "grids" / "products.nc").is_file()  # every grid in one file
     assert (out / "report.html").is_file() and (out / "manifest.json").is_file()
     manifest = json.loads((out / "manifest.json").read_text())
-    assert all(manifest["stages"][s]["status"] == "done" for s in
-               ("ingest", "clean", "diurnal", "reference", "level", "grid", "separate", "derive", "report"))
+    assert all(
+        manifest["stages"][s]["status"] == "done"
+        for s in ("ingest", "clean", "diurnal", "reference", "level", "grid", "separate", "derive", "report")
+    )
     assert "out/report.html" in manifest["outputs"]
 
 
@@ -102,13 +133,24 @@ def test_report_renders_in_a_browser(demo):
     if chromium() is None:
         pytest.skip("chromium not installed (.ci/run installs Debian's chromium)")
     html = (demo / "out" / "report.html").read_text()
-    assert "src=\"http" not in html and "<link" not in html  # self-contained, no network access
+    assert 'src="http' not in html and "<link" not in html  # self-contained, no network access
     assert "qualified geophysicist" in html and "licensed professional practice" in html
     dom = render_dom(demo / "out" / "report.html")
     headings = re.findall(r"<h2 id=\"([^\"]+)\"", dom)
-    for section in ("summary", "failed-checks", "stage-ingest", "stage-clean", "stage-diurnal",
-                    "stage-reference", "stage-level", "stage-grid", "stage-separate", "stage-derive",
-                    "provenance", "cautions"):
+    for section in (
+        "summary",
+        "failed-checks",
+        "stage-ingest",
+        "stage-clean",
+        "stage-diurnal",
+        "stage-reference",
+        "stage-level",
+        "stage-grid",
+        "stage-separate",
+        "stage-derive",
+        "provenance",
+        "cautions",
+    ):
         assert section in headings, section
     total = int(re.search(r'data-images-total="(\d+)"', dom).group(1))
     loaded = int(re.search(r'data-images-loaded="(\d+)"', dom).group(1))
@@ -127,8 +169,11 @@ def test_report_rebuilds_without_recomputing(demo, capsys):
 def test_out_of_spec_survey_fails_a_check(tmp_path):
     root = tmp_path / "demo-magnetic"
     shutil.copytree(SURVEYS / "demo-magnetic", root, ignore=shutil.ignore_patterns("out", "truth"))
-    text = (root / "survey.toml").read_text().replace(
-        "[survey]\n", "[survey]\nspec_overrides = { noise_fourth_difference_nT = 0.001 }\n", 1)
+    text = (
+        (root / "survey.toml")
+        .read_text()
+        .replace("[survey]\n", "[survey]\nspec_overrides = { noise_fourth_difference_nT = 0.001 }\n", 1)
+    )
     (root / "survey.toml").write_text(text)
     assert main(["run", str(root), "--until", "clean"]) == 0
     checks = pd.read_csv(root / "out" / "tables" / "checks.csv")

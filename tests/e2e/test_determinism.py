@@ -23,10 +23,12 @@ def _survey(root: Path) -> Path:
     text = (root / "survey.toml").read_text()
     text = text.replace("[grid]\n", FAST[0], 1).replace("[report]\n", FAST[1], 1)
     text = text.replace('method = "both"', 'method = "upward"')
-    text = text.replace('products = ["reduced_to_pole", "vertical_derivative", "second_vertical_derivative",\n'
-                        '            "x_derivative", "y_derivative", "total_horizontal_gradient", "analytic_signal",\n'
-                        '            "tilt_angle", "upward_continuation"]',
-                        'products = ["vertical_derivative", "upward_continuation"]')
+    text = text.replace(
+        'products = ["reduced_to_pole", "vertical_derivative", "second_vertical_derivative",\n'
+        '            "x_derivative", "y_derivative", "total_horizontal_gradient", "analytic_signal",\n'
+        '            "tilt_angle", "upward_continuation"]',
+        'products = ["vertical_derivative", "upward_continuation"]',
+    )
     (root / "survey.toml").write_text(text)
     return root
 
@@ -36,8 +38,12 @@ def _outputs(root: Path) -> dict[str, bytes]:
     files = {}
     for path in sorted(out.rglob("*")):
         rel = path.relative_to(out).as_posix()
-        if path.is_file() and not rel.startswith("cache/") and rel != "manifest.json" \
-                and not rel.endswith(".lock"):
+        if (
+            path.is_file()
+            and not rel.startswith("cache/")
+            and rel != "manifest.json"
+            and not rel.endswith(".lock")
+        ):
             files[rel] = path.read_bytes()
     return files
 
@@ -51,8 +57,14 @@ def test_two_folders_give_byte_identical_outputs(tmp_path):
     a, b = _outputs(first), _outputs(second)
     assert set(a) == set(b)
     # every kind of deliverable is covered by the comparison
-    assert {"tables/readings.csv", "tables/readings.parquet", "tables/columns.csv", "report.html",
-            "grids/products.nc", "grids/anomaly.nc"} <= set(a)
+    assert {
+        "tables/readings.csv",
+        "tables/readings.parquet",
+        "tables/columns.csv",
+        "report.html",
+        "grids/products.nc",
+        "grids/anomaly.nc",
+    } <= set(a)
     assert any(name.startswith("maps/") for name in a)
     different = sorted(name for name in a if a[name] != b[name])
     assert different == []

@@ -54,19 +54,43 @@ def _manifest(root: Path) -> dict:
 
 # --- relative gravimeter text export ------------------------------------------------------------
 
+
 def _gravimeter_export(root: Path) -> pd.DataFrame:
-    visits = [("B1", "08:00:05", 0.0), ("S1", "08:20:10", 1.2), ("S2", "08:40:00", -0.8),
-              ("B1", "09:00:30", 0.0), ("S3", "09:20:00", 2.5), ("S1", "09:40:00", 1.2),
-              ("B1", "10:00:00", 0.0)]
+    visits = [
+        ("B1", "08:00:05", 0.0),
+        ("S1", "08:20:10", 1.2),
+        ("S2", "08:40:00", -0.8),
+        ("B1", "09:00:30", 0.0),
+        ("S3", "09:20:00", 2.5),
+        ("S1", "09:40:00", 1.2),
+        ("B1", "10:00:00", 0.0),
+    ]
     rows = []
     for k, (station, clock, offset) in enumerate(visits):
-        position = {"B1": (138.60, -34.90, 100.0), "S1": (138.61, -34.90, 110.0),
-                    "S2": (138.62, -34.91, 120.0), "S3": (138.63, -34.92, 130.0)}[station]
-        rows.append({"station": station, "date": "2024/05/01", "time": clock,
-                     "reading": f"{3124.500 + offset + 0.01 * k:.3f}", "sd": f"{0.010 + 0.001 * k:.3f}",
-                     "tilt_x": f"{k - 3:.1f}", "tilt_y": "-2.0", "temperature": "0.21",
-                     "tide_corr": f"{0.040 - 0.01 * k:.3f}", "duration": "60", "rejected": str(k % 2),
-                     "lat": position[1], "lon": position[0], "elev": position[2]})
+        position = {
+            "B1": (138.60, -34.90, 100.0),
+            "S1": (138.61, -34.90, 110.0),
+            "S2": (138.62, -34.91, 120.0),
+            "S3": (138.63, -34.92, 130.0),
+        }[station]
+        rows.append(
+            {
+                "station": station,
+                "date": "2024/05/01",
+                "time": clock,
+                "reading": f"{3124.500 + offset + 0.01 * k:.3f}",
+                "sd": f"{0.010 + 0.001 * k:.3f}",
+                "tilt_x": f"{k - 3:.1f}",
+                "tilt_y": "-2.0",
+                "temperature": "0.21",
+                "tide_corr": f"{0.040 - 0.01 * k:.3f}",
+                "duration": "60",
+                "rejected": str(k % 2),
+                "lat": position[1],
+                "lon": position[0],
+                "elev": position[2],
+            }
+        )
     table = pd.DataFrame(rows)
     table.to_csv(root / "raw" / "loop1.txt", sep="\t", index=False)
     return table
@@ -125,8 +149,10 @@ def test_aseg_gdf2_pair(tmp_path, capsys):
             lat = -34.90 + 0.0005 * (i if k % 2 == 0 else 19 - i)
             lon = 138.50 + 0.002 * k
             mag = -99999.999 if (line, i) == (20, 5) else 56000.0 + 0.5 * i
-            lines.append("%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f"  # noqa: UP031
-                         % (fid, line, 20240501, 36000.0 + fid - 100.0, lon, lat, 328.1, mag))
+            lines.append(
+                "%10.1f%8d%9d%10.2f%12.6f%11.6f%8.1f%11.3f"  # noqa: UP031
+                % (fid, line, 20240501, 36000.0 + fid - 100.0, lon, lat, 328.1, mag)
+            )
             fid += 1.0
     (root / "raw" / "survey.dat").write_text("\n".join(lines) + "\n")
     (root / "raw" / "survey.des").write_text(GDF_DES)
@@ -148,17 +174,22 @@ def test_aseg_gdf2_pair(tmp_path, capsys):
 
 # --- comment-block header, hhmmss in local time --------------------------------------------------
 
+
 def test_comment_header_local_time_and_fiducial(tmp_path, capsys):
     root = _survey(tmp_path, "comment-header.toml")
-    body = ["/ invented ground magnetic survey, not real data",
-            "/ Fid  Line  Easting   Northing    Mag-Total  Date        Time",
-            "/--------------------------------------------------------------"]
+    body = [
+        "/ invented ground magnetic survey, not real data",
+        "/ Fid  Line  Easting   Northing    Mag-Total  Date        Time",
+        "/--------------------------------------------------------------",
+    ]
     for k, line in enumerate((10, 20)):
         for i in range(30):
             north = 6_100_000.0 + 10.0 * (i if k == 0 else 29 - i)
             clock = (datetime(2024, 5, 1, 9, 30, 15) + timedelta(seconds=i + 100 * k)).strftime("%H%M%S")
-            body.append(f"  {1000 + 100 * k + i:04d}  {line}   {500000.0 + 50.0 * k:.1f}  {north:.1f}  "
-                        f"{56012.0 + 0.1 * i:.2f}  01/05/2024  {clock.lstrip('0')}")
+            body.append(
+                f"  {1000 + 100 * k + i:04d}  {line}   {500000.0 + 50.0 * k:.1f}  {north:.1f}  "
+                f"{56012.0 + 0.1 * i:.2f}  01/05/2024  {clock.lstrip('0')}"
+            )
     (root / "raw" / "ground.xyz").write_text("\n".join(body) + "\n")
     readings = _run(root, "ingest", capsys)
     assert len(readings) == 60
@@ -172,6 +203,7 @@ def test_comment_header_local_time_and_fiducial(tmp_path, capsys):
 
 # --- base log with decimal commas, local clock and quality codes --------------------------------
 
+
 def test_base_log_decimal_commas_quality_codes(magnetic_survey, capsys):
     root = magnetic_survey
     lines = pd.read_csv(root / "raw" / "lines.csv")
@@ -183,15 +215,23 @@ def test_base_log_decimal_commas_quality_codes(magnetic_survey, capsys):
     bad = (seconds >= 240) & (seconds < 360)  # two minutes logged with quality code 9
     value = np.where(bad, ramp + 5.0, ramp)
     local = times + pd.Timedelta(hours=9.5)  # logger clock on UTC+9:30
-    base = pd.DataFrame({"date": local.strftime("%d.%m.%Y"), "time": local.strftime("%H:%M:%S"),
-                         "F": [f"{v:.2f}".replace(".", ",") for v in value],
-                         "Q": np.where(bad, "9", np.where(seconds % 2 == 0, "1", "2"))})
+    base = pd.DataFrame(
+        {
+            "date": local.strftime("%d.%m.%Y"),
+            "time": local.strftime("%H:%M:%S"),
+            "F": [f"{v:.2f}".replace(".", ",") for v in value],
+            "Q": np.where(bad, "9", np.where(seconds % 2 == 0, "1", "2")),
+        }
+    )
     (root / "base").mkdir()
     base.to_csv(root / "base" / "base.txt", sep=";", index=False)
     example = _example("base-log-decimal-comma.toml")
-    block = example[example.index("[[diurnal.bases]]"):]
-    text = (root / "survey.toml").read_text().replace(
-        "[diurnal]\n", '[diurnal]\nbase_quality_column = "Q"\nbase_quality_accepted = ["1", "2"]\n')
+    block = example[example.index("[[diurnal.bases]]") :]
+    text = (
+        (root / "survey.toml")
+        .read_text()
+        .replace("[diurnal]\n", '[diurnal]\nbase_quality_column = "Q"\nbase_quality_accepted = ["1", "2"]\n')
+    )
     (root / "survey.toml").write_text(text + "\n" + block)
     readings = _run(root, "diurnal", capsys)
     metrics = _manifest(root)["stages"]["diurnal"]["metrics"]["base_BASE1"]
@@ -208,13 +248,15 @@ def test_base_log_decimal_commas_quality_codes(magnetic_survey, capsys):
 
 # --- observatory minute values as delimited text ------------------------------------------------
 
+
 def test_observatory_delimited_stations(tmp_path, capsys):
     root = _survey(tmp_path, "observatory-delimited.toml")
     minutes = pd.date_range("2024-05-01 00:00", periods=90, freq="min")
     for code, base in (("aaa", (21000.0, 1500.0, 43000.0)), ("bbb", (19000.0, 1200.0, 45000.0))):
         x = base[0] + np.sin(np.arange(90) / 10.0)
-        frame = pd.DataFrame({"time": minutes.strftime("%Y-%m-%d %H:%M:%S"), "X": x,
-                              "Y": base[1], "Z": base[2]})
+        frame = pd.DataFrame(
+            {"time": minutes.strftime("%Y-%m-%d %H:%M:%S"), "X": x, "Y": base[1], "Z": base[2]}
+        )
         frame["F"] = np.sqrt(frame.X**2 + frame.Y**2 + frame.Z**2)
         frame.loc[7, "Z"] = 99999.0
         frame.to_csv(root / "raw" / f"{code}_min.csv", index=False, float_format="%.2f")
@@ -227,6 +269,7 @@ def test_observatory_delimited_stations(tmp_path, capsys):
 
 
 # --- compressed input through the command line --------------------------------------------------
+
 
 @pytest.mark.parametrize("suffix", [".xz", ".bz2", ".zip"])
 def test_compressed_survey_file_with_auto_delimiter(magnetic_survey, capsys, suffix):

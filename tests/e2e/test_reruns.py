@@ -25,9 +25,12 @@ def _assert_manifest_matches_disk(root: Path) -> dict:
     """Every output file is in the manifest with its SHA-256, and nothing else is."""
     manifest = _manifest(root)
     out = root / "out"
-    on_disk = {str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
-               for folder in ("tables", "grids", "maps") for p in sorted((out / folder).glob("*"))
-               if p.is_file() and not p.name.startswith(".")}
+    on_disk = {
+        str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for folder in ("tables", "grids", "maps")
+        for p in sorted((out / folder).glob("*"))
+        if p.is_file() and not p.name.startswith(".")
+    }
     if (out / "report.html").is_file():
         on_disk["out/report.html"] = hashlib.sha256((out / "report.html").read_bytes()).hexdigest()
     assert manifest["outputs"] == on_disk

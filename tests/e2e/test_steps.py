@@ -51,8 +51,11 @@ def test_skipped_diurnal_is_recorded_printed_and_fails_strict(magnetic_survey, c
 
 def test_failed_check_fails_strict(magnetic_survey, capsys):
     # A tolerance nobody can meet: the clean stage's flagged-fraction check fails.
-    _edit_toml(magnetic_survey, '# spec_overrides = { noise_fourth_difference_nT = 0.2 }',
-               'spec_overrides = { max_flagged_fraction = 0.0 }')
+    _edit_toml(
+        magnetic_survey,
+        "# spec_overrides = { noise_fourth_difference_nT = 0.2 }",
+        "spec_overrides = { max_flagged_fraction = 0.0 }",
+    )
     assert main(["run", str(magnetic_survey), "--until", "clean"]) == 0
     last = [line for line in capsys.readouterr().out.splitlines() if line.strip()][-1]
     assert "failed spec check" in last and "fraction of readings flagged" in last
@@ -88,8 +91,12 @@ def test_survey_without_time(magnetic_survey, capsys):
     # IGRF at the fixed date against ppigrf (independent IGRF-14 implementation), 0.5 nT:
     # the date is passed at 00:00 UTC as in potfield's decimal year of the same day.
     rows = table.iloc[[0, len(table) // 2, len(table) - 1]]
-    be, bn, bu = ppigrf.igrf(rows["longitude"].to_numpy(), rows["latitude"].to_numpy(),
-                             rows["height"].to_numpy() / 1000.0, dt.datetime(2024, 5, 1))
+    be, bn, bu = ppigrf.igrf(
+        rows["longitude"].to_numpy(),
+        rows["latitude"].to_numpy(),
+        rows["height"].to_numpy() / 1000.0,
+        dt.datetime(2024, 5, 1),
+    )
     total = np.sqrt(be**2 + bn**2 + bu**2).ravel()
     assert np.allclose(rows["igrf"].to_numpy(), total, atol=0.5)
     # readings.csv rounds nT columns to 0.001 nT (io.columns.DECIMALS): two roundings apart
@@ -131,8 +138,15 @@ def test_final_gravity_station_list(tmp_path, capsys):
     lat = -32.0 + np.tile(np.arange(6), 6) * 0.01
     height = 200.0 + rng.uniform(0, 50, lon.size)
     gobs = 979_600.0 + rng.normal(0, 5, lon.size)
-    pd.DataFrame({"STATION": [f"S{i:02d}" for i in range(lon.size)], "LON": lon, "LAT": lat,
-                  "HEIGHT": height, "GOBS": gobs}).to_csv(root / "raw" / "stations.csv", index=False)
+    pd.DataFrame(
+        {
+            "STATION": [f"S{i:02d}" for i in range(lon.size)],
+            "LON": lon,
+            "LAT": lat,
+            "HEIGHT": height,
+            "GOBS": gobs,
+        }
+    ).to_csv(root / "raw" / "stations.csv", index=False)
     assert main(["run", str(root), "--until", "reference"]) == 0
     out = capsys.readouterr().out
     assert "drift: skipped in" in out and "SKIPPED" in out

@@ -33,9 +33,26 @@ def test_numba_kernels_pass_with_the_jit_disabled():
     env = dict(os.environ, NUMBA_DISABLE_JIT="1")
     src = str(ROOT / "src")
     env["PYTHONPATH"] = os.pathsep.join([src, env["PYTHONPATH"]]) if env.get("PYTHONPATH") else src
-    done = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider",
-                           "-o", "addopts=", "--import-mode=importlib", *NODES],
-                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=300, check=False)
+    done = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pytest",
+            "-q",
+            "-p",
+            "no:cacheprovider",
+            "-o",
+            "addopts=",
+            "--import-mode=importlib",
+            *NODES,
+        ],
+        cwd=ROOT,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+        check=False,
+    )
     tail = (done.stdout + done.stderr)[-3000:]
     assert done.returncode == 0, tail
     assert f"{len(NODES)} passed" in done.stdout, tail

@@ -87,8 +87,11 @@ def test_block_median_square_blocks_match_a_brute_force_median():
     (be, bn, bu), bd = nm.block_median(e, n, u, d, 100.0)
     col = np.minimum(np.floor((e - e.min()) / 100.0), np.floor((e.max() - e.min()) / 100.0))
     row = np.floor((n - n.min()) / 100.0)
-    ref = [[np.median(v[(col == c) & (row == r)]) for v in (e, n, u, d)]
-           for r in np.unique(row) for c in np.unique(col[row == r])]
+    ref = [
+        [np.median(v[(col == c) & (row == r)]) for v in (e, n, u, d)]
+        for r in np.unique(row)
+        for c in np.unique(col[row == r])
+    ]
     np.testing.assert_allclose(np.column_stack([be, bn, bu, bd]), np.array(ref))
 
 
@@ -134,13 +137,15 @@ def test_sample_grid_matches_scipy_regular_grid_interpolator():
     north = np.linspace(0, 400, 5)
     ee, nn = np.meshgrid(east, north)
     values = 3.0 + 0.01 * ee - 0.02 * nn + 1e-5 * ee * nn
-    grid = xr.DataArray(values[::-1], dims=("northing", "easting"),
-                        coords={"northing": north[::-1], "easting": east})  # descending rows
+    grid = xr.DataArray(
+        values[::-1], dims=("northing", "easting"), coords={"northing": north[::-1], "easting": east}
+    )  # descending rows
     rng = np.random.default_rng(11)
     pe, pn = rng.uniform(-50, 950, 200), rng.uniform(-20, 420, 200)
     ours = nm.sample_grid(grid, pe, pn)
-    ref = RegularGridInterpolator((north, east), values, bounds_error=False,
-                                  fill_value=np.nan)(np.column_stack([pn, pe]))
+    ref = RegularGridInterpolator((north, east), values, bounds_error=False, fill_value=np.nan)(
+        np.column_stack([pn, pe])
+    )
     np.testing.assert_allclose(ours, ref, equal_nan=True)
     inside = (pe >= 0) & (pe <= 900) & (pn >= 0) & (pn <= 400)
     assert np.isnan(ours[~inside]).all() and (~inside).any()
@@ -156,8 +161,14 @@ def test_sample_grid_matches_scipy_regular_grid_interpolator():
 # the error boundary
 # ------------------------------------------------------------------------------------------------
 FIELDS = Path(nm.__file__).resolve().parent
-FORBIDDEN = ("potfield.errors", "potfield.config", "potfield.stages", "potfield.pipeline",
-             "potfield.cli", "potfield.survey")
+FORBIDDEN = (
+    "potfield.errors",
+    "potfield.config",
+    "potfield.stages",
+    "potfield.pipeline",
+    "potfield.cli",
+    "potfield.survey",
+)
 
 
 def _imports(path: Path) -> list[str]:
@@ -186,9 +197,9 @@ def test_fields_import_nothing_of_the_tool():
     bad = []
     for path in files:
         for name in _imports(path):
-            if name.startswith(FORBIDDEN) or (name.startswith("potfield.")
-                                              and not name.startswith(("potfield.fields",
-                                                                       "potfield.io"))):
+            if name.startswith(FORBIDDEN) or (
+                name.startswith("potfield.") and not name.startswith(("potfield.fields", "potfield.io"))
+            ):
                 bad.append(f"{path.relative_to(FIELDS)}: {name}")
     assert not bad, bad
 
@@ -206,11 +217,16 @@ def test_translate_adds_key_and_fix_and_leaves_other_errors():
     with pytest.raises(ConfigError) as info:
         with translate(ConfigError, key="separate.regional_height_m"):
             raise BadParameter("regional height -1 m must be positive", hint="give metres > 0")
-    assert str(info.value) == ("key 'separate.regional_height_m': regional height -1 m must be "
-                               "positive (fix: give metres > 0)")
+    assert str(info.value) == (
+        "key 'separate.regional_height_m': regional height -1 m must be positive (fix: give metres > 0)"
+    )
     with pytest.raises(InputDataError, match="key 'separate.damping'.*fix: add stations"):
-        with translate({IllPosed: Rule(InputDataError, key="separate.damping",
-                                       fix="add stations"), FieldError: ConfigError}):
+        with translate(
+            {
+                IllPosed: Rule(InputDataError, key="separate.damping", fix="add stations"),
+                FieldError: ConfigError,
+            }
+        ):
             raise IllPosed("rank 3 for 6 unknowns")
     with pytest.raises(ValueError, match="plain"):  # a bare ValueError is a bug: not caught
         with translate(ConfigError, key="x"):

@@ -16,8 +16,9 @@ def _grid(name="anomaly", scale=1.0):
     east = np.arange(500_000.0, 501_000.0, 100.0)
     north = np.arange(6_400_000.0, 6_400_800.0, 100.0)
     values = scale * np.add.outer(north - north.min(), east - east.min())
-    grid = make_grid(east, north, values, name=name, units="nT", long_name=f"test {name}",
-                     history="made by a test")
+    grid = make_grid(
+        east, north, values, name=name, units="nT", long_name=f"test {name}", history="made by a test"
+    )
     grid.attrs["height"] = 300.0
     grid.attrs["positive"] = "up"  # must not survive on a data variable
     return grid
@@ -46,8 +47,12 @@ def _cf_rules(ds: xr.Dataset) -> list[str]:
             problems.append(f"{name} has no units m")
     if "height" in ds.coords:  # sec. 4.3 vertical coordinate, sec. 5.7 scalar coordinate
         h = ds["height"]
-        if h.ndim != 0 or h.attrs.get("positive") != "up" or h.attrs.get("units") != "m" \
-                or h.attrs.get("standard_name") != "height":
+        if (
+            h.ndim != 0
+            or h.attrs.get("positive") != "up"
+            or h.attrs.get("units") != "m"
+            or h.attrs.get("standard_name") != "height"
+        ):
             problems.append("height is not a CF scalar vertical coordinate")
     if any(ch.isdigit() for ch in ds.attrs.get("history", "")[:4]):
         problems.append("history starts with a time stamp")
@@ -83,8 +88,14 @@ def test_products_file_holds_every_grid_on_shared_coordinates(tmp_path):
     paths = {}
     for name, scale in (("anomaly", 1.0), ("anomaly_vertical_derivative", 0.01)):
         paths[name] = write_netcdf(tmp_path / f"{name}.nc", _grid(name, scale), "EPSG:32755")
-    other = make_grid(np.arange(3.0), np.arange(2.0), np.zeros((2, 3)), name="elsewhere", units="m",
-                      long_name="other coordinates")
+    other = make_grid(
+        np.arange(3.0),
+        np.arange(2.0),
+        np.zeros((2, 3)),
+        name="elsewhere",
+        units="m",
+        long_name="other coordinates",
+    )
     paths["elsewhere"] = write_netcdf(tmp_path / "elsewhere.nc", other, "EPSG:32755")
     out = write_products(tmp_path / "products.nc", paths, "EPSG:32755", title="test products")
     with xr.open_dataset(out) as ds:

@@ -10,8 +10,12 @@ from potfield.io.columns import describe, format_table, write_data_dictionary, w
 
 def test_times_are_iso_8601_utc_with_milliseconds(tmp_path):
     # ISO 8601-1:2019 extended format, "Z" = UTC; a time-zone-aware input is converted to UTC
-    frame = pd.DataFrame({"time": pd.to_datetime(["2025-03-03T22:28:40.123456", None]),
-                          "start": pd.to_datetime(["2025-03-04T08:00:00+10:00"] * 2)})
+    frame = pd.DataFrame(
+        {
+            "time": pd.to_datetime(["2025-03-03T22:28:40.123456", None]),
+            "start": pd.to_datetime(["2025-03-04T08:00:00+10:00"] * 2),
+        }
+    )
     path = write_table(tmp_path / "t.csv", frame)
     lines = path.read_text().splitlines()
     assert lines[1].split(",") == ['"2025-03-03T22:28:40.123Z"', '"2025-03-03T22:00:00.000Z"']
@@ -19,27 +23,42 @@ def test_times_are_iso_8601_utc_with_milliseconds(tmp_path):
 
 
 def test_booleans_lower_case_and_floats_rounded_by_unit(tmp_path):
-    frame = pd.DataFrame({"flag_spike": [True, False], "total_field": [57086.80712345678, 1.0],
-                          "bouguer_anomaly": [-20.19605035556067, 0.0],
-                          "longitude": [145.56632112345678, 0.0], "easting": [365218.2996690122, 0.0],
-                          "drift_residual": [-4.3e-9, 1.0], "something_new": [1 / 3, 2.0]})
+    frame = pd.DataFrame(
+        {
+            "flag_spike": [True, False],
+            "total_field": [57086.80712345678, 1.0],
+            "bouguer_anomaly": [-20.19605035556067, 0.0],
+            "longitude": [145.56632112345678, 0.0],
+            "easting": [365218.2996690122, 0.0],
+            "drift_residual": [-4.3e-9, 1.0],
+            "something_new": [1 / 3, 2.0],
+        }
+    )
     text = write_table(tmp_path / "t.csv", frame, "gravity").read_text().splitlines()
     header = text[0].replace('"', "").split(",")
     row = dict(zip(header, text[1].split(",")))
     assert row["flag_spike"] == "true" and text[2].split(",")[0] == "false"
-    assert row["total_field"] == "57086.807"      # nT to 3 decimals (common practice)
-    assert row["bouguer_anomaly"] == "-20.1961"   # mGal to 4 decimals (common practice)
-    assert row["longitude"] == "145.5663211"      # degrees to 7 decimals, about 1 cm (common practice)
-    assert row["easting"] == "365218.3"           # metres to 2 decimals
-    assert row["drift_residual"] == "0"           # no "-0"
+    assert row["total_field"] == "57086.807"  # nT to 3 decimals (common practice)
+    assert row["bouguer_anomaly"] == "-20.1961"  # mGal to 4 decimals (common practice)
+    assert row["longitude"] == "145.5663211"  # degrees to 7 decimals, about 1 cm (common practice)
+    assert row["easting"] == "365218.3"  # metres to 2 decimals
+    assert row["drift_residual"] == "0"  # no "-0"
     assert row["something_new"] == "0.333333333"  # unknown: 10 significant digits of the column maximum
 
 
 def test_data_dictionary_describes_every_column(tmp_path):
-    write_table(tmp_path / "readings.csv", pd.DataFrame({"time": pd.to_datetime(["2025-01-01"]),
-                                                         "bouguer_anomaly": [1.0],
-                                                         "flag_spike": [False], "grid_residual": [0.1]}),
-                "gravity")
+    write_table(
+        tmp_path / "readings.csv",
+        pd.DataFrame(
+            {
+                "time": pd.to_datetime(["2025-01-01"]),
+                "bouguer_anomaly": [1.0],
+                "flag_spike": [False],
+                "grid_residual": [0.1],
+            }
+        ),
+        "gravity",
+    )
     path = write_data_dictionary(tmp_path, "gravity")
     table = pd.read_csv(path)
     assert list(table.columns) == ["table", "name", "unit", "meaning", "stage"]

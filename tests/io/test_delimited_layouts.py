@@ -52,10 +52,17 @@ def test_header_as_last_line_of_a_comment_block_and_underline(tmp_path):
         "/ Fid  Line  X-Coord   Y-Coord    Mag-Total  Date        Time\n"
         "/-----------------------------------------------------------\n"
         "  101  10    500000.0  6100000.0  56012.31   01/05/2024  093015.5\n"
-        "  102  10    500010.0  6100000.0  56012.47   01/05/2024  093016.5\n")
+        "  102  10    500010.0  6100000.0  56012.47   01/05/2024  093016.5\n"
+    )
     # the mapped names differ from the file's in case, dashes and underscores only
-    columns = {"easting": "x_coord", "northing": "Y-Coord", "total_field": "MAG TOTAL",
-               "date": "Date", "time": "Time", "raw_Fid": "Fid"}
+    columns = {
+        "easting": "x_coord",
+        "northing": "Y-Coord",
+        "total_field": "MAG TOTAL",
+        "date": "Date",
+        "time": "Time",
+        "raw_Fid": "Fid",
+    }
     frame = read_delimited(path, columns=columns, comment="/")
     assert list(frame["source_row"]) == [5, 6]  # lines as a text editor numbers them
     assert list(frame["raw_Fid"]) == ["101", "102"] and list(frame["time"]) == ["093015.5", "093016.5"]

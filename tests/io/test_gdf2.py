@@ -48,8 +48,17 @@ def _write(folder: Path, records=RECORDS, des: str = DES) -> Path:
     return dat
 
 
-COLUMNS = {"time": "TIME", "date": "DATE", "line": "LINE", "longitude": "LON", "latitude": "LAT",
-           "height": "ALT", "total_field": "MAG", "raw_CODE": "CODE", "raw_GRAD_2": "GRAD_2"}
+COLUMNS = {
+    "time": "TIME",
+    "date": "DATE",
+    "line": "LINE",
+    "longitude": "LON",
+    "latitude": "LAT",
+    "height": "ALT",
+    "total_field": "MAG",
+    "raw_CODE": "CODE",
+    "raw_GRAD_2": "GRAD_2",
+}
 
 
 def test_descriptor_layout(tmp_path):
@@ -103,14 +112,20 @@ def test_unknown_unit_and_misaligned_record(tmp_path):
 
 def test_typed_data_records(tmp_path):
     # ASEG-GDF2 also allows data records with a record type (RT=DATA): each line starts with it
-    des = ("DEFN   ST=RECD,RT=COMM;RT:A4;COMMENTS:A76\n"
-           "DEFN 1 ST=RECD,RT=DATA;RT:A4\n"
-           "DEFN 2 ST=RECD,RT=DATA;X:F10.1:UNITS=m\n"
-           "DEFN 3 ST=RECD,RT=DATA;MAG:F10.2:UNITS=nT,NULL=-99999.99\n"
-           "DEFN 4 ST=RECD,RT=DATA;END DEFN\n")
+    des = (
+        "DEFN   ST=RECD,RT=COMM;RT:A4;COMMENTS:A76\n"
+        "DEFN 1 ST=RECD,RT=DATA;RT:A4\n"
+        "DEFN 2 ST=RECD,RT=DATA;X:F10.1:UNITS=m\n"
+        "DEFN 3 ST=RECD,RT=DATA;MAG:F10.2:UNITS=nT,NULL=-99999.99\n"
+        "DEFN 4 ST=RECD,RT=DATA;END DEFN\n"
+    )
     (tmp_path / "typed.des").write_text(des)
-    lines = ["COMM invented", "DATA%10.1f%10.2f" % (500000.0, 56000.5), "HEAD something else",  # noqa: UP031
-             "DATA%10.1f%10.2f" % (500010.0, -99999.99)]  # noqa: UP031
+    lines = [
+        "COMM invented",
+        "DATA%10.1f%10.2f" % (500000.0, 56000.5),  # noqa: UP031
+        "HEAD something else",  # noqa: UP031
+        "DATA%10.1f%10.2f" % (500010.0, -99999.99),  # noqa: UP031
+    ]  # noqa: UP031
     (tmp_path / "typed.dat").write_text("\n".join(lines) + "\n")
     frame, units = read_gdf2(tmp_path / "typed.dat", columns={"easting": "X", "total_field": "MAG"})
     assert list(frame["source_row"]) == [2, 4]

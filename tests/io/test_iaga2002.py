@@ -16,8 +16,7 @@ import pandas as pd
 import pytest
 
 from potfield.errors import InputDataError, PotfieldError
-from potfield.io.iaga2002 import (looks_like_iaga2002, observatory_table, read_iaga2002,
-                                  write_iaga2002)
+from potfield.io.iaga2002 import looks_like_iaga2002, observatory_table, read_iaga2002, write_iaga2002
 
 # A file written by hand following the format description (see the module docstring): HDZF
 # elements, D in minutes of arc, a comment, one missing (99999.00) and one not-recorded (88888.00).
@@ -81,10 +80,16 @@ def test_hand_written_file_follows_the_layout(tmp_path):
 
 
 def test_label_case_variants_fewer_headers_and_publication_date(tmp_path):
-    lines = [HAND[0].replace("Format", "FORMAT"), HAND[3].replace("IAGA CODE", "Iaga Code"),
-             HAND[4].replace("Geodetic Latitude", "geodetic latitude"), HAND[5], HAND[7],
-             " Publication Date       2003-05-01                                   |",
-             HAND[13], *HAND[14:16]]
+    lines = [
+        HAND[0].replace("Format", "FORMAT"),
+        HAND[3].replace("IAGA CODE", "Iaga Code"),
+        HAND[4].replace("Geodetic Latitude", "geodetic latitude"),
+        HAND[5],
+        HAND[7],
+        " Publication Date       2003-05-01                                   |",
+        HAND[13],
+        *HAND[14:16],
+    ]
     record = read_iaga2002(_write(tmp_path, lines))
     assert record.code == "TST"
     assert record.header["latitude"] == pytest.approx(40.137)
@@ -107,13 +112,28 @@ def test_bad_header_number_names_the_line(tmp_path):
         read_iaga2002(_write(tmp_path, lines))
 
 
-@pytest.mark.parametrize("bad, expected", [
-    ("2003-04-11 00:04:00.000 101     20000.00    600.00  47000.00", r"line 17: .*fewer than"),
-    ("2003-04-11 00:04:00.000 101     20000.00    600.00  47000.00  51092.02  1.00", r"line 17: .*more than"),
-    ("2003-04-11 25:04:00.000 101     20000.00    600.00  47000.00  51092.02", r"line 17: cannot read date"),
-    ("2003-04-11 00:04:00.000 102     20000.00    600.00  47000.00  51092.02", r"line 17: day of year '102'.*expected 101"),
-    ("2003-04-11 00:04:00.000 101     20000.00    abc.de  47000.00  51092.02", r"line 17: value 'abc.de' of TSTD"),
-])
+@pytest.mark.parametrize(
+    "bad, expected",
+    [
+        ("2003-04-11 00:04:00.000 101     20000.00    600.00  47000.00", r"line 17: .*fewer than"),
+        (
+            "2003-04-11 00:04:00.000 101     20000.00    600.00  47000.00  51092.02  1.00",
+            r"line 17: .*more than",
+        ),
+        (
+            "2003-04-11 25:04:00.000 101     20000.00    600.00  47000.00  51092.02",
+            r"line 17: cannot read date",
+        ),
+        (
+            "2003-04-11 00:04:00.000 102     20000.00    600.00  47000.00  51092.02",
+            r"line 17: day of year '102'.*expected 101",
+        ),
+        (
+            "2003-04-11 00:04:00.000 101     20000.00    abc.de  47000.00  51092.02",
+            r"line 17: value 'abc.de' of TSTD",
+        ),
+    ],
+)
 def test_malformed_data_record_names_the_line(tmp_path, bad, expected):
     lines = [*HAND[:16], bad]
     with pytest.raises(InputDataError, match=expected):
@@ -126,7 +146,12 @@ def test_missing_data_header_and_empty_file(tmp_path):
     with pytest.raises(InputDataError, match="empty"):
         read_iaga2002(_write(tmp_path, [""]))
     with pytest.raises(InputDataError, match="exactly four labels"):
-        read_iaga2002(_write(tmp_path, [*HAND[:13], "DATE       TIME         DOY     TSTH      TSTD      TSTZ   |", HAND[14][:-10]]))
+        read_iaga2002(
+            _write(
+                tmp_path,
+                [*HAND[:13], "DATE       TIME         DOY     TSTH      TSTD      TSTZ   |", HAND[14][:-10]],
+            )
+        )
     # every such message is a single line (the CLI prints it as is)
     try:
         read_iaga2002(_write(tmp_path, HAND[:13]))
@@ -141,13 +166,23 @@ def _field(n=90, seed=0):
     east = 1500 + np.cumsum(rng.normal(0, 0.3, n))
     down = 45000 + np.cumsum(rng.normal(0, 0.3, n))
     total = np.sqrt(north**2 + east**2 + down**2) - 1.3  # scalar F 1.3 nT below vector F
-    return pd.DataFrame({"time": time, "mag_north": north, "mag_east": east, "mag_down": down,
-                         "total_field": total})
+    return pd.DataFrame(
+        {"time": time, "mag_north": north, "mag_east": east, "mag_down": down, "total_field": total}
+    )
 
 
-HEADER = {"iaga_code": "ABC", "station_name": "Test", "latitude": 40.0, "longitude": -105.2,
-          "elevation": 1600.0, "source": "potfield test", "interval_type": "1-second",
-          "data_type": "variation", "sensor_orientation": "HDZF", "digital_sampling": "0.1 second"}
+HEADER = {
+    "iaga_code": "ABC",
+    "station_name": "Test",
+    "latitude": 40.0,
+    "longitude": -105.2,
+    "elevation": 1600.0,
+    "source": "potfield test",
+    "interval_type": "1-second",
+    "data_type": "variation",
+    "sensor_orientation": "HDZF",
+    "digital_sampling": "0.1 second",
+}
 
 
 @pytest.mark.parametrize("elements", ["XYZF", "HDZF", "XYZG", "DHZF", "HDZG"])
@@ -193,23 +228,40 @@ def test_round_trip_record_is_exact(tmp_path):
 
 def test_g_means_vector_minus_scalar(tmp_path):
     # G = Delta F = F(vector) - F(scalar) (IAGA-2002 description, from memory; INTERMAGNET manual)
-    lines = [*HAND[:3], HAND[3], *HAND[4:7],
-             " Reported               XYZG                                         |",
-             *HAND[8:13],
-             "DATE       TIME         DOY     TSTX      TSTY      TSTZ      TSTG   |",
-             "2003-04-11 00:00:00.000 101     30000.00      0.00  40000.00      2.00"]
+    lines = [
+        *HAND[:3],
+        HAND[3],
+        *HAND[4:7],
+        " Reported               XYZG                                         |",
+        *HAND[8:13],
+        "DATE       TIME         DOY     TSTX      TSTY      TSTZ      TSTG   |",
+        "2003-04-11 00:00:00.000 101     30000.00      0.00  40000.00      2.00",
+    ]
     record = read_iaga2002(_write(tmp_path, lines))
     assert record.data["total_field"].iloc[0] == pytest.approx(50000.0 - 2.0)  # hypot = 50000
 
 
 def test_observatory_table(tmp_path):
     a = write_iaga2002(tmp_path / "abc.sec", _field(30), {**HEADER, "reported": "XYZF"})
-    b = write_iaga2002(tmp_path / "xyz.sec", _field(20, 1), {**HEADER, "iaga_code": "XYZ",
-                                                              "longitude": 10.5, "reported": "XYZF"})
+    b = write_iaga2002(
+        tmp_path / "xyz.sec",
+        _field(20, 1),
+        {**HEADER, "iaga_code": "XYZ", "longitude": 10.5, "reported": "XYZF"},
+    )
     table = observatory_table([b, a])
     assert list(table.columns[:2]) == ["line", "station"]
-    for name in ("time", "longitude", "latitude", "height", "mag_north", "mag_east", "mag_down",
-                 "total_field", "source_file", "source_row"):
+    for name in (
+        "time",
+        "longitude",
+        "latitude",
+        "height",
+        "mag_north",
+        "mag_east",
+        "mag_down",
+        "total_field",
+        "source_file",
+        "source_row",
+    ):
         assert name in table
     assert table["line"].tolist() == ["ABC"] * 30 + ["XYZ"] * 20
     assert (table["line"] == table["station"]).all()

@@ -38,8 +38,9 @@ def test_strftime_pattern_with_date_and_fractional_seconds():
     texts = ["2024/05/01 10:00:01", "2024/05/01 10:00:02.25", "2024/12/31 23:59:59.5"]
     got = parse_times(_frame(time=texts), TimeSection(format="%Y/%m/%d %H:%M:%S"), PATH)
     # reference: datetime.strptime (stdlib); fractions through %f
-    want = [_utc(datetime.strptime(t, "%Y/%m/%d %H:%M:%S.%f" if "." in t else "%Y/%m/%d %H:%M:%S"))
-            for t in texts]
+    want = [
+        _utc(datetime.strptime(t, "%Y/%m/%d %H:%M:%S.%f" if "." in t else "%Y/%m/%d %H:%M:%S")) for t in texts
+    ]
     assert list(got) == want
 
 
@@ -47,16 +48,22 @@ def test_separate_date_and_hhmmss_columns_with_lost_leading_zero():
     frame = _frame(date=["01/05/2024", "01/05/2024", "02/05/2024"], time=["93015", "093016.5", "000001"])
     spec = TimeSection(format="%H%M%S", date_format="%d/%m/%Y")
     got = parse_times(frame, spec, PATH)
-    want = [_utc(datetime(2024, 5, 1, 9, 30, 15)), _utc(datetime(2024, 5, 1, 9, 30, 16, 500000)),
-            _utc(datetime(2024, 5, 2, 0, 0, 1))]  # stdlib datetime
+    want = [
+        _utc(datetime(2024, 5, 1, 9, 30, 15)),
+        _utc(datetime(2024, 5, 1, 9, 30, 16, 500000)),
+        _utc(datetime(2024, 5, 2, 0, 0, 1)),
+    ]  # stdlib datetime
     assert list(got) == want
 
 
 def test_iso_time_of_day_with_a_date_column():
     frame = _frame(date=["20240501", "2024-05-01", "2024/05/02"], time=["23:59:59.9", "12:00:00", "00:00:00"])
     got = parse_times(frame, TimeSection(), PATH)
-    assert list(got) == [_utc(datetime(2024, 5, 1, 23, 59, 59, 900000)),
-                         _utc(datetime(2024, 5, 1, 12)), _utc(datetime(2024, 5, 2))]
+    assert list(got) == [
+        _utc(datetime(2024, 5, 1, 23, 59, 59, 900000)),
+        _utc(datetime(2024, 5, 1, 12)),
+        _utc(datetime(2024, 5, 2)),
+    ]
 
 
 def test_date_only_station_list():
@@ -72,24 +79,31 @@ def test_utc_offset_and_clock_offset():
     spec = TimeSection(format="%Y-%m-%d %H:%M:%S", utc_offset_h=9.5, clock_offset_s=2.5)
     got = parse_times(_frame(time=["2024-05-01 09:30:02", "2024-05-01 00:10:00"]), spec, PATH)
     zone = timezone(timedelta(hours=9, minutes=30))  # stdlib fixed offset
-    want = [_utc(datetime(2024, 5, 1, 9, 30, 2, tzinfo=zone) - timedelta(seconds=2.5)),
-            _utc(datetime(2024, 5, 1, 0, 10, tzinfo=zone) - timedelta(seconds=2.5))]
+    want = [
+        _utc(datetime(2024, 5, 1, 9, 30, 2, tzinfo=zone) - timedelta(seconds=2.5)),
+        _utc(datetime(2024, 5, 1, 0, 10, tzinfo=zone) - timedelta(seconds=2.5)),
+    ]
     assert list(got) == want
     assert str(got[1]).startswith("2024-04-30T14:39:57.5")  # crosses back over midnight UTC
 
 
 def test_iso_text_with_its_own_zone_is_not_shifted_again():
     spec = TimeSection(utc_offset_h=10)
-    got = parse_times(_frame(time=["2024-05-01T10:00:00+02:00", "2024-05-01T10:00:00Z",
-                                   "2024-05-01T10:00:00"]), spec, PATH)
-    assert list(got) == [_utc(datetime(2024, 5, 1, 8)), _utc(datetime(2024, 5, 1, 10)),
-                         _utc(datetime(2024, 5, 1, 0))]
+    got = parse_times(
+        _frame(time=["2024-05-01T10:00:00+02:00", "2024-05-01T10:00:00Z", "2024-05-01T10:00:00"]), spec, PATH
+    )
+    assert list(got) == [
+        _utc(datetime(2024, 5, 1, 8)),
+        _utc(datetime(2024, 5, 1, 10)),
+        _utc(datetime(2024, 5, 1, 0)),
+    ]
 
 
 def test_time_zone_follows_daylight_saving():
     texts = ["2024-01-15 12:00:00", "2024-07-15 12:00:00"]
-    got = parse_times(_frame(time=texts), TimeSection(format="%Y-%m-%d %H:%M:%S",
-                                                      timezone="Australia/Adelaide"), PATH)
+    got = parse_times(
+        _frame(time=texts), TimeSection(format="%Y-%m-%d %H:%M:%S", timezone="Australia/Adelaide"), PATH
+    )
     zone = ZoneInfo("Australia/Adelaide")  # IANA database through the stdlib
     want = [_utc(datetime.strptime(t, "%Y-%m-%d %H:%M:%S").replace(tzinfo=zone)) for t in texts]
     assert list(got) == want
@@ -142,8 +156,9 @@ def test_bad_settings_are_config_errors():
     with pytest.raises(ValueError, match="strftime pattern"):
         TimeSection(format="hhmmss")
     with pytest.raises(ConfigError, match="holds a date but a date column is mapped"):
-        parse_times(_frame(date=["2024-05-01"], time=["2024-05-01 10:00"]),
-                    TimeSection(format="%Y-%m-%d %H:%M"), PATH)
+        parse_times(
+            _frame(date=["2024-05-01"], time=["2024-05-01 10:00"]), TimeSection(format="%Y-%m-%d %H:%M"), PATH
+        )
     with pytest.raises(ConfigError, match="unknown time zone"):
         parse_times(_frame(time=["2024-05-01T10:00:00"]), TimeSection(timezone="Nowhere/Atlantis"), PATH)
     with pytest.raises(PotfieldError, match="no date"):

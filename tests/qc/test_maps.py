@@ -73,10 +73,20 @@ def test_grid_map_and_base_record_are_drawn(tmp_path):
     path = maps.plot_grid(grid, tmp_path / "g.png", "WGS 84 / UTM zone 55S", survey="test survey")
     assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     time = pd.date_range("2024-11-18T22:10:00", periods=600, freq="1s")
-    base = pd.DataFrame({"base": "b", "time": time.strftime("%Y-%m-%dT%H:%M:%S.000Z"),
-                         "total_field": 57080.0 + np.sin(np.arange(600) / 60.0),
-                         "samples": 1})
+    base = pd.DataFrame(
+        {
+            "base": "b",
+            "time": time.strftime("%Y-%m-%dT%H:%M:%S.000Z"),
+            "total_field": 57080.0 + np.sin(np.arange(600) / 60.0),
+            "samples": 1,
+        }
+    )
     assert maps.plot_base_record(base, tmp_path / "b.png", 3.0).is_file()
-    coef = pd.DataFrame({"time": pd.date_range("2025-05-10", periods=300, freq="1min").delete(
-        slice(100, 130)), "g10": 1.0, "q10": 2.0})
+    coef = pd.DataFrame(
+        {
+            "time": pd.date_range("2025-05-10", periods=300, freq="1min").delete(slice(100, 130)),
+            "g10": 1.0,
+            "q10": 2.0,
+        }
+    )
     assert maps.plot_coefficients(coef, tmp_path / "c.png").is_file()

@@ -130,8 +130,9 @@ def test_geodetic_rotation_against_chaosmagpy(monkeypatch):
 
     a_km = 6378.137
     # chaosmagpy rounds the polar radius to 1 m; use exact WGS84 so positions coincide.
-    monkeypatch.setitem(chaosmagpy.basicConfig, "params.ellipsoid",
-                        np.array([a_km, a_km * (1 - 1 / 298.257223563)]))
+    monkeypatch.setitem(
+        chaosmagpy.basicConfig, "params.ellipsoid", np.array([a_km, a_km * (1 - 1 / 298.257223563)])
+    )
     rng = np.random.default_rng(11)
     lat = rng.uniform(-89.0, 89.0, 400)
     lon = rng.uniform(-180, 180, 400)
@@ -182,7 +183,7 @@ def test_coefficient_table_matches_ppigrf_shc():
     gdf, hdf = read_shc()
     years = decimal_year(gdf.index.values)
     g, h = coefficients(years)
-    for (n, m) in gdf.columns:
+    for n, m in gdf.columns:
         # Reference data: the IGRF-14 table shipped with ppigrf 2.1 (all epochs and 2030).
         np.testing.assert_allclose(g[:, n, m], gdf[(n, m)].to_numpy(), atol=1e-9, rtol=0)
         np.testing.assert_allclose(h[:, n, m], hdf[(n, m)].to_numpy(dtype=float), atol=1e-9, rtol=0)

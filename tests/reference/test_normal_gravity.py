@@ -31,15 +31,17 @@ def test_wgs84_equatorial_and_polar_gravity_nima_tr8350():
     assert normal_gravity(-90.0, 0.0, "WGS84") == pytest.approx(983218.49378, abs=1e-4)
 
 
-@pytest.mark.parametrize("name, values", [
-    # references.md, recomputed from the defining constants (Moritz 1980, GRS80 / NIMA WGS84),
-    # given to 4 decimals, so 1e-4 mGal
-    ("GRS80", (978032.6772, 980619.9203, 983218.6369)),
-    ("WGS84", (978032.5336, 980619.7769, 983218.4938)),
-])
+@pytest.mark.parametrize(
+    "name, values",
+    [
+        # references.md, recomputed from the defining constants (Moritz 1980, GRS80 / NIMA WGS84),
+        # given to 4 decimals, so 1e-4 mGal
+        ("GRS80", (978032.6772, 980619.9203, 983218.6369)),
+        ("WGS84", (978032.5336, 980619.7769, 983218.4938)),
+    ],
+)
 def test_check_values_at_0_45_90_degrees(name, values):
-    np.testing.assert_allclose(normal_gravity([0.0, 45.0, 90.0], 0.0, name), values,
-                               rtol=0, atol=1e-4)
+    np.testing.assert_allclose(normal_gravity([0.0, 45.0, 90.0], 0.0, name), values, rtol=0, atol=1e-4)
 
 
 def test_somigliana_on_the_grs80_ellipsoid():

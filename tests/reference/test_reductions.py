@@ -8,8 +8,13 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from potfield.fields.gravity.reductions import (G, atmospheric_correction, bouguer_cap, bouguer_slab,
-                                     free_air_correction)
+from potfield.fields.gravity.reductions import (
+    G,
+    atmospheric_correction,
+    bouguer_cap,
+    bouguer_slab,
+    free_air_correction,
+)
 
 
 def test_first_order_free_air_gradient():
@@ -22,7 +27,8 @@ def test_second_order_height_correction_check_value():
     # our correction is what is ADDED to observed gravity, i.e. minus that
     assert free_air_correction(1000.0, 0.0, order=2) == pytest.approx(308.697, abs=5e-4)
     assert free_air_correction(1000.0, 90.0, order=2) == pytest.approx(
-        0.3087691e3 - 0.4398 - 7.2125e-2, abs=1e-9)
+        0.3087691e3 - 0.4398 - 7.2125e-2, abs=1e-9
+    )
 
 
 def test_second_order_formula_follows_the_exact_normal_gravity():
@@ -30,10 +36,10 @@ def test_second_order_formula_follows_the_exact_normal_gravity():
     # truncated series: agreement to a few hundredths of a mGal below 5 km (measured 0.044)
     lat = np.linspace(0, 90, 10)
     for h in (100.0, 1000.0, 5000.0):
-        exact = (boule.GRS80.normal_gravity((None, lat, np.zeros_like(lat)))
-                 - boule.GRS80.normal_gravity((None, lat, np.full_like(lat, h))))
-        np.testing.assert_allclose(free_air_correction(h, lat, order=2), exact, rtol=0,
-                                   atol=1e-5 * h + 1e-3)
+        exact = boule.GRS80.normal_gravity((None, lat, np.zeros_like(lat))) - boule.GRS80.normal_gravity(
+            (None, lat, np.full_like(lat, h))
+        )
+        np.testing.assert_allclose(free_air_correction(h, lat, order=2), exact, rtol=0, atol=1e-5 * h + 1e-3)
 
 
 def test_second_order_needs_latitude_and_order_is_checked():
@@ -45,8 +51,9 @@ def test_second_order_needs_latitude_and_order_is_checked():
 
 def test_atmospheric_correction_check_values():
     # Hinze et al. (2005) eq. 5: 0.874 at 0 m, 0.77856 at 1000 m, 0.60904 at 3000 m
-    np.testing.assert_allclose(atmospheric_correction([0.0, 1000.0, 3000.0]),
-                               [0.874, 0.77856, 0.60904], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(
+        atmospheric_correction([0.0, 1000.0, 3000.0]), [0.874, 0.77856, 0.60904], rtol=0, atol=1e-9
+    )
 
 
 def test_bouguer_slab_check_values():
@@ -57,9 +64,11 @@ def test_bouguer_slab_check_values():
     assert bouguer_slab(1.0, 1000.0) == pytest.approx(0.04193, abs=1e-5)
     assert bouguer_slab(1.0, 2670.0) == pytest.approx(0.1119, abs=1e-4)  # 0.11197 truncated
     # linear in h, signed (a slab of missing mass below the datum is negative)
-    np.testing.assert_allclose(bouguer_slab([-10.0, 0.0, 1000.0], 2670.0),
-                               np.array([-10.0, 0.0, 1000.0]) * 2 * np.pi * G * 2670.0 * 1e5,
-                               rtol=1e-14)
+    np.testing.assert_allclose(
+        bouguer_slab([-10.0, 0.0, 1000.0], 2670.0),
+        np.array([-10.0, 0.0, 1000.0]) * 2 * np.pi * G * 2670.0 * 1e5,
+        rtol=1e-14,
+    )
 
 
 def _lafehr_bullard_b(h, rho=2670.0):
@@ -70,7 +79,7 @@ def _lafehr_bullard_b(h, rho=2670.0):
     a = s / r0
     big_r = r0 + h
     eta, delta = h / big_r, r0 / big_r
-    mu = eta ** 2 / 3 - eta
+    mu = eta**2 / 3 - eta
     d = 3 * np.cos(a) ** 2 - 2
     f = np.cos(a)
     k = np.sin(a) ** 2
@@ -78,7 +87,7 @@ def _lafehr_bullard_b(h, rho=2670.0):
     m = -3 * np.sin(a) ** 2 * np.cos(a)
     n = 2 * (np.sin(a / 2) - np.sin(a / 2) ** 2)
     root = np.sqrt((f - delta) ** 2 + k)
-    lam = ((d + f * delta + delta ** 2) * root + p + m * np.log(n / (f - delta + root))) / 3
+    lam = ((d + f * delta + delta**2) * root + p + m * np.log(n / (f - delta + root))) / 3
     return 2 * np.pi * G * rho * (mu * h - lam * big_r) * 1e5
 
 
@@ -112,7 +121,7 @@ def test_bouguer_cap_against_direct_numerical_integration():
         half = np.sin(0.5 * psi) ** 2
         ell2 = gap * gap + 4.0 * rp * r * half  # stable form of rp^2 + r^2 - 2 rp r cos(psi)
         vertical = gap + 2.0 * r * half  # rp - r cos(psi)
-        return np.sum(w * r * r * np.sin(psi) * vertical / ell2 ** 1.5)
+        return np.sum(w * r * r * np.sin(psi) * vertical / ell2**1.5)
 
     value = integrate.quad(inner, r0, rp, limit=200, epsabs=0, epsrel=1e-10)[0]
     direct = 2 * np.pi * G * rho * value * 1e5
@@ -127,7 +136,7 @@ def test_bouguer_cap_limits():
     # whole-sphere shell: G M_shell / r_p^2 (Newton's shell theorem)
     r0, h, rho = 6_371_000.0, 1000.0, 2670.0
     rp = r0 + h
-    shell = G * rho * 4 / 3 * np.pi * (rp ** 3 - r0 ** 3) / rp ** 2 * 1e5
+    shell = G * rho * 4 / 3 * np.pi * (rp**3 - r0**3) / rp**2 * 1e5
     assert bouguer_cap(h, rho, arc_length=np.pi * r0) == pytest.approx(shell, rel=1e-10)
     # below the datum the shell is above the station: negative like 2 pi G rho h
     assert bouguer_cap(-300.0) == pytest.approx(bouguer_slab(-300.0), abs=0.5)

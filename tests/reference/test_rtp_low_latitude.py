@@ -28,9 +28,13 @@ N = np.arange(-5000.0, 5001.0, 100.0)
 EE, NN = np.meshgrid(E, N)
 HEIGHT = 100.0
 #: A dyke striking north-south (close to the declination), a block and a small plug (m).
-PRISMS = np.array([[-2500.0, -2200.0, -3000.0, 3000.0, -1500.0, -300.0],
-                   [1000.0, 2500.0, -1500.0, 0.0, -2000.0, -600.0],
-                   [-500.0, 0.0, 1500.0, 2200.0, -900.0, -250.0]])
+PRISMS = np.array(
+    [
+        [-2500.0, -2200.0, -3000.0, 3000.0, -1500.0, -300.0],
+        [1000.0, 2500.0, -1500.0, 0.0, -2000.0, -600.0],
+        [-500.0, 0.0, 1500.0, 2200.0, -900.0, -250.0],
+    ]
+)
 CHI = np.array([0.03, 0.02, 0.04])
 FIELD_NT = 35000.0
 
@@ -54,11 +58,19 @@ def relative_rms(result, truth):
 
 def run_derive(tmp_path, values, inc, dec, derive=None):
     grid = make_grid(E, N, values, name="anomaly", units="nT", long_name="total-field anomaly")
-    config = parse_config({"survey": {"name": "t", "kind": "magnetic"},
-                           "derive": {"products": ["reduced_to_pole"], **(derive or {})}})
-    ctx = StageContext(config=config, survey=Survey(tmp_path), table=None,
-                       state={"reference": {"inclination": inc, "declination": dec}},
-                       grids={"anomaly": grid})
+    config = parse_config(
+        {
+            "survey": {"name": "t", "kind": "magnetic"},
+            "derive": {"products": ["reduced_to_pole"], **(derive or {})},
+        }
+    )
+    ctx = StageContext(
+        config=config,
+        survey=Survey(tmp_path),
+        table=None,
+        state={"reference": {"inclination": inc, "declination": dec}},
+        grids={"anomaly": grid},
+    )
     return STAGE.run(ctx)
 
 
@@ -104,8 +116,7 @@ def test_layer_rtp_stays_stable_near_the_equator(inc):
     data = tmi(inc, dec) + np.random.default_rng(1).normal(0.0, 0.5, EE.shape)
     pole = tmi(90.0, 0.0)
     grid = make_grid(E, N, data, name="anomaly", units="nT", long_name="tfa")
-    layer = tf.reduction_to_pole(grid, inc, dec, method="auto",
-                                 layer_depth=300.0, layer_damping=1e-2)
+    layer = tf.reduction_to_pole(grid, inc, dec, method="auto", layer_depth=300.0, layer_damping=1e-2)
     assert layer.attrs["rtp_method"] == "sources"
     pseudo = tf.reduction_to_pole(grid, inc, dec, method="pseudo")
     # Li and Oldenburg (2001): a regularised layer stays stable near the equator; against
@@ -119,8 +130,9 @@ def test_regularised_filter_gain_is_bounded():
     # conj(T) / (|T|^2 + e^2) has gain |T| / (|T|^2 + e^2) <= 1 / (2 e) (arithmetic-geometric
     # mean inequality; Hansen and Pawlowski 1989 bound the inverse filter the same way)
     rng = np.random.default_rng(7)
-    noise = make_grid(E[:120], N[:100], rng.normal(0.0, 1.0, (100, 120)), name="anomaly",
-                      units="nT", long_name="noise")
+    noise = make_grid(
+        E[:120], N[:100], rng.normal(0.0, 1.0, (100, 120)), name="anomaly", units="nT", long_name="noise"
+    )
     level = 0.2
     out = tf.reduction_to_pole(noise, 2.0, 0.0, method="filter", wiener_level=level)
     assert out.attrs["rtp_method"] == "filter" and out.attrs["wiener_level"] == level

@@ -21,7 +21,6 @@ import scipy.fft
 
 from potfield.fields.harmonic import spherical as sp
 from potfield.fields.harmonic import transforms as tf
-from potfield.fields.magnetic.igrf import geodetic_to_geocentric
 from potfield.fields.harmonic.separation import (
     fit_gauss_coefficients,
     fit_two_layer,
@@ -30,6 +29,7 @@ from potfield.fields.harmonic.separation import (
     separate_two_heights,
     separate_vector_plane,
 )
+from potfield.fields.magnetic.igrf import geodetic_to_geocentric
 from potfield.io.grids import make_grid
 
 A_KM = 6371.2
@@ -111,8 +111,13 @@ def test_recovers_known_coefficients_from_a_chaosmagpy_network():
     ni, ne, epochs = 2, 2, 40
     g = rng.normal(0.0, 8.0, (epochs, sp.n_coefficients(ni)))
     q = rng.normal(0.0, 15.0, (epochs, sp.n_coefficients(ne)))
-    comps = [a + b for a, b in zip(_chaos_geodetic(g[:, None, :], LON, LAT, HGT, "internal"),
-                                   _chaos_geodetic(q[:, None, :], LON, LAT, HGT, "external"))]
+    comps = [
+        a + b
+        for a, b in zip(
+            _chaos_geodetic(g[:, None, :], LON, LAT, HGT, "internal"),
+            _chaos_geodetic(q[:, None, :], LON, LAT, HGT, "external"),
+        )
+    ]
     sigma = 0.1
     comps = [c + rng.normal(0.0, sigma, c.shape) for c in comps]
     fit = fit_gauss_coefficients(*comps, LON, LAT, HGT, internal_degree=ni, external_degree=ne)
@@ -135,8 +140,13 @@ def test_induced_ratio_in_the_earths_range_is_recovered():
     q = np.column_stack([storm, 6 * np.cos(2 * np.pi * hours / 24), 6 * np.sin(2 * np.pi * hours / 24)])
     # 0.27: within the Earth's storm-time degree-1 range 0.25-0.3 (from memory; references.md).
     ratio = 0.27
-    comps = [a + b for a, b in zip(_chaos_geodetic(ratio * q[:, None, :], LON, LAT, HGT, "internal"),
-                                   _chaos_geodetic(q[:, None, :], LON, LAT, HGT, "external"))]
+    comps = [
+        a + b
+        for a, b in zip(
+            _chaos_geodetic(ratio * q[:, None, :], LON, LAT, HGT, "internal"),
+            _chaos_geodetic(q[:, None, :], LON, LAT, HGT, "external"),
+        )
+    ]
     comps = [c + rng.normal(0.0, 0.5, c.shape) for c in comps]
     fit = fit_gauss_coefficients(*comps, LON, LAT, HGT)
     est = induction_ratio(fit.coefficient("g10"), fit.coefficient("q10"))
@@ -146,8 +156,9 @@ def test_induced_ratio_in_the_earths_range_is_recovered():
     assert est["correlation"] > 0.99
 
 
-@pytest.mark.skipif(not (DEMO / "truth" / "coefficients.csv").is_file(),
-                    reason="the observatory demo is not in this checkout")
+@pytest.mark.skipif(
+    not (DEMO / "truth" / "coefficients.csv").is_file(), reason="the observatory demo is not in this checkout"
+)
 def test_demo_observatory_true_coefficients_recovered(tmp_path):
     """The demo's degree-1 truth is recovered up to what its unmodelled parts predict.
 
@@ -173,15 +184,22 @@ def test_demo_observatory_true_coefficients_recovered(tmp_path):
     params = json.loads((root / "truth" / "parameters.json").read_text())
     stations = pd.DataFrame(params["stations"]).sort_values("code").reset_index(drop=True)
     st = pd.read_csv(root / "truth" / "stations_truth.csv")
-    readings = pd.read_csv(root / "out" / "tables" / "readings.csv",
-                           usecols=lambda c: c in ("station", "time") or c.startswith("flag_"))
+    readings = pd.read_csv(
+        root / "out" / "tables" / "readings.csv",
+        usecols=lambda c: c in ("station", "time") or c.startswith("flag_"),
+    )
     flags = [c for c in readings.columns if c.startswith("flag_")]
     lon, lat, h = (stations[k].to_numpy(float) for k in ("longitude", "latitude", "elevation_m"))
     n_t = len(truth)
     ext1 = truth[["q10", "q11", "s11"]].to_numpy()
     ind1 = truth[["g10_induced", "g11_induced", "h11_induced"]].to_numpy()
-    deg1 = [a + b for a, b in zip(_chaos_geodetic(ind1[:, None, :], lon, lat, h, "internal"),
-                                  _chaos_geodetic(ext1[:, None, :], lon, lat, h, "external"))]
+    deg1 = [
+        a + b
+        for a, b in zip(
+            _chaos_geodetic(ind1[:, None, :], lon, lat, h, "internal"),
+            _chaos_geodetic(ext1[:, None, :], lon, lat, h, "external"),
+        )
+    ]
     unmodelled, complete = [], np.ones(n_t, dtype=bool)
     order = {code: i for i, code in enumerate(stations["code"])}
     st = st.assign(col=st["station"].map(order)).sort_values(["col", "time"])
@@ -190,10 +208,18 @@ def test_demo_observatory_true_coefficients_recovered(tmp_path):
         unmodelled.append(total.reshape(len(stations), n_t).T - deg1[k])
     complete &= (st["gap"].to_numpy().reshape(len(stations), n_t).T == 0).all(axis=1)
     bad_times = set(readings.loc[readings[flags].astype(bool).any(axis=1), "time"]) if flags else set()
-    complete &= ~pd.Series(truth["time"]).str.replace("Z", "").isin(
-        {t.replace("Z", "")[:19] for t in bad_times}).to_numpy()
-    G = np.hstack([np.vstack(sp.geodetic_design_matrices(lon, lat, h, 1, "internal")),
-                   np.vstack(sp.geodetic_design_matrices(lon, lat, h, 1, "external"))])
+    complete &= (
+        ~pd.Series(truth["time"])
+        .str.replace("Z", "")
+        .isin({t.replace("Z", "")[:19] for t in bad_times})
+        .to_numpy()
+    )
+    G = np.hstack(
+        [
+            np.vstack(sp.geodetic_design_matrices(lon, lat, h, 1, "internal")),
+            np.vstack(sp.geodetic_design_matrices(lon, lat, h, 1, "external")),
+        ]
+    )
     pinv = np.linalg.pinv(G)
     predicted_error = np.hstack(unmodelled) @ pinv.T
     fitted = coef[["g10", "g11", "h11", "q10", "q11", "s11"]].to_numpy()
@@ -221,9 +247,14 @@ MU0 = 4e-7 * np.pi  # vacuum permeability (CODATA, to 1e-10)
 
 def _dipoles(up):
     """harmonica.dipole_magnetic (reference library): three dipoles 400-800 m below the plane."""
-    pts = (np.array([-1500.0, 2000.0, 500.0]), np.array([1000.0, -1500.0, 2500.0]),
-           np.array([-500.0, -800.0, -400.0]))
-    moments = [hm.magnetic_angles_to_vec(m, i, d) for m, i, d in ((3e8, 60, 10), (5e8, 45, -20), (2e8, -30, 80))]
+    pts = (
+        np.array([-1500.0, 2000.0, 500.0]),
+        np.array([1000.0, -1500.0, 2500.0]),
+        np.array([-500.0, -800.0, -400.0]),
+    )
+    moments = [
+        hm.magnetic_angles_to_vec(m, i, d) for m, i, d in ((3e8, 60, 10), (5e8, 45, -20), (2e8, -30, 80))
+    ]
     moments = tuple(np.array(c) for c in zip(*moments))
     be, bn, bu = hm.dipole_magnetic((EE, NN, np.full_like(EE, up)), pts, moments, field="b")
     return np.stack([bn, be, -bu])
@@ -244,8 +275,10 @@ def _line_currents(up):
 
 
 def _grids(values):
-    return [make_grid(E, E, values[i], name=c, units="nT", long_name=c)
-            for i, c in enumerate(("north", "east", "down"))]
+    return [
+        make_grid(E, E, values[i], name=c, units="nT", long_name=c)
+        for i, c in enumerate(("north", "east", "down"))
+    ]
 
 
 def test_vector_plane_separation_dipoles_alone_is_exact():
@@ -279,8 +312,9 @@ def test_vector_plane_separation_recovers_dipoles_below_and_currents_above():
 
 def test_two_heights_separation_of_a_harmonic_scalar():
     lower = make_grid(E, E, (_dipoles(0.0) + _line_currents(0.0))[2], name="z0", units="nT", long_name="Z")
-    upper = make_grid(E, E, (_dipoles(200.0) + _line_currents(200.0))[2], name="z1", units="nT",
-                      long_name="Z")
+    upper = make_grid(
+        E, E, (_dipoles(200.0) + _line_currents(200.0))[2], name="z1", units="nT", long_name="Z"
+    )
     internal, external = separate_two_heights(lower, upper, 200.0)
     dip, cur = _dipoles(0.0)[2], _line_currents(0.0)[2]
     for part, truth in ((internal, dip), (external, cur)):
@@ -332,8 +366,9 @@ def test_upward_by_an_exact_model_is_exact():
     class Prisms:  # a "model" that is the true sources (harmonica), to pin the model route
         def predict(self, coordinates):
             e, n, u = coordinates
-            return (hm.prism_gravity((e, n, u), DEEP, [300.0], field="g_z")
-                    + hm.prism_gravity((e, n, u), SHALLOW, [400.0, -300.0], field="g_z"))
+            return hm.prism_gravity((e, n, u), DEEP, [300.0], field="g_z") + hm.prism_gravity(
+                (e, n, u), SHALLOW, [400.0, -300.0], field="g_z"
+            )
 
     deep, shallow = _gz(DEEP, [300.0], H0), _gz(SHALLOW, [400.0, -300.0], H0)
     grid = make_grid(GE, GE, deep + shallow, name="g", units="mGal", long_name="g")
@@ -347,8 +382,13 @@ def test_upward_by_an_exact_model_is_exact():
 def test_two_layer_residual_recovers_the_shallow_body():
     deep, shallow = _gz(DEEP, [300.0], H0), _gz(SHALLOW, [400.0, -300.0], H0)
     data = deep + shallow
-    model = fit_two_layer((GEE, GNN, np.full_like(GEE, H0)), data, deep_depth=3000.0,
-                          shallow_depth=300.0, crossover_wavelength=3000.0)
+    model = fit_two_layer(
+        (GEE, GNN, np.full_like(GEE, H0)),
+        data,
+        deep_depth=3000.0,
+        shallow_depth=300.0,
+        crossover_wavelength=3000.0,
+    )
     residual = data - model.predict_regional((GEE, GNN, np.full_like(GEE, H0)))
     rms = float(np.sqrt(np.mean((residual - shallow)[GIN] ** 2)))
     # harmonica prisms (reference library). Bound: damped least squares splits each wavenumber
@@ -357,12 +397,12 @@ def test_two_layer_residual_recovers_the_shallow_body():
     # stay. That ideal split, applied here to the true fields in the wavenumber domain, leaves
     # 0.178 mGal RMS; the discrete fit (finite window, point sources) must follow it within
     # 0.05 mGal RMS (measured 0.022) and do no worse than it by more than that.
-    prep = tf.pad_grid(make_grid(GE, GE, data, name="d", units="mGal", long_name="d"), 1.0, "edge",
-                       detrend=False)
+    prep = tf.pad_grid(
+        make_grid(GE, GE, data, name="d", units="mGal", long_name="d"), 1.0, "edge", detrend=False
+    )
     _, _, k = prep.wavenumbers()
     split = 1.0 / (1.0 + np.exp(2 * (3000.0 - 300.0) * (k - 2 * np.pi / 3000.0)))
-    ideal = data - prep.unpad(scipy.fft.irfft2(scipy.fft.rfft2(prep.padded) * split,
-                                               s=prep.padded.shape))
+    ideal = data - prep.unpad(scipy.fft.irfft2(scipy.fft.rfft2(prep.padded) * split, s=prep.padded.shape))
     rms_ideal = float(np.sqrt(np.mean((ideal - shallow)[GIN] ** 2)))
     assert float(np.sqrt(np.mean((residual - ideal)[GIN] ** 2))) < 0.05
     assert rms < rms_ideal + 0.05

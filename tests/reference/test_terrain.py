@@ -37,8 +37,9 @@ def test_single_hill_and_pit_against_harmonica_prisms():
     z[20:26, 30:34] = -90.0  # pit south-west
     dem = _dem(z, s)
     station = (1012.0, 1010.0, 0.0)
-    result = terrain_correction(*[[c] for c in station], dem, radius=950.0,
-                                inner_radius=950.0, curvature=False)
+    result = terrain_correction(
+        *[[c] for c in station], dem, radius=950.0, inner_radius=950.0, curvature=False
+    )
     # reference library: harmonica.prism_gravity (Nagy et al. 2000 closed form). The hill pulls
     # up (g_z < 0), the pit removes mass below (g_z > 0 of the missing prism): TC = -g_hill +
     # g_pit, both positive
@@ -56,8 +57,16 @@ def test_coarse_zone_is_exact_for_block_aligned_terrain():
     z[192:208, 16:32] = 250.0  # 16 x 16 cells: one block of the third zone, 4 x 4 of the second
     dem = _dem(z, s)
     station = (2570.0, 2570.0, 50.0)
-    result = terrain_correction([station[0]], [station[1]], [50.0], dem, radius=3000.0,
-                                inner_radius=300.0, far_ratio=4.0, curvature=False)
+    result = terrain_correction(
+        [station[0]],
+        [station[1]],
+        [50.0],
+        dem,
+        radius=3000.0,
+        inner_radius=300.0,
+        far_ratio=4.0,
+        curvature=False,
+    )
     assert len(result.zone_spacings) >= 2
     assert result.zone_inner_distance[-1] < np.hypot(2570 - 640, 3840 - 2570)
     hill = harmonica.prism_gravity(station, [320, 640, 3840, 4160, 50, 250], RHO, field="g_z")
@@ -75,11 +84,12 @@ def test_hammer_ring_hill_and_valley():
     r = np.hypot(east, north)
     a1, a2, height = 200.0, 1000.0, 100.0
     ring = (r >= a1) & (r < a2)
-    expected = KGM * ((a2 - a1) + np.sqrt(a1 ** 2 + height ** 2) - np.sqrt(a2 ** 2 + height ** 2))
+    expected = KGM * ((a2 - a1) + np.sqrt(a1**2 + height**2) - np.sqrt(a2**2 + height**2))
     for sign in (1.0, -1.0):
         dem = _dem(np.where(ring, sign * height, 0.0), s, -1100.0, -1100.0)
-        result = terrain_correction([0.0], [0.0], [0.0], dem, radius=1100.0,
-                                    inner_radius=1100.0, curvature=False)
+        result = terrain_correction(
+            [0.0], [0.0], [0.0], dem, radius=1100.0, inner_radius=1100.0, curvature=False
+        )
         assert result.correction[0] == pytest.approx(expected, rel=0.01)
 
 
@@ -91,9 +101,10 @@ def test_flat_terrain_below_a_raised_point_is_a_disc():
     z, s = _square(440, 100.0)
     dem = _dem(z, s, -22_000.0, -22_000.0)
     a, height = 20_000.0, 300.0
-    result = terrain_correction([0.0], [0.0], [height], dem, radius=a, inner_radius=1000.0,
-                                curvature=False, ground=np.nan)
-    expected = KGM * (height + a - np.sqrt(a ** 2 + height ** 2))
+    result = terrain_correction(
+        [0.0], [0.0], [height], dem, radius=a, inner_radius=1000.0, curvature=False, ground=np.nan
+    )
+    expected = KGM * (height + a - np.sqrt(a**2 + height**2))
     # the disc edge is a staircase of the outermost cells: 0.1 %
     assert result.correction[0] == pytest.approx(expected, rel=1e-3)
 
@@ -107,10 +118,9 @@ def test_curvature_makes_flat_terrain_a_spherical_cap():
     dem = _dem(z, s, -170_000.0, -170_000.0)
     height, radius = 1500.0, 166_735.0
     curved = terrain_correction([0.0], [0.0], [height], dem, radius=radius, ground=np.nan)
-    flat = terrain_correction([0.0], [0.0], [height], dem, radius=radius, ground=np.nan,
-                              curvature=False)
+    flat = terrain_correction([0.0], [0.0], [height], dem, radius=radius, ground=np.nan, curvature=False)
     assert curved.correction[0] == pytest.approx(bouguer_cap(height), abs=0.05)
-    disc = KGM * (height + radius - np.sqrt(radius ** 2 + height ** 2))
+    disc = KGM * (height + radius - np.sqrt(radius**2 + height**2))
     assert flat.correction[0] == pytest.approx(disc, abs=0.05)
     assert curved.correction[0] - flat.correction[0] > 1.5
 
@@ -122,15 +132,25 @@ def test_station_inside_its_dem_cell_gets_no_self_attraction():
     z[30, 30] = 140.0
     dem = _dem(z, s)
     station_e, station_n = 30 * 30.0 + 10.0, 30 * 30.0 + 20.0
-    result = terrain_correction([station_e], [station_n], [100.0], dem, radius=800.0,
-                                inner_radius=800.0, curvature=False)
+    result = terrain_correction(
+        [station_e], [station_n], [100.0], dem, radius=800.0, inner_radius=800.0, curvature=False
+    )
     assert result.correction[0] == pytest.approx(0.0, abs=1e-12)
     # keeping the DEM value (ground = NaN) would put the station at the base of a 40 m
     # prism: the upward pull of that prism (harmonica), not a ground-station terrain effect
-    kept = terrain_correction([station_e], [station_n], [100.0], dem, radius=800.0,
-                              inner_radius=800.0, curvature=False, ground=np.nan)
-    own = harmonica.prism_gravity((station_e, station_n, 100.0), [900, 930, 900, 930, 100, 140],
-                                  RHO, field="g_z")
+    kept = terrain_correction(
+        [station_e],
+        [station_n],
+        [100.0],
+        dem,
+        radius=800.0,
+        inner_radius=800.0,
+        curvature=False,
+        ground=np.nan,
+    )
+    own = harmonica.prism_gravity(
+        (station_e, station_n, 100.0), [900, 930, 900, 930, 100, 140], RHO, field="g_z"
+    )
     assert kept.correction[0] == pytest.approx(-own, rel=1e-10)
     assert kept.correction[0] > 1.0  # a large spurious value (common practice: avoid it)
 
@@ -139,8 +159,9 @@ def test_dem_not_covering_the_radius_is_reported():
     z, s = _square(40, 50.0, 0.0)
     dem = _dem(z, s)
     # a station at the DEM corner misses about 3/4 of a disc that the DEM could hold
-    result = terrain_correction([0.0, 1000.0], [0.0, 1000.0], [0.0, 0.0], dem, radius=900.0,
-                                inner_radius=900.0)
+    result = terrain_correction(
+        [0.0, 1000.0], [0.0, 1000.0], [0.0, 0.0], dem, radius=900.0, inner_radius=900.0
+    )
     assert result.missing_fraction[0] == pytest.approx(0.75, abs=0.03)
     assert result.missing_fraction[1] == pytest.approx(0.0, abs=1e-12)
     assert len(result.warnings) == 1
@@ -180,8 +201,14 @@ UTM = "EPSG:32633"
 
 def _utm_dem():
     z = np.add.outer(np.arange(6) * 10.0, np.arange(8) * 1.0) + 200.0
-    return make_grid(500_000.0 + 100.0 * np.arange(8), 6_600_000.0 + 100.0 * np.arange(6), z,
-                     name="elevation", units="m", long_name="DEM")
+    return make_grid(
+        500_000.0 + 100.0 * np.arange(8),
+        6_600_000.0 + 100.0 * np.arange(6),
+        z,
+        name="elevation",
+        units="m",
+        long_name="DEM",
+    )
 
 
 def test_read_netcdf_geotiff_and_xyz_in_the_survey_crs(tmp_path):
@@ -190,7 +217,8 @@ def test_read_netcdf_geotiff_and_xyz_in_the_survey_crs(tmp_path):
     write_geotiff(tmp_path / "dem.tif", grid, UTM)
     east, north = np.meshgrid(grid.easting.values, grid.northing.values)
     pd.DataFrame({"x": east.ravel(), "y": north.ravel(), "z": grid.values.ravel()}).to_csv(
-        tmp_path / "dem.xyz", sep=" ", index=False)
+        tmp_path / "dem.xyz", sep=" ", index=False
+    )
     for name in ("dem.nc", "dem.tif", "dem.xyz"):
         dem = read_dem(tmp_path / name, UTM)
         assert dem.dims == ("northing", "easting")
@@ -206,9 +234,13 @@ def test_geographic_dem_is_reprojected_with_pyproj(tmp_path):
     lon = 14.90 + 0.01 * np.arange(21)
     lat = 59.45 + 0.005 * np.arange(21)
     z = 100.0 + 3000.0 * (lon[None, :] - 14.9) + 5000.0 * (lat[:, None] - 59.45)
-    geo = xr.Dataset({"elevation": (("lat", "lon"), z)},
-                     coords={"lon": ("lon", lon, {"units": "degrees_east"}),
-                             "lat": ("lat", lat, {"units": "degrees_north"})})
+    geo = xr.Dataset(
+        {"elevation": (("lat", "lon"), z)},
+        coords={
+            "lon": ("lon", lon, {"units": "degrees_east"}),
+            "lat": ("lat", lat, {"units": "degrees_north"}),
+        },
+    )
     geo.to_netcdf(tmp_path / "geo.nc")
     dem = read_dem(tmp_path / "geo.nc", UTM)
     ee, nn = np.meshgrid(dem.easting.values, dem.northing.values)
@@ -254,16 +286,16 @@ def test_dem_errors_are_one_line_potfield_errors(tmp_path):
         read_dem(tmp_path / "dem.las", UTM)
     # degrees without a CRS while the survey is projected
     lon, lat = np.meshgrid(15.0 + 0.01 * np.arange(4), 59.0 + 0.01 * np.arange(3))
-    pd.DataFrame({"x": lon.ravel(), "y": lat.ravel(), "z": 1.0}).to_csv(
-        tmp_path / "geo.xyz", index=False)
+    pd.DataFrame({"x": lon.ravel(), "y": lat.ravel(), "z": 1.0}).to_csv(tmp_path / "geo.xyz", index=False)
     with pytest.raises(CRSError) as info:
         read_dem(tmp_path / "geo.xyz", UTM)
     assert "reference.dem_crs" in str(info.value) and "\n" not in str(info.value)
     with pytest.raises(CRSError, match="pyproj"):
         read_dem(tmp_path / "geo.xyz", UTM, dem_crs="EPSG:notacode")
     # an irregular x,y,z table
-    pd.DataFrame({"x": [0.0, 1.0, 3.0, 0.0, 1.0, 3.0], "y": [0.0] * 3 + [1.0] * 3,
-                  "z": 1.0}).to_csv(tmp_path / "bad.xyz", index=False)
+    pd.DataFrame({"x": [0.0, 1.0, 3.0, 0.0, 1.0, 3.0], "y": [0.0] * 3 + [1.0] * 3, "z": 1.0}).to_csv(
+        tmp_path / "bad.xyz", index=False
+    )
     with pytest.raises(InputDataError, match="evenly spaced"):
         read_dem(tmp_path / "bad.xyz", UTM)
     # a NetCDF without a 2-D variable

@@ -27,18 +27,27 @@ def _times(start, periods, freq):
 def _tidegravity_total(lon, lat, height, times):
     """tidegravity's Longman total (upward acceleration x 1.1575, mGal): the correction."""
     n = times.size
-    _, _, g0 = tidegravity.solve_longman_tide(np.full(n, float(lat)), np.full(n, float(lon)),
-                                              np.full(n, float(height)),
-                                              np.array(times.to_pydatetime()))
+    _, _, g0 = tidegravity.solve_longman_tide(
+        np.full(n, float(lat)),
+        np.full(n, float(lon)),
+        np.full(n, float(height)),
+        np.array(times.to_pydatetime()),
+    )
     return np.asarray(g0)
 
 
-@pytest.mark.parametrize("lon, lat, height", [(-122.7, 45.5, 50.0), (151.2, -33.9, 0.0),
-                                              (24.9, 69.0, 1200.0), (0.0, 0.0, 0.0)])
+@pytest.mark.parametrize(
+    "lon, lat, height", [(-122.7, 45.5, 50.0), (151.2, -33.9, 0.0), (24.9, 69.0, 1200.0), (0.0, 0.0, 0.0)]
+)
 def test_matches_tidegravity_over_a_month(lon, lat, height):
     times = _times("2021-03-01", 30 * 24 * 4, "15min")
-    ours = longman_gravity(np.full(times.size, lon), np.full(times.size, lat),
-                           np.full(times.size, height), times.values, gravimetric_factor=1.1575)
+    ours = longman_gravity(
+        np.full(times.size, lon),
+        np.full(times.size, lat),
+        np.full(times.size, height),
+        times.values,
+        gravimetric_factor=1.1575,
+    )
     # reference library: tidegravity (Longman 1959 formulas, factor 1 + h2 - 1.5 k2 = 1.1575).
     # Same formulas and constants except G, so after scaling G the two agree to rounding
     # (1e-9 mGal): tidegravity returns the correction (upward acceleration), we the tide the
@@ -47,7 +56,10 @@ def test_matches_tidegravity_over_a_month(lon, lat, height):
     np.testing.assert_allclose(ours, -theirs, rtol=0, atol=1e-9)
     np.testing.assert_allclose(
         longman_correction(lon, lat, height, times.values, gravimetric_factor=1.1575),
-        theirs, rtol=0, atol=1e-9)
+        theirs,
+        rtol=0,
+        atol=1e-9,
+    )
 
 
 def test_amplitude_bounds_over_a_month():
@@ -85,7 +97,7 @@ def test_solar_term_sign_and_size_at_the_subsolar_point():
     dawn = np.array(["2021-03-20T06:07"], dtype="datetime64[ns]")
     gs_noon = longman_components(0.0, 0.0, 0.0, noon)[1][0]
     gs_dawn = longman_components(0.0, 0.0, 0.0, dawn)[1][0]
-    unit = 1.327e20 * 6.378e6 / 1.496e11 ** 3 * 1e5
+    unit = 1.327e20 * 6.378e6 / 1.496e11**3 * 1e5
     assert gs_noon == pytest.approx(2 * unit, rel=0.03)
     assert gs_dawn == pytest.approx(-unit, rel=0.05)
     # the gravimeter reads less with the Sun overhead (positive upward pull): tide < 0 there
@@ -97,16 +109,15 @@ def test_solar_term_sign_and_size_at_the_subsolar_point():
 def test_vectorised_over_readings_and_broadcasts():
     rng = np.random.default_rng(3)
     n = 500
-    times = np.datetime64("2023-07-01T00:00", "ns") + rng.integers(0, 86400 * 30, n).astype(
-        "timedelta64[s]")
+    times = np.datetime64("2023-07-01T00:00", "ns") + rng.integers(0, 86400 * 30, n).astype("timedelta64[s]")
     lon, lat, h = rng.uniform(-180, 180, n), rng.uniform(-80, 80, n), rng.uniform(0, 3000, n)
     all_at_once = longman_gravity(lon, lat, h, times)
-    one_by_one = np.array([longman_gravity(lon[i], lat[i], h[i], times[i:i + 1])[0]
-                           for i in range(0, n, 50)])
+    one_by_one = np.array(
+        [longman_gravity(lon[i], lat[i], h[i], times[i : i + 1])[0] for i in range(0, n, 50)]
+    )
     np.testing.assert_allclose(all_at_once[::50], one_by_one, rtol=0, atol=1e-15)
     # the gravimetric factor scales linearly
-    np.testing.assert_allclose(longman_gravity(lon, lat, h, times, 2.32), 2 * all_at_once,
-                               rtol=1e-14)
+    np.testing.assert_allclose(longman_gravity(lon, lat, h, times, 2.32), 2 * all_at_once, rtol=1e-14)
     # 1 km of height changes the tide by about r/R = 0.016 % (Longman's r)
     low = longman_gravity(lon, lat, 0.0, times)
     high = longman_gravity(lon, lat, 1000.0, times)

@@ -54,8 +54,9 @@ def test_point_mass_upward_continuation_matches_analytic():
     # within 1 % of the peak away from the edges (measured 0.32 %).
     assert _rel_max(up.values, truth) < 0.01
     # harmonica.point_gravity as independent reference library (same field).
-    ref = hm.point_gravity((PM_EE, PM_NN, np.full_like(PM_EE, 300.0)), (0.0, 0.0, -PM_DEPTH),
-                           PM_MASS, field="g_z")
+    ref = hm.point_gravity(
+        (PM_EE, PM_NN, np.full_like(PM_EE, 300.0)), (0.0, 0.0, -PM_DEPTH), PM_MASS, field="g_z"
+    )
     assert _rel_max(up.values, ref) < 0.01
 
 
@@ -73,8 +74,10 @@ def test_point_mass_vertical_derivatives_match_analytic_and_harmonica():
     assert _rel_max(dz1.values, dz1_true) < 0.01  # measured 0.32 % of peak
     assert _rel_max(dz2.values, dz2_true) < 0.01  # measured 0.002 % of peak
     # harmonica.point_gravity g_zz (Eotvos = 1e-4 mGal/m): independent reference library.
-    gzz = hm.point_gravity((PM_EE, PM_NN, np.zeros_like(PM_EE)), (0.0, 0.0, -PM_DEPTH),
-                           PM_MASS, field="g_zz") * 1e-4
+    gzz = (
+        hm.point_gravity((PM_EE, PM_NN, np.zeros_like(PM_EE)), (0.0, 0.0, -PM_DEPTH), PM_MASS, field="g_zz")
+        * 1e-4
+    )
     assert _rel_max(dz1.values, gzz) < 0.01
     # positive above the source: z-down convention of Blakely (1995) ch. 12
     assert dz1.values[PM_N.size // 2, PM_E.size // 2] > 0
@@ -109,15 +112,15 @@ DP_DEPTH, DP_MOMENT = 500.0, 1e9
 def _tfa(inc, dec, height=0.0, east=0.0, north=0.0):
     """Total-field anomaly (nT) of an induced dipole: B . F_hat (harmonica.dipole_magnetic)."""
     moment = hm.magnetic_angles_to_vec(DP_MOMENT, inc, dec)
-    be, bn, bu = hm.dipole_magnetic((DP_EE, DP_NN, np.full_like(DP_EE, height)),
-                                    (east, north, -DP_DEPTH), moment, field="b")
+    be, bn, bu = hm.dipole_magnetic(
+        (DP_EE, DP_NN, np.full_like(DP_EE, height)), (east, north, -DP_DEPTH), moment, field="b"
+    )
     fe, fn, fu = hm.magnetic_angles_to_vec(1.0, inc, dec)
     return be * fe + bn * fn + bu * fu
 
 
 def _tfa_grid(inc, dec):
-    return make_grid(DP_E, DP_N, _tfa(inc, dec), name="anomaly", units="nT",
-                     long_name="total-field anomaly")
+    return make_grid(DP_E, DP_N, _tfa(inc, dec), name="anomaly", units="nT", long_name="total-field anomaly")
 
 
 @pytest.fixture(scope="module")
@@ -172,11 +175,16 @@ def test_reduction_to_pole_with_remanent_magnetisation():
     # ch. 12; forward fields from harmonica.dipole_magnetic).
     inc, dec, m_inc, m_dec = 55.0, 5.0, -30.0, 140.0
     moment = hm.magnetic_angles_to_vec(DP_MOMENT, m_inc, m_dec)
-    b = hm.dipole_magnetic((DP_EE, DP_NN, np.zeros_like(DP_EE)), (0.0, 0.0, -DP_DEPTH), moment,
-                           field="b")
+    b = hm.dipole_magnetic((DP_EE, DP_NN, np.zeros_like(DP_EE)), (0.0, 0.0, -DP_DEPTH), moment, field="b")
     f = hm.magnetic_angles_to_vec(1.0, inc, dec)
-    tfa = make_grid(DP_E, DP_N, sum(bi * fi for bi, fi in zip(b, f)), name="anomaly", units="nT",
-                    long_name="total-field anomaly")
+    tfa = make_grid(
+        DP_E,
+        DP_N,
+        sum(bi * fi for bi, fi in zip(b, f)),
+        name="anomaly",
+        units="nT",
+        long_name="total-field anomaly",
+    )
     rtp = tf.reduction_to_pole(tfa, inc, dec, mag_inclination=m_inc, mag_declination=m_dec)
     pole = _tfa(90.0, 0.0)
     # within 1 % of the peak away from the edges (measured 0.14 %)
@@ -216,8 +224,14 @@ def test_pseudo_inclination_limits_noise_amplification():
     # Baranov filter amplitude 1/|Theta|^2 -> 1/sin^2 I perpendicular to D (Blakely 1995 ch. 12;
     # references.md); the pseudo filter's amplitude is at most 1/sin^2 I' (MacLeod et al. 1993).
     rng = np.random.default_rng(7)
-    noise = make_grid(DP_E[:128], DP_N[:128], rng.normal(0.0, 1.0, (128, 128)), name="anomaly",
-                      units="nT", long_name="noise")
+    noise = make_grid(
+        DP_E[:128],
+        DP_N[:128],
+        rng.normal(0.0, 1.0, (128, 128)),
+        name="anomaly",
+        units="nT",
+        long_name="noise",
+    )
     plain = tf.reduction_to_pole(noise, 10.0, 0.0, method="plain")
     pseudo = tf.reduction_to_pole(noise, 10.0, 0.0, method="pseudo")
     bound = 1.0 / np.sin(np.radians(30.0)) ** 2  # = 4, the pseudo filter's largest gain

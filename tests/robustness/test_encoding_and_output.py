@@ -51,8 +51,7 @@ def test_utf8_file_reads_without_warning(tmp_path):
     assert frame["line"].tolist() == ["L\u00e9a"] and "warnings" not in frame.attrs
 
 
-def test_permission_denied_while_writing_is_one_line_and_releases_lock(magnetic_survey, capsys,
-                                                                       monkeypatch):
+def test_permission_denied_while_writing_is_one_line_and_releases_lock(magnetic_survey, capsys, monkeypatch):
     from potfield.io import atomic
 
     real = os.replace

@@ -17,15 +17,23 @@ DATE_SECONDS = {"date": "DATE", "time": "SOD", "total_field": "F"}
 ISO = {"time": "T", "total_field": "F"}
 
 
-@pytest.mark.parametrize("text, columns, fmt, expected", [
-    ("DATE,SOD,F\n2024-01-01,10,1\n1500-01-01,10,1\n", DATE_SECONDS, "date_seconds", ["'1500-01-01 10'", "line 3"]),
-    ("DATE,SOD,F\n2262-04-11,86000,2\n", DATE_SECONDS, "date_seconds", ["line 2"]),
-    ("DATE,SOD,F\n2024-01-01,1e30,2\n", DATE_SECONDS, "date_seconds", ["line 2"]),
-    ("DATE,SOD,F\n2024-01-01,1e6,2\n", DATE_SECONDS, "decimal_hours", ["line 2"]),
-    ("T,F\n2024-01-01T00:00:00,1\n+10000-01-01T00:00:00,1\n", ISO, "iso", ["line 3"]),
-    ("T,F\n2262-04-11T23:59:59,2\n", ISO, "iso", ["line 2"]),
-    ("T,F\n1600-01-01T00:00:00Z,2\n", ISO, "iso", ["line 2"]),
-])
+@pytest.mark.parametrize(
+    "text, columns, fmt, expected",
+    [
+        (
+            "DATE,SOD,F\n2024-01-01,10,1\n1500-01-01,10,1\n",
+            DATE_SECONDS,
+            "date_seconds",
+            ["'1500-01-01 10'", "line 3"],
+        ),
+        ("DATE,SOD,F\n2262-04-11,86000,2\n", DATE_SECONDS, "date_seconds", ["line 2"]),
+        ("DATE,SOD,F\n2024-01-01,1e30,2\n", DATE_SECONDS, "date_seconds", ["line 2"]),
+        ("DATE,SOD,F\n2024-01-01,1e6,2\n", DATE_SECONDS, "decimal_hours", ["line 2"]),
+        ("T,F\n2024-01-01T00:00:00,1\n+10000-01-01T00:00:00,1\n", ISO, "iso", ["line 3"]),
+        ("T,F\n2262-04-11T23:59:59,2\n", ISO, "iso", ["line 2"]),
+        ("T,F\n1600-01-01T00:00:00Z,2\n", ISO, "iso", ["line 2"]),
+    ],
+)
 def test_out_of_range_times_name_the_line(tmp_path, text, columns, fmt, expected):
     path = tmp_path / "t.csv"
     path.write_text(text)

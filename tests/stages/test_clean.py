@@ -17,8 +17,9 @@ def _ctx(tmp_path, table, kind="magnetic", clean=None):
     data = {"survey": {"name": "t", "kind": kind}}
     if clean:
         data["clean"] = clean
-    return StageContext(config=parse_config(data), survey=Survey(tmp_path), table=table,
-                        state={}, grids={}, spec={})
+    return StageContext(
+        config=parse_config(data), survey=Survey(tmp_path), table=table, state={}, grids={}, spec={}
+    )
 
 
 def _coarse_survey(spacing=50.0, n_lines=10, seed=0):
@@ -33,10 +34,20 @@ def _coarse_survey(spacing=50.0, n_lines=10, seed=0):
         for _ in range(8):
             x0, z, amp = rng.uniform(0, 20_000), rng.uniform(150, 450), rng.uniform(50, 800)
             v += amp * z**3 / 2 * (2 * z**2 - (x - x0) ** 2) / ((x - x0) ** 2 + z**2) ** 2.5
-        frames.append(pd.DataFrame({
-            "line": f"L{k:02d}", "line_type": "traverse", "distance": x, "easting": x,
-            "northing": 500.0 * k, "height": 100.0, "total_field": 50_000.0 + v,
-            "time": t0 + np.timedelta64(3600 * k, "s") + (x / 50.0 * 1e9).astype("timedelta64[ns]")}))
+        frames.append(
+            pd.DataFrame(
+                {
+                    "line": f"L{k:02d}",
+                    "line_type": "traverse",
+                    "distance": x,
+                    "easting": x,
+                    "northing": 500.0 * k,
+                    "height": 100.0,
+                    "total_field": 50_000.0 + v,
+                    "time": t0 + np.timedelta64(3600 * k, "s") + (x / 50.0 * 1e9).astype("timedelta64[ns]"),
+                }
+            )
+        )
     return pd.concat(frames, ignore_index=True)
 
 

@@ -11,8 +11,7 @@ from potfield import pipeline
 from potfield.config import parse_config
 from potfield.errors import StageError
 from potfield.kinds import KIND_ORDER
-from potfield.stages.base import (Contract, Stage, StageContext, StageOutput, main_grid_names,
-                                  value_column)
+from potfield.stages.base import Contract, Stage, StageContext, StageOutput, main_grid_names, value_column
 
 
 def _stage(contract: Contract) -> Stage:
@@ -31,8 +30,10 @@ def test_undeclared_dropped_or_missing_columns_are_internal_bugs():
     with pytest.raises(pipeline.ContractError, match="did not add"):
         pipeline._check_provides(stage, "magnetic", before, StageOutput(table=before.copy()))
     # a skipped step may leave out what it provides, but still declares what it adds
-    assert pipeline._check_provides(stage, "magnetic", before,
-                                    StageOutput(table=before.copy(), skipped="why")) == []
+    assert (
+        pipeline._check_provides(stage, "magnetic", before, StageOutput(table=before.copy(), skipped="why"))
+        == []
+    )
     with pytest.raises(pipeline.ContractError, match="grid"):
         pipeline._check_provides(stage, "magnetic", before, StageOutput(grids={"g": None}))
 
@@ -68,12 +69,18 @@ def test_value_column_is_chosen_in_one_place():
     assert value_column(table, "magnetic") == "anomaly_levelled"
     assert value_column(table, "magnetic", levelled=False) == "anomaly"
     # the latest earlier record wins (the grid stage's micro-levelled column)
-    state = {"reference": {"value_column": "anomaly"},
-             "level": {"value_column": "anomaly_levelled"},
-             "grid": {"value_column": "anomaly_levelled_micro"}}
+    state = {
+        "reference": {"value_column": "anomaly"},
+        "level": {"value_column": "anomaly_levelled"},
+        "grid": {"value_column": "anomaly_levelled_micro"},
+    }
     assert value_column(table, "magnetic", state) == "anomaly_levelled_micro"
-    assert value_column(table, "magnetic", {"reference": state["reference"],
-                                            "level": state["level"]}, levelled=False) == "anomaly"
+    assert (
+        value_column(
+            table, "magnetic", {"reference": state["reference"], "level": state["level"]}, levelled=False
+        )
+        == "anomaly"
+    )
     gravity = pd.DataFrame(columns=["bouguer_anomaly", "free_air_anomaly"])
     assert value_column(gravity, "gravity") == "bouguer_anomaly"
     assert value_column(pd.DataFrame(columns=["total_field"]), "magnetic") is None
@@ -93,8 +100,15 @@ def _ctx(tmp_path, kind, table, **sections):
 
 def test_level_without_ties_says_it_skipped(tmp_path):
     level = pipeline.load_stage("level")
-    table = pd.DataFrame({"easting": np.arange(5.0), "northing": np.zeros(5), "line": "1",
-                          "line_type": "traverse", "anomaly": np.arange(5.0)})
+    table = pd.DataFrame(
+        {
+            "easting": np.arange(5.0),
+            "northing": np.zeros(5),
+            "line": "1",
+            "line_type": "traverse",
+            "anomaly": np.arange(5.0),
+        }
+    )
     out = level.run(_ctx(tmp_path, "magnetic", table))
     assert out.skipped and "no tie lines" in out.skipped
     assert np.array_equal(out.table["anomaly_levelled"], table["anomaly"])

@@ -40,8 +40,9 @@ def _ctx(tmp_path, kind="magnetic", grids=None, state=None, derive=None):
     data = {"survey": {"name": "t", "kind": kind}}
     if derive:
         data["derive"] = derive
-    return StageContext(config=parse_config(data), survey=Survey(tmp_path), table=None,
-                        state=state or {}, grids=grids or {})
+    return StageContext(
+        config=parse_config(data), survey=Survey(tmp_path), table=None, state=state or {}, grids=grids or {}
+    )
 
 
 def _mask(values):
@@ -53,15 +54,25 @@ def _mask(values):
 
 def test_magnetic_products_masked_like_input_and_rtp_matches_pole(tmp_path):
     inc, dec = 55.0, -8.0
-    grid = make_grid(E, N, _mask(_tfa(inc, dec)), name="anomaly", units="nT",
-                     long_name="total-field anomaly")
-    ctx = _ctx(tmp_path, grids={"anomaly": grid},
-               state={"reference": {"inclination": inc, "declination": dec}})
+    grid = make_grid(E, N, _mask(_tfa(inc, dec)), name="anomaly", units="nT", long_name="total-field anomaly")
+    ctx = _ctx(
+        tmp_path, grids={"anomaly": grid}, state={"reference": {"inclination": inc, "declination": dec}}
+    )
     out = STAGE.run(ctx)
-    expected = {f"anomaly_{p}" for p in ("reduced_to_pole", "vertical_derivative",
-                                         "second_vertical_derivative", "x_derivative", "y_derivative",
-                                         "total_horizontal_gradient", "analytic_signal", "tilt_angle",
-                                         "upward_500m")}
+    expected = {
+        f"anomaly_{p}"
+        for p in (
+            "reduced_to_pole",
+            "vertical_derivative",
+            "second_vertical_derivative",
+            "x_derivative",
+            "y_derivative",
+            "total_horizontal_gradient",
+            "analytic_signal",
+            "tilt_angle",
+            "upward_500m",
+        )
+    }
     assert set(out.grids) == expected
     assert out.state["products"]["reduced_to_pole"] == "anomaly_reduced_to_pole"
     for name, result in out.grids.items():
@@ -89,9 +100,12 @@ def test_magnetic_products_masked_like_input_and_rtp_matches_pole(tmp_path):
 
 def test_low_inclination_uses_the_layer_and_says_so(tmp_path):
     grid = make_grid(E, N, _mask(_tfa(12.0, 3.0)), name="anomaly", units="nT", long_name="tfa")
-    ctx = _ctx(tmp_path, grids={"anomaly": grid},
-               state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["reduced_to_pole"]})
+    ctx = _ctx(
+        tmp_path,
+        grids={"anomaly": grid},
+        state={"reference": {"inclination": 12.0, "declination": 3.0}},
+        derive={"products": ["reduced_to_pole"]},
+    )
     out = STAGE.run(ctx)
     rtp = out.grids["anomaly_reduced_to_pole"]
     assert out.metrics["rtp_method"] == "sources" == rtp.attrs["rtp_method"] == out.state["rtp_method"]
@@ -103,21 +117,29 @@ def test_low_inclination_uses_the_layer_and_says_so(tmp_path):
     pole = _tfa(90.0, 0.0)[INNER]
 
     def rel(values):
-        err = (values[INNER] - pole)
+        err = values[INNER] - pole
         return np.sqrt(np.nanmean(err**2)) / np.sqrt(np.mean(pole**2))
 
-    pseudo = STAGE.run(_ctx(tmp_path, grids={"anomaly": grid},
-                            state={"reference": {"inclination": 12.0, "declination": 3.0}},
-                            derive={"products": ["reduced_to_pole"], "rtp": "pseudo"}))
+    pseudo = STAGE.run(
+        _ctx(
+            tmp_path,
+            grids={"anomaly": grid},
+            state={"reference": {"inclination": 12.0, "declination": 3.0}},
+            derive={"products": ["reduced_to_pole"], "rtp": "pseudo"},
+        )
+    )
     assert rel(rtp.values) <= 0.2
     assert rel(rtp.values) < 0.5 * rel(pseudo.grids["anomaly_reduced_to_pole"].values)
 
 
 def test_low_inclination_pseudo_on_request(tmp_path):
     grid = make_grid(E, N, _tfa(12.0, 3.0), name="anomaly", units="nT", long_name="tfa")
-    ctx = _ctx(tmp_path, grids={"anomaly": grid},
-               state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["reduced_to_pole"], "rtp": "pseudo", "pseudo_inclination_deg": 40.0})
+    ctx = _ctx(
+        tmp_path,
+        grids={"anomaly": grid},
+        state={"reference": {"inclination": 12.0, "declination": 3.0}},
+        derive={"products": ["reduced_to_pole"], "rtp": "pseudo", "pseudo_inclination_deg": 40.0},
+    )
     out = STAGE.run(ctx)
     rtp = out.grids["anomaly_reduced_to_pole"]
     assert out.metrics["rtp_method"] == "pseudo" == rtp.attrs["rtp_method"]
@@ -131,9 +153,12 @@ def test_low_inclination_pseudo_on_request(tmp_path):
 
 def test_forced_plain_at_low_inclination(tmp_path):
     grid = make_grid(E, N, _tfa(12.0, 3.0), name="anomaly", units="nT", long_name="tfa")
-    ctx = _ctx(tmp_path, grids={"anomaly": grid},
-               state={"reference": {"inclination": 12.0, "declination": 3.0}},
-               derive={"products": ["reduced_to_pole"], "rtp": "plain"})
+    ctx = _ctx(
+        tmp_path,
+        grids={"anomaly": grid},
+        state={"reference": {"inclination": 12.0, "declination": 3.0}},
+        derive={"products": ["reduced_to_pole"], "rtp": "plain"},
+    )
     out = STAGE.run(ctx)
     assert out.metrics["rtp_method"] == "plain"
     assert any("stripes" in w for w in out.warnings)  # 1/sin^2 I gain (Blakely 1995 ch. 12)
@@ -141,9 +166,15 @@ def test_forced_plain_at_low_inclination(tmp_path):
 
 def test_gravity_skips_rtp_and_uses_bouguer_grid(tmp_path):
     grid = make_grid(E, N, _point_gz(), name="bouguer_anomaly", units="mGal", long_name="Bouguer")
-    ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
-               derive={"products": ["reduced_to_pole", "vertical_derivative", "upward_continuation"],
-                       "upward_m": 300.0})
+    ctx = _ctx(
+        tmp_path,
+        kind="gravity",
+        grids={"bouguer_anomaly": grid},
+        derive={
+            "products": ["reduced_to_pole", "vertical_derivative", "upward_continuation"],
+            "upward_m": 300.0,
+        },
+    )
     out = STAGE.run(ctx)
     assert set(out.grids) == {"bouguer_anomaly_vertical_derivative", "bouguer_anomaly_upward_300m"}
     assert any("rtp skipped" in note for note in out.notes)
@@ -177,13 +208,16 @@ def test_equivalent_source_model_fills_and_continues_upward(tmp_path):
     n = rng.uniform(-3500, 3500, 600)
     z = 700.0
     data = G * 4e10 * z / np.sqrt(e**2 + n**2 + z**2) ** 3 * 1e5
-    model = fit_equivalent_sources(e, n, np.zeros_like(e), data, depth=500.0, damping=1e-6,
-                                   method="dense")
+    model = fit_equivalent_sources(e, n, np.zeros_like(e), data, depth=500.0, damping=1e-6, method="dense")
     path = save_model(tmp_path / "out" / "cache" / "model.npz", model)
     grid = make_grid(E, N, _mask(_point_gz()), name="bouguer_anomaly", units="mGal", long_name="B")
-    ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
-               state={"grid": {"model_path": str(path.relative_to(tmp_path)), "height": 0.0}},
-               derive={"products": ["upward_continuation", "vertical_derivative"], "upward_m": 400.0})
+    ctx = _ctx(
+        tmp_path,
+        kind="gravity",
+        grids={"bouguer_anomaly": grid},
+        state={"grid": {"model_path": str(path.relative_to(tmp_path)), "height": 0.0}},
+        derive={"products": ["upward_continuation", "vertical_derivative"], "upward_m": 400.0},
+    )
     out = STAGE.run(ctx)
     assert out.metrics["fill"] == "equivalent-source prediction"
     exact = out.grids["bouguer_anomaly_upward_400m_by_model"]
@@ -198,9 +232,13 @@ def test_equivalent_source_model_fills_and_continues_upward(tmp_path):
 
 def test_missing_model_file_falls_back_with_warning(tmp_path):
     grid = make_grid(E, N, _mask(_point_gz()), name="bouguer_anomaly", units="mGal", long_name="B")
-    ctx = _ctx(tmp_path, kind="gravity", grids={"bouguer_anomaly": grid},
-               state={"grid": {"model_path": "out/cache/none.npz", "height": 0.0}},
-               derive={"products": ["vertical_derivative"]})
+    ctx = _ctx(
+        tmp_path,
+        kind="gravity",
+        grids={"bouguer_anomaly": grid},
+        state={"grid": {"model_path": "out/cache/none.npz", "height": 0.0}},
+        derive={"products": ["vertical_derivative"]},
+    )
     out = STAGE.run(ctx)
     assert out.metrics["fill"] == "smooth fill"
     assert any("missing" in w for w in out.warnings)
@@ -213,14 +251,21 @@ def test_rtp_uses_the_grid_declination(tmp_path):
     inc, dec, lon, lat = 60.0, 4.0, 17.0, 60.0  # UTM 33N, central meridian 15 E
     convergence = 2.0 * np.sin(np.radians(lat))  # 1.732 deg
     grid = make_grid(E, N, _tfa(inc, dec - convergence), name="anomaly", units="nT", long_name="tfa")
-    ctx = _ctx(tmp_path, grids={"anomaly": grid},
-               state={"reference": {"inclination": inc, "declination": dec},
-                      "ingest": {"crs": "EPSG:32633", "centroid": [lon, lat]}},
-               derive={"products": ["reduced_to_pole"]})
+    ctx = _ctx(
+        tmp_path,
+        grids={"anomaly": grid},
+        state={
+            "reference": {"inclination": inc, "declination": dec},
+            "ingest": {"crs": "EPSG:32633", "centroid": [lon, lat]},
+        },
+        derive={"products": ["reduced_to_pole"]},
+    )
     out = STAGE.run(ctx)
     assert out.metrics["rtp_declination_deg"] == dec
     assert out.metrics["rtp_grid_declination_deg"] == pytest.approx(dec - convergence, abs=0.01)
-    assert out.grids["anomaly_reduced_to_pole"].attrs["declination"] == pytest.approx(dec - convergence, abs=0.01)
+    assert out.grids["anomaly_reduced_to_pole"].attrs["declination"] == pytest.approx(
+        dec - convergence, abs=0.01
+    )
     pole = _tfa(90.0, 0.0)
     err = np.abs(out.grids["anomaly_reduced_to_pole"].values - pole)[INNER]
     assert err.max() < 0.02 * np.abs(pole).max()  # harmonica dipole at the pole
@@ -231,8 +276,11 @@ def test_old_product_names_are_accepted_with_a_warning():
     from potfield.config import PRODUCT_ALIASES, RenamedKeyWarning, parse_config
 
     with pytest.warns(RenamedKeyWarning, match="'dz1, upward' is an old name") as caught:
-        config = parse_config({"survey": {"kind": "magnetic"},
-                               "derive": {"products": ["dz1", "upward", "tilt_angle"]}})
+        config = parse_config(
+            {"survey": {"kind": "magnetic"}, "derive": {"products": ["dz1", "upward", "tilt_angle"]}}
+        )
     assert len(caught) == 1
     assert config.derive.products == ["vertical_derivative", "upward_continuation", "tilt_angle"]
-    assert set(PRODUCT_ALIASES.values()) <= set(type(config.derive).model_fields["products"].default_factory())
+    assert set(PRODUCT_ALIASES.values()) <= set(
+        type(config.derive).model_fields["products"].default_factory()
+    )

@@ -25,8 +25,11 @@ def external(t):
 
 def pulsations(t):
     """Short-period variations (nT), for the time-offset and chord checks."""
-    return 0.6 * np.sin(2 * np.pi * t / 13.0) + 0.4 * np.sin(2 * np.pi * t / 29.0 + 1.0) \
+    return (
+        0.6 * np.sin(2 * np.pi * t / 13.0)
+        + 0.4 * np.sin(2 * np.pi * t / 29.0 + 1.0)
         + 0.3 * np.sin(2 * np.pi * t / 7.3 + 2.0)
+    )
 
 
 def _stamp(seconds):
@@ -46,33 +49,53 @@ def readings(extra=lambda t: 0.0 * t, static=False):
             lat = LAT0 + np.linspace(0.0, 0.05, t.size)
             lon = np.full(t.size, LON0 + 0.01 * k)
         geology = 40.0 * np.sin(lat * 300.0) + 10.0 * np.cos(lon * 500.0)
-        frames.append(pd.DataFrame({
-            "time": _stamp(t), "longitude": lon, "latitude": lat, "height": 100.0,
-            "easting": 0.0, "northing": 0.0, "line": str(1000 + 10 * k), "line_type": "traverse",
-            "distance": 0.0, "source_file": "lines.csv", "source_row": np.arange(t.size) + 2,
-            "total_field": 50_000.0 + geology + external(t) + extra(t),
-            "geology": geology,
-        }))
+        frames.append(
+            pd.DataFrame(
+                {
+                    "time": _stamp(t),
+                    "longitude": lon,
+                    "latitude": lat,
+                    "height": 100.0,
+                    "easting": 0.0,
+                    "northing": 0.0,
+                    "line": str(1000 + 10 * k),
+                    "line_type": "traverse",
+                    "distance": 0.0,
+                    "source_file": "lines.csv",
+                    "source_row": np.arange(t.size) + 2,
+                    "total_field": 50_000.0 + geology + external(t) + extra(t),
+                    "geology": geology,
+                }
+            )
+        )
     return pd.concat(frames, ignore_index=True)
 
 
 def context(tmp_path, diurnal: dict, table=None, spec=None):
     (tmp_path / "raw").mkdir(exist_ok=True)
     config = parse_config({"survey": {"kind": "magnetic"}, "diurnal": diurnal})
-    return StageContext(config=config, survey=Survey(tmp_path),
-                        table=readings() if table is None else table, spec=spec or {})
+    return StageContext(
+        config=config, survey=Survey(tmp_path), table=readings() if table is None else table, spec=spec or {}
+    )
 
 
 def write_csv_base(tmp_path, seconds, values, name="base.csv"):
-    frame = pd.DataFrame({"UTC": pd.Series(_stamp(seconds)).dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
-                          "MAG": values})
+    frame = pd.DataFrame(
+        {"UTC": pd.Series(_stamp(seconds)).dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ"), "MAG": values}
+    )
     frame.to_csv(tmp_path / "raw" / name, index=False)
     return f"raw/{name}"
 
 
 def csv_base(name, file, **extra):
-    return {"name": name, "file": file, "columns": {"time": "UTC", "total_field": "MAG"},
-            "longitude": LON0, "latitude": LAT0, **extra}
+    return {
+        "name": name,
+        "file": file,
+        "columns": {"time": "UTC", "total_field": "MAG"},
+        "longitude": LON0,
+        "latitude": LAT0,
+        **extra,
+    }
 
 
 def test_no_base_passes_through(tmp_path):
@@ -87,16 +110,16 @@ def test_delimited_base_recovers_the_analytic_variation(tmp_path):
     (tmp_path / "raw").mkdir()
     tb = np.arange(0.0, 3000.0)
     base = 48_500.0 + external(tb)
-    keep = (tb < 1500) | (tb > 1530)               # a 31 s gap in the base record
+    keep = (tb < 1500) | (tb > 1530)  # a 31 s gap in the base record
     base_spiked = base.copy()
-    base_spiked[200] += 15.0                       # a spike, removed by the cleaning
+    base_spiked[200] += 15.0  # a spike, removed by the cleaning
     file = write_csv_base(tmp_path, tb[keep], base_spiked[keep])
     ctx = context(tmp_path, {"bases": [csv_base("B1", file)]})
     before = ctx.table.copy()
     out = STAGE.run(ctx)
     table = out.table
-    pd.testing.assert_frame_equal(ctx.table, before)           # input table untouched
-    assert len(table) == len(before) and list(table.columns[:len(before.columns)]) == list(before.columns)
+    pd.testing.assert_frame_equal(ctx.table, before)  # input table untouched
+    assert len(table) == len(before) and list(table.columns[: len(before.columns)]) == list(before.columns)
     assert table["diurnal"].dtype == float and table["flag_base_gap"].dtype == bool
     t = (table["time"].to_numpy() - T0).astype("int64") / 1e9
     gap = (t > 1499) & (t < 1531)
@@ -124,31 +147,57 @@ def test_delimited_base_recovers_the_analytic_variation(tmp_path):
 def test_iaga_base_auto_with_clock_offset(tmp_path):
     (tmp_path / "raw").mkdir()
     tb = np.arange(0.0, 3000.0)
-    frame = pd.DataFrame({"time": _stamp(tb - 7200.0),        # logger kept on UTC-2 h
-                          "mag_north": 25_000.0, "mag_east": 500.0, "mag_down": -45_000.0,
-                          "total_field": 51_000.0 + external(tb)})
-    write_iaga2002(tmp_path / "raw" / "bas.sec", frame,
-                   {"iaga_code": "BAS", "reported": "XYZF", "latitude": LAT0, "longitude": LON0 + 360.0 * 0,
-                    "elevation": 10.0})
-    ctx = context(tmp_path, {"bases": [{"name": "obs", "file": "raw/bas.sec", "time_offset_s": 7200.0}],
-                             "datum": "value", "datum_value": 51_000.0})
+    frame = pd.DataFrame(
+        {
+            "time": _stamp(tb - 7200.0),  # logger kept on UTC-2 h
+            "mag_north": 25_000.0,
+            "mag_east": 500.0,
+            "mag_down": -45_000.0,
+            "total_field": 51_000.0 + external(tb),
+        }
+    )
+    write_iaga2002(
+        tmp_path / "raw" / "bas.sec",
+        frame,
+        {
+            "iaga_code": "BAS",
+            "reported": "XYZF",
+            "latitude": LAT0,
+            "longitude": LON0 + 360.0 * 0,
+            "elevation": 10.0,
+        },
+    )
+    ctx = context(
+        tmp_path,
+        {
+            "bases": [{"name": "obs", "file": "raw/bas.sec", "time_offset_s": 7200.0}],
+            "datum": "value",
+            "datum_value": 51_000.0,
+        },
+    )
     out = STAGE.run(ctx)
     t = (out.table["time"].to_numpy() - T0).astype("int64") / 1e9
     # datum given: diurnal = base - 51000 = the external variation itself (to %10.2f rounding)
     np.testing.assert_allclose(out.table["diurnal"], external(t), atol=0.006)
-    assert out.state["bases"][0]["longitude"] == pytest.approx(LON0)   # from the IAGA header
+    assert out.state["bases"][0]["longitude"] == pytest.approx(LON0)  # from the IAGA header
     assert not out.table["flag_base_gap"].any()
 
 
 def test_date_seconds_base_and_datum_time(tmp_path):
     (tmp_path / "raw").mkdir()
     tb = np.arange(0.0, 3000.0)
-    sod = 3600.0 + tb                                  # T0 is 01:00 UTC
-    pd.DataFrame({"DATE": "2024-05-01", "SOD": sod, "MAG_UT": (49_000.0 + external(tb)) / 1000.0}) \
-        .to_csv(tmp_path / "raw" / "base.txt", sep=" ", index=False)
-    base = {"name": "B", "file": "raw/base.txt", "format": "delimited",
-            "columns": {"time": "SOD", "date": "DATE", "total_field": "MAG_UT"},
-            "units": {"total_field": "uT"}, "time": {"format": "date_seconds"}}
+    sod = 3600.0 + tb  # T0 is 01:00 UTC
+    pd.DataFrame({"DATE": "2024-05-01", "SOD": sod, "MAG_UT": (49_000.0 + external(tb)) / 1000.0}).to_csv(
+        tmp_path / "raw" / "base.txt", sep=" ", index=False
+    )
+    base = {
+        "name": "B",
+        "file": "raw/base.txt",
+        "format": "delimited",
+        "columns": {"time": "SOD", "date": "DATE", "total_field": "MAG_UT"},
+        "units": {"total_field": "uT"},
+        "time": {"format": "date_seconds"},
+    }
     ctx = context(tmp_path, {"bases": [base], "datum": "time", "datum_time": "2024-05-01T01:20:00Z"})
     out = STAGE.run(ctx)
     t = (out.table["time"].to_numpy() - T0).astype("int64") / 1e9
@@ -166,7 +215,7 @@ def test_no_overlap_is_a_clear_error(tmp_path):
         STAGE.run(ctx)
     text = str(err.value)
     assert "base.csv" in text and "does not overlap" in text and "\n" not in text
-    assert "2024-05-01T06:33:20 to 2024-05-01T06:49:59" in text       # base span (hand: T0 + 20000 s)
+    assert "2024-05-01T06:33:20 to 2024-05-01T06:49:59" in text  # base span (hand: T0 + 20000 s)
     # survey span (hand: 600 s after T0 to 600 + 3 x 420 + 299.9 s)
     assert "2024-05-01T01:10:00 to 2024-05-01T01:35:59" in text
 
@@ -192,7 +241,7 @@ def test_two_bases_distance_weights_and_station_difference(tmp_path):
     north = write_csv_base(tmp_path, tb, 48_300.0 + 1.1 * external(tb), "north.csv")
     bases = [csv_base("S", south), {**csv_base("N", north), "latitude": LAT0 + 0.05}]
     table = readings()
-    table = table[table["line"] == "1000"].reset_index(drop=True)     # on the meridian joining them
+    table = table[table["line"] == "1000"].reset_index(drop=True)  # on the meridian joining them
     ctx = context(tmp_path, {"bases": bases, "combine": "distance", "distance_power": 1.0}, table=table)
     out = STAGE.run(ctx)
     t = (out.table["time"].to_numpy() - T0).astype("int64") / 1e9
@@ -217,8 +266,12 @@ def test_time_offset_and_chord_checks(tmp_path):
     base = 48_000.0 + external(tb + lag) + pulsations(tb + lag)
     file = write_csv_base(tmp_path, tb, base)
     table = readings(extra=pulsations, static=True)
-    ctx = context(tmp_path, {"bases": [csv_base("B", file)], "offset_radius_m": 300.0},
-                  table=table, spec={"diurnal_chord_15s_nT": (0.5, "test spec")})
+    ctx = context(
+        tmp_path,
+        {"bases": [csv_base("B", file)], "offset_radius_m": 300.0},
+        table=table,
+        spec={"diurnal_chord_15s_nT": (0.5, "test spec")},
+    )
     out = STAGE.run(ctx)
     offset = next(c for c in out.checks if c.name == "diurnal time offset (B)")
     # survey stamp t sees base stamp t - 4: lag +4 s (survey ahead), beyond the 1 s tolerance
@@ -228,8 +281,9 @@ def test_time_offset_and_chord_checks(tmp_path):
     chord15 = next(c for c in out.checks if c.name == "diurnal chord 15 s (B)")
     assert not chord15.passed and chord15.source == "test spec"
     # with the clock fixed the offset is gone
-    ctx = context(tmp_path, {"bases": [csv_base("B", file, time_offset_s=lag)],
-                             "offset_radius_m": 300.0}, table=table)
+    ctx = context(
+        tmp_path, {"bases": [csv_base("B", file, time_offset_s=lag)], "offset_radius_m": 300.0}, table=table
+    )
     out = STAGE.run(ctx)
     assert abs(out.metrics["base_B"]["time_offset_s"]) < 0.3
     assert next(c for c in out.checks if c.name == "diurnal time offset (B)").passed
@@ -268,6 +322,6 @@ def test_base_relocation_levels_each_session_and_warns(tmp_path):
     # the constants differ by the sessions' median external levels over the survey, not by the
     # 40 nT jump
     span = (tb >= t.min()) & (tb <= t.max())
-    expected = (np.median(external(tb[span & (tb >= 1380)])) - np.median(external(tb[span & (tb < 1380)])))
+    expected = np.median(external(tb[span & (tb >= 1380)])) - np.median(external(tb[span & (tb < 1380)]))
     assert corrected[second].mean() - corrected[first].mean() == pytest.approx(expected, abs=0.05)
     assert len(out.state["bases"][0]["session_datums_nT"]) == 2

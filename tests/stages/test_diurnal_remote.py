@@ -16,17 +16,24 @@ from potfield.survey import Survey
 
 
 def _context(tmp_path, table, reference="coefficients.csv"):
-    config = parse_config({"survey": {"kind": "magnetic"},
-                           "diurnal": {"remote_reference": reference}})
+    config = parse_config({"survey": {"kind": "magnetic"}, "diurnal": {"remote_reference": reference}})
     return StageContext(config=config, survey=Survey(tmp_path), table=table)
 
 
 def _survey_table():
     t = np.datetime64("2025-05-10T06:00", "ns") + np.arange(0, 3600, 10).astype("timedelta64[s]")
     n = t.size
-    return pd.DataFrame({"time": t, "longitude": np.full(n, 145.6), "latitude": np.full(n, -32.4),
-                         "height": np.full(n, 300.0), "total_field": np.full(n, 57000.0),
-                         "line": "1010", "line_type": "traverse"})
+    return pd.DataFrame(
+        {
+            "time": t,
+            "longitude": np.full(n, 145.6),
+            "latitude": np.full(n, -32.4),
+            "height": np.full(n, 300.0),
+            "total_field": np.full(n, 57000.0),
+            "line": "1010",
+            "line_type": "traverse",
+        }
+    )
 
 
 def test_uniform_external_field_projected_on_the_main_field(tmp_path):
@@ -35,8 +42,9 @@ def test_uniform_external_field_projected_on_the_main_field(tmp_path):
     # (geocentric north and down). Its total-field effect is its projection on F (Blakely 1995).
     minutes = np.datetime64("2025-05-10T05:00", "ns") + np.arange(180).astype("timedelta64[m]")
     q10 = 20.0 + 10.0 * np.sin(np.arange(180) / 30.0)
-    coef = pd.DataFrame({"time": pd.to_datetime(minutes).strftime("%Y-%m-%dT%H:%M:%SZ"), "q10": q10,
-                         "q11": 0.0, "s11": 0.0})
+    coef = pd.DataFrame(
+        {"time": pd.to_datetime(minutes).strftime("%Y-%m-%dT%H:%M:%SZ"), "q10": q10, "q11": 0.0, "s11": 0.0}
+    )
     coef.to_csv(tmp_path / "coefficients.csv", index=False)
     table = _survey_table()
     out = diurnal.run(_context(tmp_path, table))

@@ -25,10 +25,21 @@ T0 = np.datetime64("2024-03-05T22:00:00", "ns")
 TRUE_G = {"B": 980412.345, "S1": 980420.111, "S2": 980405.802, "S3": 980431.990, "S4": 980398.456}
 # Two loops (one per day), base B at start, middle and end of each; every station twice.
 PLAN = [
-    ("L1", "B", 0.00), ("L1", "S1", 0.60), ("L1", "S2", 1.30), ("L1", "B", 2.00),
-    ("L1", "S3", 2.70), ("L1", "S1", 3.40), ("L1", "S2", 4.00), ("L1", "B", 4.60),
-    ("L2", "B", 24.00), ("L2", "S3", 24.50), ("L2", "S4", 25.20), ("L2", "B", 25.90),
-    ("L2", "S4", 26.60), ("L2", "S3", 27.20), ("L2", "B", 27.80),
+    ("L1", "B", 0.00),
+    ("L1", "S1", 0.60),
+    ("L1", "S2", 1.30),
+    ("L1", "B", 2.00),
+    ("L1", "S3", 2.70),
+    ("L1", "S1", 3.40),
+    ("L1", "S2", 4.00),
+    ("L1", "B", 4.60),
+    ("L2", "B", 24.00),
+    ("L2", "S3", 24.50),
+    ("L2", "S4", 25.20),
+    ("L2", "B", 25.90),
+    ("L2", "S4", 26.60),
+    ("L2", "S3", 27.20),
+    ("L2", "B", 27.80),
 ]
 LEVEL = {"L1": 3000.0, "L2": 3004.25}  # reading level of each loop (mGal)
 RATE = {"L1": 0.020, "L2": -0.015}  # mGal/h
@@ -46,9 +57,12 @@ def tide_seen_by_meter(time, height):
     tidegravity returns Longman's upward tidal acceleration times 1 + h2 - 1.5 k2 (= 1.1575 with
     its Love numbers): the correction to ADD (Longman 1959); the meter sees its negative.
     """
-    _, _, g0 = tidegravity.solve_longman_tide(np.full(time.size, LAT), np.full(time.size, LON),
-                                              np.asarray(height, float),
-                                              np.array(pd.DatetimeIndex(time).to_pydatetime()))
+    _, _, g0 = tidegravity.solve_longman_tide(
+        np.full(time.size, LAT),
+        np.full(time.size, LON),
+        np.asarray(height, float),
+        np.array(pd.DatetimeIndex(time).to_pydatetime()),
+    )
     return -np.asarray(g0) * 1.16 / tidegravity.tidegravity.love
 
 
@@ -61,27 +75,34 @@ def make_table(rate=RATE, tare=TARE, tide=True, quadratic=0.0):
     dt = np.array([h - t0[lp] for lp, h in zip(loop, hours)])
     height = np.full(len(PLAN), 35.0)
     g = np.array([TRUE_G[s] for s in station])
-    reading = (g + np.array([LEVEL[lp] for lp in loop]) + np.array([rate[lp] for lp in loop]) * dt
-               + quadratic * dt**2 + tare * (hours > TARE_H)
-               - 0.3086 * INSTRUMENT_HEIGHT)  # sensor above the mark reads less (common practice)
+    reading = (
+        g
+        + np.array([LEVEL[lp] for lp in loop])
+        + np.array([rate[lp] for lp in loop]) * dt
+        + quadratic * dt**2
+        + tare * (hours > TARE_H)
+        - 0.3086 * INSTRUMENT_HEIGHT
+    )  # sensor above the mark reads less (common practice)
     if tide:
         reading = reading + tide_seen_by_meter(time, height)
-    return pd.DataFrame({
-        "time": time,
-        "longitude": np.full(len(PLAN), LON),
-        "latitude": np.full(len(PLAN), LAT),
-        "height": height,
-        "easting": np.zeros(len(PLAN)),
-        "northing": np.zeros(len(PLAN)),
-        "line": loop.copy(),
-        "line_type": "traverse",
-        "loop": loop.copy(),
-        "source_file": "raw/loops.csv",
-        "source_row": np.arange(2, len(PLAN) + 2),
-        "station": station,
-        "reading": reading,
-        "instrument_height": np.full(len(PLAN), INSTRUMENT_HEIGHT),
-    })
+    return pd.DataFrame(
+        {
+            "time": time,
+            "longitude": np.full(len(PLAN), LON),
+            "latitude": np.full(len(PLAN), LAT),
+            "height": height,
+            "easting": np.zeros(len(PLAN)),
+            "northing": np.zeros(len(PLAN)),
+            "line": loop.copy(),
+            "line_type": "traverse",
+            "loop": loop.copy(),
+            "source_file": "raw/loops.csv",
+            "source_row": np.arange(2, len(PLAN) + 2),
+            "station": station,
+            "reading": reading,
+            "instrument_height": np.full(len(PLAN), INSTRUMENT_HEIGHT),
+        }
+    )
 
 
 def context(tmp_path, table, units=None, **drift):
@@ -104,8 +125,9 @@ def test_network_recovers_drift_tare_and_tide(tmp_path):
     assert len(t) == len(table) and list(t.columns[: len(table.columns)]) == list(table.columns)
     pd.testing.assert_frame_equal(t[table.columns], table)  # input columns untouched
     # tide column = the correction added = tidegravity's value scaled to 1.16 (Longman 1959)
-    np.testing.assert_allclose(t["tide"], -tide_seen_by_meter(table["time"].to_numpy(), table["height"]),
-                               atol=5e-4)
+    np.testing.assert_allclose(
+        t["tide"], -tide_seen_by_meter(table["time"].to_numpy(), table["height"]), atol=5e-4
+    )
     assert np.ptp(t["tide"]) > 0.02  # the tide really was in the data
     # instrument height: +0.3086 mGal/m x 0.35 m (common practice)
     np.testing.assert_allclose(t["instrument_height_correction"], 0.3086 * 0.35, atol=1e-12)
@@ -121,8 +143,11 @@ def test_network_recovers_drift_tare_and_tide(tmp_path):
     # the tare cuts L2 into two segments tied through S3, S4 and B (Hinze et al. 2013)
     assert list(out.tables["segments"]["segment"]) == ["L1", "L2#1", "L2#2"]
     assert all(c.passed for c in out.checks), [c.as_row() for c in out.checks]
-    assert {c.name for c in out.checks} == {"gravity_drift_rate", "gravity_repeat_difference",
-                                            "gravity_loop_closure"}
+    assert {c.name for c in out.checks} == {
+        "gravity_drift_rate",
+        "gravity_repeat_difference",
+        "gravity_loop_closure",
+    }
     assert out.state["bases"] == {"B": TRUE_G["B"]}
 
 
@@ -175,8 +200,9 @@ def test_checks_fail_when_drift_too_large(tmp_path):
     assert not checks["gravity_drift_rate"].passed
     assert checks["gravity_drift_rate"].value == pytest.approx(0.20, abs=1e-6)
     # a strongly curved drift leaves repeat differences above 0.03 mGal (common practice)
-    out = run(context(tmp_path, make_table(tare=0.0, tide=False, quadratic=0.02), method="linear",
-                      tide=False))
+    out = run(
+        context(tmp_path, make_table(tare=0.0, tide=False, quadratic=0.02), method="linear", tide=False)
+    )
     checks = {c.name: c for c in out.checks}
     assert not checks["gravity_repeat_difference"].passed
     assert not checks["gravity_loop_closure"].passed
@@ -196,23 +222,30 @@ def test_flagged_reading_is_kept_but_not_fitted(tmp_path):
     assert len(out.table) == len(table)
     assert out.table.loc[5, "gravity"] == pytest.approx(TRUE_G["S1"] + 5.0, abs=1e-6)
     assert out.tables["stations"].set_index("station").loc["S1", "gravity"] == pytest.approx(
-        TRUE_G["S1"], abs=1e-6)
+        TRUE_G["S1"], abs=1e-6
+    )
 
 
 def test_counter_units_with_calibration_table(tmp_path):
-    (tmp_path / "cal.csv").write_text("counter,mgal,factor\n2000,2058.320,1.02935\n"
-                                      "2100,2161.255,1.02940\n2200,2264.195,1.02948\n")
+    (tmp_path / "cal.csv").write_text(
+        "counter,mgal,factor\n2000,2058.320,1.02935\n2100,2161.255,1.02940\n2200,2264.195,1.02948\n"
+    )
     table = make_table(tare=0.0, tide=False).iloc[:4].copy()
     table["reading"] = [2045.67, 2100.0, 2199.99, 2045.67]
-    out = run(context(tmp_path, table, units={"reading": "cu"}, method="linear", tide=False,
-                      calibration_file="cal.csv"))
+    out = run(
+        context(
+            tmp_path, table, units={"reading": "cu"}, method="linear", tide=False, calibration_file="cal.csv"
+        )
+    )
     # hand arithmetic (interval rule, common practice):
     # 2058.320 + 45.67 x 1.02935 = 2105.3304145; 2161.255 + 0 = 2161.255;
     # 2161.255 + 99.99 x 1.02940 = 2264.184706
-    np.testing.assert_allclose(out.table["reading_mgal"], [2105.3304145, 2161.255, 2264.184706,
-                                                           2105.3304145], atol=1e-9)
-    assert STAGE.inputs(context(tmp_path, table, calibration_file="cal.csv").config,
-                        Survey(tmp_path)) == [tmp_path.resolve() / "cal.csv"]
+    np.testing.assert_allclose(
+        out.table["reading_mgal"], [2105.3304145, 2161.255, 2264.184706, 2105.3304145], atol=1e-9
+    )
+    assert STAGE.inputs(context(tmp_path, table, calibration_file="cal.csv").config, Survey(tmp_path)) == [
+        tmp_path.resolve() / "cal.csv"
+    ]
     table.loc[2, "reading"] = 2300.0
     with pytest.raises(InputDataError, match=r"raw/loops.csv row 4.*calibration table"):
         run(context(tmp_path, table, units={"reading": "cu"}, tide=False, calibration_file="cal.csv"))
@@ -230,8 +263,14 @@ def test_configuration_errors_are_one_line(tmp_path):
         run(context(tmp_path, table, bases=[], tide=False))
     assert "\n" not in str(info.value)
     with pytest.raises(ConfigError, match=r"drift.bases\[1\].station.*'BX'"):
-        run(context(tmp_path, table, tide=False,
-                    bases=[{"station": "B", "gravity": 1.0}, {"station": "BX", "gravity": 2.0}]))
+        run(
+            context(
+                tmp_path,
+                table,
+                tide=False,
+                bases=[{"station": "B", "gravity": 1.0}, {"station": "BX", "gravity": 2.0}],
+            )
+        )
     with pytest.raises(ConfigError, match="drift.tares"):
         run(context(tmp_path, table, tide=False, tares=["yesterday"]))
     bad = table.copy()
@@ -258,8 +297,11 @@ def test_numeric_station_ids_and_flagged_out_of_table(tmp_path):
     table = make_table(tare=0.0, tide=False)
     ids = {"B": 100.0, "S1": 101.0, "S2": 102.0, "S3": 103.0, "S4": 104.0}
     table["station"] = table["station"].map(ids).astype(float)
-    out = run(context(tmp_path, table, method="network", tide=False,
-                      bases=[{"station": 100, "gravity": TRUE_G["B"]}]))
+    out = run(
+        context(
+            tmp_path, table, method="network", tide=False, bases=[{"station": 100, "gravity": TRUE_G["B"]}]
+        )
+    )
     st = out.tables["stations"].set_index("station")
     assert st.loc["103", "gravity"] == pytest.approx(TRUE_G["S3"], abs=1e-6)
     # a flagged reading outside the calibration table is left empty, not an error
@@ -268,11 +310,23 @@ def test_numeric_station_ids_and_flagged_out_of_table(tmp_path):
     table["reading"] -= 980000.0  # bring the readings into the 0..9000 counter range
     table["flag_spike"] = False
     table.loc[5, ["reading", "flag_spike"]] = [9500.0, True]
-    out = run(context(tmp_path, table, units={"reading": "cu"}, method="linear", tide=False,
-                      calibration_file="cal.csv", bases=[{"station": "B", "gravity": TRUE_G["B"] - 980000.0}]))
+    out = run(
+        context(
+            tmp_path,
+            table,
+            units={"reading": "cu"},
+            method="linear",
+            tide=False,
+            calibration_file="cal.csv",
+            bases=[{"station": "B", "gravity": TRUE_G["B"] - 980000.0}],
+        )
+    )
     assert np.isnan(out.table.loc[5, "gravity"]) and any("calibration" in w for w in out.warnings)
-    np.testing.assert_allclose(out.table["gravity"].drop(index=5),
-                               true_gravity(out.table)[np.arange(len(table)) != 5] - 980000.0, atol=1e-8)
+    np.testing.assert_allclose(
+        out.table["gravity"].drop(index=5),
+        true_gravity(out.table)[np.arange(len(table)) != 5] - 980000.0,
+        atol=1e-8,
+    )
 
 
 def test_stage_definition():

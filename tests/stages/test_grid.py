@@ -32,10 +32,18 @@ def make_table():
     rows = []
     for k, y in enumerate(np.arange(0.0, 2001.0, 200.0)):
         x = np.arange(0.0, 3000.0, 20.0)
-        rows.append(pd.DataFrame({
-            "line": f"L{k + 1:03d}", "line_type": "traverse",
-            "easting": x + rng.normal(0, 1, x.size), "northing": y + rng.normal(0, 4, x.size),
-            "height": 120.0 + rng.normal(0, 3, x.size), "distance": x}))
+        rows.append(
+            pd.DataFrame(
+                {
+                    "line": f"L{k + 1:03d}",
+                    "line_type": "traverse",
+                    "easting": x + rng.normal(0, 1, x.size),
+                    "northing": y + rng.normal(0, 4, x.size),
+                    "height": 120.0 + rng.normal(0, 3, x.size),
+                    "distance": x,
+                }
+            )
+        )
     table = pd.concat(rows, ignore_index=True)
     table["anomaly"] = tfa((table.easting, table.northing, table.height))
     table["flag_spike"] = False
@@ -47,14 +55,24 @@ def make_table():
 def context(tmp_path, **grid):
     config = parse_config({"survey": {"kind": "magnetic"}, "grid": grid})
     survey = Survey(tmp_path)
-    state = {"ingest": {"line_spacing_m": 200.0, "tie_spacing_m": None, "crs": "EPSG:32633",
-                        "centroid": [15.0, 45.0]}}
+    state = {
+        "ingest": {
+            "line_spacing_m": 200.0,
+            "tie_spacing_m": None,
+            "crs": "EPSG:32633",
+            "centroid": [15.0, 45.0],
+        }
+    }
     return StageContext(config=config, survey=survey, table=make_table(), state=state)
 
 
-@pytest.mark.parametrize("grid", [{"trial_depths": [2.5, 6.0], "trial_dampings": [1e-3, 1e-1],
-                                   "cv_folds": 3}, {"method": "fft", "trial_depths": [6.0],
-                                       "trial_dampings": [1e-2], "height": 300.0}])
+@pytest.mark.parametrize(
+    "grid",
+    [
+        {"trial_depths": [2.5, 6.0], "trial_dampings": [1e-3, 1e-1], "cv_folds": 3},
+        {"method": "fft", "trial_depths": [6.0], "trial_dampings": [1e-2], "height": 300.0},
+    ],
+)
 def test_grid_stage(tmp_path, grid):
     ctx = context(tmp_path, **grid)
     out = STAGE.run(ctx)
@@ -79,7 +97,7 @@ def test_grid_stage(tmp_path, grid):
     true = tfa((ee, nn, np.full(ee.shape, height)))
     error = anomaly.values[core] - true[core]
     assert np.isfinite(error).all()
-    assert np.sqrt(np.mean(error ** 2)) < 0.05 * true[core].std()
+    assert np.sqrt(np.mean(error**2)) < 0.05 * true[core].std()
     # Cells far from the lines are masked.
     assert np.isnan(anomaly.values).sum() == 0 or np.isnan(anomaly.values[~core]).any()
     # The saved model re-creates the grid (what derive/separate use).
@@ -118,8 +136,13 @@ def test_grid_stage_errors(tmp_path):
 
 
 def test_grid_stage_micro_levelling(tmp_path):
-    config = parse_config({"survey": {"kind": "magnetic"}, "level": {"micro_levelling": True},
-                           "grid": {"trial_depths": [4.5], "trial_dampings": [1e-2]}})
+    config = parse_config(
+        {
+            "survey": {"kind": "magnetic"},
+            "level": {"micro_levelling": True},
+            "grid": {"trial_depths": [4.5], "trial_dampings": [1e-2]},
+        }
+    )
     ctx = context(tmp_path)
     ctx.config = config
     # A 3 nT step on one line: a line-parallel corrugation that micro-levelling reduces
@@ -195,19 +218,33 @@ def test_station_survey_cell_from_station_spacing(tmp_path):
     order = rng.permutation(e.size)
     e, n = e[order], n[order]
     station = np.r_[np.arange(256), repeat][order]
-    table = pd.DataFrame({
-        "easting": e, "northing": n, "height": 250.0 + rng.normal(0, 5, e.size),
-        "line": [f"LOOP{k // 14}" for k in range(e.size)], "line_type": "traverse",
-        "station": [f"G{k:03d}" for k in station]})
+    table = pd.DataFrame(
+        {
+            "easting": e,
+            "northing": n,
+            "height": 250.0 + rng.normal(0, 5, e.size),
+            "line": [f"LOOP{k // 14}" for k in range(e.size)],
+            "line_type": "traverse",
+            "station": [f"G{k:03d}" for k in station],
+        }
+    )
     # a smooth anomaly of a buried sphere-like source (harmonica point mass, mGal)
-    table["bouguer_anomaly"] = hm.point_gravity((table.easting, table.northing, table.height),
-                                                (13_000.0, 23_000.0, -1500.0), 5e11, field="g_z")
-    config = parse_config({"survey": {"kind": "gravity"},
-                           "grid": {"depth_factors": [4.5], "dampings": [1e-2]}})
+    table["bouguer_anomaly"] = hm.point_gravity(
+        (table.easting, table.northing, table.height), (13_000.0, 23_000.0, -1500.0), 5e11, field="g_z"
+    )
+    config = parse_config(
+        {"survey": {"kind": "gravity"}, "grid": {"depth_factors": [4.5], "dampings": [1e-2]}}
+    )
     # the ingest's "line spacing" of loop centroids means nothing for stations (12 m seen on a
     # real station survey): the grid must not use it
-    state = {"ingest": {"line_spacing_m": 12.0, "tie_spacing_m": None, "crs": "EPSG:32633",
-                        "centroid": [15.0, 45.0]}}
+    state = {
+        "ingest": {
+            "line_spacing_m": 12.0,
+            "tie_spacing_m": None,
+            "crs": "EPSG:32633",
+            "centroid": [15.0, 45.0],
+        }
+    }
     ctx = StageContext(config=config, survey=Survey(tmp_path), table=table, state=state)
     from potfield.stages.grid import STATION_CELL_FRACTION, _station_spacing
 

@@ -20,8 +20,7 @@ LAT = np.array([-34.90, -34.91, -34.92])
 
 def _table(crs: str) -> pd.DataFrame:
     east, north = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True).transform(LON, LAT)
-    return pd.DataFrame({"easting": east, "northing": north, "source_file": "x.csv",
-                         "source_row": [2, 3, 4]})
+    return pd.DataFrame({"easting": east, "northing": north, "source_file": "x.csv", "source_row": [2, 3, 4]})
 
 
 @pytest.mark.parametrize("input_crs", ["EPSG:3857", "EPSG:32753", "EPSG:28354"])

@@ -18,12 +18,13 @@ def dipole_tmi(east, north, up, source=(2000.0, 1100.0, -800.0), moment=2e9, inc
     """Point-dipole total-field anomaly, magnetisation along the field (Blakely 1995, eq. 4.13)."""
     i = np.radians(inc)
     f = np.array([0.0, np.cos(i), -np.sin(i)])
-    east, north, up = np.broadcast_arrays(np.asarray(east, float), np.asarray(north, float),
-                                          np.asarray(up, float))
+    east, north, up = np.broadcast_arrays(
+        np.asarray(east, float), np.asarray(north, float), np.asarray(up, float)
+    )
     r = np.stack([east - source[0], north - source[1], up - source[2]])
-    dist = np.sqrt((r ** 2).sum(axis=0))
+    dist = np.sqrt((r**2).sum(axis=0))
     m = moment * f
-    b = 1e-7 * (3 * np.tensordot(m, r, axes=1) * r / dist ** 5 - m[:, None] / dist ** 3) * 1e9
+    b = 1e-7 * (3 * np.tensordot(m, r, axes=1) * r / dist**5 - m[:, None] / dist**3) * 1e9
     return np.tensordot(f, b, axes=1)
 
 
@@ -33,19 +34,31 @@ def survey_table(seed=0, with_ties=True, noise=0.05, value="anomaly", short_line
     t0 = np.datetime64("2024-05-01T08:00:00", "ns")
     frames, clock = [], 0.0
     # flown back and forth (alternate lines westward), as surveys are
-    specs = [(f"L{k:02d}", "traverse", np.arange(0.0, 4001.0, 10.0)[:: (-1) ** k], 100.0 + 200 * k)
-             for k in range(12)]
+    specs = [
+        (f"L{k:02d}", "traverse", np.arange(0.0, 4001.0, 10.0)[:: (-1) ** k], 100.0 + 200 * k)
+        for k in range(12)
+    ]
     if short_line:
         specs.append(("L99", "traverse", np.arange(250.0, 700.0, 10.0), 2500.0))
     for name, kind, x, y0 in specs:  # loop over lines
-        frames.append(pd.DataFrame({"line": name, "line_type": kind, "easting": x,
-                                    "northing": y0 + 3.0 * np.sin(x / 300.0)}))
+        frames.append(
+            pd.DataFrame(
+                {"line": name, "line_type": kind, "easting": x, "northing": y0 + 3.0 * np.sin(x / 300.0)}
+            )
+        )
     if with_ties:
         for k in range(4):
             y = np.arange(-100.0, 2601.0, 10.0)
-            frames.append(pd.DataFrame({"line": f"T{k}", "line_type": "tie",
-                                        "easting": 300.0 + 1000 * k + 2.0 * np.cos(y / 250.0),
-                                        "northing": y}))
+            frames.append(
+                pd.DataFrame(
+                    {
+                        "line": f"T{k}",
+                        "line_type": "tie",
+                        "easting": 300.0 + 1000 * k + 2.0 * np.cos(y / 250.0),
+                        "northing": y,
+                    }
+                )
+            )
     for f in frames:
         f["time"] = t0 + ((clock + np.arange(len(f)) * 0.2) * 1e9).astype("timedelta64[ns]")
         clock += len(f) * 0.2 + 60.0
@@ -89,9 +102,25 @@ def test_level_stage_recovers_offsets(tmp_path):
     assert out.checks[0].passed and out.checks[0].unit == "nT"
     assert out.checks[0].tolerance == 1.0  # crossover_rms_nT default (common practice)
     cx = out.tables["crossovers"]
-    for col in ("line", "tie", "easting", "northing", "time_line", "time_tie", "value_line",
-                "value_tie", "difference", "height_line", "height_tie", "height_difference",
-                "difference_levelled", "used", "flagged", "index_line", "index_tie"):
+    for col in (
+        "line",
+        "tie",
+        "easting",
+        "northing",
+        "time_line",
+        "time_tie",
+        "value_line",
+        "value_tie",
+        "difference",
+        "height_line",
+        "height_tie",
+        "height_difference",
+        "difference_levelled",
+        "used",
+        "flagged",
+        "index_line",
+        "index_tie",
+    ):
         assert col in cx
     lines = out.tables["lines"]
     assert set(lines["line"]) == set(table["line"])
@@ -119,8 +148,7 @@ def test_flagged_readings_are_not_used(tmp_path):
 
 def test_short_line_is_reported_and_kept(tmp_path):
     table, _ = survey_table(seed=4, short_line=True)
-    out = run(context(tmp_path, table, level={"min_crossovers": 2,
-                                               "neighbour_levelling": False}))
+    out = run(context(tmp_path, table, level={"min_crossovers": 2, "neighbour_levelling": False}))
     lines = out.tables["lines"].set_index("line")
     assert lines.loc["L99", "crossovers"] == 1
     assert "min_crossovers" in lines.loc["L99", "warning"]
@@ -166,8 +194,7 @@ def test_network_method_agrees_with_two_step(tmp_path):
     assert net.metrics["crossover_rms_ratio"] >= 5.0
     # Both estimate the same line levels from the same crossovers: they agree within the noise
     # (3 sigma of one misclosure, 3 sqrt(2) 0.05 nT).
-    diff = (net.table["level_correction"] - two.table["level_correction"]).groupby(
-        table["line"]).mean()
+    diff = (net.table["level_correction"] - two.table["level_correction"]).groupby(table["line"]).mean()
     assert np.max(np.abs(diff - diff.mean())) < 3 * np.sqrt(2) * 0.05
 
 
@@ -210,18 +237,24 @@ def test_micro_level_table_removes_line_offsets(tmp_path):
     offset = rng.uniform(0.5, 1.5, line_y.size) * (-1.0) ** np.arange(line_y.size)
     ee, nn = np.meshgrid(east, north)
     field = lambda e, n: dipole_tmi(e, n, 100.0, source=(3000.0, 3000.0, -500.0), moment=5e8)
-    grid_values = field(ee.ravel(), nn.ravel()).reshape(ee.shape) + \
-        np.interp(north, line_y, offset)[:, None]
-    grid = xr.DataArray(grid_values, coords={"northing": north, "easting": east},
-                        dims=("northing", "easting"))
+    grid_values = field(ee.ravel(), nn.ravel()).reshape(ee.shape) + np.interp(north, line_y, offset)[:, None]
+    grid = xr.DataArray(
+        grid_values, coords={"northing": north, "easting": east}, dims=("northing", "easting")
+    )
     xr_, yr_ = np.meshgrid(np.arange(0.0, 6001.0, 10.0), line_y)
-    table = pd.DataFrame({"easting": xr_.ravel(), "northing": yr_.ravel(),
-                          "line": np.repeat([f"L{k}" for k in range(line_y.size)], xr_.shape[1]),
-                          "line_type": "traverse",
-                          "distance": np.tile(np.arange(0.0, 6001.0, 10.0), line_y.size)})
+    table = pd.DataFrame(
+        {
+            "easting": xr_.ravel(),
+            "northing": yr_.ravel(),
+            "line": np.repeat([f"L{k}" for k in range(line_y.size)], xr_.shape[1]),
+            "line_type": "traverse",
+            "distance": np.tile(np.arange(0.0, 6001.0, 10.0), line_y.size),
+        }
+    )
     inject = np.repeat(offset, xr_.shape[1])
-    cfg = parse_config({"survey": {"kind": "magnetic"},
-                        "level": {"micro_levelling": True, "micro_max_amplitude": 2.0}}).level
+    cfg = parse_config(
+        {"survey": {"kind": "magnetic"}, "level": {"micro_levelling": True, "micro_max_amplitude": 2.0}}
+    ).level
     corr = micro_level_table(table, grid, spacing, cfg)
     assert corr.shape == (len(table),)
     assert np.max(np.abs(corr)) <= 2.0 + 1e-9

@@ -37,9 +37,15 @@ def truth_rms(result, column):
 
 def test_survey_has_tens_of_metres_at_the_crossovers(survey):
     table, _ = survey
-    cx = lv.find_crossovers(table["easting"], table["northing"], table["line"],
-                            table["line_type"] == "tie", table["truth"], table["time"],
-                            table["height"])
+    cx = lv.find_crossovers(
+        table["easting"],
+        table["northing"],
+        table["line"],
+        table["line_type"] == "tie",
+        table["truth"],
+        table["time"],
+        table["height"],
+    )
     dh = np.abs(cx["height_difference"])
     assert np.median(dh) > 20.0 and np.quantile(dh, 0.75) > 40.0  # tens of metres
     # the truth itself differs at the crossovers by the height effect (harmonica prisms):
@@ -61,8 +67,15 @@ def test_adaptive_levelling_reduces_misclosure_and_error(tmp_path, survey):
     # closer to the harmonica truth than unlevelled: measured 5.19 -> 0.38 nT
     assert after < 0.15 * before
     cx = out.tables["crossovers"]
-    for col in ("difference", "difference_levelled", "gradient_up", "height_effect",
-                "difference_height_corrected", "difference_levelled_height_corrected", "used"):
+    for col in (
+        "difference",
+        "difference_levelled",
+        "gradient_up",
+        "height_effect",
+        "difference_height_corrected",
+        "difference_levelled_height_corrected",
+        "used",
+    ):
         assert col in cx
 
 
@@ -70,9 +83,15 @@ def test_estimated_height_effect_follows_the_truth(tmp_path, survey):
     table, _ = survey
     out = level(tmp_path, table)
     cx = out.tables["crossovers"]
-    true = lv.find_crossovers(table["easting"], table["northing"], table["line"],
-                              table["line_type"] == "tie", table["truth"], table["time"],
-                              table["height"])
+    true = lv.find_crossovers(
+        table["easting"],
+        table["northing"],
+        table["line"],
+        table["line_type"] == "tie",
+        table["truth"],
+        table["time"],
+        table["height"],
+    )
     assert np.allclose(true["easting"], cx["easting"])
     ok = np.isfinite(cx["gradient_up"]).to_numpy()
     assert ok.mean() > 0.95
@@ -88,8 +107,9 @@ def test_estimated_height_effect_follows_the_truth(tmp_path, survey):
 def test_old_fixed_defaults_do_worse(tmp_path, survey):
     table, _ = survey
     new = level(tmp_path, table)
-    old = level(tmp_path, table, max_height_difference_m=30.0, height_correction=False,
-                neighbour_levelling=False)
+    old = level(
+        tmp_path, table, max_height_difference_m=30.0, height_correction=False, neighbour_levelling=False
+    )
     # a fixed 30 m gate leaves lines without crossovers (measured 5) and a 3.0 nT error
     assert old.metrics["unlevelled_lines"] >= 1 and new.metrics["unlevelled_lines"] == 0
     assert truth_rms(new.table, "anomaly_levelled") < 0.5 * truth_rms(old.table, "anomaly_levelled")

@@ -21,9 +21,13 @@ E0, N0 = 500_000.0, 6_600_000.0
 
 
 def _ctx(tmp_path, table, reference=None, survey=None, units=None):
-    config = parse_config({"survey": {"kind": "gravity", **(survey or {})},
-                           "input": {"units": units or {}},
-                           "reference": reference or {}})
+    config = parse_config(
+        {
+            "survey": {"kind": "gravity", **(survey or {})},
+            "input": {"units": units or {}},
+            "reference": reference or {},
+        }
+    )
     state = {"ingest": {"crs": UTM, "centroid": [15.0, 59.5]}}
     return StageContext(config=config, survey=Survey(tmp_path), table=table, state=state)
 
@@ -32,18 +36,20 @@ def _table(n=30, seed=2, column="gravity"):
     rng = np.random.default_rng(seed)
     lat = rng.uniform(59.4, 59.6, n)
     h = rng.uniform(0.0, 900.0, n)
-    table = pd.DataFrame({
-        "time": np.datetime64("2024-05-02T08:00", "ns") + np.arange(n) * np.timedelta64(300, "s"),
-        "longitude": 15.0 + rng.uniform(-0.01, 0.01, n),
-        "latitude": lat,
-        "height": h,
-        "easting": E0 + 2000.0 + rng.uniform(-200, 200, n),
-        "northing": N0 + 2000.0 + rng.uniform(-200, 200, n),
-        "line": "L1",
-        "station": [f"S{i}" for i in range(n)],
-        "source_file": "raw/g.csv",
-        "source_row": np.arange(n) + 2,
-    })
+    table = pd.DataFrame(
+        {
+            "time": np.datetime64("2024-05-02T08:00", "ns") + np.arange(n) * np.timedelta64(300, "s"),
+            "longitude": 15.0 + rng.uniform(-0.01, 0.01, n),
+            "latitude": lat,
+            "height": h,
+            "easting": E0 + 2000.0 + rng.uniform(-200, 200, n),
+            "northing": N0 + 2000.0 + rng.uniform(-200, 200, n),
+            "line": "L1",
+            "station": [f"S{i}" for i in range(n)],
+            "source_file": "raw/g.csv",
+            "source_row": np.arange(n) + 2,
+        }
+    )
     table[column] = 981_900.0 - 0.25 * h + rng.normal(0, 2, n)
     return table
 
@@ -61,7 +67,7 @@ def test_columns_against_boule_and_hinze_2005(tmp_path):
     np.testing.assert_allclose(t.disturbance, g - gamma_h, rtol=0, atol=1e-3)
     # Hinze et al. (2005): atmospheric 0.874 - 9.9e-5 h + 3.56e-9 h^2; free-air 0.3086 h
     # (common practice); slab 2 pi G rho h with G = 6.6743e-11
-    atm = 0.874 - 9.9e-5 * h + 3.56e-9 * h ** 2
+    atm = 0.874 - 9.9e-5 * h + 3.56e-9 * h**2
     free_air = g - gamma_0 + 0.3086 * h + atm
     np.testing.assert_allclose(t.atmospheric, atm, rtol=0, atol=1e-12)
     np.testing.assert_allclose(t.free_air_anomaly, free_air, rtol=0, atol=1e-3)
@@ -81,15 +87,16 @@ def test_columns_against_boule_and_hinze_2005(tmp_path):
 def test_cap_and_options(tmp_path):
     table = _table()
     cap = run_gravity(_ctx(tmp_path, table)).table  # defaults: WGS84, cap, atmospheric
-    slab = run_gravity(_ctx(tmp_path, table, {"bouguer": "slab", "atmospheric": False,
-                                              "free_air_order": "second"})).table
+    slab = run_gravity(
+        _ctx(tmp_path, table, {"bouguer": "slab", "atmospheric": False, "free_air_order": "second"})
+    ).table
     h, lat = table.height.to_numpy(), table.latitude.to_numpy()
     # LaFehr (1991): the cap exceeds the slab by the curvature term, 0 .. +1.2 mGal below 900 m
     diff = cap.bouguer - slab.bouguer
     assert np.all(diff >= 0) and np.all(diff < 1.2)
     assert (slab.atmospheric == 0).all()
     # Hinze et al. (2005) eq. 4 second-order free-air correction
-    fac2 = (0.3087691 - 0.0004398 * np.sin(np.radians(lat)) ** 2) * h - 7.2125e-8 * h ** 2
+    fac2 = (0.3087691 - 0.0004398 * np.sin(np.radians(lat)) ** 2) * h - 7.2125e-8 * h**2
     gamma_0 = boule.WGS84.normal_gravity((None, lat, np.zeros_like(h)))
     np.testing.assert_allclose(slab.free_air_anomaly, table.gravity - gamma_0 + fac2, atol=1e-3)
 
@@ -126,8 +133,9 @@ def _write_dem(tmp_path, geoid_level=100.0):
     north = N0 + spacing * (np.arange(80) + 0.5)
     z = np.full((80, 80), geoid_level)
     z[40:44, 50:56] = geoid_level + 150.0  # hill: N0+2000..2200, E0+2500..2800
-    write_netcdf(tmp_path / "dem.nc", make_grid(east, north, z, name="elevation", units="m",
-                                                long_name="DEM"), UTM)
+    write_netcdf(
+        tmp_path / "dem.nc", make_grid(east, north, z, name="elevation", units="m", long_name="DEM"), UTM
+    )
     return [E0 + 2500, E0 + 2800, N0 + 2000, N0 + 2200]
 
 
@@ -137,8 +145,12 @@ def test_complete_bouguer_with_a_dem(tmp_path):
     table = _table(n)
     # stations on the flat DEM surface: 100 m above the geoid + N = 20 m -> 120 m ellipsoidal
     table["height"] = 120.0
-    reference = {"dem_file": "dem.nc", "terrain_radius_m": 1500.0,
-                 "terrain_inner_radius_m": 1500.0, "terrain_curvature": False}
+    reference = {
+        "dem_file": "dem.nc",
+        "terrain_radius_m": 1500.0,
+        "terrain_inner_radius_m": 1500.0,
+        "terrain_curvature": False,
+    }
     out = run_gravity(_ctx(tmp_path, table, reference, survey={"geoid_undulation": 20.0}))
     t = out.table
     coords = (table.easting.to_numpy(), table.northing.to_numpy(), table.height.to_numpy())

@@ -26,15 +26,17 @@ def _ctx(tmp_path, table, kind="magnetic", reference=None, state=None):
 def _magnetic_table(n=400, start="2023-06-01T08:00", diurnal=True, seed=0):
     rng = np.random.default_rng(seed)
     time = np.datetime64(start, "ns") + (np.arange(n) * 10 * 1e9).astype("timedelta64[ns]")
-    table = pd.DataFrame({
-        "time": time,
-        "longitude": 24.0 + rng.uniform(0, 0.3, n),
-        "latitude": 61.0 + rng.uniform(0, 0.2, n),
-        "height": 150.0 + rng.uniform(0, 80, n),
-        "line": np.repeat(["10", "20"], n // 2),
-        "source_file": "raw/survey.csv",
-        "source_row": np.arange(n) + 2,
-    })
+    table = pd.DataFrame(
+        {
+            "time": time,
+            "longitude": 24.0 + rng.uniform(0, 0.3, n),
+            "latitude": 61.0 + rng.uniform(0, 0.2, n),
+            "height": 150.0 + rng.uniform(0, 80, n),
+            "line": np.repeat(["10", "20"], n // 2),
+            "source_file": "raw/survey.csv",
+            "source_row": np.arange(n) + 2,
+        }
+    )
     table["total_field"] = 52_000.0 + rng.normal(0, 50, n)
     if diurnal:
         table["diurnal"] = rng.normal(0, 10, n)
@@ -53,8 +55,9 @@ def test_magnetic_columns_match_the_fields_function(tmp_path):
     table = _magnetic_table()
     out = run_magnetic(_ctx(tmp_path, table))
     t = out.table
-    expected = igrf(table.longitude.to_numpy(), table.latitude.to_numpy(), table.height.to_numpy(),
-                    table.time.to_numpy()).total
+    expected = igrf(
+        table.longitude.to_numpy(), table.latitude.to_numpy(), table.height.to_numpy(), table.time.to_numpy()
+    ).total
     np.testing.assert_allclose(t["igrf"], expected, rtol=0, atol=1e-9)
     np.testing.assert_allclose(t["anomaly"], table.total_field - table.diurnal - expected, atol=1e-9)
     assert not t["flag_reference_missing"].any()
@@ -69,8 +72,12 @@ def test_fixed_date_anomaly_against_ppigrf(tmp_path):
     table = _magnetic_table(n=200)
     out = run_magnetic(_ctx(tmp_path, table, reference={"igrf_date": "2020-01-01"}))
     # At an epoch date ppigrf's day-linear interpolation coincides with decimal years.
-    ref = _ppigrf_total(table.longitude.to_numpy(), table.latitude.to_numpy(),
-                        table.height.to_numpy(), dt.datetime(2020, 1, 1))
+    ref = _ppigrf_total(
+        table.longitude.to_numpy(),
+        table.latitude.to_numpy(),
+        table.height.to_numpy(),
+        dt.datetime(2020, 1, 1),
+    )
     # Reference library: ppigrf 2.1 (IGRF-14); anomaly = T - diurnal - F (references.md).
     np.testing.assert_allclose(out.table["anomaly"], table.total_field - table.diurnal - ref, atol=0.01)
     assert out.state["igrf_date_mode"] == "fixed" and out.state["igrf_date"] == "2020-01-01"
@@ -82,8 +89,12 @@ def test_fixed_date_anomaly_against_ppigrf(tmp_path):
 def test_per_reading_anomaly_against_ppigrf_without_diurnal(tmp_path):
     table = _magnetic_table(n=60, start="2010-01-01T00:00", diurnal=False)
     out = run_magnetic(_ctx(tmp_path, table))
-    ref = _ppigrf_total(table.longitude.to_numpy(), table.latitude.to_numpy(),
-                        table.height.to_numpy(), dt.datetime(2010, 1, 1))
+    ref = _ppigrf_total(
+        table.longitude.to_numpy(),
+        table.latitude.to_numpy(),
+        table.height.to_numpy(),
+        dt.datetime(2010, 1, 1),
+    )
     # Reference library: ppigrf 2.1. The readings span 10 minutes past an epoch date: the field
     # changes by far less than 0.01 nT in that time (SV is at most ~100 nT/yr; from memory).
     np.testing.assert_allclose(out.table["anomaly"], table.total_field - ref, atol=0.01)
@@ -167,8 +178,12 @@ def test_no_time_column_needs_a_fixed_date(tmp_path):
     with pytest.raises(StageError, match="igrf_date"):
         run_magnetic(_ctx(tmp_path, table))
     out = run_magnetic(_ctx(tmp_path, table, reference={"igrf_date": "2005-01-01"}))
-    ref = _ppigrf_total(table.longitude.to_numpy(), table.latitude.to_numpy(),
-                        table.height.to_numpy(), dt.datetime(2005, 1, 1))
+    ref = _ppigrf_total(
+        table.longitude.to_numpy(),
+        table.latitude.to_numpy(),
+        table.height.to_numpy(),
+        dt.datetime(2005, 1, 1),
+    )
     # Reference library: ppigrf 2.1 at the epoch date 2005.0.
     np.testing.assert_allclose(out.table["igrf"], ref, atol=0.01)
 
@@ -181,19 +196,30 @@ def test_forecast_warning_after_2025(tmp_path):
 
 # --- observatory ----------------------------------------------------------------------------
 
+
 def _observatory_table():
     stations = {"NUR": (24.65, 60.51, 105.0), "TRO": (18.94, 69.66, 132.0), "HER": (19.23, -34.42, 26.0)}
     minutes = np.datetime64("2015-01-01T00:00", "ns") + (np.arange(30) * 60 * 1e9).astype("timedelta64[ns]")
     frames = []
     for code, (lon, lat, h) in stations.items():
         f = igrf(lon, lat, h, minutes)
-        frames.append(pd.DataFrame({
-            "line": code, "station": code, "time": minutes, "longitude": lon, "latitude": lat,
-            "height": h,
-            # Synthetic records: model plus a known disturbance (+20, -5, +8 nT).
-            "mag_north": f.north + 20.0, "mag_east": f.east - 5.0, "mag_down": f.down + 8.0,
-            "total_field": np.nan,
-        }))
+        frames.append(
+            pd.DataFrame(
+                {
+                    "line": code,
+                    "station": code,
+                    "time": minutes,
+                    "longitude": lon,
+                    "latitude": lat,
+                    "height": h,
+                    # Synthetic records: model plus a known disturbance (+20, -5, +8 nT).
+                    "mag_north": f.north + 20.0,
+                    "mag_east": f.east - 5.0,
+                    "mag_down": f.down + 8.0,
+                    "total_field": np.nan,
+                }
+            )
+        )
     return pd.concat(frames, ignore_index=True)
 
 

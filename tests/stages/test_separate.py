@@ -25,8 +25,14 @@ def _ctx(tmp_path, kind, table=None, grids=None, state=None, separate=None, spec
     data = {"survey": {"name": "t", "kind": kind}}
     if separate:
         data["separate"] = separate
-    return StageContext(config=parse_config(data), survey=Survey(tmp_path), table=table,
-                        state=state or {}, grids=grids or {}, spec=spec or {})
+    return StageContext(
+        config=parse_config(data),
+        survey=Survey(tmp_path),
+        table=table,
+        state=state or {},
+        grids=grids or {},
+        spec=spec or {},
+    )
 
 
 def _observatory_table(lon=LON, lat=LAT, epochs=120, ratio=0.28, seed=0):
@@ -40,23 +46,26 @@ def _observatory_table(lon=LON, lat=LAT, epochs=120, ratio=0.28, seed=0):
     psi = np.radians(lat - lat_c)
     rows = []
     for coefs, source in ((q, "external"), (ratio * q, "internal")):
-        rows.append(cpm.synth_values(coefs[:, None, :], r / 1000.0, 90.0 - lat_c, lon, nmax=1,
-                                     source=source))
+        rows.append(cpm.synth_values(coefs[:, None, :], r / 1000.0, 90.0 - lat_c, lon, nmax=1, source=source))
     br, bt, bp = (a + b for a, b in zip(*rows))
     xs, zs = -bt, -br
     north, east, down = xs * np.cos(psi) + zs * np.sin(psi), bp, -xs * np.sin(psi) + zs * np.cos(psi)
     times = np.datetime64("2025-05-10T00:00", "ns") + t * np.timedelta64(60, "s")
     codes = [f"S{i:02d}" for i in range(lon.size)]
-    frame = pd.DataFrame({
-        "station": np.repeat(codes, epochs), "line": np.repeat(codes, epochs),
-        "time": np.tile(times, lon.size),
-        "longitude": np.repeat(lon, epochs), "latitude": np.repeat(lat, epochs),
-        "height": np.repeat(h, epochs),
-        "disturbance_north": north.T.ravel() + rng.normal(0, 0.2, north.size),
-        "disturbance_east": east.T.ravel() + rng.normal(0, 0.2, north.size),
-        "disturbance_down": down.T.ravel() + rng.normal(0, 0.2, north.size),
-        "flag_spike": False,
-    })
+    frame = pd.DataFrame(
+        {
+            "station": np.repeat(codes, epochs),
+            "line": np.repeat(codes, epochs),
+            "time": np.tile(times, lon.size),
+            "longitude": np.repeat(lon, epochs),
+            "latitude": np.repeat(lat, epochs),
+            "height": np.repeat(h, epochs),
+            "disturbance_north": north.T.ravel() + rng.normal(0, 0.2, north.size),
+            "disturbance_east": east.T.ravel() + rng.normal(0, 0.2, north.size),
+            "disturbance_down": down.T.ravel() + rng.normal(0, 0.2, north.size),
+            "flag_spike": False,
+        }
+    )
     return frame, q
 
 
@@ -93,8 +102,9 @@ def test_observatory_coefficients_tables_metrics_and_check(tmp_path):
 
 def test_observatory_tolerance_from_spec(tmp_path):
     table, _ = _observatory_table()
-    ctx = _ctx(tmp_path, "observatory", table=table,
-               spec={"separation_residual_rms_nT": (0.01, "test profile")})
+    ctx = _ctx(
+        tmp_path, "observatory", table=table, spec={"separation_residual_rms_nT": (0.01, "test profile")}
+    )
     check = STAGE.run(ctx).checks[0]
     assert not check.passed and check.source == "test profile"
 
@@ -105,14 +115,14 @@ def test_observatory_bad_inputs(tmp_path):
         STAGE.run(_ctx(tmp_path, "observatory", table=table.drop(columns="disturbance_down")))
     few, _ = _observatory_table(LON[:2], LAT[:2])
     with pytest.raises(InputDataError, match="16 Gauss coefficients .* only 2 stations"):
-        STAGE.run(_ctx(tmp_path, "observatory", table=few,
-                       separate={"internal_degree": 2, "external_degree": 2}))
+        STAGE.run(
+            _ctx(tmp_path, "observatory", table=few, separate={"internal_degree": 2, "external_degree": 2})
+        )
     meridian, _ = _observatory_table(np.full(6, 40.0), np.array([-50.0, -20, 0, 20, 45, 70]))
     with pytest.raises(InputDataError, match="longitude 40"):
         STAGE.run(_ctx(tmp_path, "observatory", table=meridian))
     with pytest.raises(PotfieldError, match="internal_degree"):
-        parse_config({"survey": {"name": "t", "kind": "observatory"},
-                      "separate": {"internal_degree": -1}})
+        parse_config({"survey": {"name": "t", "kind": "observatory"}, "separate": {"internal_degree": -1}})
 
 
 # ----------------------------------------------------------------------------------------------
@@ -135,8 +145,9 @@ def _readings(step=3):
     e, n = EE[:-1:step, :-1:step].ravel() + 20.0, NN[:-1:step, :-1:step].ravel() + 30.0
     u = np.full(e.size, HEIGHT)
     deep, shallow = _gz(e, n, u)
-    return pd.DataFrame({"easting": e, "northing": n, "height": u,
-                         "bouguer_anomaly": deep + shallow, "flag_spike": False})
+    return pd.DataFrame(
+        {"easting": e, "northing": n, "height": u, "bouguer_anomaly": deep + shallow, "flag_spike": False}
+    )
 
 
 def _grid():
@@ -154,11 +165,22 @@ def test_no_grid_passes_through(tmp_path):
 def test_gravity_grid_both_methods(tmp_path):
     grid, shallow = _grid()
     table = _readings()
-    out = STAGE.run(_ctx(tmp_path, "gravity", table=table, grids={"bouguer_anomaly": grid},
-                         state={"grid": {"height": HEIGHT, "column": "bouguer_anomaly"}},
-                         separate={"regional_height_m": 1000.0}))
-    assert set(out.grids) == {"regional_upward", "residual_upward", "regional_two_layer",
-                              "residual_two_layer"}
+    out = STAGE.run(
+        _ctx(
+            tmp_path,
+            "gravity",
+            table=table,
+            grids={"bouguer_anomaly": grid},
+            state={"grid": {"height": HEIGHT, "column": "bouguer_anomaly"}},
+            separate={"regional_height_m": 1000.0},
+        )
+    )
+    assert set(out.grids) == {
+        "regional_upward",
+        "residual_upward",
+        "regional_two_layer",
+        "residual_two_layer",
+    }
     for name, g in out.grids.items():
         assert g.name == name and g.attrs["units"] == "mGal"
         assert np.array_equal(np.isnan(g.values), np.isnan(grid.values)), name
@@ -181,15 +203,30 @@ def test_gravity_grid_both_methods(tmp_path):
 def test_model_route_and_bad_depths(tmp_path):
     grid, _ = _grid()
     table = _readings(step=2)
-    model = fit_equivalent_sources(table["easting"], table["northing"], table["height"],
-                                   table["bouguer_anomaly"], depth=600.0, damping=1e-3,
-                                   method="dense")
+    model = fit_equivalent_sources(
+        table["easting"],
+        table["northing"],
+        table["height"],
+        table["bouguer_anomaly"],
+        depth=600.0,
+        damping=1e-3,
+        method="dense",
+    )
     path = save_model(tmp_path / "model.npz", model)
-    out = STAGE.run(_ctx(tmp_path, "gravity", table=table, grids={"bouguer_anomaly": grid},
-                         state={"grid": {"height": HEIGHT, "model_path": str(path)}},
-                         separate={"method": "upward", "regional_height_m": 800.0}))
-    assert out.metrics["upward_method"] == "model" and set(out.grids) == {"regional_upward",
-                                                                           "residual_upward"}
+    out = STAGE.run(
+        _ctx(
+            tmp_path,
+            "gravity",
+            table=table,
+            grids={"bouguer_anomaly": grid},
+            state={"grid": {"height": HEIGHT, "model_path": str(path)}},
+            separate={"method": "upward", "regional_height_m": 800.0},
+        )
+    )
+    assert out.metrics["upward_method"] == "model" and set(out.grids) == {
+        "regional_upward",
+        "residual_upward",
+    }
     # the readings' regional is the model predicted 800 m higher (exact for the model)
     e, n, u = (table[c].to_numpy() for c in ("easting", "northing", "height"))
     np.testing.assert_allclose(out.table["regional"], model.predict((e, n, u + 800.0)), rtol=1e-9)
@@ -198,27 +235,51 @@ def test_model_route_and_bad_depths(tmp_path):
     deep, shallow = _gz(e, n, u + 800.0)
     assert np.abs(out.table["regional"] - deep - shallow).max() < 0.05 * np.ptp(deep + shallow)
     with pytest.raises(StageError, match="shallow depth"):
-        STAGE.run(_ctx(tmp_path, "gravity", table=table, grids={"bouguer_anomaly": grid},
-                       state={"grid": {"height": HEIGHT}},
-                       separate={"method": "two_layer", "deep_depth_m": 300.0,
-                                 "shallow_depth_m": 500.0}))
+        STAGE.run(
+            _ctx(
+                tmp_path,
+                "gravity",
+                table=table,
+                grids={"bouguer_anomaly": grid},
+                state={"grid": {"height": HEIGHT}},
+                separate={"method": "two_layer", "deep_depth_m": 300.0, "shallow_depth_m": 500.0},
+            )
+        )
 
 
 def _vector_table():
     """Dipole below (harmonica.dipole_magnetic, reference library) on a grid of readings."""
     e, n = EE.ravel(), NN.ravel()  # readings on the 150 m grid cells
     u = np.full(e.size, 0.0)
-    be, bn, bu = hm.dipole_magnetic((e, n, u), (3000.0, 2500.0, -900.0),
-                                    hm.magnetic_angles_to_vec(1e9, 60.0, 5.0), field="b")
-    return pd.DataFrame({"easting": e, "northing": n, "height": u, "anomaly": bn,
-                         "mag_north": bn, "mag_east": be, "mag_down": -bu}), None
+    be, bn, bu = hm.dipole_magnetic(
+        (e, n, u), (3000.0, 2500.0, -900.0), hm.magnetic_angles_to_vec(1e9, 60.0, 5.0), field="b"
+    )
+    return pd.DataFrame(
+        {
+            "easting": e,
+            "northing": n,
+            "height": u,
+            "anomaly": bn,
+            "mag_north": bn,
+            "mag_east": be,
+            "mag_down": -bu,
+        }
+    ), None
 
 
 def test_vector_columns_give_internal_external_parts(tmp_path):
     table, _ = _vector_table()
     grid = make_grid(E, N, np.zeros(EE.shape), name="anomaly", units="nT", long_name="anomaly")
-    out = STAGE.run(_ctx(tmp_path, "magnetic", table=table, grids={"anomaly": grid},
-                         state={"grid": {"height": 0.0}}, separate={"method": "upward"}))
+    out = STAGE.run(
+        _ctx(
+            tmp_path,
+            "magnetic",
+            table=table,
+            grids={"anomaly": grid},
+            state={"grid": {"height": 0.0}},
+            separate={"method": "upward"},
+        )
+    )
     for side in ("internal", "external"):
         for comp in ("north", "east", "down"):
             assert f"{side}_{comp}" in out.grids and f"{side}_{comp}" in out.table.columns
@@ -227,8 +288,12 @@ def test_vector_columns_give_internal_external_parts(tmp_path):
     # read off as internal + external = gridded data) plus 3 % of the peak in the middle of the
     # grid (FFT; measured 0.1 %), and the external part stays below 3 % (measured 0.05 %)
     inner = (slice(8, -8), slice(8, -8))
-    down = -hm.dipole_magnetic((EE, NN, np.zeros(EE.shape)), (3000.0, 2500.0, -900.0),
-                               hm.magnetic_angles_to_vec(1e9, 60.0, 5.0), field="b")[2]
+    down = -hm.dipole_magnetic(
+        (EE, NN, np.zeros(EE.shape)),
+        (3000.0, 2500.0, -900.0),
+        hm.magnetic_angles_to_vec(1e9, 60.0, 5.0),
+        field="b",
+    )[2]
     internal = out.grids["internal_down"].values
     external = out.grids["external_down"].values
     gridding = np.abs((internal + external) - down)[inner].max()
@@ -242,9 +307,16 @@ def test_partial_vector_columns_are_an_error(tmp_path):
     table, _ = _vector_table()
     grid = make_grid(E, N, np.zeros(EE.shape), name="anomaly", units="nT", long_name="anomaly")
     with pytest.raises(StageError, match="mag_east, mag_down missing"):
-        STAGE.run(_ctx(tmp_path, "magnetic", table=table.drop(columns=["mag_east", "mag_down"]),
-                       grids={"anomaly": grid}, state={"grid": {"height": 0.0}},
-                       separate={"method": "upward"}))
+        STAGE.run(
+            _ctx(
+                tmp_path,
+                "magnetic",
+                table=table.drop(columns=["mag_east", "mag_down"]),
+                grids={"anomaly": grid},
+                state={"grid": {"height": 0.0}},
+                separate={"method": "upward"},
+            )
+        )
 
 
 def test_two_layer_defaults_on_a_coarse_grid_move_the_deep_layer():
@@ -261,8 +333,13 @@ def test_two_layer_defaults_on_a_coarse_grid_move_the_deep_layer():
     n = np.arange(0.0, 15_001.0, 1000.0)
     ee, nn = np.meshgrid(e, n)
     values = 50 * np.exp(-((ee - 9000) ** 2 + (nn - 7000) ** 2) / 4e7)
-    grid = xr.DataArray(values, coords={"northing": n, "easting": e}, dims=("northing", "easting"),
-                        name="anomaly", attrs={"units": "nT"})
+    grid = xr.DataArray(
+        values,
+        coords={"northing": n, "easting": e},
+        dims=("northing", "easting"),
+        name="anomaly",
+        attrs={"units": "nT"},
+    )
     config = parse_config({"survey": {"kind": "magnetic"}, "separate": {"regional_height_m": 2000.0}})
     ctx = StageContext(config=config, survey=Survey("/tmp"), table=None)
     out = StageOutput()
@@ -277,13 +354,14 @@ def test_observatory_station_baselines_and_outlier_rejection(tmp_path):
     # down baseline jumps by 60 nT halfway through and is noisy (3 nT): a faulty station
     table, q = _observatory_table(epochs=240)
     rng = np.random.default_rng(4)
-    for i, code in enumerate(sorted(table["station"].unique())):
+    for _i, code in enumerate(sorted(table["station"].unique())):
         rows = table["station"] == code
         for c in ("north", "east", "down"):
             table.loc[rows, f"disturbance_{c}"] += rng.uniform(50, 400) * rng.choice([-1, 1])
     bad = table["station"] == "S03"
-    table.loc[bad, "disturbance_down"] += (np.where(np.arange(bad.sum()) > 120, 60.0, 0.0)
-                                           + rng.normal(0, 3, bad.sum()))
+    table.loc[bad, "disturbance_down"] += np.where(np.arange(bad.sum()) > 120, 60.0, 0.0) + rng.normal(
+        0, 3, bad.sum()
+    )
     # a station listed with no valid data at all: not counted
     empty = table[table["station"] == "S00"].copy()
     empty["station"] = empty["line"] = "S99"
@@ -310,8 +388,14 @@ def test_observatory_station_baselines_and_outlier_rejection(tmp_path):
     # the ratio (a regression with an offset) is not touched by the baselines
     assert out.metrics["induction_ratio_g10_q10"] == pytest.approx(0.28, abs=0.01)
     # without baseline removal the biases spoil the fit: far larger residuals
-    raw = STAGE.run(_ctx(tmp_path, "observatory", table=table,
-                         separate={"station_baseline": "none", "station_outlier_z": 0}))
+    raw = STAGE.run(
+        _ctx(
+            tmp_path,
+            "observatory",
+            table=table,
+            separate={"station_baseline": "none", "station_outlier_z": 0},
+        )
+    )
     assert raw.metrics["residual_rms_nT"] > 10 * out.metrics["residual_rms_nT"]
 
 
@@ -325,9 +409,13 @@ def test_observatory_q10_against_an_hourly_index(tmp_path):
     rng = np.random.default_rng(1)
     index = -1.1 * (hourly.to_numpy() - 15.0) + rng.normal(0, 1.0, hourly.size)
     pd.DataFrame({"time": hourly.index.strftime("%Y-%m-%dT%H:%M:%SZ"), "ring": index}).to_csv(
-        tmp_path / "index.csv", index=False)
-    out = STAGE.run(_ctx(tmp_path, "observatory", table=table,
-                         separate={"index_file": "index.csv", "index_column": "ring"}))
+        tmp_path / "index.csv", index=False
+    )
+    out = STAGE.run(
+        _ctx(
+            tmp_path, "observatory", table=table, separate={"index_file": "index.csv", "index_column": "ring"}
+        )
+    )
     cmp_table = out.tables["index_comparison"]
     assert len(cmp_table) == 10 and out.metrics["index_hours"] == 10
     # against scipy.stats.linregress (reference library) on the hourly means of the fitted q10
@@ -338,8 +426,20 @@ def test_observatory_q10_against_an_hourly_index(tmp_path):
     assert out.metrics["index_slope_nT_per_unit"] == pytest.approx(-1 / 1.1, abs=0.05)
     assert out.metrics["index_correlation"] < -0.99
     with pytest.raises(InputDataError, match="no column 'dst'"):
-        STAGE.run(_ctx(tmp_path, "observatory", table=table,
-                       separate={"index_file": "index.csv", "index_column": "dst"}))
+        STAGE.run(
+            _ctx(
+                tmp_path,
+                "observatory",
+                table=table,
+                separate={"index_file": "index.csv", "index_column": "dst"},
+            )
+        )
     with pytest.raises(InputDataError, match="index file not found"):
-        STAGE.run(_ctx(tmp_path, "observatory", table=table,
-                       separate={"index_file": "nope.csv", "index_column": "ring"}))
+        STAGE.run(
+            _ctx(
+                tmp_path,
+                "observatory",
+                table=table,
+                separate={"index_file": "nope.csv", "index_column": "ring"},
+            )
+        )

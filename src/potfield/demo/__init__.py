@@ -59,8 +59,10 @@ def make_demo(kind: str, directory: Path, readings: int | None = None, seed: int
         raise ConfigError(f"unknown demo kind '{kind}'", fix=f"use one of: {', '.join(KINDS)}")
     before = _demo_files(directory)
     if before and not (directory / "truth" / "parameters.json").is_file():
-        raise ConfigError(f"{directory}: the folder already holds files in raw/ or truth/ that "
-                          "are not a demo's", fix="write the demo to a new or empty folder")
+        raise ConfigError(
+            f"{directory}: the folder already holds files in raw/ or truth/ that are not a demo's",
+            fix="write the demo to a new or empty folder",
+        )
     started = time.time_ns()
     if kind == "magnetic":
         from .magnetic import make_magnetic

@@ -65,8 +65,15 @@ def centre_projected() -> tuple[float, float]:
 
 # --- smooth random signals --------------------------------------------------------------------
 
-def fourier_wander(rng: np.random.Generator, segment: np.ndarray, position: np.ndarray,
-                   n_segments: int, amplitude: float, wavelengths: tuple[float, ...]) -> np.ndarray:
+
+def fourier_wander(
+    rng: np.random.Generator,
+    segment: np.ndarray,
+    position: np.ndarray,
+    n_segments: int,
+    amplitude: float,
+    wavelengths: tuple[float, ...],
+) -> np.ndarray:
     """A smooth random signal along many segments at once (vectorised over readings).
 
     Each segment gets a random-phase sum of sinusoids of the given wavelengths (in the units of
@@ -101,8 +108,16 @@ def fourier_wander(rng: np.random.Generator, segment: np.ndarray, position: np.n
 
 # --- terrain ----------------------------------------------------------------------------------
 
-def make_terrain(rng: np.random.Generator, half_width: float, *, base: float, relief: float,
-                 n_hills: int = 9, n_valleys: int = 3) -> dict:
+
+def make_terrain(
+    rng: np.random.Generator,
+    half_width: float,
+    *,
+    base: float,
+    relief: float,
+    n_hills: int = 9,
+    n_valleys: int = 3,
+) -> dict:
     """Parameters of an analytic synthetic terrain: a base level, Gaussian hills and valleys and
     a gentle regional slope (a sum of Gaussian bumps: common practice for synthetic topography
     in potential-field tests; no single source). Evaluate with :func:`terrain_height`.
@@ -121,8 +136,9 @@ def make_terrain(rng: np.random.Generator, half_width: float, *, base: float, re
     n = n_hills + n_valleys
     centres = rng.uniform(-half_width, half_width, (n, 2))
     widths = rng.uniform(0.05, 0.18, n) * 2 * half_width
-    heights = np.concatenate([rng.uniform(0.4, 1.0, n_hills) * relief,
-                              -rng.uniform(0.2, 0.45, n_valleys) * relief])
+    heights = np.concatenate(
+        [rng.uniform(0.4, 1.0, n_hills) * relief, -rng.uniform(0.2, 0.45, n_valleys) * relief]
+    )
     slope = rng.uniform(-1.0, 1.0, 2) * relief / (4 * half_width)
     return {
         "base_m": float(base),
@@ -142,12 +158,14 @@ def terrain_height(east_local, north_local, terrain: dict) -> np.ndarray:
     n = np.asarray(north_local, dtype=float)
     h = terrain["base_m"] + terrain["slope_east"] * e + terrain["slope_north"] * n
     for f in terrain["features"]:  # a dozen features, each vectorised over all points
-        h = h + f["height"] * np.exp(-((e - f["east"]) ** 2 + (n - f["north"]) ** 2)
-                                     / (2.0 * f["width"] ** 2))
+        h = h + f["height"] * np.exp(
+            -((e - f["east"]) ** 2 + (n - f["north"]) ** 2) / (2.0 * f["width"] ** 2)
+        )
     return h
 
 
 # --- deterministic files ----------------------------------------------------------------------
+
 
 def iso_times(times: np.ndarray, unit: str = "ms") -> np.ndarray:
     """ISO 8601 UTC strings ending in ``Z`` (numpy formatting: deterministic)."""
@@ -228,18 +246,20 @@ def survey_tables(title: str, kind: str, survey_file: str) -> str:
     str
         TOML text (no final newline).
     """
-    return "\n".join([
-        "[survey]",
-        f'name = "{AREA_NAME} {title} demo (invented data)"',
-        f'kind = "{kind}"',
-        'crs = "EPSG:4326"',
-        f'output_crs = "{OUTPUT_CRS}"',
-        'height_reference = "ellipsoid"',
-        "",
-        "[input]",
-        f'files = ["raw/{survey_file}"]',
-        'delimiter = ","',
-    ])
+    return "\n".join(
+        [
+            "[survey]",
+            f'name = "{AREA_NAME} {title} demo (invented data)"',
+            f'kind = "{kind}"',
+            'crs = "EPSG:4326"',
+            f'output_crs = "{OUTPUT_CRS}"',
+            'height_reference = "ellipsoid"',
+            "",
+            "[input]",
+            f'files = ["raw/{survey_file}"]',
+            'delimiter = ","',
+        ]
+    )
 
 
 def write_readme(path: Path, text: str) -> Path:

@@ -120,8 +120,9 @@ def _prism_up(x, y, z, west, east, south, north, bottom, top):  # pragma: no cov
 
 
 @numba.njit(parallel=True, cache=True)
-def _topography_kernel(x, y, z, west, east, south, north, top, density, far_radius, earth_radius,
-                       line_distance, out):  # pragma: no cover - compiled
+def _topography_kernel(
+    x, y, z, west, east, south, north, top, density, far_radius, earth_radius, line_distance, out
+):  # pragma: no cover - compiled
     for i in numba.prange(x.size):
         total = 0.0
         for j in range(west.size):
@@ -133,12 +134,16 @@ def _topography_kernel(x, y, z, west, east, south, north, top, density, far_radi
             drop = d2 / (2.0 * earth_radius)
             bottom, upper = -drop, top[j] - drop
             if d2 < line_distance * line_distance:
-                total -= G * density[j] * _prism_up(x[i], y[i], z[i], west[j], east[j],
-                                                    south[j], north[j], bottom, upper)
+                total -= (
+                    G
+                    * density[j]
+                    * _prism_up(x[i], y[i], z[i], west[j], east[j], south[j], north[j], bottom, upper)
+                )
             else:
                 lam = G * density[j] * (east[j] - west[j]) * (north[j] - south[j])
-                total += lam * (1.0 / np.sqrt(d2 + (z[i] - upper) ** 2)
-                                - 1.0 / np.sqrt(d2 + (z[i] - bottom) ** 2))
+                total += lam * (
+                    1.0 / np.sqrt(d2 + (z[i] - upper) ** 2) - 1.0 / np.sqrt(d2 + (z[i] - bottom) ** 2)
+                )
         out[i] = total * 1e5
 
 
@@ -186,12 +191,21 @@ def topography_gravity(east, north, height, dem_e, dem_n, dem_h, far_h: float) -
     all_cells = np.ascontiguousarray(np.vstack([cells, far]))
     all_tops = np.ascontiguousarray(np.r_[tops, np.full(far.shape[0], far_h)])
     out = np.empty(np.size(east))
-    _topography_kernel(np.ascontiguousarray(np.ravel(east), dtype=float),
-                       np.ascontiguousarray(np.ravel(north), dtype=float),
-                       np.ascontiguousarray(np.ravel(height), dtype=float),
-                       all_cells[:, 0].copy(), all_cells[:, 1].copy(), all_cells[:, 2].copy(),
-                       all_cells[:, 3].copy(), all_tops, np.full(all_tops.size, DENSITY),
-                       FAR_RADIUS, EARTH_RADIUS, LINE_MASS_DISTANCE, out)
+    _topography_kernel(
+        np.ascontiguousarray(np.ravel(east), dtype=float),
+        np.ascontiguousarray(np.ravel(north), dtype=float),
+        np.ascontiguousarray(np.ravel(height), dtype=float),
+        all_cells[:, 0].copy(),
+        all_cells[:, 1].copy(),
+        all_cells[:, 2].copy(),
+        all_cells[:, 3].copy(),
+        all_tops,
+        np.full(all_tops.size, DENSITY),
+        FAR_RADIUS,
+        EARTH_RADIUS,
+        LINE_MASS_DISTANCE,
+        out,
+    )
     return out
 
 
@@ -212,19 +226,36 @@ def body_model(rng: np.random.Generator, datum: float) -> dict:
     """
     ix, iy = rng.uniform(-0.25, 0.0, 2) * SIDE
     bx, by = rng.uniform(0.05, 0.25, 2) * SIDE
-    prisms = np.array([
-        [ix - 900.0, ix + 900.0, iy - 1200.0, iy + 1200.0, datum - 2500.0, datum - 400.0],
-        [bx - 2200.0, bx + 2200.0, by - 1600.0, by + 1600.0, datum - 900.0, datum - 100.0],
-        [bx - 1200.0, bx + 1200.0, by - 800.0, by + 800.0, datum - 1500.0, datum - 900.0],
-    ])
+    prisms = np.array(
+        [
+            [ix - 900.0, ix + 900.0, iy - 1200.0, iy + 1200.0, datum - 2500.0, datum - 400.0],
+            [bx - 2200.0, bx + 2200.0, by - 1600.0, by + 1600.0, datum - 900.0, datum - 100.0],
+            [bx - 1200.0, bx + 1200.0, by - 800.0, by + 800.0, datum - 1500.0, datum - 900.0],
+        ]
+    )
     contrast = np.array([250.0, -300.0, -300.0])
-    regional = {"constant_mGal": -18.0, "east_mGal_per_km": float(rng.uniform(0.3, 0.6)),
-                "north_mGal_per_km": float(rng.uniform(-0.3, 0.3))}
-    return {"prisms": prisms, "contrast": contrast, "regional": regional,
-            "bodies": [{"name": "dense intrusion", "density_contrast_kg_m3": 250.0,
-                        "prism_local_m": prisms[0].round(1).tolist()},
-                       {"name": "sedimentary basin (two prisms)", "density_contrast_kg_m3": -300.0,
-                        "prisms_local_m": prisms[1:].round(1).tolist()}]}
+    regional = {
+        "constant_mGal": -18.0,
+        "east_mGal_per_km": float(rng.uniform(0.3, 0.6)),
+        "north_mGal_per_km": float(rng.uniform(-0.3, 0.3)),
+    }
+    return {
+        "prisms": prisms,
+        "contrast": contrast,
+        "regional": regional,
+        "bodies": [
+            {
+                "name": "dense intrusion",
+                "density_contrast_kg_m3": 250.0,
+                "prism_local_m": prisms[0].round(1).tolist(),
+            },
+            {
+                "name": "sedimentary basin (two prisms)",
+                "density_contrast_kg_m3": -300.0,
+                "prisms_local_m": prisms[1:].round(1).tolist(),
+            },
+        ],
+    }
 
 
 def bodies_gravity(model: dict, east_l, north_l, height) -> np.ndarray:
@@ -238,8 +269,11 @@ def bodies_gravity(model: dict, east_l, north_l, height) -> np.ndarray:
 def regional_gravity(model: dict, east_l, north_l) -> np.ndarray:
     """The planar regional trend (mGal) at local coordinates (m from the area centre)."""
     r = model["regional"]
-    return (r["constant_mGal"] + r["east_mGal_per_km"] * np.asarray(east_l) / 1000.0
-            + r["north_mGal_per_km"] * np.asarray(north_l) / 1000.0)
+    return (
+        r["constant_mGal"]
+        + r["east_mGal_per_km"] * np.asarray(east_l) / 1000.0
+        + r["north_mGal_per_km"] * np.asarray(north_l) / 1000.0
+    )
 
 
 def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, bases_local) -> tuple:
@@ -261,7 +295,7 @@ def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, base
     chunks, i = [], 0
     while i < len(order):
         size = int(rng.integers(11, 15))
-        chunks.append(order[i:i + size])
+        chunks.append(order[i : i + size])
         i += size
     if len(chunks) > 1 and len(chunks[-1]) < 8:  # no short last loop: its drift would be poor
         chunks[-2] = chunks[-2] + chunks.pop()
@@ -291,7 +325,7 @@ def _loops(rng: np.random.Generator, n_stations: int, station_e, station_n, base
     tare_loop = second[len(second) // 2]
     name, d, stations = loops[tare_loop]
     p = max(3, len(stations) // 2)
-    loops[tare_loop] = (name, d, stations[:p] + stations[p - 2:p] + stations[p:])
+    loops[tare_loop] = (name, d, stations[:p] + stations[p - 2 : p] + stations[p:])
     return loops, tare_loop, p
 
 
@@ -320,8 +354,9 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
 
     # Terrain and DEM (cell-centred, ascending coordinates).
     far_h = 210.0
-    terrain = common.make_terrain(rng_for(seed, "grav-terrain"), 10_000.0, base=far_h,
-                                  relief=120.0, n_hills=8, n_valleys=3)
+    terrain = common.make_terrain(
+        rng_for(seed, "grav-terrain"), 10_000.0, base=far_h, relief=120.0, n_hills=8, n_valleys=3
+    )
     terrain["slope_east"] = terrain["slope_north"] = 0.0  # keep the rim at far_h
     half_dem = SIDE / 2 + DEM_MARGIN
     dem_local = np.arange(-half_dem + DEM_CELL / 2, half_dem, DEM_CELL)
@@ -344,8 +379,9 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     col = np.floor((all_e + half_dem) / DEM_CELL).astype(int)
     row = np.floor((all_n + half_dem) / DEM_CELL).astype(int)
     h_true = dem_h[row, col]
-    names = np.r_[np.char.add("G", np.char.zfill(np.arange(1, se.size + 1).astype(str), 3)),
-                  ["BASE-A", "BASE-B"]]
+    names = np.r_[
+        np.char.add("G", np.char.zfill(np.arange(1, se.size + 1).astype(str), 3)), ["BASE-A", "BASE-B"]
+    ]
     n_st = se.size
 
     # Gravity at every station mark.
@@ -383,8 +419,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
 
     meter = rng_for(seed, "grav-meter")
     ih = np.round(meter.uniform(0.3, 1.2, n_occ), 3)
-    tide = longman_gravity(lon[occ_station], lat[occ_station], h_true[occ_station], times,
-                           GRAVIMETRIC_FACTOR)
+    tide = longman_gravity(lon[occ_station], lat[occ_station], h_true[occ_station], times, GRAVIMETRIC_FACTOR)
     n_days = int(occ_day.max()) + 1
     rates = meter.uniform(0.010, 0.030, n_days)  # mGal/h (a well-behaved meter, inside spec)
     day_offsets = meter.normal(0.0, 0.3, n_days)
@@ -395,7 +430,7 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     tare = np.where(occ_sec > tare_time_s, 0.08, 0.0)
     noise = meter.normal(0.0, NOISE, n_occ)
     offset = float(np.floor(np.min(g_true) - 1500.0))
-    reading_mgal = (g_true[occ_station] - FREE_AIR_GRADIENT * ih + tide - offset + drift + tare + noise)
+    reading_mgal = g_true[occ_station] - FREE_AIR_GRADIENT * ih + tide - offset + drift + tare + noise
     cal = calibration_table(rng_for(seed, "grav-calibration"))
     counter = np.round(mgal_to_counter(reading_mgal, cal), 3)
     noise = noise + (counter_to_mgal(counter, cal) - counter_to_mgal(mgal_to_counter(reading_mgal, cal), cal))
@@ -407,65 +442,111 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     herr[n_st:] = 0.0  # bases are surveyed benchmarks
     h_rec = h_true + herr
 
-    survey = pd.DataFrame({
-        "station": names[occ_station],
-        "loop": np.asarray(occ_loop),
-        "time_utc": common.iso_times(times, "s"),
-        "longitude": lon[occ_station],
-        "latitude": lat[occ_station],
-        "height_m": np.round(h_rec[occ_station], 3),
-        "instrument_height_m": ih,
-        "reading_cu": counter,
-    })
+    survey = pd.DataFrame(
+        {
+            "station": names[occ_station],
+            "loop": np.asarray(occ_loop),
+            "time_utc": common.iso_times(times, "s"),
+            "longitude": lon[occ_station],
+            "latitude": lat[occ_station],
+            "height_m": np.round(h_rec[occ_station], 3),
+            "instrument_height_m": ih,
+            "reading_cu": counter,
+        }
+    )
     common.write_table(raw / SURVEY_FILE, survey)
     common.write_table(raw / CAL_FILE, cal)
-    dem = make_grid(e0 + dem_local, n0 + dem_local, dem_h, name="elevation", units="m",
-                    long_name="terrain height above the WGS84 ellipsoid (invented data)",
-                    history="potfield.demo.gravity synthetic DEM")
+    dem = make_grid(
+        e0 + dem_local,
+        n0 + dem_local,
+        dem_h,
+        name="elevation",
+        units="m",
+        long_name="terrain height above the WGS84 ellipsoid (invented data)",
+        history="potfield.demo.gravity synthetic DEM",
+    )
     dem.attrs["comment"] = common.DISCLAIMER
     write_netcdf(raw / DEM_FILE, dem, common.OUTPUT_CRS)
 
     st = occ_station
-    occ_truth = pd.DataFrame({
-        "source_file": SURVEY_FILE,
-        "source_row": np.arange(n_occ, dtype=np.int64) + 2,
-        "station": names[st],
-        "loop": np.asarray(occ_loop),
-        "g_true": g_true[st],
-        "instrument_height_effect": -FREE_AIR_GRADIENT * ih,
-        "tide": tide,
-        "meter_offset": -offset,
-        "drift": drift,
-        "tare": tare,
-        "noise": noise,
-        "reading_mgal": counter_to_mgal(counter, cal),
-    })
-    common.write_table(truth / "readings_truth.csv", occ_truth,
-                       {c: 5 for c in ("g_true", "instrument_height_effect", "tide", "drift",
-                                       "tare", "noise", "reading_mgal")})
-    st_truth = pd.DataFrame({
-        "station": names, "longitude": lon, "latitude": lat,
-        "easting": e0 + all_e, "northing": n0 + all_n,
-        "height_true": h_true, "height_recorded": np.round(h_rec, 3), "height_error": herr,
-        "normal_gravity": normal, "atmospheric_correction": atm, "topography": topo,
-        "bodies": bodies, "regional": regional, "g_true": g_true,
-        "bouguer_anomaly_true": bodies + regional,
-        "free_air_anomaly_true": g_true - normal + atm,
-    })
-    common.write_table(truth / "stations_truth.csv", st_truth,
-                       {"easting": 2, "northing": 2, "normal_gravity": 5,
-                        "atmospheric_correction": 5, "topography": 5, "bodies": 5, "regional": 5,
-                        "g_true": 5, "bouguer_anomaly_true": 5, "free_air_anomaly_true": 5})
+    occ_truth = pd.DataFrame(
+        {
+            "source_file": SURVEY_FILE,
+            "source_row": np.arange(n_occ, dtype=np.int64) + 2,
+            "station": names[st],
+            "loop": np.asarray(occ_loop),
+            "g_true": g_true[st],
+            "instrument_height_effect": -FREE_AIR_GRADIENT * ih,
+            "tide": tide,
+            "meter_offset": -offset,
+            "drift": drift,
+            "tare": tare,
+            "noise": noise,
+            "reading_mgal": counter_to_mgal(counter, cal),
+        }
+    )
+    common.write_table(
+        truth / "readings_truth.csv",
+        occ_truth,
+        {
+            c: 5
+            for c in ("g_true", "instrument_height_effect", "tide", "drift", "tare", "noise", "reading_mgal")
+        },
+    )
+    st_truth = pd.DataFrame(
+        {
+            "station": names,
+            "longitude": lon,
+            "latitude": lat,
+            "easting": e0 + all_e,
+            "northing": n0 + all_n,
+            "height_true": h_true,
+            "height_recorded": np.round(h_rec, 3),
+            "height_error": herr,
+            "normal_gravity": normal,
+            "atmospheric_correction": atm,
+            "topography": topo,
+            "bodies": bodies,
+            "regional": regional,
+            "g_true": g_true,
+            "bouguer_anomaly_true": bodies + regional,
+            "free_air_anomaly_true": g_true - normal + atm,
+        }
+    )
+    common.write_table(
+        truth / "stations_truth.csv",
+        st_truth,
+        {
+            "easting": 2,
+            "northing": 2,
+            "normal_gravity": 5,
+            "atmospheric_correction": 5,
+            "topography": 5,
+            "bodies": 5,
+            "regional": 5,
+            "g_true": 5,
+            "bouguer_anomaly_true": 5,
+            "free_air_anomaly_true": 5,
+        },
+    )
 
     # True Bouguer anomaly grid on the ground surface (100 m nodes over the survey).
     gl = np.arange(-SIDE / 2, SIDE / 2 + 1, 100.0)
     GE, GN = np.meshgrid(gl, gl)
-    gh = dem_h[np.clip(np.floor((GN + half_dem) / DEM_CELL).astype(int), 0, dem_local.size - 1),
-               np.clip(np.floor((GE + half_dem) / DEM_CELL).astype(int), 0, dem_local.size - 1)]
+    gh = dem_h[
+        np.clip(np.floor((GN + half_dem) / DEM_CELL).astype(int), 0, dem_local.size - 1),
+        np.clip(np.floor((GE + half_dem) / DEM_CELL).astype(int), 0, dem_local.size - 1),
+    ]
     gba = bodies_gravity(model, GE, GN, gh) + regional_gravity(model, GE, GN)
-    ba = make_grid(e0 + gl, n0 + gl, np.round(gba, 5), name="bouguer_anomaly", units="mGal",
-                   long_name="true complete Bouguer anomaly on the ground (invented data)",
-                   history="potfield.demo.gravity true Bouguer anomaly")
+    ba = make_grid(
+        e0 + gl,
+        n0 + gl,
+        np.round(gba, 5),
+        name="bouguer_anomaly",
+        units="mGal",
+        long_name="true complete Bouguer anomaly on the ground (invented data)",
+        history="potfield.demo.gravity true Bouguer anomaly",
+    )
     ba.attrs["comment"] = common.DISCLAIMER
     write_netcdf(truth / "bouguer_anomaly.nc", ba, common.OUTPUT_CRS)
 
@@ -475,25 +556,41 @@ def make_gravity(directory: Path, seed: int = 0) -> Path:
     params = {
         "disclaimer": common.DISCLAIMER,
         "seed": int(seed),
-        "area": {"name": common.AREA_NAME, "crs": common.OUTPUT_CRS, "centre_easting": e0,
-                 "centre_northing": n0, "side_m": SIDE},
-        "stations": int(n_st), "occupations": int(n_occ), "loops": [l[0] for l in loops],
+        "area": {
+            "name": common.AREA_NAME,
+            "crs": common.OUTPUT_CRS,
+            "centre_easting": e0,
+            "centre_northing": n0,
+            "side_m": SIDE,
+        },
+        "stations": int(n_st),
+        "occupations": int(n_occ),
+        "loops": [l[0] for l in loops],
         "days": n_days,
         "bases": base_g,
-        "meter": {"offset_mGal": offset, "drift_rates_mGal_per_h": np.round(rates, 5).tolist(),
-                  "day_offsets_mGal": np.round(day_offsets, 5).tolist(), "tare_mGal": 0.08,
-                  "tare_time": tare_iso, "noise_sigma_mGal": NOISE,
-                  "free_air_gradient_mGal_per_m": FREE_AIR_GRADIENT,
-                  "gravimetric_factor": GRAVIMETRIC_FACTOR},
-        "terrain": terrain, "plateau_height_m": far_h, "dem_cell_m": DEM_CELL,
-        "dem_half_width_m": half_dem, "density_kg_m3": DENSITY,
-        "bodies": model["bodies"], "regional": model["regional"],
+        "meter": {
+            "offset_mGal": offset,
+            "drift_rates_mGal_per_h": np.round(rates, 5).tolist(),
+            "day_offsets_mGal": np.round(day_offsets, 5).tolist(),
+            "tare_mGal": 0.08,
+            "tare_time": tare_iso,
+            "noise_sigma_mGal": NOISE,
+            "free_air_gradient_mGal_per_m": FREE_AIR_GRADIENT,
+            "gravimetric_factor": GRAVIMETRIC_FACTOR,
+        },
+        "terrain": terrain,
+        "plateau_height_m": far_h,
+        "dem_cell_m": DEM_CELL,
+        "dem_half_width_m": half_dem,
+        "density_kg_m3": DENSITY,
+        "bodies": model["bodies"],
+        "regional": model["regional"],
         "truth_columns": {
             "readings_truth.csv": "reading_mgal = g_true + instrument_height_effect + tide + "
-                                  "meter_offset + drift + tare + noise (mGal; counter through "
-                                  "raw/calibration.csv)",
+            "meter_offset + drift + tare + noise (mGal; counter through "
+            "raw/calibration.csv)",
             "stations_truth.csv": "g_true = normal_gravity - atmospheric_correction + topography "
-                                  "+ bodies + regional; bouguer_anomaly_true = bodies + regional",
+            "+ bodies + regional; bouguer_anomaly_true = bodies + regional",
         },
     }
     common.write_params(truth / "parameters.json", params)

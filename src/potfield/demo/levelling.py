@@ -41,11 +41,22 @@ def _terrain(rng, east, north, relief):
     return 300.0 + relief * z / 6.0 * 2.0
 
 
-def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 6000.0,
-                    line_spacing: float = 200.0, tie_spacing: float = 2000.0, step: float = 20.0,
-                    relief: float = 220.0, clearance: float = 80.0, offset_sd: float = 4.0,
-                    drift_sd: float = 5.0, noise: float = 0.05, inclination: float = -60.0,
-                    declination: float = 10.0):
+def tie_line_survey(
+    seed: int = 0,
+    *,
+    side_e: float = 8000.0,
+    side_n: float = 6000.0,
+    line_spacing: float = 200.0,
+    tie_spacing: float = 2000.0,
+    step: float = 20.0,
+    relief: float = 220.0,
+    clearance: float = 80.0,
+    offset_sd: float = 4.0,
+    drift_sd: float = 5.0,
+    noise: float = 0.05,
+    inclination: float = -60.0,
+    declination: float = 10.0,
+):
     """Readings table of an invented tie-line survey with line level errors.
 
     Returns
@@ -66,12 +77,14 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
     n_tie = round(side_e / tie_spacing) + 1
     for k in range(n_trav):  # loop over lines, not readings
         x = np.arange(-200.0, side_e + 200.0 + 1e-9, step)
-        specs.append((f"L{1000 + 10 * k}", "traverse", x if k % 2 == 0 else x[::-1],
-                      np.full(x.size, k * line_spacing)))
+        specs.append(
+            (f"L{1000 + 10 * k}", "traverse", x if k % 2 == 0 else x[::-1], np.full(x.size, k * line_spacing))
+        )
     for k in range(n_tie):
         y = np.arange(-200.0, side_n + 200.0 + 1e-9, step)
-        specs.append((f"T{100 + 10 * k}", "tie", np.full(y.size, k * tie_spacing),
-                      y if k % 2 == 0 else y[::-1]))
+        specs.append(
+            (f"T{100 + 10 * k}", "tie", np.full(y.size, k * tie_spacing), y if k % 2 == 0 else y[::-1])
+        )
     frames, clock = [], 0.0
     t0 = np.datetime64("2025-03-10T07:00:00", "ns")
     for name, kind, x, y in specs:
@@ -80,8 +93,9 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
         n = y + (0.0 if kind == "tie" else wander)
         sec = clock + np.arange(x.size) * step / speed
         clock = sec[-1] + rng.uniform(60.0, 120.0)  # turn
-        frames.append(pd.DataFrame({"line": name, "line_type": kind, "easting": e,
-                                    "northing": n, "seconds": sec}))
+        frames.append(
+            pd.DataFrame({"line": name, "line_type": kind, "easting": e, "northing": n, "seconds": sec})
+        )
     table = pd.concat(frames, ignore_index=True)
     e, n = table["easting"].to_numpy(), table["northing"].to_numpy()
     terrain = _terrain(np.random.default_rng(seed + 1000), e, n, relief)
@@ -95,17 +109,18 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
     lag = round(150.0 / step)
     for i in range(bounds.size - 1):  # loop over lines
         a, b = bounds[i], bounds[i + 1]
-        smooth = gaussian_filter1d(terrain[a:b],
-                                  sigma=300.0 / step, mode="nearest")
+        smooth = gaussian_filter1d(terrain[a:b], sigma=300.0 / step, mode="nearest")
         smooth = np.r_[np.full(lag, smooth[0]), smooth[:-lag]] if lag else smooth
         height[a:b] = np.maximum(smooth + clearance, terrain[a:b] + 40.0) + bias[i]
     # Crustal model: a shallow dyke (north-south), a plug and a basement step (harmonica).
     base = 300.0 - relief
-    prisms = np.array([
-        [2400.0, 2480.0, -1000.0, 7000.0, base - 900.0, base - 10.0],
-        [5200.0, 5900.0, 2600.0, 3300.0, base - 2000.0, base - 150.0],
-        [-3000.0, 4000.0, -3000.0, 9000.0, base - 4000.0, base - 900.0],
-    ])
+    prisms = np.array(
+        [
+            [2400.0, 2480.0, -1000.0, 7000.0, base - 900.0, base - 10.0],
+            [5200.0, 5900.0, 2600.0, 3300.0, base - 2000.0, base - 150.0],
+            [-3000.0, 4000.0, -3000.0, 9000.0, base - 4000.0, base - 900.0],
+        ]
+    )
     chi = np.array([0.08, 0.03, 0.01])
     h = 50000.0 * 1e-9 / MU0
     u = np.array(hm.magnetic_angles_to_vec(1.0, inclination, declination))
@@ -128,8 +143,13 @@ def tie_line_survey(seed: int = 0, *, side_e: float = 8000.0, side_n: float = 60
     table["anomaly"] = truth + level_error + rng.normal(0.0, noise, len(table))
     table["flag_spike"] = False
     table = table.drop(columns="seconds").sort_values(["line", "time"], ignore_index=True)
-    info = {"offsets": {str(k): float(v) for k, v in offsets.items()},
-            "drift_knots_s": knots.tolist(), "drift_nT": walk.tolist(),
-            "line_spacing_m": line_spacing, "tie_spacing_m": tie_spacing,
-            "inclination": inclination, "declination": declination}
+    info = {
+        "offsets": {str(k): float(v) for k, v in offsets.items()},
+        "drift_knots_s": knots.tolist(),
+        "drift_nT": walk.tolist(),
+        "line_spacing_m": line_spacing,
+        "tie_spacing_m": tie_spacing,
+        "inclination": inclination,
+        "declination": declination,
+    }
     return table, info

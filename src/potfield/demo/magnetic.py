@@ -61,11 +61,11 @@ CHUNK = 1_000_000
 SURVEY_FILE = "mag_lines.csv"
 BASE_FILE = "base_station.csv"
 OBSERVATORY_CODE = "QVX"
-OBSERVATORY = {"lon": 148.95, "lat": -35.35, "elevation": 610.0,
-               "name": "Quellvane Ridge (fictional)"}
+OBSERVATORY = {"lon": 148.95, "lat": -35.35, "elevation": 610.0, "name": "Quellvane Ridge (fictional)"}
 
 
 # --- external field ----------------------------------------------------------------------------
+
 
 def external_events(rng: np.random.Generator, windows: list[tuple[float, float]]) -> dict:
     """Random parameters of the external variation: a daily solar-quiet-like pattern with a
@@ -78,26 +78,33 @@ def external_events(rng: np.random.Generator, windows: list[tuple[float, float]]
         Flight windows in seconds since :data:`FIRST_FLIGHT`.
     """
     days = int(np.ceil((windows[-1][1] + 2 * 86400) / 86400.0)) + 1
-    events = {"sq_day_factor": rng.uniform(0.75, 1.25, days).tolist(),
-              "sq_amplitude_nT": {"north": 14.0, "east": -12.0, "down": 24.0},
-              "pulsations": [], "bays": []}
+    events = {
+        "sq_day_factor": rng.uniform(0.75, 1.25, days).tolist(),
+        "sq_amplitude_nT": {"north": 14.0, "east": -12.0, "down": 24.0},
+        "pulsations": [],
+        "bays": [],
+    }
     for start, end in windows:
         span = end - start
         for _ in range(3):
             d = rng.standard_normal(3)
-            events["pulsations"].append({
-                "t0_s": float(start + rng.uniform(0.05, 0.95) * span),
-                "period_s": float(rng.uniform(30.0, 200.0)),
-                "width_s": float(rng.uniform(240.0, 900.0)),
-                "amplitude_nT": float(rng.uniform(1.0, 4.0)),
-                "phase": float(rng.uniform(0, 2 * np.pi)),
-                "direction": (d / np.linalg.norm(d)).tolist(),
-            })
-        events["bays"].append({
-            "t0_s": float(start + rng.uniform(0.2, 0.8) * span),
-            "width_s": float(rng.uniform(1200.0, 2400.0)),
-            "amplitude_nT": float(rng.uniform(8.0, 18.0)),
-        })
+            events["pulsations"].append(
+                {
+                    "t0_s": float(start + rng.uniform(0.05, 0.95) * span),
+                    "period_s": float(rng.uniform(30.0, 200.0)),
+                    "width_s": float(rng.uniform(240.0, 900.0)),
+                    "amplitude_nT": float(rng.uniform(1.0, 4.0)),
+                    "phase": float(rng.uniform(0, 2 * np.pi)),
+                    "direction": (d / np.linalg.norm(d)).tolist(),
+                }
+            )
+        events["bays"].append(
+            {
+                "t0_s": float(start + rng.uniform(0.2, 0.8) * span),
+                "width_s": float(rng.uniform(1200.0, 2400.0)),
+                "amplitude_nT": float(rng.uniform(8.0, 18.0)),
+            }
+        )
     return events
 
 
@@ -136,8 +143,11 @@ def external_vector(seconds: np.ndarray, longitude, events: dict):
     east = factor * amp["east"] * slope
     down = factor * amp["down"] * (np.exp(-0.5 * ((lt - 12.0) / 3.2) ** 2) - 0.15)
     for p in events["pulsations"]:  # a few events, each vectorised over all times
-        wave = p["amplitude_nT"] * np.exp(-0.5 * ((t - p["t0_s"]) / p["width_s"]) ** 2) * np.sin(
-            2 * np.pi * (t - p["t0_s"]) / p["period_s"] + p["phase"])
+        wave = (
+            p["amplitude_nT"]
+            * np.exp(-0.5 * ((t - p["t0_s"]) / p["width_s"]) ** 2)
+            * np.sin(2 * np.pi * (t - p["t0_s"]) / p["period_s"] + p["phase"])
+        )
         north = north + wave * p["direction"][0]
         east = east + wave * p["direction"][1]
         down = down + wave * p["direction"][2]
@@ -165,8 +175,10 @@ def project_on(field, north, east, down):
 
 # --- crustal model -----------------------------------------------------------------------------
 
-def crustal_model(rng: np.random.Generator, side: float, datum: float, inc: float, dec: float,
-                  intensity: float) -> dict:
+
+def crustal_model(
+    rng: np.random.Generator, side: float, datum: float, inc: float, dec: float, intensity: float
+) -> dict:
     """Prisms and magnetisations of the crustal model (local coordinates, m from the centre).
 
     Parameters
@@ -195,13 +207,22 @@ def crustal_model(rng: np.random.Generator, side: float, datum: float, inc: floa
     for k in range(8):
         z_top = top - 70.0 * k
         shift = (datum - 120.0 - z_top) / np.tan(np.radians(dip))
-        prisms.append([x0 + shift - 25.0, x0 + shift + 25.0, -length / 2, length / 2,
-                       z_top - 70.0, z_top])
+        prisms.append([x0 + shift - 25.0, x0 + shift + 25.0, -length / 2, length / 2, z_top - 70.0, z_top])
         mags.append([chi_dyke * h_induced * ue, chi_dyke * h_induced * un, chi_dyke * h_induced * uu])
-    bodies.append({"name": "dyke", "susceptibility_SI": chi_dyke, "dip_deg": dip,
-                   "dip_direction": "east", "thickness_m": 50.0, "strike": "north-south",
-                   "east_m": float(x0), "length_m": float(length), "top_depth_m": 120.0,
-                   "prisms": 8})
+    bodies.append(
+        {
+            "name": "dyke",
+            "susceptibility_SI": chi_dyke,
+            "dip_deg": dip,
+            "dip_direction": "east",
+            "thickness_m": 50.0,
+            "strike": "north-south",
+            "east_m": float(x0),
+            "length_m": float(length),
+            "top_depth_m": 120.0,
+            "prisms": 8,
+        }
+    )
 
     # Plug: three stacked square prisms, induced plus a remanent magnetisation.
     px, py = rng.uniform(0.1, 0.25) * side, rng.uniform(-0.2, 0.2) * side
@@ -209,16 +230,32 @@ def crustal_model(rng: np.random.Generator, side: float, datum: float, inc: floa
     rem_int, rem_inc, rem_dec = 2.5, 45.0, 160.0
     re_, rn, ru = hm.magnetic_angles_to_vec(rem_int, rem_inc, rem_dec)
     radius = max(350.0, 0.05 * side)
-    for k, (half, z_top, z_bot) in enumerate([(0.7 * radius, datum - 200, datum - 450),
-                                               (radius, datum - 450, datum - 1200),
-                                               (1.2 * radius, datum - 1200, datum - 2500)]):
+    for k, (half, z_top, z_bot) in enumerate(  # noqa: B007
+        [
+            (0.7 * radius, datum - 200, datum - 450),
+            (radius, datum - 450, datum - 1200),
+            (1.2 * radius, datum - 1200, datum - 2500),
+        ]
+    ):
         prisms.append([px - half, px + half, py - half, py + half, z_bot, z_top])
-        mags.append([chi_plug * h_induced * ue + re_, chi_plug * h_induced * un + rn,
-                     chi_plug * h_induced * uu + ru])
-    bodies.append({"name": "plug", "susceptibility_SI": chi_plug, "remanence_A_per_m": rem_int,
-                   "remanence_inclination_deg": rem_inc, "remanence_declination_deg": rem_dec,
-                   "east_m": float(px), "north_m": float(py), "radius_m": float(radius),
-                   "top_depth_m": 200.0, "bottom_depth_m": 2500.0, "prisms": 3})
+        mags.append(
+            [chi_plug * h_induced * ue + re_, chi_plug * h_induced * un + rn, chi_plug * h_induced * uu + ru]
+        )
+    bodies.append(
+        {
+            "name": "plug",
+            "susceptibility_SI": chi_plug,
+            "remanence_A_per_m": rem_int,
+            "remanence_inclination_deg": rem_inc,
+            "remanence_declination_deg": rem_dec,
+            "east_m": float(px),
+            "north_m": float(py),
+            "radius_m": float(radius),
+            "top_depth_m": 200.0,
+            "bottom_depth_m": 2500.0,
+            "prisms": 3,
+        }
+    )
 
     # Basement: 4 x 4 fault blocks with their own top depth and susceptibility.
     nb = 4
@@ -228,25 +265,36 @@ def crustal_model(rng: np.random.Generator, side: float, datum: float, inc: floa
     chis = rng.uniform(0.004, 0.015, (nb, nb))
     for i in range(nb):
         for j in range(nb):
-            prisms.append([edges[j], edges[j + 1], edges[i], edges[i + 1], datum - 4000.0,
-                           datum - tops[i, j]])
+            prisms.append(
+                [edges[j], edges[j + 1], edges[i], edges[i + 1], datum - 4000.0, datum - tops[i, j]]
+            )
             c = chis[i, j]
             mags.append([c * h_induced * ue, c * h_induced * un, c * h_induced * uu])
-    bodies.append({"name": "basement", "blocks": nb * nb, "edges_m": edges.tolist(),
-                   "top_depth_m": np.round(tops, 1).tolist(),
-                   "susceptibility_SI": np.round(chis, 5).tolist(), "bottom_depth_m": 4000.0})
+    bodies.append(
+        {
+            "name": "basement",
+            "blocks": nb * nb,
+            "edges_m": edges.tolist(),
+            "top_depth_m": np.round(tops, 1).tolist(),
+            "susceptibility_SI": np.round(chis, 5).tolist(),
+            "bottom_depth_m": 4000.0,
+        }
+    )
     mags = np.asarray(mags)
-    return {"prisms": np.asarray(prisms, dtype=float),
-            "magnetization": (mags[:, 0], mags[:, 1], mags[:, 2]),
-            "bodies": bodies}
+    return {
+        "prisms": np.asarray(prisms, dtype=float),
+        "magnetization": (mags[:, 0], mags[:, 1], mags[:, 2]),
+        "bodies": bodies,
+    }
 
 
 def crustal_field(model: dict, east_local, north_local, height):
     """Magnetic vector (east, north, up; nT) of the prism model (harmonica.prism_magnetic)."""
     import harmonica as hm
 
-    return hm.prism_magnetic((east_local, north_local, height), model["prisms"],
-                             model["magnetization"], field="b")
+    return hm.prism_magnetic(
+        (east_local, north_local, height), model["prisms"], model["magnetization"], field="b"
+    )
 
 
 def crustal_anomaly(model: dict, east_local, north_local, height, field):
@@ -256,6 +304,7 @@ def crustal_anomaly(model: dict, east_local, north_local, height, field):
 
 
 # --- flight geometry ---------------------------------------------------------------------------
+
 
 def plan_lines(readings: int) -> dict:
     """Size of the (square) area and the line plan for about ``readings`` samples."""
@@ -300,8 +349,10 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     if not MIN_READINGS <= readings <= MAX_READINGS:
         from ..errors import ConfigError
 
-        raise ConfigError(f"--readings {readings} is outside {MIN_READINGS:,}..{MAX_READINGS:,}",
-                          fix="choose a number of readings in that range")
+        raise ConfigError(
+            f"--readings {readings} is outside {MIN_READINGS:,}..{MAX_READINGS:,}",
+            fix="choose a number of readings in that range",
+        )
     directory, raw, truth = common.survey_folders(directory)
     fwd, inv = common.transformers()
     e0, n0 = common.centre_projected()
@@ -309,13 +360,15 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     plan = plan_lines(readings)
     side = plan["side_m"]
     geo = rng_for(seed, "mag-geometry")
-    terrain = common.make_terrain(rng_for(seed, "mag-terrain"), 0.75 * side, base=260.0,
-                                  relief=min(160.0, 40.0 + side / 60.0))
+    terrain = common.make_terrain(
+        rng_for(seed, "mag-terrain"), 0.75 * side, base=260.0, relief=min(160.0, 40.0 + side / 60.0)
+    )
 
     # Lines: traverses east-west (numbered 1010, 1020, ...), ties north-south (9010, ...).
     n_trav, n_tie = plan["traverses"], plan["ties"]
-    offsets = np.concatenate([-side / 2 + LINE_SPACING * np.arange(n_trav),
-                              -side / 2 + plan["tie_spacing_m"] * np.arange(n_tie)])
+    offsets = np.concatenate(
+        [-side / 2 + LINE_SPACING * np.arange(n_trav), -side / 2 + plan["tie_spacing_m"] * np.arange(n_tie)]
+    )
     is_tie = np.r_[np.zeros(n_trav, bool), np.ones(n_tie, bool)]
     names = np.r_[1010 + 10 * np.arange(n_trav), 9010 + 10 * np.arange(n_tie)].astype(str)
     n_lines = names.size
@@ -398,8 +451,11 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
 
     mid_time = FIRST_FLIGHT + np.timedelta64(int(np.median(seconds) * 1e9), "ns")
     centre_field = igrf(common.CENTRE_LON, common.CENTRE_LAT, terrain["base_m"] + CLEARANCE, mid_time)
-    inc, dec, intensity = (float(centre_field.inclination), float(centre_field.declination),
-                           float(centre_field.total))
+    inc, dec, intensity = (
+        float(centre_field.inclination),
+        float(centre_field.declination),
+        float(centre_field.total),
+    )
     model = crustal_model(rng_for(seed, "mag-crust"), side, terrain["base_m"], inc, dec, intensity)
     ev = external_events(rng_for(seed, "mag-external"), windows)
     igrf_total, crustal, external = np.empty(n), np.empty(n), np.empty(n)
@@ -425,34 +481,49 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     noise = tmi - (igrf_total + crustal + external + level_r + spike)  # includes the rounding
 
     line_names = names[line_idx]
-    fid = (np.round(seconds * RATE_HZ).astype(np.int64) % 10_000_000)
-    survey = pd.DataFrame({
-        "line": line_names,
-        "fiducial": fid,
-        "time_utc": common.iso_times(times, "ms"),
-        "longitude": lon,
-        "latitude": lat,
-        "height_m": height,
-        "total_field_nT": tmi,
-    })
-    common.write_table(raw / SURVEY_FILE, survey, {"longitude": 7, "latitude": 7, "height_m": 2,
-                                                   "total_field_nT": 3})
+    fid = np.round(seconds * RATE_HZ).astype(np.int64) % 10_000_000
+    survey = pd.DataFrame(
+        {
+            "line": line_names,
+            "fiducial": fid,
+            "time_utc": common.iso_times(times, "ms"),
+            "longitude": lon,
+            "latitude": lat,
+            "height_m": height,
+            "total_field_nT": tmi,
+        }
+    )
+    common.write_table(
+        raw / SURVEY_FILE, survey, {"longitude": 7, "latitude": 7, "height_m": 2, "total_field_nT": 3}
+    )
 
-    truth_table = pd.DataFrame({
-        "source_file": SURVEY_FILE,
-        "source_row": np.arange(n, dtype=np.int64) + 2,  # line in the file (header = line 1)
-        "line": line_names,
-        "crustal_anomaly": crustal,
-        "igrf_total": igrf_total,
-        "external": external,
-        "level_error": level_r,
-        "noise": noise,
-        "spike": spike,
-        "terrain_height": ground,
-    })
-    common.write_table(truth / "readings_truth.csv", truth_table,
-                       {"crustal_anomaly": 4, "igrf_total": 4, "external": 4, "level_error": 3,
-                        "noise": 4, "spike": 3, "terrain_height": 2})
+    truth_table = pd.DataFrame(
+        {
+            "source_file": SURVEY_FILE,
+            "source_row": np.arange(n, dtype=np.int64) + 2,  # line in the file (header = line 1)
+            "line": line_names,
+            "crustal_anomaly": crustal,
+            "igrf_total": igrf_total,
+            "external": external,
+            "level_error": level_r,
+            "noise": noise,
+            "spike": spike,
+            "terrain_height": ground,
+        }
+    )
+    common.write_table(
+        truth / "readings_truth.csv",
+        truth_table,
+        {
+            "crustal_anomaly": 4,
+            "igrf_total": 4,
+            "external": 4,
+            "level_error": 3,
+            "noise": 4,
+            "spike": 3,
+            "terrain_height": 2,
+        },
+    )
 
     # Base station inside the area (1 s), and a distant observatory (IAGA-2002, 1 min).
     base_local = (-0.3 * side, -0.35 * side)
@@ -460,32 +531,43 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     base_lon, base_lat = round(float(base_lon), 6), round(float(base_lat), 6)
     base_e, base_n = fwd.transform(base_lon, base_lat)
     base_h = round(float(common.terrain_height(base_e - e0, base_n - n0, terrain)) + 2.0, 2)
-    base_sec = np.concatenate([np.arange(np.floor(a) - 1200.0, np.ceil(b) + 1200.0, 1.0)
-                               for a, b in windows])
+    base_sec = np.concatenate([np.arange(np.floor(a) - 1200.0, np.ceil(b) + 1200.0, 1.0) for a, b in windows])
     base_times = FIRST_FLIGHT + (base_sec * 1e9).astype("int64").astype("timedelta64[ns]")
     base_main = igrf(base_lon, base_lat, base_h, base_times)
-    base_crust = crustal_anomaly(model, np.array([base_e - e0]), np.array([base_n - n0]),
-                                 np.array([base_h]), igrf(base_lon, base_lat, base_h, mid_time))[0]
+    base_crust = crustal_anomaly(
+        model,
+        np.array([base_e - e0]),
+        np.array([base_n - n0]),
+        np.array([base_h]),
+        igrf(base_lon, base_lat, base_h, mid_time),
+    )[0]
     bn_, be_, bd_ = external_vector(base_sec, base_lon, ev)
     base_ext = project_on(base_main, bn_, be_, bd_)
     base_noise = rng_for(seed, "mag-base").normal(0.0, 0.02, base_sec.size)
     base_value = np.round(base_main.total + base_crust + base_ext + base_noise, 2)
     day = base_times.astype("datetime64[D]")
-    base = pd.DataFrame({
-        "date": np.datetime_as_string(day, unit="D"),
-        "seconds_of_day": np.round((base_times - day).astype("int64") / 1e9, 1),
-        "base_total_field_nT": base_value,
-    })
+    base = pd.DataFrame(
+        {
+            "date": np.datetime_as_string(day, unit="D"),
+            "seconds_of_day": np.round((base_times - day).astype("int64") / 1e9, 1),
+            "base_total_field_nT": base_value,
+        }
+    )
     common.write_table(raw / BASE_FILE, base)
-    base_truth = pd.DataFrame({
-        "time": common.iso_times(base_times, "s"),
-        "igrf_total": base_main.total,
-        "crustal_anomaly": base_crust,
-        "external": base_ext,
-        "noise": base_value - (base_main.total + base_crust + base_ext),
-    })
-    common.write_table(truth / "base_truth.csv", base_truth,
-                       {"igrf_total": 4, "crustal_anomaly": 4, "external": 4, "noise": 4})
+    base_truth = pd.DataFrame(
+        {
+            "time": common.iso_times(base_times, "s"),
+            "igrf_total": base_main.total,
+            "crustal_anomaly": base_crust,
+            "external": base_ext,
+            "noise": base_value - (base_main.total + base_crust + base_ext),
+        }
+    )
+    common.write_table(
+        truth / "base_truth.csv",
+        base_truth,
+        {"igrf_total": 4, "crustal_anomaly": 4, "external": 4, "noise": 4},
+    )
 
     obs_files = write_observatory_days(raw, windows, ev, seed)
 
@@ -497,12 +579,23 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
     GE, GN = np.meshgrid(ge, gn)
     glon, glat = inv.transform(e0 + GE, n0 + GN)
     gfield = igrf(glon, glat, grid_h, mid_time)
-    ganom = crustal_anomaly(model, GE.ravel(), GN.ravel(), np.full(GE.size, grid_h),
-                            igrf(glon.ravel(), glat.ravel(), grid_h, mid_time)).reshape(GE.shape)
+    ganom = crustal_anomaly(
+        model,
+        GE.ravel(),
+        GN.ravel(),
+        np.full(GE.size, grid_h),
+        igrf(glon.ravel(), glat.ravel(), grid_h, mid_time),
+    ).reshape(GE.shape)
     del gfield
-    grid = make_grid(e0 + ge, n0 + gn, np.round(ganom, 4), name="crustal_anomaly", units="nT",
-                     long_name=f"true crustal total-field anomaly at {grid_h:.1f} m (invented data)",
-                     history="potfield.demo.magnetic true crustal anomaly")
+    grid = make_grid(
+        e0 + ge,
+        n0 + gn,
+        np.round(ganom, 4),
+        name="crustal_anomaly",
+        units="nT",
+        long_name=f"true crustal total-field anomaly at {grid_h:.1f} m (invented data)",
+        history="potfield.demo.magnetic true crustal anomaly",
+    )
     grid.attrs["comment"] = common.DISCLAIMER
     grid.attrs["height_m"] = grid_h
     write_netcdf(truth / "crustal_anomaly.nc", grid, common.OUTPUT_CRS)
@@ -512,29 +605,56 @@ def make_magnetic(directory: Path, readings: int | None = None, seed: int = 0) -
         "seed": int(seed),
         "readings": int(n),
         "requested_readings": int(readings),
-        "area": {"name": common.AREA_NAME, "centre_lon": common.CENTRE_LON,
-                 "centre_lat": common.CENTRE_LAT, "crs": common.OUTPUT_CRS,
-                 "centre_easting": e0, "centre_northing": n0, "side_m": side},
-        "design": {"line_spacing_m": LINE_SPACING, "tie_spacing_m": plan["tie_spacing_m"],
-                   "traverse_direction": "east-west", "tie_direction": "north-south",
-                   "speed_m_s": SPEED, "sample_rate_hz": RATE_HZ, "clearance_m": CLEARANCE,
-                   "wind_east_north_m_s": np.round(wind, 3).tolist(), "traverses": n_trav,
-                   "ties": n_tie, "flights": len(windows),
-                   "climb_lines": [str(names[c]) for c in climbs]},
-        "lines": {str(names[i]): {"level_error_nT": float(level[i]),
-                                  "type": "tie" if is_tie[i] else "traverse",
-                                  "speed_m_s": round(float(speed[i]), 3),
-                                  "gap": bool(has_gap[i])} for i in range(n_lines)},
-        "main_field_at_centre": {"time": str(mid_time.astype("datetime64[s]")) + "Z",
-                                 "inclination_deg": inc, "declination_deg": dec,
-                                 "total_nT": intensity},
+        "area": {
+            "name": common.AREA_NAME,
+            "centre_lon": common.CENTRE_LON,
+            "centre_lat": common.CENTRE_LAT,
+            "crs": common.OUTPUT_CRS,
+            "centre_easting": e0,
+            "centre_northing": n0,
+            "side_m": side,
+        },
+        "design": {
+            "line_spacing_m": LINE_SPACING,
+            "tie_spacing_m": plan["tie_spacing_m"],
+            "traverse_direction": "east-west",
+            "tie_direction": "north-south",
+            "speed_m_s": SPEED,
+            "sample_rate_hz": RATE_HZ,
+            "clearance_m": CLEARANCE,
+            "wind_east_north_m_s": np.round(wind, 3).tolist(),
+            "traverses": n_trav,
+            "ties": n_tie,
+            "flights": len(windows),
+            "climb_lines": [str(names[c]) for c in climbs],
+        },
+        "lines": {
+            str(names[i]): {
+                "level_error_nT": float(level[i]),
+                "type": "tie" if is_tie[i] else "traverse",
+                "speed_m_s": round(float(speed[i]), 3),
+                "gap": bool(has_gap[i]),
+            }
+            for i in range(n_lines)
+        },
+        "main_field_at_centre": {
+            "time": str(mid_time.astype("datetime64[s]")) + "Z",
+            "inclination_deg": inc,
+            "declination_deg": dec,
+            "total_nT": intensity,
+        },
         "bodies": model["bodies"],
         "terrain": terrain,
         "external": ev,
         "spikes": int(n_spikes),
         "noise_sigma_nT": 0.05,
-        "base_station": {"file": f"raw/{BASE_FILE}", "longitude": base_lon, "latitude": base_lat,
-                         "height_m": base_h, "crustal_anomaly_nT": float(base_crust)},
+        "base_station": {
+            "file": f"raw/{BASE_FILE}",
+            "longitude": base_lon,
+            "latitude": base_lat,
+            "height_m": base_h,
+            "crustal_anomaly_nT": float(base_crust),
+        },
         "observatory": {"code": OBSERVATORY_CODE, **OBSERVATORY, "files": obs_files},
         "grid": {"file": "truth/crustal_anomaly.nc", "height_m": grid_h, "cell_m": cell},
         "truth_columns": {
@@ -575,10 +695,9 @@ def write_observatory_days(raw: Path, windows, events: dict, seed: int) -> list[
         x = main.north + xn + rng.normal(0, 0.1, sec.size)
         y = main.east + xe + rng.normal(0, 0.1, sec.size)
         z = main.down + xd + rng.normal(0, 0.1, sec.size)
-        frame = pd.DataFrame({"time": times, "X": np.round(x, 2), "Y": np.round(y, 2),
-                              "Z": np.round(z, 2)})
+        frame = pd.DataFrame({"time": times, "X": np.round(x, 2), "Y": np.round(y, 2), "Z": np.round(z, 2)})
         frame["F"] = np.round(np.sqrt(frame["X"] ** 2 + frame["Y"] ** 2 + frame["Z"] ** 2), 2)
-        day = str((first + np.timedelta64(d, "D")))
+        day = str(first + np.timedelta64(d, "D"))
         name = f"{OBSERVATORY_CODE.lower()}{day.replace('-', '')}vmin.min"
         write_iaga2002(raw / name, frame, header=_obs_header(), comments=_obs_comments())
         files.append(f"raw/{name}")
@@ -586,17 +705,27 @@ def write_observatory_days(raw: Path, windows, events: dict, seed: int) -> list[
 
 
 def _obs_header() -> dict:
-    return {"source": "potfield demo (invented data)", "station_name": OBSERVATORY["name"],
-            "iaga_code": OBSERVATORY_CODE, "latitude": OBSERVATORY["lat"],
-            "longitude": OBSERVATORY["lon"], "elevation": OBSERVATORY["elevation"],
-            "reported": "XYZF", "sensor_orientation": "XYZ", "digital_sampling": "1 second",
-            "interval_type": "1-minute (instantaneous)", "data_type": "variation"}
+    return {
+        "source": "potfield demo (invented data)",
+        "station_name": OBSERVATORY["name"],
+        "iaga_code": OBSERVATORY_CODE,
+        "latitude": OBSERVATORY["lat"],
+        "longitude": OBSERVATORY["lon"],
+        "elevation": OBSERVATORY["elevation"],
+        "reported": "XYZF",
+        "sensor_orientation": "XYZ",
+        "digital_sampling": "1 second",
+        "interval_type": "1-minute (instantaneous)",
+        "data_type": "variation",
+    }
 
 
 def _obs_comments() -> list[str]:
-    return ["Invented data: a fictional observatory made by potfield.demo.",
-            "IGRF-14 main field plus a synthetic external variation and noise.",
-            f"Code {OBSERVATORY_CODE} is fictional; no real station is meant."]
+    return [
+        "Invented data: a fictional observatory made by potfield.demo.",
+        "IGRF-14 main field plus a synthetic external variation and noise.",
+        f"Code {OBSERVATORY_CODE} is fictional; no real station is meant.",
+    ]
 
 
 def _survey_toml(base_lon: float, base_lat: float, obs_files: list[str]) -> str:

@@ -93,7 +93,7 @@ def schmidt_legendre(nmax: int, theta_deg):
         # sin(theta) dP/dtheta = n cos(theta) P_n^m - (n + m) P_(n-1)^m  (unnormalised)
         dP[(n, m)] = (n * x * p - (n + m) * prev) / s
     out_p, out_dp = {}, {}
-    for (n, m) in P:
+    for n, m in P:
         if n == 0:
             continue
         norm = 1.0 if m == 0 else np.sqrt(2.0 * factorial(n - m) / factorial(n + m))
@@ -188,8 +188,13 @@ def external_coefficients(rng: np.random.Generator, minutes: np.ndarray) -> pd.D
     rise, recovery = rng.uniform(4.0, 8.0), rng.uniform(10.0, 16.0)
     dt = t_h - onset
     sc = -12.0 * np.exp(-0.5 * ((dt + 0.5) / 0.4) ** 2)
-    main = np.where(dt < 0, 0.0, np.where(dt < rise, peak * (dt / rise) ** 2 * (3 - 2 * dt / rise),
-                                          peak * np.exp(-(dt - rise) / recovery)))
+    main = np.where(
+        dt < 0,
+        0.0,
+        np.where(
+            dt < rise, peak * (dt / rise) ** 2 * (3 - 2 * dt / rise), peak * np.exp(-(dt - rise) / recovery)
+        ),
+    )
     q10 = quiet + sc + main
     # Daily variation: a pattern fixed to the Sun. The subsolar longitude is 180 - 15 UT (deg);
     # q cos(m phi) + s sin(m phi) = A cos(m (phi - phi_sun) - alpha).
@@ -198,19 +203,25 @@ def external_coefficients(rng: np.random.Generator, minutes: np.ndarray) -> pd.D
     f = rng.uniform(0.8, 1.2, DAYS)[day]
     a11, a21, a22 = rng.uniform(5.0, 8.0), rng.uniform(2.0, 4.0), rng.uniform(1.5, 3.0)
     al = rng.uniform(-0.5, 0.5, 3)
-    frame = pd.DataFrame({
-        "q10": q10,
-        "q11": f * a11 * np.cos(phi_sun + al[0]),
-        "s11": f * a11 * np.sin(phi_sun + al[0]),
-        "q20": np.full(t_h.shape, -1.5),
-        "q21": f * a21 * np.cos(phi_sun + al[1]),
-        "s21": f * a21 * np.sin(phi_sun + al[1]),
-        "q22": f * a22 * np.cos(2 * phi_sun + al[2]),
-        "s22": f * a22 * np.sin(2 * phi_sun + al[2]),
-    })
-    frame.attrs["storm"] = {"onset_hours": float(onset), "quiet_nT": float(quiet),
-                            "peak_nT": float(peak), "rise_hours": float(rise),
-                            "recovery_hours": float(recovery)}
+    frame = pd.DataFrame(
+        {
+            "q10": q10,
+            "q11": f * a11 * np.cos(phi_sun + al[0]),
+            "s11": f * a11 * np.sin(phi_sun + al[0]),
+            "q20": np.full(t_h.shape, -1.5),
+            "q21": f * a21 * np.cos(phi_sun + al[1]),
+            "s21": f * a21 * np.sin(phi_sun + al[1]),
+            "q22": f * a22 * np.cos(2 * phi_sun + al[2]),
+            "s22": f * a22 * np.sin(2 * phi_sun + al[2]),
+        }
+    )
+    frame.attrs["storm"] = {
+        "onset_hours": float(onset),
+        "quiet_nT": float(quiet),
+        "peak_nT": float(peak),
+        "rise_hours": float(rise),
+        "recovery_hours": float(recovery),
+    }
     return frame
 
 
@@ -279,41 +290,69 @@ def make_observatory(directory: Path, seed: int = 0) -> Path:
         gap = np.zeros(minutes.size, dtype=bool)
         for _ in range(int(rng.integers(1, 3))):  # one or two gaps per station
             start = int(rng.integers(60, minutes.size - 200))
-            gap[start:start + int(rng.integers(5, 90))] = True
+            gap[start : start + int(rng.integers(5, 90))] = True
         for arr in (x, y, z, f):
             arr[gap] = np.nan
         frame = pd.DataFrame({"time": times, "X": x, "Y": y, "Z": z, "F": f})
-        header = {"source": "potfield demo (invented data)", "station_name": f"{name} (fictional)",
-                  "iaga_code": code, "latitude": lat, "longitude": lon, "elevation": elev,
-                  "reported": "XYZF", "sensor_orientation": "XYZF",
-                  "digital_sampling": "1 second", "interval_type": "1-minute (instantaneous)",
-                  "data_type": "variation"}
-        comments = [f"Invented data: {code} is a fictional station made by potfield.demo.",
-                    "No real observatory is meant. IGRF-14 main field plus synthetic",
-                    "external and induced fields, a non-potential part and noise."]
+        header = {
+            "source": "potfield demo (invented data)",
+            "station_name": f"{name} (fictional)",
+            "iaga_code": code,
+            "latitude": lat,
+            "longitude": lon,
+            "elevation": elev,
+            "reported": "XYZF",
+            "sensor_orientation": "XYZF",
+            "digital_sampling": "1 second",
+            "interval_type": "1-minute (instantaneous)",
+            "data_type": "variation",
+        }
+        comments = [
+            f"Invented data: {code} is a fictional station made by potfield.demo.",
+            "No real observatory is meant. IGRF-14 main field plus synthetic",
+            "external and induced fields, a non-potential part and noise.",
+        ]
         for d in range(DAYS):  # one file per station and day (the IAGA-2002 naming habit)
             sel = slice(d * 1440, (d + 1) * 1440)
             day = str(FIRST_DAY.astype("datetime64[D]") + np.timedelta64(d, "D")).replace("-", "")
             fname = f"{code.lower()}{day}vmin.min"
-            write_iaga2002(raw / fname, frame.iloc[sel].reset_index(drop=True), header=header,
-                           comments=comments)
+            write_iaga2002(
+                raw / fname, frame.iloc[sel].reset_index(drop=True), header=header, comments=comments
+            )
             files.append(f"raw/{fname}")
-        truth_frames.append(pd.DataFrame({
-            "station": code, "time": common.iso_times(times, "s"),
-            "external_north": ex, "external_east": ey, "external_down": ez,
-            "induced_north": ix, "induced_east": iy, "induced_down": iz,
-            "nonpotential_north": nx, "nonpotential_east": ny, "nonpotential_down": nz,
-            "gap": gap.astype(int),
-        }))
+        truth_frames.append(
+            pd.DataFrame(
+                {
+                    "station": code,
+                    "time": common.iso_times(times, "s"),
+                    "external_north": ex,
+                    "external_east": ey,
+                    "external_down": ez,
+                    "induced_north": ix,
+                    "induced_east": iy,
+                    "induced_down": iz,
+                    "nonpotential_north": nx,
+                    "nonpotential_east": ny,
+                    "nonpotential_down": nz,
+                    "gap": gap.astype(int),
+                }
+            )
+        )
     st_truth = pd.concat(truth_frames, ignore_index=True)
-    common.write_table(truth / "stations_truth.csv", st_truth,
-                       {c: 2 for c in st_truth.columns if c not in ("station", "time", "gap")})
+    common.write_table(
+        truth / "stations_truth.csv",
+        st_truth,
+        {c: 2 for c in st_truth.columns if c not in ("station", "time", "gap")},
+    )
     params = {
         "disclaimer": common.DISCLAIMER,
         "seed": int(seed),
-        "stations": [{"code": c, "name": f"{n} (fictional)", "latitude": la, "longitude": lo,
-                      "elevation_m": el} for c, n, la, lo, el in STATIONS],
-        "first_day": str(FIRST_DAY.astype("datetime64[D]")), "days": DAYS,
+        "stations": [
+            {"code": c, "name": f"{n} (fictional)", "latitude": la, "longitude": lo, "elevation_m": el}
+            for c, n, la, lo, el in STATIONS
+        ],
+        "first_day": str(FIRST_DAY.astype("datetime64[D]")),
+        "days": DAYS,
         "reference_radius_km": REFERENCE_RADIUS_KM,
         "induced_ratio": {str(k): v for k, v in Q_RATIO.items()},
         "storm": ext.attrs["storm"],
@@ -322,13 +361,13 @@ def make_observatory(directory: Path, seed: int = 0) -> Path:
         "files": files,
         "truth_columns": {
             "coefficients.csv": "external q/s and induced g/h (nT) per minute; g10_total etc. "
-                                "= IGRF-14 + induced",
+            "= IGRF-14 + induced",
             "stations_truth.csv": "per station and minute: external, induced and non-potential "
-                                  "parts (nT, geodetic north/east/down); the file values = "
-                                  "main + their sum + noise, main = IGRF-14 at the station "
-                                  "(potfield.fields.magnetic.igrf.igrf at the header's latitude, "
-                                  "longitude and elevation as ellipsoidal height); gap = 1 where "
-                                  "written as 99999",
+            "parts (nT, geodetic north/east/down); the file values = "
+            "main + their sum + noise, main = IGRF-14 at the station "
+            "(potfield.fields.magnetic.igrf.igrf at the header's latitude, "
+            "longitude and elevation as ellipsoidal height); gap = 1 where "
+            "written as 99999",
         },
     }
     common.write_params(truth / "parameters.json", params)

@@ -55,11 +55,13 @@ def damped_lstsq(matrix: np.ndarray, rhs: np.ndarray, damping: float | np.ndarra
     """
     normal = matrix.T @ matrix
     rhs = matrix.T @ np.asarray(rhs, dtype=float)
-    normal[np.diag_indices_from(normal)] += np.broadcast_to(np.asarray(damping, dtype=float),
-                                                            (normal.shape[0],))
+    normal[np.diag_indices_from(normal)] += np.broadcast_to(
+        np.asarray(damping, dtype=float), (normal.shape[0],)
+    )
     try:
-        return scipy.linalg.cho_solve(scipy.linalg.cho_factor(normal, check_finite=False), rhs,
-                                      check_finite=False)
+        return scipy.linalg.cho_solve(
+            scipy.linalg.cho_factor(normal, check_finite=False), rhs, check_finite=False
+        )
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
         return scipy.linalg.lstsq(normal, rhs)[0]
 
@@ -78,9 +80,15 @@ def group_median(values: np.ndarray, groups: np.ndarray, count: int) -> np.ndarr
     return 0.5 * (sorted_values[starts + (sizes - 1) // 2] + sorted_values[starts + sizes // 2])
 
 
-def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, spacing: float, region: tuple[float, float, float, float] | None = None,
-                 stretch: bool = False) -> tuple[tuple[np.ndarray, np.ndarray, np.ndarray],
-                                                 np.ndarray]:
+def block_median(
+    easting: ArrayLike,
+    northing: ArrayLike,
+    upward: ArrayLike,
+    data: ArrayLike,
+    spacing: float,
+    region: tuple[float, float, float, float] | None = None,
+    stretch: bool = False,
+) -> tuple[tuple[np.ndarray, np.ndarray, np.ndarray], np.ndarray]:
     """Median of the coordinates and the data in square blocks (vectorised, O(N log N)).
 
     Every coordinate and the data are replaced by their medians in each block of side
@@ -117,8 +125,7 @@ def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, dat
         # (gridded data) fall in the same block as with verde.BlockReduce
         from verde import block_split
 
-        _, key = block_split((e, n), spacing=spacing, region=(west, east, south, north),
-                             adjust="spacing")
+        _, key = block_split((e, n), spacing=spacing, region=(west, east, south, north), adjust="spacing")
         key = np.asarray(key, dtype=np.int64)
     else:
         ncol = int(np.floor((east - west) / spacing)) + 1
@@ -139,7 +146,9 @@ def block_median(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, dat
     return (out[0], out[1], out[2]), out[3]
 
 
-def nearest_neighbour_distances(easting: ArrayLike, northing: ArrayLike, points: np.ndarray | None = None) -> np.ndarray:
+def nearest_neighbour_distances(
+    easting: ArrayLike, northing: ArrayLike, points: np.ndarray | None = None
+) -> np.ndarray:
     """Horizontal distance (m) from each point to its nearest other point (a k-d tree query).
 
     Parameters
@@ -201,8 +210,8 @@ def sample_grid(grid: xr.DataArray, easting: ArrayLike, northing: ArrayLike) -> 
         north, values = north[::-1], values[::-1]
     if east[0] > east[-1]:
         east, values = east[::-1], values[:, ::-1]
-    interp = RegularGridInterpolator((north, east), values, method="linear", bounds_error=False,
-                                     fill_value=np.nan)
-    pts = np.column_stack([np.ravel(np.asarray(northing, float)),
-                           np.ravel(np.asarray(easting, float))])
+    interp = RegularGridInterpolator(
+        (north, east), values, method="linear", bounds_error=False, fill_value=np.nan
+    )
+    pts = np.column_stack([np.ravel(np.asarray(northing, float)), np.ravel(np.asarray(easting, float))])
     return interp(pts)

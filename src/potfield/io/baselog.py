@@ -18,9 +18,15 @@ from .delimited import convert_units, read_delimited, to_numeric
 from .timefmt import DATE_DIRECTIVES, directives, parse_times
 
 
-def read_delimited_base(path: Path, base, key: str, quality_column: str | None = None,
-                        accepted=(), encoding: str = "utf-8",
-                        factor: float = 1.0) -> tuple[np.ndarray, np.ndarray, int]:
+def read_delimited_base(
+    path: Path,
+    base,
+    key: str,
+    quality_column: str | None = None,
+    accepted=(),
+    encoding: str = "utf-8",
+    factor: float = 1.0,
+) -> tuple[np.ndarray, np.ndarray, int]:
     """Read one delimited base file.
 
     Parameters
@@ -48,24 +54,40 @@ def read_delimited_base(path: Path, base, key: str, quality_column: str | None =
     """
     for name in ("time", "total_field"):
         if name not in base.columns:
-            raise ConfigError(f"no base file column is mapped to '{name}'", key=f"{key}.columns.{name}",
-                              fix=f'add {name} = "<column>" under [diurnal.bases.columns]')
+            raise ConfigError(
+                f"no base file column is mapped to '{name}'",
+                key=f"{key}.columns.{name}",
+                fix=f'add {name} = "<column>" under [diurnal.bases.columns]',
+            )
     fmt = base.time.format
     day_given = bool(directives(fmt) & DATE_DIRECTIVES) if "%" in fmt else fmt == "iso"
     if not day_given and "date" not in base.columns and not base.time.date:
-        raise ConfigError(f"time format '{fmt}' needs a date", key=f"{key}.time.date",
-                          fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]')
+        raise ConfigError(
+            f"time format '{fmt}' needs a date",
+            key=f"{key}.time.date",
+            fix='map a date column or set date = "YYYY-MM-DD" under [diurnal.bases.time]',
+        )
     columns = dict(base.columns)
     if quality_column:
         if not accepted:
-            raise ConfigError("base_quality_column is set but no code is accepted",
-                              key="diurnal.base_quality_accepted",
-                              fix='list the accepted codes, e.g. base_quality_accepted = ["0", "1"]')
+            raise ConfigError(
+                "base_quality_column is set but no code is accepted",
+                key="diurnal.base_quality_accepted",
+                fix='list the accepted codes, e.g. base_quality_accepted = ["0", "1"]',
+            )
         columns["quality"] = quality_column
-    frame = read_delimited(path, columns=columns, delimiter=base.delimiter, skip_rows=base.skip_rows,
-                           missing_values=base.missing_values, comment=base.comment,
-                           decimal=base.decimal, encoding=encoding, encoding_key="input.encoding",
-                           columns_key=f"{key}.columns")
+    frame = read_delimited(
+        path,
+        columns=columns,
+        delimiter=base.delimiter,
+        skip_rows=base.skip_rows,
+        missing_values=base.missing_values,
+        comment=base.comment,
+        decimal=base.decimal,
+        encoding=encoding,
+        encoding_key="input.encoding",
+        columns_key=f"{key}.columns",
+    )
     times = parse_times(frame, base.time, path, names=dict(base.columns), key=f"{key}.time")
     value = convert_units(to_numeric(frame, "total_field", path), factor)
     rejected = 0
@@ -77,7 +99,9 @@ def read_delimited_base(path: Path, base, key: str, quality_column: str | None =
             raise InputDataError(
                 f"no sample has an accepted quality code in column '{quality_column}' "
                 f"(accepted: {', '.join(map(str, accepted))}; found e.g. '{code.iloc[0]}')",
-                file=path, key="diurnal.base_quality_accepted",
-                fix="list the codes your logger writes for good samples")
+                file=path,
+                key="diurnal.base_quality_accepted",
+                fix="list the codes your logger writes for good samples",
+            )
         value = np.where(good, value, np.nan)
     return times, np.asarray(value, dtype=float), rejected

@@ -25,8 +25,23 @@ import pandas as pd
 from .atomic import atomic_path
 
 #: Decimals kept per unit (instrument precision; common practice). "field" = nT or mGal by kind.
-DECIMALS = {"nT": 3, "mGal": 4, "m": 2, "degrees": 7, "s": 3, "h": 4, "mGal/h": 4, "nT/m": 6,
-            "mGal/m": 6, "nT/s": 4, "cu": 3, "1": 6, "count": 0, "kg/m^3": 1, "km": 4}
+DECIMALS = {
+    "nT": 3,
+    "mGal": 4,
+    "m": 2,
+    "degrees": 7,
+    "s": 3,
+    "h": 4,
+    "mGal/h": 4,
+    "nT/m": 6,
+    "mGal/m": 6,
+    "nT/s": 4,
+    "cu": 3,
+    "1": 6,
+    "count": 0,
+    "kg/m^3": 1,
+    "km": 4,
+}
 
 #: Columns measured more finely than their unit's default (instrument heights to the mm).
 DECIMALS_BY_NAME = {"height": 3, "instrument_height": 3, "elevation": 3}
@@ -59,7 +74,11 @@ COLUMNS: dict[str, tuple[str, str, str]] = {
     "source_file": ("", "raw file the reading came from", "ingest"),
     "source_row": ("count", "line number in the raw file (header = line 1)", "ingest"),
     # clean
-    "fourth_difference": ("field", "fourth difference T[i-2]-4T[i-1]+6T[i]-4T[i+1]+T[i+2] along the line", "clean"),
+    "fourth_difference": (
+        "field",
+        "fourth difference T[i-2]-4T[i-1]+6T[i]-4T[i+1]+T[i+2] along the line",
+        "clean",
+    ),
     # diurnal
     "diurnal": ("nT", "diurnal variation removed (base record minus its datum)", "diurnal"),
     "total_field_diurnal": ("nT", "total field after the diurnal correction", "diurnal"),
@@ -129,9 +148,21 @@ COLUMNS: dict[str, tuple[str, str, str]] = {
     "height_tie": ("m", "height on the tie line at the crossover", "level"),
     "height_difference": ("m", "height difference at the crossover", "level"),
     "gradient_up": ("field/m", "upward vertical gradient of the levelled field at the crossover", "level"),
-    "height_effect": ("field", "gradient times height difference: the part of the misclosure due to height", "level"),
-    "difference_height_corrected": ("field", "crossover difference before levelling, height effect removed", "level"),
-    "difference_levelled_height_corrected": ("field", "crossover difference after levelling, height effect removed", "level"),
+    "height_effect": (
+        "field",
+        "gradient times height difference: the part of the misclosure due to height",
+        "level",
+    ),
+    "difference_height_corrected": (
+        "field",
+        "crossover difference before levelling, height effect removed",
+        "level",
+    ),
+    "difference_levelled_height_corrected": (
+        "field",
+        "crossover difference after levelling, height effect removed",
+        "level",
+    ),
     "index_line": ("count", "reading index on the traverse line", "level"),
     "index_tie": ("count", "reading index on the tie line", "level"),
     "fraction_line": ("1", "position between two readings on the traverse line", "level"),
@@ -205,7 +236,7 @@ def describe(name: str, kind: str = "magnetic") -> tuple[str, str, str]:
     if name in COLUMNS:
         unit, meaning, stage = COLUMNS[name]
     else:
-        for pattern, unit, meaning, stage in PATTERNS:
+        for pattern, unit, meaning, stage in PATTERNS:  # noqa: B007  (used after the break)
             match = re.match(pattern, name)
             if match:
                 words = [g.replace("_", " ") for g in match.groups() if g is not None]
@@ -269,8 +300,13 @@ def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic") -
         mixed = formatted.copy()
         for name in mixed.columns:
             if mixed[name].dtype == object:
-                mixed[name] = mixed[name].map(lambda v: None if v is None or pd.isna(v) else
-                                              (str(v).lower() if isinstance(v, bool) else str(v)))
+                mixed[name] = mixed[name].map(
+                    lambda v: (
+                        None
+                        if v is None or pd.isna(v)
+                        else (str(v).lower() if isinstance(v, bool) else str(v))
+                    )
+                )
         arrow = pa.Table.from_pandas(mixed, preserve_index=False)
     with atomic_path(path) as tmp:
         pacsv.write_csv(arrow, tmp, pacsv.WriteOptions(quoting_style="needed"))
@@ -288,7 +324,6 @@ def write_data_dictionary(tables: Path, kind: str = "magnetic") -> Path:
         for name in header.split(","):
             name = name.strip().strip('"')
             unit, meaning, stage = describe(name, kind)
-            rows.append({"table": path.stem, "name": name, "unit": unit, "meaning": meaning,
-                         "stage": stage})
+            rows.append({"table": path.stem, "name": name, "unit": unit, "meaning": meaning, "stage": stage})
     frame = pd.DataFrame(rows, columns=["table", "name", "unit", "meaning", "stage"])
     return write_table(Path(tables) / "columns.csv", frame, kind)

@@ -44,16 +44,18 @@ def _open_text(path: Path, encoding: str = "utf-8"):
         try:
             archive = zipfile.ZipFile(path)
         except zipfile.BadZipFile:
-            raise InputDataError("not a readable zip archive", file=path,
-                                 fix="check the file, or unpack it into raw/") from None
+            raise InputDataError(
+                "not a readable zip archive", file=path, fix="check the file, or unpack it into raw/"
+            ) from None
         members = [m for m in archive.namelist() if not m.endswith("/")]
         if len(members) != 1:
-            raise InputDataError(f"zip archive holds {len(members)} files, not one", file=path,
-                                 fix="zip one data file per archive, or unpack it into raw/")
+            raise InputDataError(
+                f"zip archive holds {len(members)} files, not one",
+                file=path,
+                fix="zip one data file per archive, or unpack it into raw/",
+            )
         return io.TextIOWrapper(archive.open(members[0]), encoding=encoding, errors="replace")
     return open(path, encoding=encoding, errors="replace")
-
-
 
 
 def is_text_column(canon: str) -> bool:
@@ -69,16 +71,17 @@ _UNDERLINE = re.compile(r"^(?=.*[-=])[\s\-=_|+,;]+$")
 class HeaderLayout:
     """Where the header and the data of a delimited file are (see :func:`locate_header`)."""
 
-    text: str            #: the header line, comment character removed
-    line: int            #: its 1-based line number
-    skip: list[int]      #: 0-based line numbers pandas skips before the header
-    data_line: int       #: 1-based line number of the first data line
-    from_comment: bool   #: the header sits in the comment block: names are given to pandas
+    text: str  #: the header line, comment character removed
+    line: int  #: its 1-based line number
+    skip: list[int]  #: 0-based line numbers pandas skips before the header
+    data_line: int  #: 1-based line number of the first data line
+    from_comment: bool  #: the header sits in the comment block: names are given to pandas
     underline: int | None = None  #: 0-based line number of a dash underline, skipped
 
 
-def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
-                  wanted=(), encoding: str = "utf-8") -> HeaderLayout:
+def locate_header(
+    path: Path, skip_rows: int = 0, comment: str | None = None, wanted=(), encoding: str = "utf-8"
+) -> HeaderLayout:
     """Find the header line after ``skip_rows`` lines and a leading block of comment lines.
 
     Lines starting with ``comment`` (e.g. ``/`` or ``#``) before the data are skipped; when the
@@ -97,41 +100,57 @@ def locate_header(path: Path, skip_rows: int = 0, comment: str | None = None,
     block: list[int] = []
     if comment:
         while index < len(lines) and (lines[index].lstrip().startswith(comment) or not lines[index].strip()):
-            content = lines[index].lstrip()[len(comment):].strip()
+            content = lines[index].lstrip()[len(comment) :].strip()
             if content and not _UNDERLINE.match(content):
                 block.append(index)  # a comment line with text (underlines are not headers)
             index += 1
     if index >= len(lines) and not block:
         if skip_rows:
-            raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
-                                 file=path, fix="check input.skip_rows and that the right file is named")
+            raise InputDataError(
+                f"file has no header line after skipping {skip_rows} line(s)",
+                file=path,
+                fix="check input.skip_rows and that the right file is named",
+            )
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     first = lines[index] if index < len(lines) else ""
     from_comment = False
     if block:
-        candidate = lines[block[-1]].lstrip()[len(comment):].strip()
+        candidate = lines[block[-1]].lstrip()[len(comment) :].strip()
 
         def hits(text: str) -> int:
             tokens = {_normal(t) for t in re.split(r"[\s,;\t]+", text)}
             return sum(_normal(w) in tokens for w in wanted)
 
-        if hits(candidate) > hits(first) or index >= len(lines) or (
-                hits(candidate) == hits(first) and _numeric_share(first) > 0.5 >= _numeric_share(candidate)):
+        if (
+            hits(candidate) > hits(first)
+            or index >= len(lines)
+            or (hits(candidate) == hits(first) and _numeric_share(first) > 0.5 >= _numeric_share(candidate))
+        ):
             from_comment = True  # the first other line is data: the header is commented out
     if from_comment:
         header_index = block[-1]
-        text = lines[header_index].lstrip()[len(comment):].strip()
+        text = lines[header_index].lstrip()[len(comment) :].strip()
         data = header_index + 1
     else:
         header_index, text, data = index, first, index + 1
-    while data < len(lines) and comment and (lines[data].lstrip().startswith(comment) or not lines[data].strip()):
+    while (
+        data < len(lines)
+        and comment
+        and (lines[data].lstrip().startswith(comment) or not lines[data].strip())
+    ):
         data += 1  # comment (or blank) lines between a commented header and the data
     underline = None
     if data < len(lines) and lines[data].strip() and _UNDERLINE.match(lines[data]):
         underline, data = data, data + 1
     skip = [i for i in range(header_index) if not from_comment]
-    return HeaderLayout(text=text, line=header_index + 1, skip=skip, data_line=data + 1,
-                        from_comment=from_comment, underline=underline)
+    return HeaderLayout(
+        text=text,
+        line=header_index + 1,
+        skip=skip,
+        data_line=data + 1,
+        from_comment=from_comment,
+        underline=underline,
+    )
 
 
 def _numeric_share(text: str) -> float:
@@ -159,8 +178,6 @@ def match_columns(header: list[str], wanted) -> dict[str, str]:
         elif len(folded.get(_normal(name), [])) == 1:
             found[name] = folded[_normal(name)][0]
     return found
-
-
 
 
 def _open_binary(path: Path):
@@ -280,7 +297,7 @@ def _ragged_row(path: Path, sep: str, skip_rows: int, encoding: str) -> tuple[in
             if sep != "whitespace":
                 j = number - first - 1
                 begin = 0 if j == 0 else int(ends[j - 1]) + 1
-                text = chunk[begin:int(ends[j])].decode(encoding, errors="replace").rstrip("\r")
+                text = chunk[begin : int(ends[j])].decode(encoding, errors="replace").rstrip("\r")
                 fields = len(next(csv.reader([text], delimiter=sep), []))
                 if fields == header:
                     continue  # a quoted delimiter: not ragged
@@ -308,8 +325,11 @@ def sniff_delimiter(path: Path, skip_rows: int = 0, encoding: str = "utf-8") -> 
 def _sniff(header: str, path: Path, skip_rows: int = 0) -> str:
     if not header.strip():
         if skip_rows:
-            raise InputDataError(f"file has no header line after skipping {skip_rows} line(s)",
-                                 file=path, fix="check input.skip_rows and that the right file is named")
+            raise InputDataError(
+                f"file has no header line after skipping {skip_rows} line(s)",
+                file=path,
+                fix="check input.skip_rows and that the right file is named",
+            )
         raise InputDataError("file is empty", file=path, fix="check that the right file is named")
     for candidate in (",", ";", "\t"):
         if candidate in header:
@@ -317,10 +337,20 @@ def _sniff(header: str, path: Path, skip_rows: int = 0) -> str:
     return "whitespace"
 
 
-def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "auto",
-                   skip_rows: int = 0, missing_values=(), required=(), encoding: str = "utf-8",
-                   encoding_key: str = "input.encoding", columns_key: str = "input.columns",
-                   comment: str | None = None, decimal: str = ".") -> pd.DataFrame:
+def read_delimited(
+    path: Path,
+    *,
+    columns: dict[str, str],
+    delimiter: str = "auto",
+    skip_rows: int = 0,
+    missing_values=(),
+    required=(),
+    encoding: str = "utf-8",
+    encoding_key: str = "input.encoding",
+    columns_key: str = "input.columns",
+    comment: str | None = None,
+    decimal: str = ".",
+) -> pd.DataFrame:
     """Read the mapped columns of one delimited file, renamed to canonical names.
 
     Parameters
@@ -357,45 +387,65 @@ def read_delimited(path: Path, *, columns: dict[str, str], delimiter: str = "aut
     for name in required:
         if name not in columns:
             raise InputDataError(
-                f"no input column is mapped to '{name}'", file=path, key=f"{columns_key}.{name}",
-                fix=f"add {name} = \"<your column>\" under [{columns_key}]",
+                f"no input column is mapped to '{name}'",
+                file=path,
+                key=f"{columns_key}.{name}",
+                fix=f'add {name} = "<your column>" under [{columns_key}]',
             )
     if path.suffix.lower() == ".zip":
         _open_text(path).close()  # one member, or a one-line error naming the archive
     try:
         failure = _decode_failure(path, encoding)
     except (OSError, EOFError, ValueError) as err:  # a damaged compressed file
-        raise InputDataError(f"cannot read the file ({_first_line(err)})", file=path,
-                             fix="check that the file is complete (re-copy or re-compress it)") from None
+        raise InputDataError(
+            f"cannot read the file ({_first_line(err)})",
+            file=path,
+            fix="check that the file is complete (re-copy or re-compress it)",
+        ) from None
     if failure is None:
-        return _read_delimited(path, columns, delimiter, skip_rows, missing_values, encoding, columns_key,
-                              comment, decimal)
+        return _read_delimited(
+            path, columns, delimiter, skip_rows, missing_values, encoding, columns_key, comment, decimal
+        )
     line, offset, byte = failure
     if codecs.lookup(encoding).name != "utf-8":
         raise InputDataError(
             f"line {line} (byte offset {offset}): byte 0x{byte:02x} is not {encoding} text",
-            file=path, key=encoding_key,
+            file=path,
+            key=encoding_key,
             fix="set the encoding the file was written in (e.g. utf-8, latin-1, cp1252)",
         )
-    frame = _read_delimited(path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key,
-                           comment, decimal)
+    frame = _read_delimited(
+        path, columns, delimiter, skip_rows, missing_values, "latin-1", columns_key, comment, decimal
+    )
     frame.attrs["warnings"] = [
         f"{path.name}: not valid UTF-8 (byte 0x{byte:02x} at line {line}, byte offset {offset}); "
         f"read as latin-1 -- check the text columns, or declare the file's encoding with "
-        f"{encoding_key}"]
+        f"{encoding_key}"
+    ]
     return frame
 
 
-def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_rows: int,
-                    missing_values, encoding: str, columns_key: str = "input.columns",
-                    comment: str | None = None, decimal: str = ".") -> pd.DataFrame:
+def _read_delimited(
+    path: Path,
+    columns: dict[str, str],
+    delimiter: str,
+    skip_rows: int,
+    missing_values,
+    encoding: str,
+    columns_key: str = "input.columns",
+    comment: str | None = None,
+    decimal: str = ".",
+) -> pd.DataFrame:
     wanted = list(dict.fromkeys(columns.values()))
     layout = locate_header(path, skip_rows, comment, wanted, encoding)
     plain = not layout.from_comment and layout.line == skip_rows + 1 and layout.underline is None
     sep = _sniff(layout.text, path, skip_rows) if delimiter == "auto" else delimiter
     if decimal != "." and sep == decimal:
-        raise ConfigError(f"the delimiter and the decimal mark are both '{decimal}'", file=path,
-                          fix="set the delimiter (';', tab or whitespace) the file uses")
+        raise ConfigError(
+            f"the delimiter and the decimal mark are both '{decimal}'",
+            file=path,
+            fix="set the delimiter (';', tab or whitespace) the file uses",
+        )
     skip = skip_rows if plain else layout.skip + ([layout.underline] if layout.underline is not None else [])
     try:
         if layout.from_comment:
@@ -407,13 +457,19 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
             header = pd.read_csv(path, sep=sep, nrows=0, skiprows=skip, encoding=encoding).columns
     except pd.errors.EmptyDataError:
         where = f" after skipping {skip_rows} line(s)" if skip_rows else ""
-        raise InputDataError(f"file has no header line{where}", file=path,
-                             fix="check that the right file is named and input.skip_rows") from None
+        raise InputDataError(
+            f"file has no header line{where}",
+            file=path,
+            fix="check that the right file is named and input.skip_rows",
+        ) from None
     except (pd.errors.ParserError, ValueError, csv.Error) as err:
         if isinstance(err, UnicodeDecodeError):
             raise
-        raise InputDataError(f"cannot read the header line {layout.line} ({_first_line(err)})",
-                             file=path, fix="check the delimiter and input.skip_rows") from None
+        raise InputDataError(
+            f"cannot read the header line {layout.line} ({_first_line(err)})",
+            file=path,
+            fix="check the delimiter and input.skip_rows",
+        ) from None
     header = [str(h).strip() for h in header]
     found = match_columns(header, wanted)
     missing = [c for c in wanted if c not in found]
@@ -422,15 +478,20 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
         key = "input.keep_columns" if canon.startswith(KEEP_PREFIX) else f"{columns_key}.{canon}"
         raise InputDataError(
             f"column '{missing[0]}' (mapped to {canon}) is not in the file; its columns are: "
-            f"{', '.join(header[:20])}", file=path, key=key,
+            f"{', '.join(header[:20])}",
+            file=path,
+            key=key,
             fix=f"correct the column name under [{columns_key}]",
         )
     columns = {canon: found[col] for canon, col in columns.items()}
     wanted = list(dict.fromkeys(columns.values()))
-    kwargs = dict(skiprows=skip, na_values=list(missing_values), keep_default_na=True,
-                  encoding=encoding,
-                  dtype={c: str for c, canon in ((v, k) for k, v in columns.items())
-                         if is_text_column(canon)})
+    kwargs = dict(
+        skiprows=skip,
+        na_values=list(missing_values),
+        keep_default_na=True,
+        encoding=encoding,
+        dtype={c: str for c, canon in ((v, k) for k, v in columns.items()) if is_text_column(canon)},
+    )
     if decimal != ".":
         kwargs["decimal"] = decimal
     if layout.from_comment:
@@ -444,8 +505,8 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
             line, fields, expected, others = ragged
             more = f" (and {others} more such line(s))" if others else ""
             raise InputDataError(
-                f"line {line} has {fields} field(s) but the header line {skip_rows + 1} has "
-                f"{expected}{more}", file=path,
+                f"line {line} has {fields} field(s) but the header line {skip_rows + 1} has {expected}{more}",
+                file=path,
                 fix="give every row the header's fields (empty = missing), or check the delimiter",
             )
 
@@ -453,8 +514,13 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
         if sep == "whitespace":
             refuse_ragged()
             frame = pd.read_csv(path, sep=r"\s+", usecols=lambda c: str(c).strip() in wanted, **kwargs)
-        elif (len(sep) == 1 and not skip_rows and plain and decimal == "."
-              and path.suffix.lower() not in COMPRESSED_SUFFIXES):
+        elif (
+            len(sep) == 1
+            and not skip_rows
+            and plain
+            and decimal == "."
+            and path.suffix.lower() not in COMPRESSED_SUFFIXES
+        ):
             try:  # pyarrow's reader is several times faster on large files
                 frame = pd.read_csv(path, sep=sep, usecols=wanted, engine="pyarrow", **kwargs)
             except (ValueError, TypeError, KeyError):
@@ -466,12 +532,16 @@ def _read_delimited(path: Path, columns: dict[str, str], delimiter: str, skip_ro
     except (pd.errors.ParserError, ValueError, csv.Error, OverflowError) as err:
         if isinstance(err, UnicodeDecodeError):
             raise
-        raise InputDataError(f"cannot parse the file ({_first_line(err)})", file=path,
-                             fix="check the delimiter and that every line has the same fields") from None
+        raise InputDataError(
+            f"cannot parse the file ({_first_line(err)})",
+            file=path,
+            fix="check the delimiter and that every line has the same fields",
+        ) from None
     frame.columns = [str(c).strip() for c in frame.columns]
     if frame.empty:
-        raise InputDataError("file has a header but no data rows", file=path,
-                             fix="check that the right file is named")
+        raise InputDataError(
+            "file has a header but no data rows", file=path, fix="check that the right file is named"
+        )
     out = pd.DataFrame(index=pd.RangeIndex(len(frame)))
     for canon, col in columns.items():
         out[canon] = frame[col].to_numpy()
@@ -501,14 +571,17 @@ def to_numeric(frame: pd.DataFrame, name: str, path: Path) -> np.ndarray:
             example = text[bad].iloc[0]
             raise InputDataError(
                 f"non-numeric value '{example}' in column {name} at line {format_rows(rows)}",
-                file=path, fix="correct or blank those values (blank = missing)",
+                file=path,
+                fix="correct or blank those values (blank = missing)",
             )
     infinite = np.isinf(values)
     if infinite.any():
         rows = frame["source_row"].to_numpy()[infinite]
         raise InputDataError(
             f"value {values[infinite][0]:g} in column {name} at line {format_rows(rows)} is not a "
-            "finite number", file=path, fix="correct or blank those values (blank = missing)",
+            "finite number",
+            file=path,
+            fix="correct or blank those values (blank = missing)",
         )
     return values
 
@@ -526,8 +599,9 @@ def convert_units(values: np.ndarray, factor: float) -> np.ndarray:
     return values if factor == 1.0 else values * factor
 
 
-def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | None = None,
-               key: str = "input.time") -> np.ndarray:
+def parse_time(
+    frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | None = None, key: str = "input.time"
+) -> np.ndarray:
     """Readings' times as datetime64[ns] (UTC, timezone-naive); the layouts are those of
     :mod:`potfield.io.timefmt` (ISO 8601, date + seconds of day, decimal hours, strftime
     patterns, separate date and time columns, UTC offsets, clock offsets)."""
@@ -541,8 +615,11 @@ def parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path, names: dict | No
         # pandas' DateParseError and OutOfBoundsDatetime are ValueErrors
         if isinstance(err, InputDataError):
             raise
-        raise InputDataError(f"cannot read the times as {spec.format} ({_first_line(err)})",
-                             file=path, fix="check the time column and [input.time] format") from None
+        raise InputDataError(
+            f"cannot read the times as {spec.format} ({_first_line(err)})",
+            file=path,
+            fix="check the time column and [input.time] format",
+        ) from None
 
 
 def _legacy_layout(frame: pd.DataFrame, spec) -> bool:
@@ -551,8 +628,9 @@ def _legacy_layout(frame: pd.DataFrame, spec) -> bool:
     column): read by :func:`_parse_time`, which bounds the offsets and out-of-range years."""
     if spec.format not in ("iso", "date_seconds", "decimal_hours"):
         return False
-    if any(getattr(spec, name, None) for name in ("date_format", "utc_offset_h", "timezone",
-                                                   "clock_offset_s")):
+    if any(
+        getattr(spec, name, None) for name in ("date_format", "utc_offset_h", "timezone", "clock_offset_s")
+    ):
         return False
     return not (spec.format == "iso" and "date" in frame)
 
@@ -560,7 +638,9 @@ def _legacy_layout(frame: pd.DataFrame, spec) -> bool:
 def _parse_date(text: pd.Series) -> pd.Series:
     text = text.astype("string").str.strip()
     compact = text.str.fullmatch(r"\d{8}").fillna(False)
-    text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8))
+    text = text.where(
+        ~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8)
+    )
     text = text.str.replace("/", "-", regex=False)
     return pd.to_datetime(_drop_out_of_range_years(text), format="%Y-%m-%d", errors="coerce")
 
@@ -577,10 +657,14 @@ def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
 MAX_SECONDS = 400 * 86400.0
 
 
-def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarray:
+def _parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
     if "time" not in frame:
-        raise InputDataError("no input column is mapped to 'time'", file=path, key="input.columns.time",
-                             fix='add time = "<your time column>" under [input.columns]')
+        raise InputDataError(
+            "no input column is mapped to 'time'",
+            file=path,
+            key="input.columns.time",
+            fix='add time = "<your time column>" under [input.columns]',
+        )
     raw = frame["time"]
     if spec.format == "iso":
         text = raw.astype("string").str.strip()
@@ -600,20 +684,27 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarra
                 drop = np.diff(hours) < -12.0
                 jumps[1:] = np.cumsum(drop) * 24.0
             seconds = (hours + jumps) * 3600.0
-        elif (over := np.isfinite(seconds) & (np.abs(seconds) <= MAX_SECONDS)
-              & ((seconds < 0) | (seconds > 86400.0))).any():
+        elif (
+            over := np.isfinite(seconds)
+            & (np.abs(seconds) <= MAX_SECONDS)
+            & ((seconds < 0) | (seconds > 86400.0))
+        ).any():
             rows = frame["source_row"].to_numpy()[over]
             raise InputDataError(
                 f"time {raw[over].iloc[0]} is not seconds of day (0..86,400) as date_seconds at line "
-                f"{format_rows(rows)}", file=path,
-                fix="if it is hhmmss (120204 = 12:02:04) set [input.time] format = '%H%M%S'")
+                f"{format_rows(rows)}",
+                file=path,
+                fix="if it is hhmmss (120204 = 12:02:04) set [input.time] format = '%H%M%S'",
+            )
         if "date" in frame:
             day = _parse_date(frame["date"]).astype("datetime64[ns]").to_numpy()
         elif spec.date:
             day = np.full(len(frame), np.datetime64(pd.Timestamp(spec.date).to_datetime64(), "ns"))
         else:
             raise InputDataError(
-                f"time format '{spec.format}' needs a date", file=path, key="input.time.date",
+                f"time format '{spec.format}' needs a date",
+                file=path,
+                key="input.time.date",
                 fix='map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [input.time]',
             )
         ns = np.round(seconds * 1e9)
@@ -630,7 +721,8 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSection, path: Path) -> np.ndarra
         rows = frame["source_row"].to_numpy()[bad]
         raise InputDataError(
             f"cannot read the time '{example_source[bad].iloc[0]}' as {spec.format} at line "
-            f"{format_rows(rows)}", file=path,
+            f"{format_rows(rows)}",
+            file=path,
             fix="use ISO 8601 (2024-05-01T10:00:00Z) or set [input.time] format to the one the file uses",
         )
     return result

@@ -32,17 +32,35 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..units import COLUMN_QUANTITY, UNIT_FACTORS
 from ..errors import InputDataError, format_rows
+from ..units import COLUMN_QUANTITY, UNIT_FACTORS
 from .delimited import is_text_column
 
 #: Unit spellings met in descriptor files -> potfield's unit names (lower-cased keys).
 UNIT_ALIASES = {
-    "nt": "nT", "nanotesla": "nT", "nanoteslas": "nT", "gamma": "gamma", "gammas": "gamma",
-    "ut": "uT", "pt": "pT",
-    "mgal": "mGal", "milligal": "mGal", "milligals": "mGal", "um/s^2": "um/s^2", "um/s2": "um/s^2",
-    "gu": "gu", "m/s^2": "m/s^2", "m/s2": "m/s^2", "cu": "cu",
-    "m": "m", "metre": "m", "metres": "m", "meter": "m", "meters": "m", "ft": "ft", "feet": "ft",
+    "nt": "nT",
+    "nanotesla": "nT",
+    "nanoteslas": "nT",
+    "gamma": "gamma",
+    "gammas": "gamma",
+    "ut": "uT",
+    "pt": "pT",
+    "mgal": "mGal",
+    "milligal": "mGal",
+    "milligals": "mGal",
+    "um/s^2": "um/s^2",
+    "um/s2": "um/s^2",
+    "gu": "gu",
+    "m/s^2": "m/s^2",
+    "m/s2": "m/s^2",
+    "cu": "cu",
+    "m": "m",
+    "metre": "m",
+    "metres": "m",
+    "meter": "m",
+    "meters": "m",
+    "ft": "ft",
+    "feet": "ft",
     "km": "km",
 }
 _FORMAT = re.compile(r"^\s*(\d*)\s*([AIFEDaifed])\s*(\d+)(?:\.(\d+))?\s*$")
@@ -54,8 +72,8 @@ class Field_:
     """One column of the data records."""
 
     label: str
-    kind: str           #: A, I, F, E or D
-    start: int          #: 0-based character position in the record
+    kind: str  #: A, I, F, E or D
+    start: int  #: 0-based character position in the record
     width: int
     decimals: int = 0
     units: str | None = None
@@ -114,28 +132,49 @@ def read_descriptor(path: Path) -> Descriptor:
             continue
         parts = rest.split(":", 2)
         if len(parts) < 2:
-            raise InputDataError(f"DEFN record at line {number} has no field format ('LABEL:F10.2')",
-                                 file=path, fix="write LABEL:FORMAT[:ATTRIBUTES] after the ';'")
+            raise InputDataError(
+                f"DEFN record at line {number} has no field format ('LABEL:F10.2')",
+                file=path,
+                fix="write LABEL:FORMAT[:ATTRIBUTES] after the ';'",
+            )
         label, fmt = parts[0].strip(), parts[1].strip()
         match = _FORMAT.match(fmt)
         if not label or match is None:
-            raise InputDataError(f"cannot read the field format '{fmt}' of '{label}' at line {number}",
-                                 file=path, fix="use A4, I8, F10.2, E12.4 or D12.4 (with a repeat count, 3F10.2)")
-        attrs = {k.upper(): v.strip().strip('"') for k, v in _ATTRIBUTE.findall(parts[2])} if len(parts) > 2 else {}
+            raise InputDataError(
+                f"cannot read the field format '{fmt}' of '{label}' at line {number}",
+                file=path,
+                fix="use A4, I8, F10.2, E12.4 or D12.4 (with a repeat count, 3F10.2)",
+            )
+        attrs = (
+            {k.upper(): v.strip().strip('"') for k, v in _ATTRIBUTE.findall(parts[2])}
+            if len(parts) > 2
+            else {}
+        )
         count = int(match.group(1) or 1)
         kind, width, decimals = match.group(2).upper(), int(match.group(3)), int(match.group(4) or 0)
         start = positions.get(rtype, 0)
         for k in range(count):
             name = label if count == 1 else f"{label}_{k + 1}"
-            types.setdefault(rtype, []).append(Field_(
-                label=name, kind=kind, start=start, width=width, decimals=decimals,
-                units=attrs.get("UNITS", attrs.get("UNIT")), null=attrs.get("NULL"),
-                description=attrs.get("NAME")))
+            types.setdefault(rtype, []).append(
+                Field_(
+                    label=name,
+                    kind=kind,
+                    start=start,
+                    width=width,
+                    decimals=decimals,
+                    units=attrs.get("UNITS", attrs.get("UNIT")),
+                    null=attrs.get("NULL"),
+                    description=attrs.get("NAME"),
+                )
+            )
             start += width
         positions[rtype] = start
     if not types:
-        raise InputDataError("no DEFN field definitions found", file=path,
-                             fix="check that this is the ASEG-GDF2 descriptor (.des) of the data file")
+        raise InputDataError(
+            "no DEFN field definitions found",
+            file=path,
+            fix="check that this is the ASEG-GDF2 descriptor (.des) of the data file",
+        )
     rtype = max(types, key=lambda t: len(types[t]))
     return Descriptor(path=path, record_type=rtype, fields=types[rtype])
 
@@ -148,14 +187,17 @@ def _unit(f: Field_, canon: str, des: Path) -> str | None:
     name = UNIT_ALIASES.get(f.units.strip().casefold().replace(" ", ""), f.units.strip())
     if name not in UNIT_FACTORS[quantity]:
         raise InputDataError(
-            f"field {f.label} (mapped to {canon}) has units '{f.units}', not one potfield knows", file=des,
+            f"field {f.label} (mapped to {canon}) has units '{f.units}', not one potfield knows",
+            file=des,
             key=f"input.units.{canon}",
-            fix=f"declare its unit under [input.units] ({', '.join(UNIT_FACTORS[quantity])})")
+            fix=f"declare its unit under [input.units] ({', '.join(UNIT_FACTORS[quantity])})",
+        )
     return name
 
 
-def read_gdf2(path: Path, *, columns: dict[str, str], missing_values=(), units=None,
-              descriptor: Path | None = None) -> tuple[pd.DataFrame, dict[str, str]]:
+def read_gdf2(
+    path: Path, *, columns: dict[str, str], missing_values=(), units=None, descriptor: Path | None = None
+) -> tuple[pd.DataFrame, dict[str, str]]:
     """Read the mapped fields of an ASEG-GDF2 ``.dat`` file.
 
     Parameters
@@ -184,8 +226,11 @@ def read_gdf2(path: Path, *, columns: dict[str, str], missing_values=(), units=N
         raise InputDataError("file not found", file=path, fix="check the file name in survey.toml")
     des = Path(descriptor) if descriptor else descriptor_path(path)
     if des is None or not des.is_file():
-        raise InputDataError("ASEG-GDF2 data file without its descriptor", file=path,
-                             fix=f"put {path.with_suffix('.des').name} beside it")
+        raise InputDataError(
+            "ASEG-GDF2 data file without its descriptor",
+            file=path,
+            fix=f"put {path.with_suffix('.des').name} beside it",
+        )
     layout = read_descriptor(des)
     fields: dict[str, Field_] = {}
     for canon, label in columns.items():
@@ -194,8 +239,11 @@ def read_gdf2(path: Path, *, columns: dict[str, str], missing_values=(), units=N
             where = "input.keep_columns" if canon.startswith("raw_") else f"input.columns.{canon}"
             raise InputDataError(
                 f"field '{label}' (mapped to {canon}) is not defined; its fields are: "
-                f"{', '.join(x.label for x in layout.fields[:30])}", file=des, key=where,
-                fix="use a field label of the .des file")
+                f"{', '.join(x.label for x in layout.fields[:30])}",
+                file=des,
+                key=where,
+                fix="use a field label of the .des file",
+            )
         fields[canon] = f
     used = list(dict.fromkeys(f.label for f in fields.values()))
     by_label = {f.label: f for f in fields.values()}
@@ -203,11 +251,22 @@ def read_gdf2(path: Path, *, columns: dict[str, str], missing_values=(), units=N
     colspecs = [(0, rt_width)] + [(by_label[u].start, by_label[u].start + by_label[u].width) for u in used]
     names = ["__rt"] + [f"f{i}" for i in range(len(used))]
     try:
-        frame = pd.read_fwf(path, colspecs=colspecs, names=names, header=None, dtype=str,
-                            na_filter=False, skip_blank_lines=False, encoding="latin-1")
+        frame = pd.read_fwf(
+            path,
+            colspecs=colspecs,
+            names=names,
+            header=None,
+            dtype=str,
+            na_filter=False,
+            skip_blank_lines=False,
+            encoding="latin-1",
+        )
     except (pd.errors.ParserError, UnicodeDecodeError) as err:
-        raise InputDataError(f"cannot read the fixed-width records ({str(err).splitlines()[0]})",
-                             file=path, fix="check that the .dat matches its .des") from None
+        raise InputDataError(
+            f"cannot read the fixed-width records ({str(err).splitlines()[0]})",
+            file=path,
+            fix="check that the .dat matches its .des",
+        ) from None
     rows = np.arange(len(frame), dtype=np.int64) + 1
     rt = frame["__rt"].str.strip().str.upper()
     values = frame[names[1:]]
@@ -232,8 +291,10 @@ def read_gdf2(path: Path, *, columns: dict[str, str], missing_values=(), units=N
             if bad.any():
                 raise InputDataError(
                     f"non-numeric value '{text[bad].iloc[0]}' in field {f.label} ({canon}) at line "
-                    f"{format_rows(rows[bad.to_numpy()])}", file=path,
-                    fix="check that the .dat matches its .des (field widths)")
+                    f"{format_rows(rows[bad.to_numpy()])}",
+                    file=path,
+                    fix="check that the .dat matches its .des (field widths)",
+                )
             if f.null is not None:
                 try:
                     null_value = float(f.null.replace("D", "E").replace("d", "e"))

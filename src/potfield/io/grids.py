@@ -25,8 +25,9 @@ import xarray as xr
 from .atomic import atomic_path
 
 
-def make_grid(easting, northing, values, *, name: str, units: str, long_name: str,
-              history: str = "") -> xr.DataArray:
+def make_grid(
+    easting, northing, values, *, name: str, units: str, long_name: str, history: str = ""
+) -> xr.DataArray:
     """A grid DataArray from 1-D ascending coordinates and a (northing, easting) array."""
     easting = np.asarray(easting, dtype=float)
     northing = np.asarray(northing, dtype=float)
@@ -52,8 +53,13 @@ def ascending(grid: xr.DataArray) -> xr.DataArray:
 #: Attributes that belong to a vertical coordinate only (CF 1.8 sec. 4.3), never to data variables.
 _COORDINATE_ONLY = ("positive", "axis")
 #: The height coordinate (CF 1.8 sec. 4.3 and 5.7; standard name table "height").
-HEIGHT_ATTRS = {"standard_name": "height", "long_name": "grid height above the WGS84 ellipsoid",
-                "units": "m", "positive": "up", "axis": "Z"}
+HEIGHT_ATTRS = {
+    "standard_name": "height",
+    "long_name": "grid height above the WGS84 ellipsoid",
+    "units": "m",
+    "positive": "up",
+    "axis": "Z",
+}
 SOURCE = "potfield (potential-field survey processing)"
 
 
@@ -65,28 +71,35 @@ def _cf_variable(grid: xr.DataArray) -> xr.DataArray:
     for key in _COORDINATE_ONLY:
         attrs.pop(key, None)
     attrs.setdefault("units", "1")
-    if "height" not in grid.coords and isinstance(height, (int, float, np.floating)) \
-            and np.isfinite(float(height)):
+    if (
+        "height" not in grid.coords
+        and isinstance(height, (int, float, np.floating))
+        and np.isfinite(float(height))
+    ):
         grid = grid.assign_coords(height=float(height))
     if "height" in grid.coords:
         grid["height"].attrs.update(HEIGHT_ATTRS)
     if "upward" in grid.coords:  # a draped grid: the height of every cell (auxiliary coordinate)
-        grid["upward"].attrs.update({**HEIGHT_ATTRS, "long_name": "height of each grid cell above "
-                                     "the WGS84 ellipsoid (draped grid)"})
+        grid["upward"].attrs.update(
+            {**HEIGHT_ATTRS, "long_name": "height of each grid cell above the WGS84 ellipsoid (draped grid)"}
+        )
         grid["upward"].attrs.pop("axis", None)
     grid.attrs = attrs
     return grid
 
 
 def _coordinates(ds: xr.Dataset) -> None:
-    ds["easting"].attrs.update({"standard_name": "projection_x_coordinate", "units": "m",
-                                "long_name": "easting", "axis": "X"})
-    ds["northing"].attrs.update({"standard_name": "projection_y_coordinate", "units": "m",
-                                 "long_name": "northing", "axis": "Y"})
+    ds["easting"].attrs.update(
+        {"standard_name": "projection_x_coordinate", "units": "m", "long_name": "easting", "axis": "X"}
+    )
+    ds["northing"].attrs.update(
+        {"standard_name": "projection_y_coordinate", "units": "m", "long_name": "northing", "axis": "Y"}
+    )
 
 
-def to_dataset(grid: xr.DataArray, crs: pyproj.CRS | str, *, title: str | None = None,
-               summary: str | None = None) -> xr.Dataset:
+def to_dataset(
+    grid: xr.DataArray, crs: pyproj.CRS | str, *, title: str | None = None, summary: str | None = None
+) -> xr.Dataset:
     """Dataset with CF-1.8 attributes and a ``crs`` grid-mapping variable (see the module notes)."""
     crs = pyproj.CRS.from_user_input(crs)
     grid = _cf_variable(ascending(grid))
@@ -97,15 +110,20 @@ def to_dataset(grid: xr.DataArray, crs: pyproj.CRS | str, *, title: str | None =
     ds[name].attrs["grid_mapping"] = "crs"
     _coordinates(ds)
     long_name = grid.attrs.get("long_name", name)
-    ds.attrs.update({
-        "Conventions": "CF-1.8",
-        "title": title or long_name,
-        "summary": summary or (f"{long_name} ({grid.attrs.get('units', '')}) on a regular "
-                               f"{ds.sizes['easting']} x {ds.sizes['northing']} grid in "
-                               f"{crs.name}"),
-        "source": SOURCE,
-        "history": f"potfield: {history}".strip() if history else "potfield",
-    })
+    ds.attrs.update(
+        {
+            "Conventions": "CF-1.8",
+            "title": title or long_name,
+            "summary": summary
+            or (
+                f"{long_name} ({grid.attrs.get('units', '')}) on a regular "
+                f"{ds.sizes['easting']} x {ds.sizes['northing']} grid in "
+                f"{crs.name}"
+            ),
+            "source": SOURCE,
+            "history": f"potfield: {history}".strip() if history else "potfield",
+        }
+    )
     return ds
 
 
@@ -126,8 +144,11 @@ def products_dataset(grids: dict[str, xr.DataArray], crs, *, title: str) -> xr.D
         grid.attrs["grid_mapping"] = "crs"
         if ref is None:
             ref = grid
-        elif not (grid.sizes == ref.sizes and np.array_equal(grid.easting, ref.easting)
-                  and np.array_equal(grid.northing, ref.northing)):
+        elif not (
+            grid.sizes == ref.sizes
+            and np.array_equal(grid.easting, ref.easting)
+            and np.array_equal(grid.northing, ref.northing)
+        ):
             skipped.append(name)
             continue
         variables[name] = grid
@@ -135,14 +156,17 @@ def products_dataset(grids: dict[str, xr.DataArray], crs, *, title: str) -> xr.D
     ds["crs"] = xr.DataArray(np.int32(0), attrs=crs.to_cf())
     if variables:
         _coordinates(ds)
-    ds.attrs.update({
-        "Conventions": "CF-1.8",
-        "title": title,
-        "summary": (f"{len(variables)} gridded products of one survey in {crs.name}: "
-                    + ", ".join(variables)),
-        "source": SOURCE,
-        "history": "potfield: every grid of out/grids gathered into one file",
-    })
+    ds.attrs.update(
+        {
+            "Conventions": "CF-1.8",
+            "title": title,
+            "summary": (
+                f"{len(variables)} gridded products of one survey in {crs.name}: " + ", ".join(variables)
+            ),
+            "source": SOURCE,
+            "history": "potfield: every grid of out/grids gathered into one file",
+        }
+    )
     if skipped:
         ds.attrs["comment"] = "on other coordinates, kept in their own files: " + ", ".join(skipped)
     return ds
@@ -150,13 +174,15 @@ def products_dataset(grids: dict[str, xr.DataArray], crs, *, title: str) -> xr.D
 
 def write_products(path: Path | str, grid_paths: dict[str, Path], crs, *, title: str) -> Path | None:
     """Write ``products.nc``: every grid of ``grid_paths`` in one CF-1.8 file (atomic)."""
-    grids = {name: read_netcdf(p) for name, p in sorted(grid_paths.items())
-             if Path(p).is_file() and Path(p).resolve() != Path(path).resolve()}
+    grids = {
+        name: read_netcdf(p)
+        for name, p in sorted(grid_paths.items())
+        if Path(p).is_file() and Path(p).resolve() != Path(path).resolve()
+    }
     if not grids:
         return None
     ds = products_dataset(grids, crs, title=title)
-    encoding = {v: {"zlib": True, "complevel": 4, "_FillValue": np.nan}
-                for v in ds.data_vars if v != "crs"}
+    encoding = {v: {"zlib": True, "complevel": 4, "_FillValue": np.nan} for v in ds.data_vars if v != "crs"}
     with atomic_path(path) as tmp:
         ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
     return Path(path)
@@ -179,7 +205,7 @@ def read_netcdf(path: Path | str) -> xr.DataArray:
         history = ds.attrs.get("history", "")
     grid.attrs.pop("grid_mapping", None)
     if history.startswith("potfield: ") and "history" not in grid.attrs:
-        grid.attrs["history"] = history[len("potfield: "):]
+        grid.attrs["history"] = history[len("potfield: ") :]
     if "height" in grid.coords and grid["height"].ndim == 0:  # back to the in-memory convention
         grid.attrs["height"] = float(grid["height"])
         grid = grid.drop_vars("height")

@@ -182,8 +182,12 @@ def read_iaga2002(path) -> IagaRecord:
             data_header = index
             break
         if not line.endswith("|"):
-            _fail(path, line_no, "a header or comment record must end with '|' (column 70)",
-                  "follow the IAGA-2002 layout: label from column 2, value from column 25, '|' in column 70")
+            _fail(
+                path,
+                line_no,
+                "a header or comment record must end with '|' (column 70)",
+                "follow the IAGA-2002 layout: label from column 2, value from column 25, '|' in column 70",
+            )
         content = line[:-1]
         stripped = content.strip()
         if stripped.startswith("#"):
@@ -193,14 +197,19 @@ def read_iaga2002(path) -> IagaRecord:
             _fail(path, line_no, "empty header record", "remove the line or give a label and a value")
         label, value = _split_header(content)
         if not label:
-            _fail(path, line_no, "header record has no label in columns 2-24",
-                  "put the label (e.g. 'IAGA CODE') from column 2 and the value from column 25")
+            _fail(
+                path,
+                line_no,
+                "header record has no label in columns 2-24",
+                "put the label (e.g. 'IAGA CODE') from column 2 and the value from column 25",
+            )
         key = HEADER_KEYS.get(label, "_".join(label.split()))
         header[key] = value
     if data_header is None:
         raise InputDataError(
             "no data header record ('DATE       TIME         DOY ...') found after the header",
-            file=path, fix="add the data header line before the data records",
+            file=path,
+            fix="add the data header line before the data records",
         )
     for key in _NUMERIC_KEYS:
         if key in header:
@@ -211,28 +220,40 @@ def read_iaga2002(path) -> IagaRecord:
                     raise ValueError(value)
             except ValueError:
                 label_no = _header_line(lines, data_header, HEADER_LABELS[key])
-                _fail(path, label_no, f"{HEADER_LABELS[key]} '{value}' is not a number",
-                      "write it as a finite decimal number (degrees, or metres for Elevation)")
+                _fail(
+                    path,
+                    label_no,
+                    f"{HEADER_LABELS[key]} '{value}' is not a number",
+                    "write it as a finite decimal number (degrees, or metres for Elevation)",
+                )
 
     # --- data header --------------------------------------------------------------------------
     tokens = lines[data_header].replace("|", " ").split()
     if [t.upper() for t in tokens[:3]] != ["DATE", "TIME", "DOY"] or len(tokens) != 7:
-        _fail(path, data_header + 1,
-              f"data header has {max(len(tokens) - 3, 0)} column labels after 'DATE TIME DOY'",
-              "give exactly four labels (IAGA code + element, e.g. 'BOUX BOUY BOUZ BOUF') ending in '|'")
+        _fail(
+            path,
+            data_header + 1,
+            f"data header has {max(len(tokens) - 3, 0)} column labels after 'DATE TIME DOY'",
+            "give exactly four labels (IAGA code + element, e.g. 'BOUX BOUY BOUZ BOUF') ending in '|'",
+        )
     labels = [t.upper() for t in tokens[3:]]
     code = str(header.get("iaga_code", "")).strip().upper()
     elements = ""
     for label in labels:
         own_code = bool(code) and label.startswith(code) and len(label) > len(code)
-        element = label[len(code):] if own_code else label[-1]
+        element = label[len(code) :] if own_code else label[-1]
         if len(element) != 1 or element not in ELEMENTS:
-            _fail(path, data_header + 1, f"column label '{label}' does not end in a known element letter",
-                  "use the IAGA code followed by one of X Y Z H D I F S G E")
+            _fail(
+                path,
+                data_header + 1,
+                f"column label '{label}' does not end in a known element letter",
+                "use the IAGA code followed by one of X Y Z H D I F S G E",
+            )
         elements += element
     if len(set(elements)) != 4:
-        _fail(path, data_header + 1, f"column labels repeat an element ({elements})",
-              "give each element once")
+        _fail(
+            path, data_header + 1, f"column labels repeat an element ({elements})", "give each element once"
+        )
     if not code:
         code = labels[0][:-1]
         header["iaga_code"] = code
@@ -241,60 +262,91 @@ def read_iaga2002(path) -> IagaRecord:
     if not reported:
         header["reported"] = elements
     elif reported.rstrip() != elements and reported[: len(elements)] != elements:
-        warnings.append(f"{path.name}: Reported '{reported}' differs from the data columns "
-                        f"'{elements}'; the data columns are used")
+        warnings.append(
+            f"{path.name}: Reported '{reported}' differs from the data columns "
+            f"'{elements}'; the data columns are used"
+        )
 
     # --- data records (one vectorised pass) ---------------------------------------------------
-    body = lines[data_header + 1:]
+    body = lines[data_header + 1 :]
     body = np.array(body, dtype=str) if body else np.zeros(0, dtype=str)
     keep = np.char.str_len(np.char.strip(body)) > 0
     line_numbers = np.nonzero(keep)[0] + data_header + 2
     if line_numbers.size == 0:
-        raise InputDataError("no data records after the data header", file=path,
-                             fix="check that the right file is named")
+        raise InputDataError(
+            "no data records after the data header", file=path, fix="check that the right file is named"
+        )
     block = "\n".join(body[keep])
     names = ["date", "clock", "doy", "v0", "v1", "v2", "v3"]
     try:
-        frame = pd.read_csv(io.StringIO(block), sep=r"\s+", header=None, names=names, dtype=str,
-                            engine="c", na_filter=False)
+        frame = pd.read_csv(
+            io.StringIO(block), sep=r"\s+", header=None, names=names, dtype=str, engine="c", na_filter=False
+        )
     except pd.errors.ParserError as err:
         found = re.search(r"line (\d+)", str(err))
         line_no = int(line_numbers[int(found.group(1)) - 1]) if found else int(line_numbers[0])
-        _fail(path, line_no, "data record has more than date, time, day of year and four values",
-              "write 'YYYY-MM-DD hh:mm:ss.sss DDD' and exactly four values")
+        _fail(
+            path,
+            line_no,
+            "data record has more than date, time, day of year and four values",
+            "write 'YYYY-MM-DD hh:mm:ss.sss DDD' and exactly four values",
+        )
     short = (frame.isna() | (frame == "")).any(axis=1).to_numpy()
     if short.any():
-        _fail(path, int(line_numbers[np.argmax(short)]),
-              "data record has fewer than date, time, day of year and four values",
-              "write 'YYYY-MM-DD hh:mm:ss.sss DDD' and exactly four values (99999.00 = missing)")
-    times = pd.to_datetime(frame["date"] + "T" + frame["clock"], format="ISO8601",
-                           errors="coerce").to_numpy(dtype="datetime64[ns]")
+        _fail(
+            path,
+            int(line_numbers[np.argmax(short)]),
+            "data record has fewer than date, time, day of year and four values",
+            "write 'YYYY-MM-DD hh:mm:ss.sss DDD' and exactly four values (99999.00 = missing)",
+        )
+    times = pd.to_datetime(frame["date"] + "T" + frame["clock"], format="ISO8601", errors="coerce").to_numpy(
+        dtype="datetime64[ns]"
+    )
     bad = np.isnat(times)
     if bad.any():
         i = int(np.argmax(bad))
-        _fail(path, int(line_numbers[i]), f"cannot read date and time '{frame['date'].iloc[i]} "
-              f"{frame['clock'].iloc[i]}'", "write them as YYYY-MM-DD hh:mm:ss.sss")
+        _fail(
+            path,
+            int(line_numbers[i]),
+            f"cannot read date and time '{frame['date'].iloc[i]} {frame['clock'].iloc[i]}'",
+            "write them as YYYY-MM-DD hh:mm:ss.sss",
+        )
     doy = pd.to_numeric(frame["doy"], errors="coerce").to_numpy(dtype=float)
     expected = pd.DatetimeIndex(times).day_of_year.to_numpy()
     bad = ~(doy == expected)
     if bad.any():
         i = int(np.argmax(bad))
-        _fail(path, int(line_numbers[i]), f"day of year '{frame['doy'].iloc[i]}' does not match "
-              f"the date {frame['date'].iloc[i]} (expected {expected[i]:03d})",
-              "correct the DOY column (3 digits, 001-366)")
+        _fail(
+            path,
+            int(line_numbers[i]),
+            f"day of year '{frame['doy'].iloc[i]}' does not match "
+            f"the date {frame['date'].iloc[i]} (expected {expected[i]:03d})",
+            "correct the DOY column (3 digits, 001-366)",
+        )
     data = pd.DataFrame({"time": times})
     for j, element in enumerate(elements):
         values = pd.to_numeric(frame[f"v{j}"], errors="coerce").to_numpy(dtype=float, copy=True)
         bad = ~np.isfinite(values)
         if bad.any():
             i = int(np.argmax(bad))
-            _fail(path, int(line_numbers[i]), f"value '{frame[f'v{j}'].iloc[i]}' of {labels[j]} is "
-                  "not a finite number", "write numbers as %10.2f, 99999.00 for missing")
+            _fail(
+                path,
+                int(line_numbers[i]),
+                f"value '{frame[f'v{j}'].iloc[i]}' of {labels[j]} is not a finite number",
+                "write numbers as %10.2f, 99999.00 for missing",
+            )
         values[values >= SENTINEL_MIN] = np.nan
         data[element] = values
     _derive(data)
-    return IagaRecord(header=header, comments=comments, data=data, elements=elements,
-                      rows=line_numbers.astype(np.int64), path=path, warnings=warnings)
+    return IagaRecord(
+        header=header,
+        comments=comments,
+        data=data,
+        elements=elements,
+        rows=line_numbers.astype(np.int64),
+        path=path,
+        warnings=warnings,
+    )
 
 
 def _header_line(lines, stop, label) -> int:
@@ -365,6 +417,7 @@ def looks_like_iaga2002(path) -> bool:
 
 # --- writer -------------------------------------------------------------------------------------
 
+
 def _record(text: str) -> str:
     text = text[: RECORD_LENGTH - 1]
     return text.ljust(RECORD_LENGTH - 1) + "|"
@@ -400,9 +453,11 @@ def _element_values(frame: pd.DataFrame, element: str) -> np.ndarray:
     elif element == "G" and all(a is not None for a in (north, east, down, total)):
         derived = np.sqrt(north**2 + east**2 + down**2) - total
     if derived is None:
-        raise InputDataError(f"cannot write element '{element}': the table has neither a column "
-                             f"'{element}' nor the components it is derived from",
-                             fix="add the column or choose other reported elements")
+        raise InputDataError(
+            f"cannot write element '{element}': the table has neither a column "
+            f"'{element}' nor the components it is derived from",
+            fix="add the column or choose other reported elements",
+        )
     return derived
 
 
@@ -447,12 +502,18 @@ def write_iaga2002(path, record_or_frame, header: dict | None = None, comments=N
         elements_default = None
     code = str(merged.get("iaga_code", "")).strip().upper()
     if not code:
-        raise InputDataError("no IAGA code given for the IAGA-2002 header", key="iaga_code",
-                             fix="pass header={'iaga_code': 'ABC', ...}")
+        raise InputDataError(
+            "no IAGA code given for the IAGA-2002 header",
+            key="iaga_code",
+            fix="pass header={'iaga_code': 'ABC', ...}",
+        )
     elements = (elements_default or str(merged.get("reported", "")).strip().upper())[:4]
     if len(elements) != 4 or any(e not in ELEMENTS for e in elements):
-        raise InputDataError(f"reported elements '{elements}' are not four element letters",
-                             key="reported", fix="use e.g. 'XYZF', 'HDZF', 'XYZG' or 'DHZF'")
+        raise InputDataError(
+            f"reported elements '{elements}' are not four element letters",
+            key="reported",
+            fix="use e.g. 'XYZF', 'HDZF', 'XYZG' or 'DHZF'",
+        )
     merged.setdefault("format", "IAGA-2002")
     merged.setdefault("reported", elements)
     lines = []
@@ -482,14 +543,17 @@ def write_iaga2002(path, record_or_frame, header: dict | None = None, comments=N
         values = np.asarray(_element_values(frame, element), dtype=float)
         values = np.where(np.isfinite(values), values, MISSING)
         if np.any(np.abs(values) >= 1e7):
-            raise InputDataError(f"element {element} has values too large for %10.2f",
-                                 fix="check the units (nT, minutes of arc)")
+            raise InputDataError(
+                f"element {element} has values too large for %10.2f",
+                fix="check the units (nT, minutes of arc)",
+            )
         body = body + pd.Series(np.char.mod("%10.2f", values))
     text = "\n".join(lines) + "\n" + ("\n".join(body.tolist()) + "\n" if len(body) else "")
     return write_text(path, text)
 
 
 # --- observatory readings table -----------------------------------------------------------------
+
 
 def observatory_table(paths, geoid_undulation: float = 0.0) -> pd.DataFrame:
     """Stack IAGA-2002 station files into the readings-table form of an observatory survey.
@@ -516,33 +580,44 @@ def observatory_table(paths, geoid_undulation: float = 0.0) -> pd.DataFrame:
         lat = record.header.get("latitude", np.nan)
         lon = record.header.get("longitude", np.nan)
         if not (np.isfinite(lat) and np.isfinite(lon)):
-            raise InputDataError("Geodetic Latitude/Longitude missing from the header",
-                                 file=path, fix="add both header records (degrees)")
+            raise InputDataError(
+                "Geodetic Latitude/Longitude missing from the header",
+                file=path,
+                fix="add both header records (degrees)",
+            )
         if not -90.0 <= lat <= 90.0:
-            raise InputDataError(f"Geodetic Latitude {lat} is outside -90..90", file=path,
-                                 fix="correct the header record")
+            raise InputDataError(
+                f"Geodetic Latitude {lat} is outside -90..90", file=path, fix="correct the header record"
+            )
         if not -180.0 <= lon <= 360.0:
-            raise InputDataError(f"Geodetic Longitude {lon} is outside -180..360", file=path,
-                                 fix="correct the header record (degrees east)")
+            raise InputDataError(
+                f"Geodetic Longitude {lon} is outside -180..360",
+                file=path,
+                fix="correct the header record (degrees east)",
+            )
         elevation = record.header.get("elevation", np.nan)
         elevation = 0.0 if not np.isfinite(elevation) else float(elevation)
         data = record.data
         n = len(data)
-        frames.append(pd.DataFrame({
-            "line": record.code,
-            "station": record.code,
-            "time": data["time"].to_numpy(),
-            "longitude": np.full(n, ((float(lon) + 180.0) % 360.0) - 180.0),
-            "latitude": np.full(n, float(lat)),
-            "height": np.full(n, elevation + geoid_undulation),
-            "elevation": np.full(n, elevation),
-            "mag_north": data["mag_north"].to_numpy(),
-            "mag_east": data["mag_east"].to_numpy(),
-            "mag_down": data["mag_down"].to_numpy(),
-            "total_field": data["total_field"].to_numpy(),
-            "source_file": Path(path).name,
-            "source_row": record.rows,
-        }))
+        frames.append(
+            pd.DataFrame(
+                {
+                    "line": record.code,
+                    "station": record.code,
+                    "time": data["time"].to_numpy(),
+                    "longitude": np.full(n, ((float(lon) + 180.0) % 360.0) - 180.0),
+                    "latitude": np.full(n, float(lat)),
+                    "height": np.full(n, elevation + geoid_undulation),
+                    "elevation": np.full(n, elevation),
+                    "mag_north": data["mag_north"].to_numpy(),
+                    "mag_east": data["mag_east"].to_numpy(),
+                    "mag_down": data["mag_down"].to_numpy(),
+                    "total_field": data["total_field"].to_numpy(),
+                    "source_file": Path(path).name,
+                    "source_row": record.rows,
+                }
+            )
+        )
     if not frames:
         raise InputDataError("no IAGA-2002 files given", fix="list the station files in [input] files")
     table = pd.concat(frames, ignore_index=True)

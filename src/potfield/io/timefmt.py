@@ -69,8 +69,10 @@ def check_format(value: str) -> str:
     """``value`` if it is a named layout or a ``strftime`` pattern, else ``ValueError``."""
     if value in NAMED_FORMATS or "%" in value:
         return value
-    raise ValueError(f"time format '{value}' is neither {', '.join(NAMED_FORMATS)} nor a strftime "
-                     "pattern such as '%Y/%m/%d %H:%M:%S' or '%H%M%S'")
+    raise ValueError(
+        f"time format '{value}' is neither {', '.join(NAMED_FORMATS)} nor a strftime "
+        "pattern such as '%Y/%m/%d %H:%M:%S' or '%H%M%S'"
+    )
 
 
 def _column(names: dict | None, canon: str) -> str:
@@ -84,8 +86,9 @@ def _fail(path, frame, bad, text: pd.Series, what: str, fix: str) -> None:
     rows = frame["source_row"].to_numpy()[bad] if "source_row" in frame else np.flatnonzero(bad) + 1
     example = text[bad].iloc[0] if bad.any() else ""
     noun, _, rest = what.partition(" in ")
-    raise InputDataError(f"cannot read the {noun} '{example}' in {rest} at line {format_rows(rows)}",
-                         file=path, fix=fix)
+    raise InputDataError(
+        f"cannot read the {noun} '{example}' in {rest} at line {format_rows(rows)}", file=path, fix=fix
+    )
 
 
 def _text(series: pd.Series) -> pd.Series:
@@ -99,8 +102,12 @@ def _with_fractions(text: pd.Series, pattern: str, utc: bool) -> pd.Series:
     if "%S" in pattern and "%f" not in pattern:
         retry = parsed.isna() & text.notna()
         if retry.any():
-            again = pd.to_datetime(text[retry].str.replace(",", ".", regex=False),
-                                   format=pattern.replace("%S", "%S.%f"), errors="coerce", utc=utc)
+            again = pd.to_datetime(
+                text[retry].str.replace(",", ".", regex=False),
+                format=pattern.replace("%S", "%S.%f"),
+                errors="coerce",
+                utc=utc,
+            )
             parsed = parsed.copy()
             parsed[retry] = again
     return parsed
@@ -134,8 +141,9 @@ def parse_date(series: pd.Series, date_format: str | None) -> np.ndarray:
         return _naive_ns(_with_fractions(text, date_format, "%z" in date_format))
     text = text.str.replace(r"^(\d{8})\.0*$", r"\1", regex=True)
     compact = text.str.fullmatch(r"\d{8}").fillna(False).astype(bool)
-    text = text.where(~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-"
-                      + text.str.slice(6, 8))
+    text = text.where(
+        ~compact, text.str.slice(0, 4) + "-" + text.str.slice(4, 6) + "-" + text.str.slice(6, 8)
+    )
     text = text.str.replace("/", "-", regex=False)
     return pd.to_datetime(text, format="%Y-%m-%d", errors="coerce").to_numpy(dtype="datetime64[ns]")
 
@@ -155,8 +163,9 @@ def _rollover(tod_ns: np.ndarray) -> np.ndarray:
     return out
 
 
-def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = None,
-                key: str = "input.time") -> np.ndarray:
+def parse_times(
+    frame: pd.DataFrame, spec, path: Path, *, names: dict | None = None, key: str = "input.time"
+) -> np.ndarray:
     """Times of the rows of ``frame`` as datetime64[ns] (UTC, timezone-naive).
 
     Parameters
@@ -181,20 +190,25 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
     fmt = spec.format
     has_time, has_date = "time" in frame, "date" in frame
     if not has_time and not has_date:
-        raise InputDataError("no input column is mapped to 'time'", file=path,
-                             key=key.replace(".time", ".columns.time"),
-                             fix='map time = "<your time column>" (or a date column for station lists)')
+        raise InputDataError(
+            "no input column is mapped to 'time'",
+            file=path,
+            key=key.replace(".time", ".columns.time"),
+            fix='map time = "<your time column>" (or a date column for station lists)',
+        )
     time_col, date_col = _column(names, "time"), _column(names, "date")
     pattern = fmt if "%" in fmt else None
     marks = directives(pattern) if pattern else set()
     if pattern and marks & DATE_DIRECTIVES and has_time and has_date:
-        raise ConfigError(f"time format '{fmt}' holds a date but a date column is mapped too",
-                          key=f"{key}.format",
-                          fix="use a time-of-day pattern such as '%H:%M:%S' (the date from the date "
-                              "column, read with date_format) or unmap the date column")
-    full = None      # datetime64[ns]: the time column carries the day
-    tod = None       # int64 ns since midnight: the time column carries the time of day
-    naive = None     # rows whose text had no zone of its own (None = all)
+        raise ConfigError(
+            f"time format '{fmt}' holds a date but a date column is mapped too",
+            key=f"{key}.format",
+            fix="use a time-of-day pattern such as '%H:%M:%S' (the date from the date "
+            "column, read with date_format) or unmap the date column",
+        )
+    full = None  # datetime64[ns]: the time column carries the day
+    tod = None  # int64 ns since midnight: the time column carries the time of day
+    naive = None  # rows whose text had no zone of its own (None = all)
     if has_time:
         raw = frame["time"]
         text = _text(raw)
@@ -202,19 +216,34 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
             # a time column that carries its own day (ISO date) wins over a mapped date column;
             # without one, it holds the time of day when the day comes from elsewhere
             head = text.head(50).dropna()
-            own_day = bool(head.str.contains(r"\d{4}-?\d{2}-?\d{2}[T\s]|^\d{4}-\d{2}-\d{2}$",
-                                             regex=True).mean() > 0.5) if len(head) else True
+            own_day = (
+                bool(
+                    head.str.contains(r"\d{4}-?\d{2}-?\d{2}[T\s]|^\d{4}-\d{2}-\d{2}$", regex=True).mean()
+                    > 0.5
+                )
+                if len(head)
+                else True
+            )
             if own_day:
                 has_date = False
             if not own_day and (has_date or spec.date):
                 tod_td = pd.to_timedelta(text.str.replace(",", ".", regex=False), errors="coerce")
                 tod = tod_td.to_numpy(dtype="timedelta64[ns]").astype(np.int64)
-                bad = np.isnat(tod_td.to_numpy(dtype="timedelta64[ns]")) | (tod < 0) | (
-                    tod > SECONDS_PER_DAY * _NS_PER_S)
+                bad = (
+                    np.isnat(tod_td.to_numpy(dtype="timedelta64[ns]"))
+                    | (tod < 0)
+                    | (tod > SECONDS_PER_DAY * _NS_PER_S)
+                )
                 if bad.any():
-                    _fail(path, frame, bad, text, f"time of day in {time_col}",
-                          f"write hh:mm:ss[.fff] there, or set [{key}] format to the pattern it uses "
-                          "(e.g. '%H%M%S'); with a date column the time column holds the time of day")
+                    _fail(
+                        path,
+                        frame,
+                        bad,
+                        text,
+                        f"time of day in {time_col}",
+                        f"write hh:mm:ss[.fff] there, or set [{key}] format to the pattern it uses "
+                        "(e.g. '%H%M%S'); with a date column the time column holds the time of day",
+                    )
             else:
                 parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
                 full = _naive_ns(parsed)
@@ -222,21 +251,36 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
                     naive = ~text.str.contains(_ZONE_SUFFIX, regex=True).fillna(False).to_numpy(bool)
                 bad = np.isnat(full)
                 if bad.any():
-                    _fail(path, frame, bad, text, f"time in {time_col} as iso",
-                          f"use ISO 8601 (2024-05-01T10:00:00Z) or set [{key}] format to the one "
-                          "the file uses (a strftime pattern such as '%d/%m/%Y %H:%M:%S')")
+                    _fail(
+                        path,
+                        frame,
+                        bad,
+                        text,
+                        f"time in {time_col} as iso",
+                        f"use ISO 8601 (2024-05-01T10:00:00Z) or set [{key}] format to the one "
+                        "the file uses (a strftime pattern such as '%d/%m/%Y %H:%M:%S')",
+                    )
         elif fmt in ("date_seconds", "decimal_hours"):
             name = (names or {}).get("time", "")
             if fmt == "date_seconds" and _HHMMSS_NAME.match(str(name)):
-                raise ConfigError(f"time column '{name}' reads like an hhmmss time, not seconds of day", file=path,
-                                  key=f"{key}.format",
-                                  fix="set format = '%H%M%S' (or '%H:%M:%S') for that column")
+                raise ConfigError(
+                    f"time column '{name}' reads like an hhmmss time, not seconds of day",
+                    file=path,
+                    key=f"{key}.format",
+                    fix="set format = '%H%M%S' (or '%H:%M:%S') for that column",
+                )
             value = pd.to_numeric(text.str.replace(",", ".", regex=False), errors="coerce").to_numpy(float)
             bad = ~np.isfinite(value)
             if bad.any():
-                _fail(path, frame, bad, text, f"time in {time_col} as {fmt}",
-                      f"write a number there, or set [{key}] format to the pattern the file uses "
-                      "(e.g. '%H:%M:%S')")
+                _fail(
+                    path,
+                    frame,
+                    bad,
+                    text,
+                    f"time in {time_col} as {fmt}",
+                    f"write a number there, or set [{key}] format to the pattern the file uses "
+                    "(e.g. '%H:%M:%S')",
+                )
             seconds = value if fmt == "date_seconds" else value * 3600.0
             if fmt == "date_seconds":
                 over = (seconds > SECONDS_PER_DAY) | (seconds < 0)
@@ -244,23 +288,34 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
                     rows = frame["source_row"].to_numpy()[over]
                     raise InputDataError(
                         f"time {text[over].iloc[0]} in {time_col} is not seconds of day (0..86,400) "
-                        f"at line {format_rows(rows)}", file=path,
-                        fix=f"if it is hhmmss (120204 = 12:02:04) set [{key}] format = '%H%M%S'")
+                        f"at line {format_rows(rows)}",
+                        file=path,
+                        fix=f"if it is hhmmss (120204 = 12:02:04) set [{key}] format = '%H%M%S'",
+                    )
                 tod = np.round(seconds * _NS_PER_S).astype(np.int64)
             else:
                 # decimal hours: hours of day; a drop of more than 12 h is the next day
                 tod = np.round(seconds * _NS_PER_S).astype(np.int64)
         else:
             if not marks & TIME_DIRECTIVES and has_date:
-                raise ConfigError(f"time format '{fmt}' has no time-of-day directive (%H, %M, %S)",
-                                  key=f"{key}.format", fix="give the pattern of the time column")
+                raise ConfigError(
+                    f"time format '{fmt}' has no time-of-day directive (%H, %M, %S)",
+                    key=f"{key}.format",
+                    fix="give the pattern of the time column",
+                )
             text = _pad_compact(text, pattern)
             parsed = _with_fractions(text, pattern, bool({"z", "Z"} & marks))
             values = _naive_ns(parsed)
             bad = np.isnat(values)
             if bad.any():
-                _fail(path, frame, bad, text, f"time in {time_col} with pattern '{fmt}'",
-                      f"correct those values or set [{key}] format to the pattern the file uses")
+                _fail(
+                    path,
+                    frame,
+                    bad,
+                    text,
+                    f"time in {time_col} with pattern '{fmt}'",
+                    f"correct those values or set [{key}] format to the pattern the file uses",
+                )
             if marks & DATE_DIRECTIVES:
                 full = values
                 if {"z", "Z"} & marks:
@@ -273,21 +328,30 @@ def parse_times(frame: pd.DataFrame, spec, path: Path, *, names: dict | None = N
             bad = np.isnat(day)
             if bad.any():
                 shown = f"date_format '{spec.date_format}'" if spec.date_format else "YYYY-MM-DD"
-                _fail(path, frame, bad, _text(frame["date"]), f"date in {date_col} as {shown}",
-                      f"correct those dates or set [{key}] date_format (e.g. '%d/%m/%Y')")
+                _fail(
+                    path,
+                    frame,
+                    bad,
+                    _text(frame["date"]),
+                    f"date in {date_col} as {shown}",
+                    f"correct those dates or set [{key}] date_format (e.g. '%d/%m/%Y')",
+                )
         elif spec.date:
             try:
                 stamp = pd.Timestamp(spec.date)
             except (ValueError, TypeError):
-                raise ConfigError(f"cannot read date '{spec.date}'", key=f"{key}.date",
-                                  fix='write it as "YYYY-MM-DD"') from None
+                raise ConfigError(
+                    f"cannot read date '{spec.date}'", key=f"{key}.date", fix='write it as "YYYY-MM-DD"'
+                ) from None
             day = np.full(len(frame), np.datetime64(stamp.to_datetime64(), "ns"))
             tod = _rollover(tod)
         else:
             raise InputDataError(
-                f"time format '{fmt}' gives the time of day only and there is no date", file=path,
+                f"time format '{fmt}' gives the time of day only and there is no date",
+                file=path,
                 key=f"{key}.date",
-                fix=f'map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [{key}]')
+                fix=f'map a date column (input.columns.date) or set date = "YYYY-MM-DD" under [{key}]',
+            )
         full = day if tod is None else day + tod.astype("timedelta64[ns]")
     return _to_utc(full, naive, spec, frame, path, key)
 
@@ -299,24 +363,30 @@ def _to_utc(values: np.ndarray, naive, spec, frame, path, key) -> np.ndarray:
     tz = getattr(spec, "timezone", None)
     offset_h = float(getattr(spec, "utc_offset_h", 0.0) or 0.0)
     if tz and offset_h:
-        raise ConfigError("both timezone and utc_offset_h are set", key=f"{key}.timezone",
-                          fix="keep one of them")
+        raise ConfigError(
+            "both timezone and utc_offset_h are set", key=f"{key}.timezone", fix="keep one of them"
+        )
     if tz and mask.any():
         try:
             local = pd.DatetimeIndex(values[mask]).tz_localize(tz, ambiguous="NaT", nonexistent="NaT")
         except Exception as err:  # unknown zone names raise several types (pytz, zoneinfo)
             if isinstance(err, (InputDataError, ConfigError)):
                 raise
-            raise ConfigError(f"unknown time zone '{tz}'", key=f"{key}.timezone",
-                              fix="use an IANA name such as 'Australia/Perth' or set utc_offset_h") from None
+            raise ConfigError(
+                f"unknown time zone '{tz}'",
+                key=f"{key}.timezone",
+                fix="use an IANA name such as 'Australia/Perth' or set utc_offset_h",
+            ) from None
         converted = local.tz_convert("UTC").tz_localize(None).to_numpy(dtype="datetime64[ns]")
         lost = np.isnat(converted)
         if lost.any():
             rows = frame["source_row"].to_numpy()[mask][lost]
             raise InputDataError(
                 f"local time {pd.Timestamp(values[mask][lost][0])} is skipped or repeated by a "
-                f"daylight-saving change in {tz} at line {format_rows(rows)}", file=path,
-                fix="set utc_offset_h to the offset the logger kept instead of timezone")
+                f"daylight-saving change in {tz} at line {format_rows(rows)}",
+                file=path,
+                fix="set utc_offset_h to the offset the logger kept instead of timezone",
+            )
         values = values.copy()
         values[mask] = converted
     elif offset_h:

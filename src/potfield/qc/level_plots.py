@@ -24,11 +24,16 @@ def crossover_series(crossovers: pd.DataFrame) -> dict[str, np.ndarray]:
     ``difference_levelled_height_corrected``), else from ``difference`` and
     ``difference_levelled``; each a finite array.
     """
-    used = crossovers["used"].astype(bool).to_numpy() if "used" in crossovers else \
-        np.ones(len(crossovers), dtype=bool)
-    corrected = ("difference_height_corrected" in crossovers
-                 and "gradient_up" in crossovers
-                 and np.isfinite(crossovers["gradient_up"].to_numpy(float)).any())
+    used = (
+        crossovers["used"].astype(bool).to_numpy()
+        if "used" in crossovers
+        else np.ones(len(crossovers), dtype=bool)
+    )
+    corrected = (
+        "difference_height_corrected" in crossovers
+        and "gradient_up" in crossovers
+        and np.isfinite(crossovers["gradient_up"].to_numpy(float)).any()
+    )
     before = "difference_height_corrected" if corrected else "difference"
     after = "difference_levelled_height_corrected" if corrected else "difference_levelled"
     out = {}
@@ -38,8 +43,9 @@ def crossover_series(crossovers: pd.DataFrame) -> dict[str, np.ndarray]:
     return out
 
 
-def plot_crossover_histograms(crossovers: pd.DataFrame, path: Path, units: str = "nT",
-                              dpi: int = 110) -> Path:
+def plot_crossover_histograms(
+    crossovers: pd.DataFrame, path: Path, units: str = "nT", dpi: int = 110
+) -> Path:
     """Histograms of the crossover misclosures before and after levelling, with their RMS.
 
     Parameters
@@ -61,14 +67,22 @@ def plot_crossover_histograms(crossovers: pd.DataFrame, path: Path, units: str =
         bins = np.linspace(-lim, lim, 41)
         for key, colour in (("before", "#8c8c8c"), ("after", "#2b6cb0")):
             values = series[key]
-            rms = float(np.sqrt(np.mean(values ** 2))) if values.size else float("nan")
-            ax.hist(np.clip(values, -lim, lim), bins=bins, alpha=0.6, color=colour,
-                    label=f"{key} levelling: RMS {rms:.3g} {units} ({values.size} crossovers)")
+            rms = float(np.sqrt(np.mean(values**2))) if values.size else float("nan")
+            ax.hist(
+                np.clip(values, -lim, lim),
+                bins=bins,
+                alpha=0.6,
+                color=colour,
+                label=f"{key} levelling: RMS {rms:.3g} {units} ({values.size} crossovers)",
+            )
         ax.legend(loc="upper right", fontsize=8)
     else:
         ax.text(0.5, 0.5, "no usable crossover", ha="center", va="center", transform=ax.transAxes)
-    corrected = "height_effect" in crossovers and "gradient_up" in crossovers and \
-        np.isfinite(crossovers["gradient_up"].to_numpy(float)).any()
+    corrected = (
+        "height_effect" in crossovers
+        and "gradient_up" in crossovers
+        and np.isfinite(crossovers["gradient_up"].to_numpy(float)).any()
+    )
     ax.set_xlabel(f"misclosure line - tie ({units})" + (", height effect removed" if corrected else ""))
     ax.set_ylabel("crossovers")
     ax.set_title("Crossover misclosures before and after levelling")

@@ -37,16 +37,59 @@ CATEGORICAL = "tab20"
 FIGSIZE = (7.5, 6.0)
 
 #: Grid names whose values are signed anomalies (diverging colour map centred on zero).
-SIGNED_HINTS = ("anomaly", "residual", "regional", "rtp", "dz", "dx", "dy", "upward", "external",
-                "internal", "disturbance", "bouguer", "free_air", "level", "corrugation")
-UNSIGNED_HINTS = ("thg", "tga", "analytic", "gradient_amplitude", "distance", "height",
-                  "total_horizontal_gradient")
+SIGNED_HINTS = (
+    "anomaly",
+    "residual",
+    "regional",
+    "rtp",
+    "dz",
+    "dx",
+    "dy",
+    "upward",
+    "external",
+    "internal",
+    "disturbance",
+    "bouguer",
+    "free_air",
+    "level",
+    "corrugation",
+)
+UNSIGNED_HINTS = (
+    "thg",
+    "tga",
+    "analytic",
+    "gradient_amplitude",
+    "distance",
+    "height",
+    "total_horizontal_gradient",
+)
 #: Absolute fields: histogram-equalised sequential scale with hillshade (see the module notes).
-ABSOLUTE_HINTS = ("total_field", "bouguer", "free_air", "gravity", "regional", "upward",
-                  "reduced_to_pole", "rtp", "igrf")
+ABSOLUTE_HINTS = (
+    "total_field",
+    "bouguer",
+    "free_air",
+    "gravity",
+    "regional",
+    "upward",
+    "reduced_to_pole",
+    "rtp",
+    "igrf",
+)
 #: Signed quantities shown on a diverging scale when they straddle zero.
-DERIVATIVE_HINTS = ("derivative", "residual", "tilt", "dz", "dx", "dy", "external", "internal",
-                    "level", "corrugation", "difference", "deviation")
+DERIVATIVE_HINTS = (
+    "derivative",
+    "residual",
+    "tilt",
+    "dz",
+    "dx",
+    "dy",
+    "external",
+    "internal",
+    "level",
+    "corrugation",
+    "difference",
+    "deviation",
+)
 
 
 def save(fig, path: Path, dpi: int = 110) -> Path:
@@ -75,16 +118,39 @@ def add_scale_bar(ax) -> None:
     ax.plot([bx, bx + length], [by, by], color="black", lw=3, solid_capstyle="butt", zorder=10)
     ax.plot([bx, bx + length / 2], [by, by], color="white", lw=1.2, solid_capstyle="butt", zorder=11)
     label = f"{length / 1000:g} km" if length >= 1000 else f"{length:g} m"
-    ax.text(bx + length / 2, by + 0.015 * (y1 - y0), label, ha="center", va="bottom", fontsize=8,
-            zorder=11, bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none", "pad": 1})
+    ax.text(
+        bx + length / 2,
+        by + 0.015 * (y1 - y0),
+        label,
+        ha="center",
+        va="bottom",
+        fontsize=8,
+        zorder=11,
+        bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none", "pad": 1},
+    )
 
 
 def add_north_arrow(ax) -> None:
     """Arrow to grid north (+northing), top right."""
-    ax.annotate("", xy=(0.94, 0.93), xytext=(0.94, 0.81), xycoords="axes fraction",
-                arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.5}, zorder=12)
-    ax.text(0.94, 0.945, "N", transform=ax.transAxes, ha="center", va="bottom", fontsize=10,
-            fontweight="bold", zorder=12)
+    ax.annotate(
+        "",
+        xy=(0.94, 0.93),
+        xytext=(0.94, 0.81),
+        xycoords="axes fraction",
+        arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.5},
+        zorder=12,
+    )
+    ax.text(
+        0.94,
+        0.945,
+        "N",
+        transform=ax.transAxes,
+        ha="center",
+        va="bottom",
+        fontsize=10,
+        fontweight="bold",
+        zorder=12,
+    )
 
 
 def map_axes(ax, crs_name: str, title: str, survey: str | None = None) -> None:
@@ -122,7 +188,7 @@ def straddles_zero(values: np.ndarray) -> bool:
 
 
 def colour_scale(name: str, values: np.ndarray) -> str:
-    """"equalised" (absolute field), "diverging" (signed, straddling zero) or "linear" (magnitude).
+    """ "equalised" (absolute field), "diverging" (signed, straddling zero) or "linear" (magnitude).
 
     A main magnetic ``anomaly`` grid is an absolute field here: it is the levelled total-field
     anomaly, read like a total-field map (common practice).
@@ -195,8 +261,9 @@ def _norm_for(scale: str, values: np.ndarray):
     return SEQUENTIAL, Normalize(lo, hi)
 
 
-def draw_grid(ax, fig, grid, *, scale: str | None = None, hillshade: bool | None = None,
-              contours: bool = True) -> dict:
+def draw_grid(
+    ax, fig, grid, *, scale: str | None = None, hillshade: bool | None = None, contours: bool = True
+) -> dict:
     """Draw one grid on ``ax`` (colour, optional hillshade and contours); returns what was used."""
     name = str(grid.name or "grid")
     units = grid.attrs.get("units", "")
@@ -215,8 +282,9 @@ def draw_grid(ax, fig, grid, *, scale: str | None = None, hillshade: bool | None
         gy, gx = np.gradient(filled, dn, de)
         slope = float(np.nanstd(np.hypot(gx, gy))) or 1.0
         light = LightSource(azdeg=315, altdeg=45)
-        rgb = light.shade(filled, cmap=cmap, norm=norm, blend_mode="soft",
-                          vert_exag=1.0 / slope, dx=1.0, dy=1.0)
+        rgb = light.shade(
+            filled, cmap=cmap, norm=norm, blend_mode="soft", vert_exag=1.0 / slope, dx=1.0, dy=1.0
+        )
     else:
         rgb = cmap(norm(filled))
     rgb = np.array(rgb, dtype=float)
@@ -237,18 +305,31 @@ def draw_grid(ax, fig, grid, *, scale: str | None = None, hillshade: bool | None
         lo, hi = np.nanmin(values), np.nanmax(values)
         levels = np.arange(np.floor(lo / interval) * interval, hi + interval, interval)
         if 2 <= levels.size <= 200:
-            ax.contour(east, north, np.ma.masked_invalid(values), levels=levels, colors="black",
-                       linewidths=0.35, alpha=0.6)
+            ax.contour(
+                east,
+                north,
+                np.ma.masked_invalid(values),
+                levels=levels,
+                colors="black",
+                linewidths=0.35,
+                alpha=0.6,
+            )
         else:
             interval = None
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
-    return {"scale": scale, "cmap": cmap_name, "hillshade": bool(shade), "contour_interval": interval,
-            "units": units}
+    return {
+        "scale": scale,
+        "cmap": cmap_name,
+        "hillshade": bool(shade),
+        "contour_interval": interval,
+        "units": units,
+    }
 
 
-def plot_grid(grid, path: Path, crs_name: str, title: str | None = None, dpi: int = 110,
-              survey: str | None = None) -> Path:
+def plot_grid(
+    grid, path: Path, crs_name: str, title: str | None = None, dpi: int = 110, survey: str | None = None
+) -> Path:
     """Map of one grid: quantity and unit in the title, survey name, CRS, contour interval,
     scale bar and north arrow. The colour scale follows :func:`colour_scale`."""
     name = str(grid.name or "grid")
@@ -263,15 +344,26 @@ def plot_grid(grid, path: Path, crs_name: str, title: str | None = None, dpi: in
         lines.append(survey)
     if used["contour_interval"]:
         lines.append(f"contour interval {used['contour_interval']:g} {units}".strip())
-    scale_text = {"equalised": "histogram-equalised colour, hillshade from NW",
-                  "diverging": "colour centred on zero", "linear": "linear colour"}[used["scale"]]
+    scale_text = {
+        "equalised": "histogram-equalised colour, hillshade from NW",
+        "diverging": "colour centred on zero",
+        "linear": "linear colour",
+    }[used["scale"]]
     lines.append(scale_text)
     ax.text(0.0, -0.16, "   |   ".join(lines), transform=ax.transAxes, fontsize=7, va="top")
     return save(fig, path, dpi)
 
 
-def plot_points(table: pd.DataFrame, column: str, path: Path, crs_name: str, title: str, units: str,
-                dpi: int = 110, survey: str | None = None) -> Path:
+def plot_points(
+    table: pd.DataFrame,
+    column: str,
+    path: Path,
+    crs_name: str,
+    title: str,
+    units: str,
+    dpi: int = 110,
+    survey: str | None = None,
+) -> Path:
     """Readings coloured by a value column (e.g. the anomaly before gridding)."""
     values = table[column].to_numpy(dtype=float)
     step = max(len(table) // 200_000, 1)
@@ -280,16 +372,30 @@ def plot_points(table: pd.DataFrame, column: str, path: Path, crs_name: str, tit
     cmap, norm = _norm_for(colour_scale(column, vals), vals)
     fig, ax = plt.subplots(figsize=FIGSIZE)
     many = len(sub) > 2000
-    sc = ax.scatter(sub["easting"], sub["northing"], c=vals, cmap=cmap, norm=norm,
-                    s=2 if many else 18, linewidths=0 if many else 0.3, edgecolors="black")
+    sc = ax.scatter(
+        sub["easting"],
+        sub["northing"],
+        c=vals,
+        cmap=cmap,
+        norm=norm,
+        s=2 if many else 18,
+        linewidths=0 if many else 0.3,
+        edgecolors="black",
+    )
     bar = fig.colorbar(sc, ax=ax, shrink=0.8)
     bar.set_label(units)
     map_axes(ax, crs_name, title, survey)
     return save(fig, path, dpi)
 
 
-def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
-                title: str | None = None, survey: str | None = None) -> Path:
+def plot_tracks(
+    table: pd.DataFrame,
+    path: Path,
+    crs_name: str,
+    dpi: int = 110,
+    title: str | None = None,
+    survey: str | None = None,
+) -> Path:
     """Survey tracks (or stations) coloured by line, flagged readings marked."""
     fig, ax = plt.subplots(figsize=FIGSIZE)
     codes, names = pd.factorize(table["line"])
@@ -298,25 +404,55 @@ def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
     tie = (table["line_type"] == "tie").to_numpy()
     many = len(table) > 2000
     marker = {"s": 0.5 if many else 12, "linewidths": 0}
-    ax.scatter(table["easting"].to_numpy()[::step], table["northing"].to_numpy()[::step],
-               c=cmap(codes[::step] % 20), **marker)
+    ax.scatter(
+        table["easting"].to_numpy()[::step],
+        table["northing"].to_numpy()[::step],
+        c=cmap(codes[::step] % 20),
+        **marker,
+    )
     if tie.any():
-        ax.scatter(table["easting"].to_numpy()[tie][::step], table["northing"].to_numpy()[tie][::step],
-                   c="black", s=marker["s"], linewidths=0, label="tie lines")
+        ax.scatter(
+            table["easting"].to_numpy()[tie][::step],
+            table["northing"].to_numpy()[tie][::step],
+            c="black",
+            s=marker["s"],
+            linewidths=0,
+            label="tie lines",
+        )
     flags = [c for c in table.columns if c.startswith("flag_")]
     if flags:
         flagged = table[flags].to_numpy(dtype=bool).any(axis=1)
         if flagged.any():
-            ax.scatter(table["easting"][flagged], table["northing"][flagged], marker="x", c="red", s=14,
-                       linewidths=0.8, label=f"flagged ({int(flagged.sum())})")
+            ax.scatter(
+                table["easting"][flagged],
+                table["northing"][flagged],
+                marker="x",
+                c="red",
+                s=14,
+                linewidths=0.8,
+                label=f"flagged ({int(flagged.sum())})",
+            )
     if "station" in table and (not many or table["station"].nunique() <= 60):
         stations = table.groupby("station")[["easting", "northing"]].first()
         if many:  # a station network: the readings repeat at a few points
-            ax.scatter(stations["easting"], stations["northing"], marker="^", s=40, c="black",
-                       zorder=5, label="stations")
+            ax.scatter(
+                stations["easting"],
+                stations["northing"],
+                marker="^",
+                s=40,
+                c="black",
+                zorder=5,
+                label="stations",
+            )
         for name, row in stations.iloc[:: max(len(stations) // 60, 1)].iterrows():
-            ax.annotate(str(name), (row.easting, row.northing), fontsize=5 if not many else 8,
-                        alpha=0.8, xytext=(3, 3), textcoords="offset points")
+            ax.annotate(
+                str(name),
+                (row.easting, row.northing),
+                fontsize=5 if not many else 8,
+                alpha=0.8,
+                xytext=(3, 3),
+                textcoords="offset points",
+            )
     if ax.get_legend_handles_labels()[0]:
         network = "station" in table and many and table["station"].nunique() <= 60
         legend = ax.legend(loc="best", fontsize=7, markerscale=1 if network else 4)
@@ -327,9 +463,15 @@ def plot_tracks(table: pd.DataFrame, path: Path, crs_name: str, dpi: int = 110,
     return save(fig, path, dpi)
 
 
-def plot_coverage(table: pd.DataFrame, path: Path, crs_name: str, line_spacing: float | None,
-                  dpi: int = 110, survey: str | None = None,
-                  spacing_label: str = "nominal line spacing") -> Path:
+def plot_coverage(
+    table: pd.DataFrame,
+    path: Path,
+    crs_name: str,
+    line_spacing: float | None,
+    dpi: int = 110,
+    survey: str | None = None,
+    spacing_label: str = "nominal line spacing",
+) -> Path:
     """Distance from every point of the area to the nearest reading, and line offsets."""
     from scipy.spatial import cKDTree
 
@@ -350,8 +492,9 @@ def plot_coverage(table: pd.DataFrame, path: Path, crs_name: str, line_spacing: 
     return save(fig, path, dpi)
 
 
-def plot_height_deviation(table: pd.DataFrame, path: Path, crs_name: str, tolerance: float | None,
-                          dpi: int = 110) -> Path:
+def plot_height_deviation(
+    table: pd.DataFrame, path: Path, crs_name: str, tolerance: float | None, dpi: int = 110
+) -> Path:
     """Height minus the smoothed flying surface (a 2 km block median of the heights), i.e. how
     far the sensor strayed from a smooth drape; the planned surface itself is not an input."""
     e, n, h = (table[c].to_numpy(dtype=float) for c in ("easting", "northing", "height"))
@@ -368,8 +511,14 @@ def plot_height_deviation(table: pd.DataFrame, path: Path, crs_name: str, tolera
     return plot_points(frame, "height_deviation", path, crs_name, title, "m", dpi)
 
 
-def plot_noise_profiles(table: pd.DataFrame, path: Path, column: str = "fourth_difference",
-                        max_lines: int = 12, tolerance: float | None = None, dpi: int = 110) -> Path:
+def plot_noise_profiles(
+    table: pd.DataFrame,
+    path: Path,
+    column: str = "fourth_difference",
+    max_lines: int = 12,
+    tolerance: float | None = None,
+    dpi: int = 110,
+) -> Path:
     """Fourth-difference profiles of up to ``max_lines`` lines, offset for legibility."""
     lines = pd.unique(table["line"])
     pick = lines[np.linspace(0, len(lines) - 1, min(max_lines, len(lines))).astype(int)]
@@ -390,8 +539,15 @@ def plot_noise_profiles(table: pd.DataFrame, path: Path, column: str = "fourth_d
     return save(fig, path, dpi)
 
 
-def plot_timeseries(time, series: dict[str, np.ndarray], path: Path, title: str, ylabel: str,
-                    band: tuple[np.ndarray, np.ndarray] | None = None, dpi: int = 110) -> Path:
+def plot_timeseries(
+    time,
+    series: dict[str, np.ndarray],
+    path: Path,
+    title: str,
+    ylabel: str,
+    band: tuple[np.ndarray, np.ndarray] | None = None,
+    dpi: int = 110,
+) -> Path:
     fig, ax = plt.subplots(figsize=(9, 4.5))
     time = pd.to_datetime(time)
     for label, values in series.items():
@@ -406,8 +562,9 @@ def plot_timeseries(time, series: dict[str, np.ndarray], path: Path, title: str,
     return save(fig, path, dpi)
 
 
-def plot_histograms(series: dict[str, np.ndarray], path: Path, title: str, xlabel: str,
-                    dpi: int = 110) -> Path:
+def plot_histograms(
+    series: dict[str, np.ndarray], path: Path, title: str, xlabel: str, dpi: int = 110
+) -> Path:
     fig, ax = plt.subplots(figsize=(7.5, 4.5))
     finite = [np.asarray(v, float)[np.isfinite(v)] for v in series.values()]
     allv = np.concatenate(finite) if finite else np.zeros(1)
@@ -423,8 +580,9 @@ def plot_histograms(series: dict[str, np.ndarray], path: Path, title: str, xlabe
     return save(fig, path, dpi)
 
 
-def plot_bars(labels, values, path: Path, title: str, ylabel: str, tolerance: float | None = None,
-              dpi: int = 110) -> Path:
+def plot_bars(
+    labels, values, path: Path, title: str, ylabel: str, tolerance: float | None = None, dpi: int = 110
+) -> Path:
     fig, ax = plt.subplots(figsize=(8, 4.5))
     x = np.arange(len(values))
     ax.bar(x, values, color=plt.get_cmap(SEQUENTIAL)(0.35))
@@ -439,12 +597,14 @@ def plot_bars(labels, values, path: Path, title: str, ylabel: str, tolerance: fl
     return save(fig, path, dpi)
 
 
-def plot_panels(grids: list, path: Path, crs_name: str, title: str, dpi: int = 110,
-                survey: str | None = None) -> Path:
+def plot_panels(
+    grids: list, path: Path, crs_name: str, title: str, dpi: int = 110, survey: str | None = None
+) -> Path:
     """Side-by-side maps (e.g. field = regional + residual), each on its own colour scale
     (:func:`colour_scale`), y labels only on the first panel so labels never collide."""
-    fig, axes = plt.subplots(1, len(grids), figsize=(6.2 * len(grids), 5.6), squeeze=False,
-                             constrained_layout=True)
+    fig, axes = plt.subplots(
+        1, len(grids), figsize=(6.2 * len(grids), 5.6), squeeze=False, constrained_layout=True
+    )
     for k, (ax, grid) in enumerate(zip(axes[0], grids)):
         used = draw_grid(ax, fig, grid)
         name = quantity_title(str(grid.name), grid.attrs.get("long_name"))
@@ -457,14 +617,12 @@ def plot_panels(grids: list, path: Path, crs_name: str, title: str, dpi: int = 1
     return save(fig, path, dpi)
 
 
-def plot_base_record(base: pd.DataFrame, path: Path, tolerance: float | None = None,
-                     dpi: int = 110) -> Path:
+def plot_base_record(base: pd.DataFrame, path: Path, tolerance: float | None = None, dpi: int = 110) -> Path:
     """Base-station record as its variation about the median (nT) against UTC time, one panel
     per base, with the min-max envelope of each interval and a tolerance band about the 60 s
     running median."""
     names = pd.unique(base["base"]) if "base" in base else ["base"]
-    fig, axes = plt.subplots(len(names), 1, figsize=(9, 3.2 * len(names)), squeeze=False,
-                             sharex=True)
+    fig, axes = plt.subplots(len(names), 1, figsize=(9, 3.2 * len(names)), squeeze=False, sharex=True)
     for ax, name in zip(axes[:, 0], names):
         part = base[base["base"] == name] if "base" in base else base
         time = pd.to_datetime(part["time"], utc=True).dt.tz_convert(None)
@@ -472,12 +630,26 @@ def plot_base_record(base: pd.DataFrame, path: Path, tolerance: float | None = N
         datum = float(np.nanmedian(value)) if np.isfinite(value).any() else 0.0
         ax.plot(time, value - datum, lw=0.6, color="black", label=f"{name} (median {datum:,.1f} nT)")
         if {"total_field_min", "total_field_max"} <= set(part.columns):
-            ax.fill_between(time, part["total_field_min"] - datum, part["total_field_max"] - datum,
-                            color="grey", alpha=0.4, lw=0, label="min-max in interval")
+            ax.fill_between(
+                time,
+                part["total_field_min"] - datum,
+                part["total_field_max"] - datum,
+                color="grey",
+                alpha=0.4,
+                lw=0,
+                label="min-max in interval",
+            )
         if tolerance:
             smooth = pd.Series(value - datum).rolling(61, center=True, min_periods=1).median()
-            ax.fill_between(time, smooth - tolerance, smooth + tolerance, color="tab:blue",
-                            alpha=0.15, lw=0, label=f"±{tolerance:g} nT about the 60 s median")
+            ax.fill_between(
+                time,
+                smooth - tolerance,
+                smooth + tolerance,
+                color="tab:blue",
+                alpha=0.15,
+                lw=0,
+                label=f"±{tolerance:g} nT about the 60 s median",
+            )
         ax.set_ylabel("base field minus median (nT)")
         ax.legend(fontsize=7, loc="upper right")
     axes[-1, 0].set_xlabel("time (UTC)")
@@ -486,17 +658,26 @@ def plot_base_record(base: pd.DataFrame, path: Path, tolerance: float | None = N
     return save(fig, path, dpi)
 
 
-def plot_line_profiles(table: pd.DataFrame, column: str, path: Path, units: str,
-                       max_lines: int = 10, title: str | None = None, dpi: int = 110) -> Path:
+def plot_line_profiles(
+    table: pd.DataFrame,
+    column: str,
+    path: Path,
+    units: str,
+    max_lines: int = 10,
+    title: str | None = None,
+    dpi: int = 110,
+) -> Path:
     """Stacked profiles of ``column`` along up to ``max_lines`` traverse lines, one panel each,
     sharing the distance axis (distance along line, km)."""
-    lines = pd.unique(table.loc[table["line_type"] != "tie", "line"]) if "line_type" in table \
+    lines = (
+        pd.unique(table.loc[table["line_type"] != "tie", "line"])
+        if "line_type" in table
         else pd.unique(table["line"])
+    )
     if len(lines) == 0:
         lines = pd.unique(table["line"])
     pick = lines[np.linspace(0, len(lines) - 1, min(max_lines, len(lines))).astype(int)]
-    fig, axes = plt.subplots(len(pick), 1, figsize=(9, 1.25 * len(pick) + 1.2), sharex=True,
-                             squeeze=False)
+    fig, axes = plt.subplots(len(pick), 1, figsize=(9, 1.25 * len(pick) + 1.2), sharex=True, squeeze=False)
     flags = [c for c in table.columns if c.startswith("flag_")]
     values = table[column].to_numpy(float).copy()
     if flags:  # flagged readings are left out of the profile (they are marked on the track map)
@@ -512,19 +693,22 @@ def plot_line_profiles(table: pd.DataFrame, column: str, path: Path, units: str,
     return save(fig, path, dpi)
 
 
-def plot_station_series(table: pd.DataFrame, columns: list[str], path: Path, units: str = "nT",
-                        dpi: int = 110) -> Path:
+def plot_station_series(
+    table: pd.DataFrame, columns: list[str], path: Path, units: str = "nT", dpi: int = 110
+) -> Path:
     """Per-station time series (one panel per station, one line per component)."""
     stations = list(pd.unique(table["station"]))
-    fig, axes = plt.subplots(len(stations), 1, figsize=(9, 1.6 * len(stations) + 1.0), sharex=True,
-                             squeeze=False)
+    fig, axes = plt.subplots(
+        len(stations), 1, figsize=(9, 1.6 * len(stations) + 1.0), sharex=True, squeeze=False
+    )
     colours = plt.get_cmap("tab10")
     for ax, name in zip(axes[:, 0], stations):
         part = table[table["station"] == name]
         time = pd.to_datetime(part["time"])
         for k, column in enumerate(columns):
-            ax.plot(time, part[column].to_numpy(float), lw=0.6, color=colours(k),
-                    label=column.replace("_", " "))
+            ax.plot(
+                time, part[column].to_numpy(float), lw=0.6, color=colours(k), label=column.replace("_", " ")
+            )
         ax.set_ylabel(f"{name}\n({units})", fontsize=7, rotation=0, ha="right", va="center")
         ax.tick_params(labelsize=7)
     axes[0, 0].legend(fontsize=7, ncol=len(columns), loc="upper right")
@@ -534,21 +718,28 @@ def plot_station_series(table: pd.DataFrame, columns: list[str], path: Path, uni
     return save(fig, path, dpi)
 
 
-def plot_station_map(stations: pd.DataFrame, path: Path, value: str | None = None,
-                     units: str = "nT", dpi: int = 110) -> Path:
+def plot_station_map(
+    stations: pd.DataFrame, path: Path, value: str | None = None, units: str = "nT", dpi: int = 110
+) -> Path:
     """Stations on a geographic longitude/latitude map (plate carree, whole globe), named and
     optionally coloured by a value (e.g. the RMS residual)."""
     fig, ax = plt.subplots(figsize=(9, 5))
     kwargs = {"s": 60, "marker": "^", "edgecolors": "black", "linewidths": 0.6, "zorder": 3}
     if value and value in stations:
-        sc = ax.scatter(stations["longitude"], stations["latitude"], c=stations[value],
-                        cmap=SEQUENTIAL, **kwargs)
+        sc = ax.scatter(
+            stations["longitude"], stations["latitude"], c=stations[value], cmap=SEQUENTIAL, **kwargs
+        )
         fig.colorbar(sc, ax=ax, shrink=0.8).set_label(f"{value.replace('_', ' ')} ({units})")
     else:
         ax.scatter(stations["longitude"], stations["latitude"], color="tab:red", **kwargs)
     for _, row in stations.iterrows():  # a few stations, not readings
-        ax.annotate(str(row["station"]), (row["longitude"], row["latitude"]), fontsize=8,
-                    xytext=(4, 4), textcoords="offset points")
+        ax.annotate(
+            str(row["station"]),
+            (row["longitude"], row["latitude"]),
+            fontsize=8,
+            xytext=(4, 4),
+            textcoords="offset points",
+        )
     ax.set_xlim(-180, 180)
     ax.set_ylim(-90, 90)
     ax.set_xticks(np.arange(-180, 181, 60))
@@ -577,8 +768,13 @@ def plot_coefficients(coef: pd.DataFrame, path: Path, window: int = 15, dpi: int
         for k, name in enumerate(names):
             values = coef[name].to_numpy(float).copy()
             values[gap] = np.nan  # break the line at gaps
-            smooth = pd.Series(coef[name].to_numpy(float)).rolling(window, center=True,
-                                                                     min_periods=1).median().to_numpy().copy()
+            smooth = (
+                pd.Series(coef[name].to_numpy(float))
+                .rolling(window, center=True, min_periods=1)
+                .median()
+                .to_numpy()
+                .copy()
+            )
             smooth[gap] = np.nan
             ax.plot(time, values, lw=0.4, alpha=0.35, color=colours(k))
             ax.plot(time, smooth, lw=1.2, color=colours(k), label=name)
@@ -595,8 +791,15 @@ def plot_coefficients(coef: pd.DataFrame, path: Path, window: int = 15, dpi: int
     return save(fig, path, dpi)
 
 
-def plot_grid_residual(table: pd.DataFrame, path: Path, crs_name: str, units: str,
-                       tolerance: float | None = None, dpi: int = 110, survey: str | None = None) -> Path:
+def plot_grid_residual(
+    table: pd.DataFrame,
+    path: Path,
+    crs_name: str,
+    units: str,
+    tolerance: float | None = None,
+    dpi: int = 110,
+    survey: str | None = None,
+) -> Path:
     """One figure of the grid residual (reading minus gridding model): map and histogram."""
     values = table["grid_residual"].to_numpy(dtype=float)
     ok = np.isfinite(values)
@@ -604,12 +807,21 @@ def plot_grid_residual(table: pd.DataFrame, path: Path, crs_name: str, units: st
     e = table["easting"].to_numpy()[ok][::step]
     n = table["northing"].to_numpy()[ok][::step]
     v = values[ok][::step]
-    fig, (ax, hx) = plt.subplots(1, 2, figsize=(12, 5.2), gridspec_kw={"width_ratios": [1.35, 1]},
-                                 constrained_layout=True)
+    fig, (ax, hx) = plt.subplots(
+        1, 2, figsize=(12, 5.2), gridspec_kw={"width_ratios": [1.35, 1]}, constrained_layout=True
+    )
     lo, hi = _limits(v, True)
     many = v.size > 2000
-    sc = ax.scatter(e, n, c=v, cmap=DIVERGING, norm=TwoSlopeNorm(0.0, lo, hi), s=2 if many else 18,
-                    linewidths=0 if many else 0.3, edgecolors="black")
+    sc = ax.scatter(
+        e,
+        n,
+        c=v,
+        cmap=DIVERGING,
+        norm=TwoSlopeNorm(0.0, lo, hi),
+        s=2 if many else 18,
+        linewidths=0 if many else 0.3,
+        edgecolors="black",
+    )
     fig.colorbar(sc, ax=ax, shrink=0.8).set_label(f"grid residual ({units})")
     map_axes(ax, crs_name, f"Grid residual at the readings ({units})", survey)
     rms = float(np.sqrt(np.mean(v**2))) if v.size else float("nan")

@@ -19,9 +19,11 @@ from ..io.atomic import write_text
 from ..kinds import KIND_ORDER
 from . import maps
 
-CAUTION = ("These results need review by a qualified geophysicist before they are used for any "
-           "decision. Local regulations and licensed professional practice prevail over anything "
-           "this software produces.")
+CAUTION = (
+    "These results need review by a qualified geophysicist before they are used for any "
+    "decision. Local regulations and licensed professional practice prevail over anything "
+    "this software produces."
+)
 
 STAGE_TITLES = {
     "ingest": "Ingest: readings, coverage and geometry",
@@ -38,13 +40,15 @@ STAGE_TITLES = {
 
 
 #: Captions of the stage sections in gravity words (stations, loops, base ties).
-GRAVITY_TITLES = {"ingest": "Ingest: stations, coverage and geometry",
-                  "level": "Levelling of loops (when lines are given)"}
+GRAVITY_TITLES = {
+    "ingest": "Ingest: stations, coverage and geometry",
+    "level": "Levelling of loops (when lines are given)",
+}
 
 #: Why a tolerance of a spec profile may have no automatic check (listed in the report).
 NOT_CHECKED = {
     "drape_tolerance_m": "shown on the height-deviation map; the planned drape surface is not an "
-                         "input, so no automatic pass/fail",
+    "input, so no automatic pass/fail",
     "diurnal_chord_300s_nT": "no check of a 5-minute chord is implemented yet",
     "crossover_rms_mGal": "no crossovers: a loop survey has no intersecting lines",
 }
@@ -62,8 +66,9 @@ def field_unit(kind: str) -> str:
     return "mGal" if kind == "gravity" else "nT"
 
 
-def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
-                 grid_paths: dict[str, Path]) -> dict[str, list[tuple[str, Path]]]:
+def make_figures(
+    survey, config, manifest: dict, table: pd.DataFrame | None, grid_paths: dict[str, Path]
+) -> dict[str, list[tuple[str, Path]]]:
     """Draw every QC figure the outputs allow; returns stage -> [(caption, png path)]."""
     from ..io.grids import read_netcdf
 
@@ -85,79 +90,185 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
     if table is not None and len(table):
         if config.kind == "observatory":
             stations = table.groupby("station", sort=True)[["longitude", "latitude"]].first().reset_index()
-            _fig(figures, "ingest", "Observatory stations on a longitude-latitude map",
-                 maps.plot_station_map(stations, out / "stations.png", dpi=dpi))
-            parts = [c for c in ("disturbance_north", "disturbance_east", "disturbance_down")
-                     if c in table]
+            _fig(
+                figures,
+                "ingest",
+                "Observatory stations on a longitude-latitude map",
+                maps.plot_station_map(stations, out / "stations.png", dpi=dpi),
+            )
+            parts = [c for c in ("disturbance_north", "disturbance_east", "disturbance_down") if c in table]
             if parts:
-                _fig(figures, "reference", "Disturbance (observed minus IGRF-14) at each station",
-                     maps.plot_station_series(table, parts, out / "station_series.png", dpi=dpi))
+                _fig(
+                    figures,
+                    "reference",
+                    "Disturbance (observed minus IGRF-14) at each station",
+                    maps.plot_station_series(table, parts, out / "station_series.png", dpi=dpi),
+                )
         else:
-            _fig(figures, "ingest", ("Stations coloured by loop, flagged readings marked" if gravity
-                                     else "Survey lines and flagged readings"),
-                 maps.plot_tracks(table, out / "tracks.png", crs_name, dpi,
-                                  f"Stations coloured by loop ({table['line'].nunique()} loops)"
-                                  if gravity else None, survey=name))
-            _fig(figures, "ingest", "Distance from every point of the area to the nearest "
-                 + ("station" if gravity else "reading"),
-                 maps.plot_coverage(table, out / "coverage.png", crs_name, ingest.get("line_spacing_m"), dpi,
-                                    survey=name, spacing_label="median station spacing" if gravity
-                                    else "nominal line spacing"))
+            _fig(
+                figures,
+                "ingest",
+                (
+                    "Stations coloured by loop, flagged readings marked"
+                    if gravity
+                    else "Survey lines and flagged readings"
+                ),
+                maps.plot_tracks(
+                    table,
+                    out / "tracks.png",
+                    crs_name,
+                    dpi,
+                    f"Stations coloured by loop ({table['line'].nunique()} loops)" if gravity else None,
+                    survey=name,
+                ),
+            )
+            _fig(
+                figures,
+                "ingest",
+                "Distance from every point of the area to the nearest "
+                + ("station" if gravity else "reading"),
+                maps.plot_coverage(
+                    table,
+                    out / "coverage.png",
+                    crs_name,
+                    ingest.get("line_spacing_m"),
+                    dpi,
+                    survey=name,
+                    spacing_label="median station spacing" if gravity else "nominal line spacing",
+                ),
+            )
         if config.kind == "magnetic" and "height" in table and table["height"].notna().any():
-            _fig(figures, "ingest", "Sensor height minus the smoothed flying surface",
-                 maps.plot_height_deviation(table, out / "height_deviation.png", crs_name,
-                                            tol("drape_tolerance_m"), dpi))
-        if (config.kind == "magnetic" and "fourth_difference" in table
-                and np.isfinite(table["fourth_difference"]).any()):
-            _fig(figures, "clean", "Fourth-difference noise along lines",
-                 maps.plot_noise_profiles(table, out / "noise_profiles.png",
-                                          tolerance=tol("noise_fourth_difference_nT"), dpi=dpi))
-        words = {"anomaly": ("Total-field anomaly at the readings", "nT"),
-                 "bouguer_anomaly": ("Bouguer anomaly at the stations", "mGal"),
-                 "free_air_anomaly": ("Free-air anomaly at the stations", "mGal")}
+            _fig(
+                figures,
+                "ingest",
+                "Sensor height minus the smoothed flying surface",
+                maps.plot_height_deviation(
+                    table, out / "height_deviation.png", crs_name, tol("drape_tolerance_m"), dpi
+                ),
+            )
+        if (
+            config.kind == "magnetic"
+            and "fourth_difference" in table
+            and np.isfinite(table["fourth_difference"]).any()
+        ):
+            _fig(
+                figures,
+                "clean",
+                "Fourth-difference noise along lines",
+                maps.plot_noise_profiles(
+                    table, out / "noise_profiles.png", tolerance=tol("noise_fourth_difference_nT"), dpi=dpi
+                ),
+            )
+        words = {
+            "anomaly": ("Total-field anomaly at the readings", "nT"),
+            "bouguer_anomaly": ("Bouguer anomaly at the stations", "mGal"),
+            "free_air_anomaly": ("Free-air anomaly at the stations", "mGal"),
+        }
         for column, (caption, unit) in words.items():
             if column in table and table[column].notna().any() and config.kind != "observatory":
-                _fig(figures, "reference", caption,
-                     maps.plot_points(table, column, out / f"points_{column}.png", crs_name,
-                                      f"{caption} ({unit})", unit, dpi, survey=name))
-        if (config.kind == "magnetic" and "anomaly_levelled" in table and "distance" in table
-                and table["anomaly_levelled"].notna().any()):
-            _fig(figures, "level", "Levelled anomaly along a selection of lines",
-                 maps.plot_line_profiles(table, "anomaly_levelled", out / "line_profiles.png", "nT",
-                                         title="Levelled total-field anomaly along lines", dpi=dpi))
+                _fig(
+                    figures,
+                    "reference",
+                    caption,
+                    maps.plot_points(
+                        table,
+                        column,
+                        out / f"points_{column}.png",
+                        crs_name,
+                        f"{caption} ({unit})",
+                        unit,
+                        dpi,
+                        survey=name,
+                    ),
+                )
+        if (
+            config.kind == "magnetic"
+            and "anomaly_levelled" in table
+            and "distance" in table
+            and table["anomaly_levelled"].notna().any()
+        ):
+            _fig(
+                figures,
+                "level",
+                "Levelled anomaly along a selection of lines",
+                maps.plot_line_profiles(
+                    table,
+                    "anomaly_levelled",
+                    out / "line_profiles.png",
+                    "nT",
+                    title="Levelled total-field anomaly along lines",
+                    dpi=dpi,
+                ),
+            )
         if "grid_residual" in table and table["grid_residual"].notna().any():
-            _fig(figures, "grid", "Grid residual: each reading minus the gridding model",
-                 maps.plot_grid_residual(table, out / "grid_residual.png", crs_name, units,
-                                         tol(f"grid_residual_rms_{units}"), dpi, survey=name))
+            _fig(
+                figures,
+                "grid",
+                "Grid residual: each reading minus the gridding model",
+                maps.plot_grid_residual(
+                    table,
+                    out / "grid_residual.png",
+                    crs_name,
+                    units,
+                    tol(f"grid_residual_rms_{units}"),
+                    dpi,
+                    survey=name,
+                ),
+            )
 
     base = _read_table(survey.tables / "base_record.csv")
     if base is not None and len(base) and {"time", "total_field"} <= set(base.columns):
-        _fig(figures, "diurnal", "Base-station record: variation about its median",
-             maps.plot_base_record(base, out / "diurnal_record.png", tol("diurnal_chord_60s_nT"), dpi))
+        _fig(
+            figures,
+            "diurnal",
+            "Base-station record: variation about its median",
+            maps.plot_base_record(base, out / "diurnal_record.png", tol("diurnal_chord_60s_nT"), dpi),
+        )
     loops = _read_table(survey.tables / "loops.csv")
     if loops is not None and len(loops):
         rate = next((c for c in loops.columns if "rate" in c and "sigma" not in c), None)
         if rate:
-            _fig(figures, "drift", "Drift rate of each loop",
-                 maps.plot_bars(loops[loops.columns[0]], loops[rate].to_numpy(float),
-                                out / "drift_rates.png", "Drift rate of each loop", "drift rate (mGal/h)",
-                                tol("gravity_drift_rate_mgal_per_h"), dpi))
+            _fig(
+                figures,
+                "drift",
+                "Drift rate of each loop",
+                maps.plot_bars(
+                    loops[loops.columns[0]],
+                    loops[rate].to_numpy(float),
+                    out / "drift_rates.png",
+                    "Drift rate of each loop",
+                    "drift rate (mGal/h)",
+                    tol("gravity_drift_rate_mgal_per_h"),
+                    dpi,
+                ),
+            )
     cx = _read_table(survey.tables / "crossovers.csv")
     try:  # the level stage's own figure (qc/level_plots.py), when this version has it
         from . import level_plots
     except ImportError:
         level_plots = None
     if cx is not None and len(cx) and "difference" in cx and level_plots is not None:
-        _fig(figures, "level", "Crossover misclosures before and after levelling",
-             level_plots.plot_crossover_histograms(cx, out / level_plots.FIGURE_NAME, units, dpi))
+        _fig(
+            figures,
+            "level",
+            "Crossover misclosures before and after levelling",
+            level_plots.plot_crossover_histograms(cx, out / level_plots.FIGURE_NAME, units, dpi),
+        )
     elif cx is not None and len(cx) and "difference" in cx:
         series = {"before levelling": cx["difference"].to_numpy(float)}
-        after = next((c for c in cx.columns if c.startswith("difference_after") or c == "difference_levelled"), None)
+        after = next(
+            (c for c in cx.columns if c.startswith("difference_after") or c == "difference_levelled"), None
+        )
         if after:
             series["after levelling"] = cx[after].to_numpy(float)
-        _fig(figures, "level", "Crossover differences before and after levelling",
-             maps.plot_histograms(series, out / "crossovers.png", "Crossover differences",
-                                  f"line minus tie ({units})", dpi))
+        _fig(
+            figures,
+            "level",
+            "Crossover differences before and after levelling",
+            maps.plot_histograms(
+                series, out / "crossovers.png", "Crossover differences", f"line minus tie ({units})", dpi
+            ),
+        )
 
     for stage_name in KIND_ORDER.get(config.kind, ()):
         for grid_name in stages.get(stage_name, {}).get("grids", []):
@@ -166,30 +277,52 @@ def make_figures(survey, config, manifest: dict, table: pd.DataFrame | None,
                 continue
             grid = read_netcdf(path).rename(grid_name)
             caption = maps.quantity_title(grid_name, grid.attrs.get("long_name"))
-            _fig(figures, stage_name, caption,
-                 maps.plot_grid(grid, out / f"grid_{grid_name}.png", crs_name, dpi=dpi, survey=name))
+            _fig(
+                figures,
+                stage_name,
+                caption,
+                maps.plot_grid(grid, out / f"grid_{grid_name}.png", crs_name, dpi=dpi, survey=name),
+            )
     sep = stages.get("separate", {}).get("grids", [])
     regional = [g for g in sep if "regional" in g]
     residual = [g for g in sep if "residual" in g]
     if regional and residual and regional[0] in grid_paths and residual[0] in grid_paths:
-        panel = [read_netcdf(grid_paths[regional[0]]).rename(regional[0]),
-                 read_netcdf(grid_paths[residual[0]]).rename(residual[0])]
-        _fig(figures, "separate", "Regional and residual fields side by side",
-             maps.plot_panels(panel, out / "separation_panels.png", crs_name,
-                              "Field = regional + residual", dpi, survey=name))
+        panel = [
+            read_netcdf(grid_paths[regional[0]]).rename(regional[0]),
+            read_netcdf(grid_paths[residual[0]]).rename(residual[0]),
+        ]
+        _fig(
+            figures,
+            "separate",
+            "Regional and residual fields side by side",
+            maps.plot_panels(
+                panel,
+                out / "separation_panels.png",
+                crs_name,
+                "Field = regional + residual",
+                dpi,
+                survey=name,
+            ),
+        )
     for coef_name in ("coefficients", "gauss_coefficients"):
         coef = _read_table(survey.tables / f"{coef_name}.csv")
         if coef is not None and "time" in coef and len(coef):
-            _fig(figures, "separate", "Gauss coefficients of the internal and external fields",
-                 maps.plot_coefficients(coef, out / "coefficients.png", dpi=dpi))
+            _fig(
+                figures,
+                "separate",
+                "Gauss coefficients of the internal and external fields",
+                maps.plot_coefficients(coef, out / "coefficients.png", dpi=dpi),
+            )
             break
     return figures
 
 
 def _img(path: Path, title: str) -> str:
     data = base64.b64encode(Path(path).read_bytes()).decode()
-    return (f'<figure><img alt="{html.escape(title)}" src="data:image/png;base64,{data}">'
-            f"<figcaption>{html.escape(title)}</figcaption></figure>")
+    return (
+        f'<figure><img alt="{html.escape(title)}" src="data:image/png;base64,{data}">'
+        f"<figcaption>{html.escape(title)}</figcaption></figure>"
+    )
 
 
 def fmt(value) -> str:
@@ -241,8 +374,16 @@ def _table(rows: list[dict], columns: list[str], headers: dict[str, str] | None 
 
 
 #: Metric-name endings and the unit they carry.
-_SUFFIX_UNITS = (("_mgal_per_h", "mGal/h"), ("_mgal", "mGal"), ("_mGal", "mGal"), ("_nT", "nT"),
-                 ("_m", "m"), ("_s", "s"), ("_deg", "degrees"), ("_km", "km"))
+_SUFFIX_UNITS = (
+    ("_mgal_per_h", "mGal/h"),
+    ("_mgal", "mGal"),
+    ("_mGal", "mGal"),
+    ("_nT", "nT"),
+    ("_m", "m"),
+    ("_s", "s"),
+    ("_deg", "degrees"),
+    ("_km", "km"),
+)
 
 
 def metric_unit(key: str, kind: str) -> tuple[str, str]:
@@ -259,8 +400,12 @@ def metric_unit(key: str, kind: str) -> tuple[str, str]:
 
 
 #: Gravity surveys are stations in loops: line words renamed or left out (None).
-GRAVITY_WORDS = {"traverse_lines": "loops_in_readings", "tie_lines": None, "tie_spacing_m": None,
-                 "line_spacing_m": "median_station_spacing_m"}
+GRAVITY_WORDS = {
+    "traverse_lines": "loops_in_readings",
+    "tie_lines": None,
+    "tie_spacing_m": None,
+    "line_spacing_m": "median_station_spacing_m",
+}
 
 
 def _metrics(metrics: dict, kind: str) -> str:
@@ -276,8 +421,13 @@ def _metrics(metrics: dict, kind: str) -> str:
 
 
 CHECK_COLUMNS = ["stage", "check", "value", "sense", "tolerance", "unit", "result", "source", "detail"]
-CHECK_HEADERS = {"value": "measured value (unit)", "tolerance": "tolerance (unit)", "sense": "pass if",
-                 "unit": "unit", "source": "tolerance source"}
+CHECK_HEADERS = {
+    "value": "measured value (unit)",
+    "tolerance": "tolerance (unit)",
+    "sense": "pass if",
+    "unit": "unit",
+    "source": "tolerance source",
+}
 
 STYLE = """
 body{font-family:sans-serif;max-width:1100px;margin:2em auto;color:#222;line-height:1.4}
@@ -316,14 +466,17 @@ def _grid_rows(manifest: dict, grid_paths: dict[str, Path], order) -> list[dict]
             values = np.asarray(grid.values, float)
             finite = values[np.isfinite(values)]
             unit = grid.attrs.get("units", "")
-            rows.append({
-                "file_html": f"<a href='grids/{html.escape(name)}.nc'>{html.escape(name)}.nc</a>",
-                "quantity": maps.quantity_title(name, grid.attrs.get("long_name")),
-                "unit": unit, "stage": stage,
-                "minimum": float(finite.min()) if finite.size else None,
-                "maximum": float(finite.max()) if finite.size else None,
-                "cells": f"{grid.sizes.get('easting', 0)} x {grid.sizes.get('northing', 0)}",
-            })
+            rows.append(
+                {
+                    "file_html": f"<a href='grids/{html.escape(name)}.nc'>{html.escape(name)}.nc</a>",
+                    "quantity": maps.quantity_title(name, grid.attrs.get("long_name")),
+                    "unit": unit,
+                    "stage": stage,
+                    "minimum": float(finite.min()) if finite.size else None,
+                    "maximum": float(finite.max()) if finite.size else None,
+                    "cells": f"{grid.sizes.get('easting', 0)} x {grid.sizes.get('northing', 0)}",
+                }
+            )
     return rows
 
 
@@ -356,21 +509,33 @@ def _tolerance_rows(spec: dict, checks: list[dict]) -> list[dict]:
     for key, entry in spec.items():
         value, source = entry[0], entry[1]
         words = {w for w in key.lower().split("_") if w not in _UNIT_WORDS}
-        used = [c for c in checks
-                if isinstance(c.get("tolerance"), (int, float)) and np.isclose(c["tolerance"], value)
-                and words & set(re.findall(r"[a-z0-9]+", str(c.get("check", "")).lower().replace("_", " ")))]
+        used = [
+            c
+            for c in checks
+            if isinstance(c.get("tolerance"), (int, float))
+            and np.isclose(c["tolerance"], value)
+            and words & set(re.findall(r"[a-z0-9]+", str(c.get("check", "")).lower().replace("_", " ")))
+        ]
         if used:
             status = "checked: " + "; ".join(f"{c['check']} ({c['result']})" for c in used)
         else:
             status = "not checked: " + NOT_CHECKED.get(key, "no stage of this run measured it")
-        rows.append({"tolerance": key.replace("_", " "), "value": value, "source": source,
-                     "status": status})
+        rows.append({"tolerance": key.replace("_", " "), "value": value, "source": source, "status": status})
     return rows
 
 
 #: Residual and correction columns summarised in the deliverables (when present).
-RESIDUAL_COLUMNS = ("grid_residual", "drift_residual", "level_correction", "diurnal", "tide",
-                    "drift", "terrain", "residual", "disturbance_total")
+RESIDUAL_COLUMNS = (
+    "grid_residual",
+    "drift_residual",
+    "level_correction",
+    "diurnal",
+    "tide",
+    "drift",
+    "terrain",
+    "residual",
+    "disturbance_total",
+)
 
 
 def residual_rows(table: pd.DataFrame | None, kind: str) -> list[dict]:
@@ -388,15 +553,30 @@ def residual_rows(table: pd.DataFrame | None, kind: str) -> list[dict]:
         if not values.size:
             continue
         unit, meaning, _ = describe(name, kind)
-        rows.append({"column": name, "meaning": meaning, "unit": unit, "readings": int(values.size),
-                     "rms": float(np.sqrt(np.mean(values**2))), "minimum": float(values.min()),
-                     "maximum": float(values.max())})
+        rows.append(
+            {
+                "column": name,
+                "meaning": meaning,
+                "unit": unit,
+                "readings": int(values.size),
+                "rms": float(np.sqrt(np.mean(values**2))),
+                "minimum": float(values.min()),
+                "maximum": float(values.max()),
+            }
+        )
     return rows
 
 
-def render_html(config, manifest: dict, figures: dict, checks: list[dict],
-                grid_paths: dict[str, Path] | None = None, survey_toml: str | None = None,
-                tables: list[Path] | None = None, table: pd.DataFrame | None = None) -> str:
+def render_html(
+    config,
+    manifest: dict,
+    figures: dict,
+    checks: list[dict],
+    grid_paths: dict[str, Path] | None = None,
+    survey_toml: str | None = None,
+    tables: list[Path] | None = None,
+    table: pd.DataFrame | None = None,
+) -> str:
     """The report page: contents, deliverables, failed checks, QC per stage, provenance."""
 
     stages = manifest.get("stages", {})
@@ -407,74 +587,122 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
     kind = config.kind
     gravity = kind == "gravity"
     titles = {**STAGE_TITLES, **(GRAVITY_TITLES if gravity else {})}
-    sections = [("summary", "Survey summary"), ("deliverables", "Deliverables"),
-                ("failed-checks", "Failed spec checks"), ("tolerances", "Spec tolerances")]
+    sections = [
+        ("summary", "Survey summary"),
+        ("deliverables", "Deliverables"),
+        ("failed-checks", "Failed spec checks"),
+        ("tolerances", "Spec tolerances"),
+    ]
     sections += [(f"stage-{n}", titles.get(n, n)) for n in order if n != "report"]
     sections += [("provenance", "Provenance"), ("cautions", "Cautions")]
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
-             f"<style>{STYLE}</style><script>{SCRIPT}</script></head><body>",
-             f"<h1>{html.escape(title)}</h1>",
-             f"<p class='caution'><b>Caution.</b> {html.escape(CAUTION)}</p>",
-             "<nav><h2 id='contents'>Contents</h2><ol>"
-             + "".join(f"<li><a href='#{a}'>{html.escape(t)}</a></li>" for a, t in sections)
-             + "</ol></nav>",
-             "<h2 id='summary'>Survey summary</h2>"]
+    parts = [
+        f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
+        f"<style>{STYLE}</style><script>{SCRIPT}</script></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f"<p class='caution'><b>Caution.</b> {html.escape(CAUTION)}</p>",
+        "<nav><h2 id='contents'>Contents</h2><ol>"
+        + "".join(f"<li><a href='#{a}'>{html.escape(t)}</a></li>" for a, t in sections)
+        + "</ol></nav>",
+        "<h2 id='summary'>Survey summary</h2>",
+    ]
     im = ingest.get("metrics", {})
     dm = stages.get("drift", {}).get("metrics", {})
     summary = [("survey", config.survey.name, ""), ("kind", kind, "")]
     if gravity:
-        summary += [("readings", im.get("readings"), ""), ("stations", dm.get("stations"), ""),
-                    ("loops", dm.get("loops", im.get("traverse_lines")), ""),
-                    ("base stations tied", dm.get("bases"), "")]
+        summary += [
+            ("readings", im.get("readings"), ""),
+            ("stations", dm.get("stations"), ""),
+            ("loops", dm.get("loops", im.get("traverse_lines")), ""),
+            ("base stations tied", dm.get("bases"), ""),
+        ]
     elif kind == "observatory":
-        summary += [("readings (station minutes)", im.get("readings"), ""),
-                    ("stations", im.get("traverse_lines", 0) + im.get("tie_lines", 0), "")]
+        summary += [
+            ("readings (station minutes)", im.get("readings"), ""),
+            ("stations", im.get("traverse_lines", 0) + im.get("tie_lines", 0), ""),
+        ]
     else:
-        summary += [("readings", im.get("readings"), ""),
-                    ("lines", f"{im.get('traverse_lines')} traverse, {im.get('tie_lines')} tie", ""),
-                    ("line spacing", im.get("line_spacing_m"), "m")]
+        summary += [
+            ("readings", im.get("readings"), ""),
+            ("lines", f"{im.get('traverse_lines')} traverse, {im.get('tie_lines')} tie", ""),
+            ("line spacing", im.get("line_spacing_m"), "m"),
+        ]
+
     def iso(text):  # "2025-03-03 21:40:00" -> "2025-03-03T21:40:00Z" (ISO 8601 UTC)
         return f"{str(text).replace(' ', 'T')}Z" if text and "T" not in str(text) else text
 
-    summary += [("first reading", iso(im.get("time_start")), "UTC"),
-                ("last reading", iso(im.get("time_end")), "UTC"),
-                ("output CRS", im.get("crs"), ""),
-                ("spec checks", f"{len(checks)} run, {len(failed)} failed", ""),
-                ("stages", ", ".join(f"{n} ({stages[n].get('status')})" for n in order), "")]
-    parts.append(_table([{"quantity": q, "value": v, "unit": u} for q, v, u in summary],
-                        ["quantity", "value", "unit"]))
+    summary += [
+        ("first reading", iso(im.get("time_start")), "UTC"),
+        ("last reading", iso(im.get("time_end")), "UTC"),
+        ("output CRS", im.get("crs"), ""),
+        ("spec checks", f"{len(checks)} run, {len(failed)} failed", ""),
+        ("stages", ", ".join(f"{n} ({stages[n].get('status')})" for n in order), ""),
+    ]
+    parts.append(
+        _table([{"quantity": q, "value": v, "unit": u} for q, v, u in summary], ["quantity", "value", "unit"])
+    )
 
     parts.append("<h2 id='deliverables'>Deliverables</h2>")
     grid_rows = _grid_rows(manifest, grid_paths or {}, order)
-    parts.append("<p>Links are relative to this report (the out/ folder)."
-                 + (" <a href='grids/products.nc'>grids/products.nc</a> holds the grids below in "
-                    "one NetCDF-CF file." if grid_rows else "") + "</p>")
+    parts.append(
+        "<p>Links are relative to this report (the out/ folder)."
+        + (
+            " <a href='grids/products.nc'>grids/products.nc</a> holds the grids below in one NetCDF-CF file."
+            if grid_rows
+            else ""
+        )
+        + "</p>"
+    )
     if grid_rows:
         parts.append("<h3>Grids (NetCDF-CF)</h3>")
-        parts.append(_table(grid_rows, ["file_html", "quantity", "unit", "minimum", "maximum", "cells", "stage"],
-                            {"file_html": "file", "minimum": "minimum (unit)", "maximum": "maximum (unit)",
-                             "cells": "cells (easting x northing)"}))
+        parts.append(
+            _table(
+                grid_rows,
+                ["file_html", "quantity", "unit", "minimum", "maximum", "cells", "stage"],
+                {
+                    "file_html": "file",
+                    "minimum": "minimum (unit)",
+                    "maximum": "maximum (unit)",
+                    "cells": "cells (easting x northing)",
+                },
+            )
+        )
     residuals = residual_rows(table, kind)
     if residuals:
         parts.append("<h3>Residuals and corrections at the readings</h3>")
-        parts.append("<p>Every reading with every correction is in "
-                     "<a href='tables/readings.csv'>tables/readings.csv</a> (the residual table).</p>")
-        parts.append(_table(residuals, ["column", "meaning", "unit", "readings", "rms", "minimum", "maximum"],
-                            {"rms": "RMS (unit)", "minimum": "minimum (unit)", "maximum": "maximum (unit)"}))
+        parts.append(
+            "<p>Every reading with every correction is in "
+            "<a href='tables/readings.csv'>tables/readings.csv</a> (the residual table).</p>"
+        )
+        parts.append(
+            _table(
+                residuals,
+                ["column", "meaning", "unit", "readings", "rms", "minimum", "maximum"],
+                {"rms": "RMS (unit)", "minimum": "minimum (unit)", "maximum": "maximum (unit)"},
+            )
+        )
     parts.append("<h3>Tables (CSV)</h3>")
     table_rows = []
     for path in tables or []:
         words = TABLE_WORDS.get(path.stem, path.stem.replace("_", " "))
-        table_rows.append({"file_html": f"<a href='tables/{html.escape(path.name)}'>{html.escape(path.name)}</a>",
-                           "content": words})
+        table_rows.append(
+            {
+                "file_html": f"<a href='tables/{html.escape(path.name)}'>{html.escape(path.name)}</a>",
+                "content": words,
+            }
+        )
     parts.append(_table(table_rows, ["file_html", "content"], {"file_html": "file"}))
 
     parts.append("<h2 id='failed-checks'>Failed spec checks</h2>")
     parts.append(_table(failed, CHECK_COLUMNS, CHECK_HEADERS) if failed else "<p>All spec checks passed.</p>")
     parts.append("<h2 id='tolerances'>Spec tolerances</h2>")
     parts.append("<p>Every tolerance of the spec profile in force, and whether this run checked it.</p>")
-    parts.append(_table(_tolerance_rows(manifest.get("spec", {}), checks),
-                        ["tolerance", "value", "source", "status"], {"value": "value (unit in the name)"}))
+    parts.append(
+        _table(
+            _tolerance_rows(manifest.get("spec", {}), checks),
+            ["tolerance", "value", "source", "status"],
+            {"value": "value (unit in the name)"},
+        )
+    )
 
     for name in order:
         entry = stages[name]
@@ -483,8 +711,10 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
         parts.append(f"<h2 id='stage-{name}'>{html.escape(titles.get(name, name))}</h2>")
         status = entry.get("status")
         if status != "done":
-            parts.append(f"<p class='note'>Status: {html.escape(str(status))}. "
-                         f"{html.escape(entry.get('summary', ''))}</p>")
+            parts.append(
+                f"<p class='note'>Status: {html.escape(str(status))}. "
+                f"{html.escape(entry.get('summary', ''))}</p>"
+            )
             continue
         for note in entry.get("notes", []):
             parts.append(f"<p class='note'>{html.escape(str(note))}</p>")
@@ -498,27 +728,39 @@ def render_html(config, manifest: dict, figures: dict, checks: list[dict],
         for fig_title, path in figures.get(name, []):
             parts.append(_img(path, fig_title))
     parts.append("<h2 id='provenance'>Provenance</h2>")
-    prov = [{"item": "potfield version", "value": manifest.get("potfield_version")},
-            {"item": "configuration hash (SHA-256)", "value": manifest.get("config_hash")},
-            {"item": "packages", "value": ", ".join(f"{k} {v}" for k, v in manifest.get("packages", {}).items())},
-            {"item": "run times", "value": "stage timings and the run's date are in manifest.json "
-                                           "(kept out of this page so the same inputs give the same page)"}]
+    prov = [
+        {"item": "potfield version", "value": manifest.get("potfield_version")},
+        {"item": "configuration hash (SHA-256)", "value": manifest.get("config_hash")},
+        {"item": "packages", "value": ", ".join(f"{k} {v}" for k, v in manifest.get("packages", {}).items())},
+        {
+            "item": "run times",
+            "value": "stage timings and the run's date are in manifest.json "
+            "(kept out of this page so the same inputs give the same page)",
+        },
+    ]
     parts.append(_table(prov, ["item", "value"]))
     parts.append("<h3>Inputs (SHA-256)</h3>")
-    parts.append(_table([{"file": k, "sha256": v} for k, v in sorted(manifest.get("inputs", {}).items())],
-                        ["file", "sha256"]))
+    parts.append(
+        _table(
+            [{"file": k, "sha256": v} for k, v in sorted(manifest.get("inputs", {}).items())],
+            ["file", "sha256"],
+        )
+    )
     if survey_toml is not None:
         parts.append("<h3>survey.toml used</h3>")
         parts.append(f"<pre>{html.escape(survey_toml)}</pre>")
     parts.append("<h2 id='cautions'>Cautions</h2>")
     parts.append(f"<p class='caution'>{html.escape(CAUTION)}</p>")
-    parts.append("<p>All numbers trace back to the raw readings through out/tables/readings.csv "
-                 "(source_file, source_row) and out/manifest.json.</p></body></html>")
+    parts.append(
+        "<p>All numbers trace back to the raw readings through out/tables/readings.csv "
+        "(source_file, source_row) and out/manifest.json.</p></body></html>"
+    )
     return "\n".join(parts)
 
 
-def build_report(survey, config, manifest: dict, table: pd.DataFrame | None,
-                 grid_paths: dict[str, Path]) -> tuple[Path, int]:
+def build_report(
+    survey, config, manifest: dict, table: pd.DataFrame | None, grid_paths: dict[str, Path]
+) -> tuple[Path, int]:
     """Draw the maps and write out/report.html; returns (path, number of figures)."""
     figures = make_figures(survey, config, manifest, table, grid_paths)
     checks = []
@@ -544,8 +786,9 @@ def rebuild_report(root: Path) -> Path:
     survey = Survey(root)
     config = survey.load_config()
     if not survey.manifest_path.is_file():
-        raise StageError(f"{survey.out}: no results to report on",
-                         fix=f"run 'potfield run {survey.root}' first")
+        raise StageError(
+            f"{survey.out}: no results to report on", fix=f"run 'potfield run {survey.root}' first"
+        )
     manifest = json.loads(survey.manifest_path.read_text())
     manifest["spec"] = {k: list(v) for k, v in load_spec(config, survey).items()}
     table = None

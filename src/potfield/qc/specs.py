@@ -13,8 +13,7 @@ from pathlib import Path
 
 from ..errors import ConfigError
 
-DEFAULT_PROFILE = {"magnetic": "airborne-magnetic", "gravity": "ground-gravity",
-                   "observatory": "observatory"}
+DEFAULT_PROFILE = {"magnetic": "airborne-magnetic", "gravity": "ground-gravity", "observatory": "observatory"}
 
 
 def profiles_dir() -> Path:
@@ -50,21 +49,26 @@ def load_spec(config, survey=None) -> dict[str, tuple[float, str]]:
     if not path.is_file() and survey is not None:
         path = survey.resolve(name)
     if not path.is_file():
-        raise ConfigError(f"spec profile '{name}' not found", key="survey.spec",
-                          fix=f"use one of {', '.join(available_profiles())} or a path to a profile file")
+        raise ConfigError(
+            f"spec profile '{name}' not found",
+            key="survey.spec",
+            fix=f"use one of {', '.join(available_profiles())} or a path to a profile file",
+        )
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
-        raise ConfigError(f"{path}: not a valid UTF-8 TOML spec profile ({err})",
-                          fix="correct the profile file") from None
+        raise ConfigError(
+            f"{path}: not a valid UTF-8 TOML spec profile ({err})", fix="correct the profile file"
+        ) from None
     spec = {}
     for key, entry in data.items():
         if not isinstance(entry, dict) or "value" not in entry:
             raise ConfigError(f"{path}: entry '{key}' needs value and source")
         value = entry["value"]
         if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value):
-            raise ConfigError(f"{path}: entry '{key}' value {value!r} is not a number",
-                              fix="give the tolerance as a number")
+            raise ConfigError(
+                f"{path}: entry '{key}' value {value!r} is not a number", fix="give the tolerance as a number"
+            )
         spec[key] = (float(value), str(entry.get("source", "common practice")))
     known = known_spec_keys() | set(spec)
     for key, value in config.survey.spec_overrides.items():
@@ -73,8 +77,10 @@ def load_spec(config, survey=None) -> dict[str, tuple[float, str]]:
 
             close = difflib.get_close_matches(key, sorted(known), n=1, cutoff=0.5)
             hint = f"did you mean '{close[0]}'?" if close else f"valid: {', '.join(sorted(known))}"
-            raise ConfigError(f"unknown spec value '{key}'; {hint}",
-                              key=f"survey.spec_overrides.{key}",
-                              fix="use a tolerance name of a profile in configs/specs/")
+            raise ConfigError(
+                f"unknown spec value '{key}'; {hint}",
+                key=f"survey.spec_overrides.{key}",
+                fix="use a tolerance name of a profile in configs/specs/",
+            )
         spec[key] = (float(value), "survey.toml override")
     return spec

@@ -39,9 +39,13 @@ class Rule(NamedTuple):
 
 
 @contextmanager
-def translate(to: type[PotfieldError] | Mapping[type[FieldError], Rule | type[PotfieldError]], *,
-              key: str | None = None, file: object = None,
-              fix: str | None = None) -> Iterator[None]:
+def translate(
+    to: type[PotfieldError] | Mapping[type[FieldError], Rule | type[PotfieldError]],
+    *,
+    key: str | None = None,
+    file: object = None,
+    fix: str | None = None,
+) -> Iterator[None]:
     """Re-raise field errors raised inside the block as tool errors.
 
     Parameters
@@ -61,6 +65,7 @@ def translate(to: type[PotfieldError] | Mapping[type[FieldError], Rule | type[Po
             if isinstance(err, kind):
                 if not isinstance(rule, Rule):
                     rule = Rule(rule)
-                raise rule.tool(err.message, key=rule.key or key, file=rule.file or file,
-                                fix=rule.fix or fix or err.hint) from None
+                raise rule.tool(
+                    err.message, key=rule.key or key, file=rule.file or file, fix=rule.fix or fix or err.hint
+                ) from None
         raise

@@ -9,9 +9,10 @@ numbers. It never rewrites a column it did not create and never drops a reading 
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
@@ -40,14 +41,30 @@ class Check:
     @classmethod
     def at_most(cls, name, value, tolerance, unit="", source="common practice", detail=""):
         value = float(value)
-        return cls(name, value, float(tolerance), bool(np.isfinite(value) and value <= tolerance),
-                   unit, source, "max", detail)
+        return cls(
+            name,
+            value,
+            float(tolerance),
+            bool(np.isfinite(value) and value <= tolerance),
+            unit,
+            source,
+            "max",
+            detail,
+        )
 
     @classmethod
     def at_least(cls, name, value, tolerance, unit="", source="common practice", detail=""):
         value = float(value)
-        return cls(name, value, float(tolerance), bool(np.isfinite(value) and value >= tolerance),
-                   unit, source, "min", detail)
+        return cls(
+            name,
+            value,
+            float(tolerance),
+            bool(np.isfinite(value) and value >= tolerance),
+            unit,
+            source,
+            "min",
+            detail,
+        )
 
     def as_row(self) -> dict[str, Any]:
         return {
@@ -66,8 +83,8 @@ class Check:
 class StageContext:
     """What a stage gets to work with."""
 
-    config: "SurveyConfig"
-    survey: "Survey"
+    config: SurveyConfig
+    survey: Survey
     #: Readings table from the previous stage (None before ingest).
     table: pd.DataFrame | None
     #: Records of earlier stages: ``state[stage_name]`` is that stage's ``StageOutput.state``.
@@ -75,7 +92,7 @@ class StageContext:
     #: Spec tolerances in force: name -> (value, source).
     spec: dict[str, tuple[float, str]] = field(default_factory=dict)
     #: Grids written by earlier stages: name -> DataArray (loaded lazily by the runner).
-    grids: dict[str, "xr.DataArray"] = field(default_factory=dict)
+    grids: dict[str, xr.DataArray] = field(default_factory=dict)
     progress: Callable[[str], None] = lambda message: None
     #: The run's manifest so far (stage entries of earlier stages); used by the report stage.
     manifest: dict[str, Any] = field(default_factory=dict)
@@ -98,7 +115,7 @@ class StageOutput:
     #: Extra tables, written to out/tables/NAME.csv.
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     #: Grids, written to out/grids/NAME.nc (NetCDF-CF with the survey CRS).
-    grids: dict[str, "xr.DataArray"] = field(default_factory=dict)
+    grids: dict[str, xr.DataArray] = field(default_factory=dict)
     checks: list[Check] = field(default_factory=list)
     #: Human-readable notes and warnings for the log and the report.
     notes: list[str] = field(default_factory=list)
@@ -160,16 +177,19 @@ class Contract:
         from fnmatch import fnmatchcase
 
         return column in self.provides(kind) or any(
-            fnmatchcase(column, pattern) for pattern in self.optional(kind))
+            fnmatchcase(column, pattern) for pattern in self.optional(kind)
+        )
 
     def as_record(self, kind: str) -> dict[str, list[str]]:
         """The contract for one survey kind, JSON-able (for manifest.json)."""
-        return {"requires_columns": list(self.requires(kind)),
-                "provides_columns": list(self.provides(kind)),
-                "optional_columns": list(self.optional(kind)),
-                "requires_state": list(self.requires_state),
-                "provides_grids": list(self.grids(kind)),
-                "provides_tables": list(self.tables(kind))}
+        return {
+            "requires_columns": list(self.requires(kind)),
+            "provides_columns": list(self.provides(kind)),
+            "optional_columns": list(self.optional(kind)),
+            "requires_state": list(self.requires_state),
+            "provides_grids": list(self.grids(kind)),
+            "provides_tables": list(self.tables(kind)),
+        }
 
 
 @dataclass(frozen=True)
@@ -182,7 +202,7 @@ class Stage:
     #: survey.toml sections this stage reads (its cache key hashes them).
     sections: tuple[str, ...] = ()
     #: Extra input files this stage reads (bases, DEM, calibration): f(config, survey) -> paths.
-    inputs: Callable[["SurveyConfig", "Survey"], list[Path]] | None = None
+    inputs: Callable[[SurveyConfig, Survey], list[Path]] | None = None
     #: Survey kinds for which the stage does something; others pass through with a note.
     kinds: tuple[str, ...] = ("magnetic", "gravity", "observatory")
     #: What the stage requires and provides (checked by the runner).
@@ -211,8 +231,9 @@ def main_grid_names(kind: str) -> tuple[str, ...]:
     return (first,) + tuple(n for n in ANOMALY_COLUMN.values() if n != first)
 
 
-def value_column(table: pd.DataFrame, kind: str, state: dict | None = None, *,
-                 levelled: bool = True) -> str | None:
+def value_column(
+    table: pd.DataFrame, kind: str, state: dict | None = None, *, levelled: bool = True
+) -> str | None:
     """The value column a stage works on; the one place that chooses it.
 
     The latest earlier stage record ``state[stage]["value_column"]`` naming a column of the

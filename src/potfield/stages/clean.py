@@ -10,8 +10,13 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..fields.lines.noise import (cap_flags, first_difference_spikes, fourth_difference, line_noise,
-                                  robust_spikes)
+from ..fields.lines.noise import (
+    cap_flags,
+    first_difference_spikes,
+    fourth_difference,
+    line_noise,
+    robust_spikes,
+)
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
 #: The measured value(s) cleaned per survey kind.
@@ -39,8 +44,11 @@ def run(ctx: StageContext) -> StageOutput:
     table = ctx.table.copy()
     groups = pd.factorize(table["line"])[0]
     timed = "time" in table  # station lists may have no time: no time-based flags then
-    seconds = (table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9 if timed
-               else np.arange(len(table), dtype=float))
+    seconds = (
+        table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
+        if timed
+        else np.arange(len(table), dtype=float)
+    )
     metrics: dict = {}
     checks: list[Check] = []
     notes: list[str] = []
@@ -54,8 +62,9 @@ def run(ctx: StageContext) -> StageOutput:
         table["flag_time_gap"], time_limit = _gap_flags(seconds, groups, cfg.max_time_gap_s)
         metrics["time_gap_limit_s"] = time_limit
         if ctx.config.kind == "magnetic":
-            table["flag_distance_gap"], dist_limit = _gap_flags(table["distance"].to_numpy(), groups,
-                                                                cfg.max_distance_gap_m)
+            table["flag_distance_gap"], dist_limit = _gap_flags(
+                table["distance"].to_numpy(), groups, cfg.max_distance_gap_m
+            )
             metrics["distance_gap_limit_m"] = dist_limit
 
     # Heights outside the band.
@@ -76,12 +85,20 @@ def run(ctx: StageContext) -> StageOutput:
         values = table[name].to_numpy(dtype=float)
         raw = fourth_difference(values, groups)  # computed once: spikes, column and noise
         if observatory:  # one-minute variation data: first differences, floor of a few nT
-            spikes, limit = first_difference_spikes(values, groups, cfg.spike_window,
-                                                    cfg.spike_threshold, cfg.observatory_spike_floor_nT)
+            spikes, limit = first_difference_spikes(
+                values, groups, cfg.spike_window, cfg.spike_threshold, cfg.observatory_spike_floor_nT
+            )
             strength = np.abs(values - 0.5 * (np.roll(values, 1) + np.roll(values, -1))) / limit
         else:
-            spikes, _, strength = robust_spikes(values, groups, cfg.spike_window, cfg.spike_threshold,
-                                                cfg.spike_min, fourth=raw, return_strength=True)
+            spikes, _, strength = robust_spikes(
+                values,
+                groups,
+                cfg.spike_window,
+                cfg.spike_threshold,
+                cfg.spike_min,
+                fourth=raw,
+                return_strength=True,
+            )
         found = int(spikes.sum())
         spikes, dropped = cap_flags(spikes, strength, cfg.max_spike_fraction)
         metrics[f"spikes_found_{name}"] = found
@@ -91,7 +108,8 @@ def run(ctx: StageContext) -> StageOutput:
                 f"({found / max(len(table), 1):.1%}), more than [clean] max_spike_fraction = "
                 f"{cfg.max_spike_fraction:g}: only the {found - dropped:,} strongest kept as spikes. "
                 "Such a rate usually means the test is measuring the signal (check the sampling "
-                "and [clean] spike_threshold)")
+                "and [clean] spike_threshold)"
+            )
         spike_any |= spikes
         d4n = raw / 16.0
         d4 = d4n if cfg.fourth_difference_normalised else raw
@@ -112,8 +130,11 @@ def run(ctx: StageContext) -> StageOutput:
 
     # Per-line table.
     lines = table.groupby(groups, sort=False).agg(
-        line=("line", "first"), line_type=("line_type", "first"), readings=("line", "size"),
-        **({"start": ("time", "first"), "end": ("time", "last")} if timed else {}))
+        line=("line", "first"),
+        line_type=("line_type", "first"),
+        readings=("line", "size"),
+        **({"start": ("time", "first"), "end": ("time", "last")} if timed else {}),
+    )
     for c in flags:
         lines[c.replace("flag_", "flagged_")] = table.groupby(groups, sort=False)[c].sum().to_numpy()
     for envelope in noise_tables:
@@ -124,20 +145,39 @@ def run(ctx: StageContext) -> StageOutput:
         tol, source = ctx.tolerance("noise_fourth_difference_nT", 0.1)
         worst = float(np.nanmax(lines["fourth_difference_p95"])) if len(lines) else np.nan
         bad = lines.loc[lines["fourth_difference_p95"] > tol, "line"].tolist()
-        checks.append(Check.at_most(
-            "noise: 95th percentile of |fourth difference / 16| (worst line)", worst, tol, "nT", source,
-            detail=f"{len(bad)} line(s) above tolerance" + (f": {', '.join(map(str, bad[:8]))}" if bad else "")))
+        checks.append(
+            Check.at_most(
+                "noise: 95th percentile of |fourth difference / 16| (worst line)",
+                worst,
+                tol,
+                "nT",
+                source,
+                detail=f"{len(bad)} line(s) above tolerance"
+                + (f": {', '.join(map(str, bad[:8]))}" if bad else ""),
+            )
+        )
         metrics["noise_p95_worst_nT"] = worst
     spike_frac = float(spike_any.mean()) if len(table) else 0.0
     tol, source = ctx.tolerance("max_flagged_fraction", 0.02)
-    checks.append(Check.at_most("fraction of readings flagged", metrics["flagged_readings"] / max(len(table), 1),
-                                tol, "", source))
-    notes.append(f"{metrics['flagged_readings']:,} of {len(table):,} readings flagged "
-                 f"({', '.join(f'{k[5:]}: {v}' for k, v in counts.items() if v) or 'none'}); "
-                 f"spikes {spike_frac:.3%}")
+    checks.append(
+        Check.at_most(
+            "fraction of readings flagged", metrics["flagged_readings"] / max(len(table), 1), tol, "", source
+        )
+    )
+    notes.append(
+        f"{metrics['flagged_readings']:,} of {len(table):,} readings flagged "
+        f"({', '.join(f'{k[5:]}: {v}' for k, v in counts.items() if v) or 'none'}); "
+        f"spikes {spike_frac:.3%}"
+    )
     metrics["spike_fraction"] = spike_frac
-    return StageOutput(table=table, metrics=metrics, tables={"clean_lines": lines}, checks=checks,
-                       notes=notes, warnings=warnings)
+    return StageOutput(
+        table=table,
+        metrics=metrics,
+        tables={"clean_lines": lines},
+        checks=checks,
+        notes=notes,
+        warnings=warnings,
+    )
 
 
 STAGE = Stage(
@@ -149,10 +189,14 @@ STAGE = Stage(
     sections=("clean",),
     contract=Contract(
         requires_columns=("line", "line_type"),
-        provides_columns={"gravity": ("flag_duplicate_time",),
-                          "*": ("flag_duplicate_time", "flag_spike")},
-        optional_columns=("flag_time_gap", "flag_distance_gap", "flag_height", "fourth_difference",
-                          "fourth_difference_*"),
+        provides_columns={"gravity": ("flag_duplicate_time",), "*": ("flag_duplicate_time", "flag_spike")},
+        optional_columns=(
+            "flag_time_gap",
+            "flag_distance_gap",
+            "flag_height",
+            "fourth_difference",
+            "fourth_difference_*",
+        ),
         requires_state=("ingest",),
         provides_tables=("clean_lines",),
     ),

@@ -16,10 +16,19 @@ import pandas as pd
 from ..config import unit_factor
 from ..errors import ConfigError, InputDataError
 from ..fields.errors import FieldError
-from ..fields.magnetic.diurnal import (base_datum, base_sessions, chord_deviation, clean_base,
-                              combine_bases, estimate_time_offset, great_circle_distance,
-                              interpolate_base, session_datums, setup_transients,
-                              station_difference)
+from ..fields.magnetic.diurnal import (
+    base_datum,
+    base_sessions,
+    chord_deviation,
+    clean_base,
+    combine_bases,
+    estimate_time_offset,
+    great_circle_distance,
+    interpolate_base,
+    session_datums,
+    setup_transients,
+    station_difference,
+)
 from ..io.baselog import read_delimited_base
 from ..io.iaga2002 import looks_like_iaga2002, read_iaga2002
 from .base import Check, Contract, Stage, StageContext, StageOutput, usable
@@ -64,8 +73,12 @@ def read_base(base, survey, index: int, quality=(None, ()), encoding: str = "utf
     key = f"diurnal.bases[{index}]"
     path = survey.resolve(base.file)
     if not path.is_file():
-        raise InputDataError("base station file not found", file=path, key=f"{key}.file",
-                             fix="check the file name under [[diurnal.bases]]")
+        raise InputDataError(
+            "base station file not found",
+            file=path,
+            key=f"{key}.file",
+            fix="check the file name under [[diurnal.bases]]",
+        )
     fmt = base.format
     if fmt == "auto":
         fmt = "iaga2002" if looks_like_iaga2002(path) else "delimited"
@@ -77,22 +90,27 @@ def read_base(base, survey, index: int, quality=(None, ()), encoding: str = "utf
         value = record.data["total_field"].to_numpy(dtype=float)
         if not np.isfinite(value).any():
             # no scalar F: the vector intensity carries the same external variation
-            value = np.sqrt(record.data["mag_north"] ** 2 + record.data["mag_east"] ** 2
-                            + record.data["mag_down"] ** 2).to_numpy(dtype=float)
+            value = np.sqrt(
+                record.data["mag_north"] ** 2 + record.data["mag_east"] ** 2 + record.data["mag_down"] ** 2
+            ).to_numpy(dtype=float)
         if lon is None and np.isfinite(record.header.get("longitude", np.nan)):
             lon = ((float(record.header["longitude"]) + 180.0) % 360.0) - 180.0
         if lat is None and np.isfinite(record.header.get("latitude", np.nan)):
             lat = float(record.header["latitude"])
     else:
-        times, value, rejected = read_delimited_base(path, base, key, *quality, encoding=encoding,
-                                                     factor=unit_factor("total_field", base.units))
+        times, value, rejected = read_delimited_base(
+            path, base, key, *quality, encoding=encoding, factor=unit_factor("total_field", base.units)
+        )
     if base.time_offset_s:
         times = times + np.timedelta64(int(round(base.time_offset_s * 1e9)), "ns")
     order = np.argsort(times, kind="stable")
     times, value = times[order], np.asarray(value, dtype=float)[order]
     if times.size == 0 or not np.isfinite(value).any():
-        raise InputDataError("base record has no usable total-field value", file=path,
-                             fix="check the file and its column mapping")
+        raise InputDataError(
+            "base record has no usable total-field value",
+            file=path,
+            fix="check the file and its column mapping",
+        )
     return BaseRecord(base.name, path, times, value, lon, lat, key, rejected)
 
 
@@ -106,26 +124,38 @@ def _datums(ctx, bases, cleaned, span) -> list[float]:
         first = medians[0]
     elif cfg.datum == "value":
         if cfg.datum_value is None:
-            raise ConfigError("datum = 'value' needs datum_value (nT)", key="diurnal.datum_value",
-                              fix="set datum_value under [diurnal] or use datum = 'median'")
+            raise ConfigError(
+                "datum = 'value' needs datum_value (nT)",
+                key="diurnal.datum_value",
+                fix="set datum_value under [diurnal] or use datum = 'median'",
+            )
         first = float(cfg.datum_value)
     else:
         if not cfg.datum_time:
-            raise ConfigError("datum = 'time' needs datum_time", key="diurnal.datum_time",
-                              fix='set datum_time = "YYYY-MM-DDThh:mm:ssZ" under [diurnal]')
+            raise ConfigError(
+                "datum = 'time' needs datum_time",
+                key="diurnal.datum_time",
+                fix='set datum_time = "YYYY-MM-DDThh:mm:ssZ" under [diurnal]',
+            )
         try:
             stamp = pd.Timestamp(cfg.datum_time)
         except (ValueError, TypeError):
-            raise ConfigError(f"cannot read datum_time '{cfg.datum_time}'", key="diurnal.datum_time",
-                              fix="use ISO 8601, e.g. 2024-05-01T10:00:00Z") from None
+            raise ConfigError(
+                f"cannot read datum_time '{cfg.datum_time}'",
+                key="diurnal.datum_time",
+                fix="use ISO 8601, e.g. 2024-05-01T10:00:00Z",
+            ) from None
         if stamp.tzinfo is not None:
             stamp = stamp.tz_convert("UTC").tz_localize(None)
         try:
             first = base_datum(t0, v0, "time", at_time=np.datetime64(stamp.to_datetime64(), "ns"))
         except FieldError:
-            raise ConfigError(f"datum_time {cfg.datum_time} is outside the record of base "
-                              f"'{bases[0].name}' ({_span_text(t0[0], t0[-1])})",
-                              key="diurnal.datum_time", fix="choose a time inside the base record") from None
+            raise ConfigError(
+                f"datum_time {cfg.datum_time} is outside the record of base "
+                f"'{bases[0].name}' ({_span_text(t0[0], t0[-1])})",
+                key="diurnal.datum_time",
+                fix="choose a time inside the base record",
+            ) from None
     return [first + (m - medians[0]) for m in medians]
 
 
@@ -138,19 +168,22 @@ def _base_record_table(bases, cleaned) -> pd.DataFrame:
         size = int(np.ceil(n / limit))
         bins = np.arange(n) // size
         clean = np.where(c.good, b.value, np.nan)
-        frame = pd.DataFrame({"bin": bins, "time": b.time, "total_field": clean,
-                              "spike": c.spike, "missing": c.missing})
+        frame = pd.DataFrame(
+            {"bin": bins, "time": b.time, "total_field": clean, "spike": c.spike, "missing": c.missing}
+        )
         grouped = frame.groupby("bin")
-        part = pd.DataFrame({
-            "base": b.name,
-            "time": grouped["time"].first().to_numpy(),
-            "total_field": grouped["total_field"].mean().to_numpy(),
-            "total_field_min": grouped["total_field"].min().to_numpy(),
-            "total_field_max": grouped["total_field"].max().to_numpy(),
-            "samples": grouped["time"].size().to_numpy(),
-            "spikes": grouped["spike"].sum().to_numpy(),
-            "missing": grouped["missing"].sum().to_numpy(),
-        })
+        part = pd.DataFrame(
+            {
+                "base": b.name,
+                "time": grouped["time"].first().to_numpy(),
+                "total_field": grouped["total_field"].mean().to_numpy(),
+                "total_field_min": grouped["total_field"].min().to_numpy(),
+                "total_field_max": grouped["total_field"].max().to_numpy(),
+                "samples": grouped["time"].size().to_numpy(),
+                "spikes": grouped["spike"].sum().to_numpy(),
+                "missing": grouped["missing"].sum().to_numpy(),
+            }
+        )
         parts.append(part)
     return pd.concat(parts, ignore_index=True)
 
@@ -183,8 +216,10 @@ def run(ctx: StageContext) -> StageOutput:
         why = "diurnal correction disabled ([diurnal] enabled = false)"
         return StageOutput(notes=[why], skipped=why)
     if "time" not in ctx.table.columns or ctx.table["time"].isna().all():
-        why = ("the readings have no time (no [input.columns] time): no diurnal correction; "
-               "the external field variation stays in the anomaly")
+        why = (
+            "the readings have no time (no [input.columns] time): no diurnal correction; "
+            "the external field variation stays in the anomaly"
+        )
         return StageOutput(notes=[why], skipped=why)
     if not cfg.bases:
         if cfg.remote_reference:
@@ -203,36 +238,54 @@ def run(ctx: StageContext) -> StageOutput:
     names = [b.name for b in cfg.bases]
     for i, name in enumerate(names):
         if name in names[:i]:
-            raise ConfigError(f"base name '{name}' is used twice", key=f"diurnal.bases[{i}].name",
-                              fix="give every [[diurnal.bases]] its own name")
+            raise ConfigError(
+                f"base name '{name}' is used twice",
+                key=f"diurnal.bases[{i}].name",
+                fix="give every [[diurnal.bases]] its own name",
+            )
     quality = (cfg.base_quality_column, cfg.base_quality_accepted)
     bases = [read_base(b, ctx.survey, i, quality, ctx.config.input.encoding) for i, b in enumerate(cfg.bases)]
     for b in bases:
         if b.time[-1] < span[0] or b.time[0] > span[1]:
             raise InputDataError(
                 f"base record of '{b.name}' ({_span_text(b.time[0], b.time[-1])}) does not overlap "
-                f"the survey readings ({_span_text(*span)})", file=b.path,
+                f"the survey readings ({_span_text(*span)})",
+                file=b.path,
                 fix="check the base file, its time format/date and time_offset_s (UTC clocks)",
             )
     ctx.progress(f"cleaning {len(bases)} base record(s)")
-    cleaned = [clean_base(b.time, b.value, window=cfg.spike_window, threshold=cfg.spike_threshold,
-                          min_spike=cfg.spike_min_nT, max_gap_s=cfg.max_gap_s) for b in bases]
+    cleaned = [
+        clean_base(
+            b.time,
+            b.value,
+            window=cfg.spike_window,
+            threshold=cfg.spike_threshold,
+            min_spike=cfg.spike_min_nT,
+            max_gap_s=cfg.max_gap_s,
+        )
+        for b in bases
+    ]
     # sessions (gaps, datum jumps) and set-up transients; one datum per session
     sessions = []
     for b, c in zip(bases, cleaned):
         split = base_sessions(b.time, b.value, c.good, gap_s=cfg.session_gap_s, jump_nT=cfg.base_jump_nT)
         if cfg.settle_s > 0:
-            c.transient = setup_transients(b.time, b.value, split.session, c.good, settle_s=cfg.settle_s,
-                                           min_nT=cfg.spike_min_nT)
+            c.transient = setup_transients(
+                b.time, b.value, split.session, c.good, settle_s=cfg.settle_s, min_nT=cfg.spike_min_nT
+            )
             if c.transient.any():  # levels across gaps measured without the settling minutes
                 c.good = c.good & ~c.transient
-                split = base_sessions(b.time, b.value, c.good, gap_s=cfg.session_gap_s,
-                                      jump_nT=cfg.base_jump_nT)
+                split = base_sessions(
+                    b.time, b.value, c.good, gap_s=cfg.session_gap_s, jump_nT=cfg.base_jump_nT
+                )
         else:
             c.transient = np.zeros(b.time.size, dtype=bool)
         if not c.good.any():
-            raise InputDataError("base record has no usable sample after cleaning", file=b.path,
-                                 fix="check the base file; raise [diurnal] spike_min_nT or set settle_s = 0")
+            raise InputDataError(
+                "base record has no usable sample after cleaning",
+                file=b.path,
+                fix="check the base file; raise [diurnal] spike_min_nT or set settle_s = 0",
+            )
         sessions.append(split)
     datums = _datums(ctx, bases, cleaned, span)
     levelled_values = []  # each base minus its sessions' datums (nT)
@@ -244,24 +297,40 @@ def run(ctx: StageContext) -> StageOutput:
         levelled_values.append(b.value - per_session[split.session])
 
     corrections, flags = [], []
-    for b, c, d, split, levelled, per_session in zip(bases, cleaned, datums, sessions, levelled_values,
-                                                       session_levels):
-        values, flag = interpolate_base(b.time[c.good], levelled[c.good], reading_time,
-                                        cfg.interpolation, cfg.max_gap_s)
+    for b, c, d, split, levelled, per_session in zip(
+        bases, cleaned, datums, sessions, levelled_values, session_levels
+    ):
+        values, flag = interpolate_base(
+            b.time[c.good], levelled[c.good], reading_time, cfg.interpolation, cfg.max_gap_s
+        )
         corrections.append(values)
         flags.append(flag)
         outside = int(((reading_time < b.time[c.good][0]) | (reading_time > b.time[c.good][-1])).sum())
         if outside:
-            warnings.append(f"{outside:,} readings lie outside the record of base '{b.name}' "
-                            f"({_span_text(b.time[0], b.time[-1])})")
+            warnings.append(
+                f"{outside:,} readings lie outside the record of base '{b.name}' "
+                f"({_span_text(b.time[0], b.time[-1])})"
+            )
             degraded.append(warnings[-1])
         metrics[f"base_{b.name}"] = {
-            "samples": int(b.time.size), "spikes": int(c.spike.sum()), "missing": int(c.missing.sum()),
-            "gaps": int(len(c.gaps)), "datum_nT": float(d), "start": str(b.time[0]), "end": str(b.time[-1]),
-            "sessions": int(per_session.size), "session_datums_nT": [float(x) for x in per_session],
+            "samples": int(b.time.size),
+            "spikes": int(c.spike.sum()),
+            "missing": int(c.missing.sum()),
+            "gaps": int(len(c.gaps)),
+            "datum_nT": float(d),
+            "start": str(b.time[0]),
+            "end": str(b.time[-1]),
+            "sessions": int(per_session.size),
+            "session_datums_nT": [float(x) for x in per_session],
             "transient_samples": int(c.transient.sum()),
-            "jumps": [{"time": _time_text(b.time[j["index"]]), "kind": j["kind"],
-                       "size_nT": round(float(j["size_nT"]), 2)} for j in split.jumps],
+            "jumps": [
+                {
+                    "time": _time_text(b.time[j["index"]]),
+                    "kind": j["kind"],
+                    "size_nT": round(float(j["size_nT"]), 2),
+                }
+                for j in split.jumps
+            ],
             "quality_rejected": b.rejected,
         }
         for j in split.jumps:
@@ -270,17 +339,24 @@ def run(ctx: StageContext) -> StageOutput:
                 f"degraded: base '{b.name}' level jumps by {j['size_nT']:+.1f} nT at "
                 f"{_time_text(b.time[j['index']])} ({where}; more than [diurnal] base_jump_nT = "
                 f"{cfg.base_jump_nT:g} nT): a relocation or new set-up? Each of its {per_session.size} "
-                "sessions is levelled to its own datum; check the base log and the tie-line misclosures")
+                "sessions is levelled to its own datum; check the base log and the tie-line misclosures"
+            )
         if per_session.size > 1:
-            notes.append(f"base '{b.name}': {per_session.size} sessions (gaps over "
-                         f"{cfg.session_gap_s:g} s or datum jumps), each levelled to its own datum "
-                         f"({', '.join(f'{x:.1f}' for x in per_session)} nT)")
+            notes.append(
+                f"base '{b.name}': {per_session.size} sessions (gaps over "
+                f"{cfg.session_gap_s:g} s or datum jumps), each levelled to its own datum "
+                f"({', '.join(f'{x:.1f}' for x in per_session)} nT)"
+            )
         if c.transient.any():
-            notes.append(f"base '{b.name}': {int(c.transient.sum())} samples of set-up transient "
-                         f"at session starts left out")
+            notes.append(
+                f"base '{b.name}': {int(c.transient.sum())} samples of set-up transient "
+                f"at session starts left out"
+            )
     if any(split.jumps for split in sessions):
-        notes.append("degraded: base datum jumps found (see warnings); the diurnal correction levels "
-                     "each base session to its own datum")
+        notes.append(
+            "degraded: base datum jumps found (see warnings); the diurnal correction levels "
+            "each base session to its own datum"
+        )
 
     distances = None  # (n_bases, n_readings) m, when every base has a position
     if all(b.longitude is not None and b.latitude is not None for b in bases):
@@ -291,11 +367,14 @@ def run(ctx: StageContext) -> StageOutput:
     else:
         if distances is None:
             missing = next(b for b in bases if b.longitude is None or b.latitude is None)
-            raise ConfigError(f"base '{missing.name}' has no position; two or more bases are combined "
-                              "by distance", key=f"{missing.key}.longitude",
-                              fix="set longitude and latitude of every base under [[diurnal.bases]]")
-        diurnal, gap, weights = combine_bases(np.stack(corrections), np.stack(flags), distances,
-                                              cfg.combine, cfg.distance_power)
+            raise ConfigError(
+                f"base '{missing.name}' has no position; two or more bases are combined by distance",
+                key=f"{missing.key}.longitude",
+                fix="set longitude and latitude of every base under [[diurnal.bases]]",
+            )
+        diurnal, gap, weights = combine_bases(
+            np.stack(corrections), np.stack(flags), distances, cfg.combine, cfg.distance_power
+        )
         for b, w in zip(bases, weights):
             metrics[f"base_{b.name}"]["mean_weight"] = float(w.mean())
     table["diurnal"] = diurnal
@@ -311,33 +390,56 @@ def run(ctx: StageContext) -> StageOutput:
             chord = chord_deviation(b.time[inside], levelled[inside], window)
             if np.isfinite(chord.max):
                 worst = b.time[inside][0] + np.timedelta64(int(round(chord.start * 1e9)), "ns")
-                checks.append(Check.at_most(
-                    f"diurnal chord {window:g} s ({b.name})", chord.max, tol, "nT", src,
-                    detail=f"largest deviation from a {window:g} s chord, window starting "
-                           f"{_time_text(worst)}"))
+                checks.append(
+                    Check.at_most(
+                        f"diurnal chord {window:g} s ({b.name})",
+                        chord.max,
+                        tol,
+                        "nT",
+                        src,
+                        detail=f"largest deviation from a {window:g} s chord, window starting "
+                        f"{_time_text(worst)}",
+                    )
+                )
     offset_tol, offset_src = ctx.tolerance("diurnal_time_offset_s", 1.0, "project default")
     if distances is not None and "total_field" in table:
         fit = usable(table) & np.isfinite(table["total_field"].to_numpy(float))
         for b, c, dist, levelled in zip(bases, cleaned, distances, levelled_values):
             near = fit & (dist <= cfg.offset_radius_m)
             if near.sum() < 30:
-                notes.append(f"time offset to base '{b.name}' not estimated: {int(near.sum())} usable "
-                             f"readings within {cfg.offset_radius_m:g} m of it")
+                notes.append(
+                    f"time offset to base '{b.name}' not estimated: {int(near.sum())} usable "
+                    f"readings within {cfg.offset_radius_m:g} m of it"
+                )
                 continue
             order = np.argsort(reading_time[near], kind="stable")
-            result = estimate_time_offset(b.time[c.good], levelled[c.good], reading_time[near][order],
-                                          table["total_field"].to_numpy(float)[near][order],
-                                          highpass_s=cfg.offset_highpass_s, max_lag_s=cfg.offset_max_lag_s)
+            result = estimate_time_offset(
+                b.time[c.good],
+                levelled[c.good],
+                reading_time[near][order],
+                table["total_field"].to_numpy(float)[near][order],
+                highpass_s=cfg.offset_highpass_s,
+                max_lag_s=cfg.offset_max_lag_s,
+            )
             metrics[f"base_{b.name}"]["time_offset_s"] = float(result.lag_s)
             metrics[f"base_{b.name}"]["time_offset_correlation"] = float(result.correlation)
             if not np.isfinite(result.correlation) or result.correlation < MIN_OFFSET_CORRELATION:
-                notes.append(f"time offset to base '{b.name}' not determined: correlation "
-                             f"{result.correlation:.2f} of the short-period variations is too low")
+                notes.append(
+                    f"time offset to base '{b.name}' not determined: correlation "
+                    f"{result.correlation:.2f} of the short-period variations is too low"
+                )
                 continue
-            checks.append(Check.at_most(
-                f"diurnal time offset ({b.name})", abs(result.lag_s), offset_tol, "s", offset_src,
-                detail=f"survey clock minus base clock {result.lag_s:+.2f} s from {result.n} readings "
-                       f"within {cfg.offset_radius_m:g} m, correlation {result.correlation:.2f}"))
+            checks.append(
+                Check.at_most(
+                    f"diurnal time offset ({b.name})",
+                    abs(result.lag_s),
+                    offset_tol,
+                    "s",
+                    offset_src,
+                    detail=f"survey clock minus base clock {result.lag_s:+.2f} s from {result.n} readings "
+                    f"within {cfg.offset_radius_m:g} m, correlation {result.correlation:.2f}",
+                )
+            )
     diff_tol, diff_src = ctx.tolerance("diurnal_station_difference_nT", 5.0, "project default")
     for i in range(len(bases)):
         for j in range(i + 1, len(bases)):
@@ -351,41 +453,75 @@ def run(ctx: StageContext) -> StageOutput:
             stats = station_difference(a.time[ina], la[ina], b.time[cb.good], lb[cb.good], cfg.max_gap_s)
             metrics[f"station_difference_{a.name}_{b.name}"] = stats
             if stats["n"]:
-                checks.append(Check.at_most(
-                    f"diurnal station difference ({a.name} - {b.name})", stats["max_abs"], diff_tol,
-                    "nT", diff_src,
-                    detail=f"largest departure of the difference from its median "
-                           f"{stats['level_difference']:.2f} nT; std {stats['std']:.2f} nT"))
+                checks.append(
+                    Check.at_most(
+                        f"diurnal station difference ({a.name} - {b.name})",
+                        stats["max_abs"],
+                        diff_tol,
+                        "nT",
+                        diff_src,
+                        detail=f"largest departure of the difference from its median "
+                        f"{stats['level_difference']:.2f} nT; std {stats['std']:.2f} nT",
+                    )
+                )
 
     # --- tables, metrics, notes ----------------------------------------------------------------
     grouped = table.groupby("line", sort=False)
-    lines = pd.DataFrame({
-        "readings": grouped.size(),
-        "diurnal_mean": grouped["diurnal"].mean(),
-        "diurnal_min": grouped["diurnal"].min(),
-        "diurnal_max": grouped["diurnal"].max(),
-        "flag_base_gap": grouped["flag_base_gap"].sum(),
-    }).reset_index()
+    lines = pd.DataFrame(
+        {
+            "readings": grouped.size(),
+            "diurnal_mean": grouped["diurnal"].mean(),
+            "diurnal_min": grouped["diurnal"].min(),
+            "diurnal_max": grouped["diurnal"].max(),
+            "flag_base_gap": grouped["flag_base_gap"].sum(),
+        }
+    ).reset_index()
     flagged = int(gap.sum())
-    metrics.update({"readings_flag_base_gap": flagged, "diurnal_min_nT": float(np.nanmin(diurnal)),
-                    "diurnal_max_nT": float(np.nanmax(diurnal)), "interpolation": cfg.interpolation,
-                    "datum": cfg.datum})
+    metrics.update(
+        {
+            "readings_flag_base_gap": flagged,
+            "diurnal_min_nT": float(np.nanmin(diurnal)),
+            "diurnal_max_nT": float(np.nanmax(diurnal)),
+            "interpolation": cfg.interpolation,
+            "datum": cfg.datum,
+        }
+    )
     names = ", ".join(f"'{b.name}'" for b in bases)
-    notes.insert(0, f"diurnal correction from base(s) {names} ({cfg.interpolation} interpolation, "
-                    f"datum {cfg.datum}): {np.nanmin(diurnal):.2f} to {np.nanmax(diurnal):.2f} nT")
+    notes.insert(
+        0,
+        f"diurnal correction from base(s) {names} ({cfg.interpolation} interpolation, "
+        f"datum {cfg.datum}): {np.nanmin(diurnal):.2f} to {np.nanmax(diurnal):.2f} nT",
+    )
     if flagged:
-        warnings.append(f"{flagged:,} readings flagged in base gaps longer than {cfg.max_gap_s:g} s "
-                        "or outside the base record (flag_base_gap)")
+        warnings.append(
+            f"{flagged:,} readings flagged in base gaps longer than {cfg.max_gap_s:g} s "
+            "or outside the base record (flag_base_gap)"
+        )
     state = {
-        "bases": [{"name": b.name, "file": str(b.path), "longitude": b.longitude, "latitude": b.latitude,
-                   "datum_nT": float(d), "session_datums_nT": [float(x) for x in levels]}
-                  for b, d, levels in zip(bases, datums, session_levels)],
+        "bases": [
+            {
+                "name": b.name,
+                "file": str(b.path),
+                "longitude": b.longitude,
+                "latitude": b.latitude,
+                "datum_nT": float(d),
+                "session_datums_nT": [float(x) for x in levels],
+            }
+            for b, d, levels in zip(bases, datums, session_levels)
+        ],
         "interpolation": cfg.interpolation,
         "datum": cfg.datum,
     }
-    return StageOutput(table=table, metrics=metrics, state=state,
-                       tables={"diurnal_lines": lines, "base_record": _base_record_table(bases, cleaned)},
-                       checks=checks, notes=notes, warnings=warnings, degraded=degraded)
+    return StageOutput(
+        table=table,
+        metrics=metrics,
+        state=state,
+        tables={"diurnal_lines": lines, "base_record": _base_record_table(bases, cleaned)},
+        checks=checks,
+        notes=notes,
+        warnings=warnings,
+        degraded=degraded,
+    )
 
 
 def _remote_reference(ctx: StageContext) -> StageOutput:
@@ -396,21 +532,35 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
     cfg = ctx.config.diurnal
     path = ctx.survey.resolve(cfg.remote_reference)
     if not path.is_file():
-        raise InputDataError("remote-reference coefficient table not found", file=path,
-                             key="diurnal.remote_reference",
-                             fix="run the observatory network first and point at its out/tables/coefficients.csv")
+        raise InputDataError(
+            "remote-reference coefficient table not found",
+            file=path,
+            key="diurnal.remote_reference",
+            fix="run the observatory network first and point at its out/tables/coefficients.csv",
+        )
     coefficients = pd.read_csv(path)
     table = ctx.table.copy()
-    with translate(InputDataError, file=path, key="diurnal.remote_reference",
-                   fix="use the coefficients table written by the observatory network's separate stage"):
-        variation = external_field_at(coefficients, table["longitude"].to_numpy(),
-                                      table["latitude"].to_numpy(), table["height"].to_numpy(),
-                                      table["time"].to_numpy(dtype="datetime64[ns]"))
+    with translate(
+        InputDataError,
+        file=path,
+        key="diurnal.remote_reference",
+        fix="use the coefficients table written by the observatory network's separate stage",
+    ):
+        variation = external_field_at(
+            coefficients,
+            table["longitude"].to_numpy(),
+            table["latitude"].to_numpy(),
+            table["height"].to_numpy(),
+            table["time"].to_numpy(dtype="datetime64[ns]"),
+        )
     missing = ~np.isfinite(variation)
     if missing.all():
-        raise InputDataError("the remote-reference coefficients do not cover the survey's times",
-                             file=path, key="diurnal.remote_reference",
-                             fix="use a network run that spans the survey days")
+        raise InputDataError(
+            "the remote-reference coefficients do not cover the survey's times",
+            file=path,
+            key="diurnal.remote_reference",
+            fix="use a network run that spans the survey days",
+        )
     datum = float(np.nanmedian(variation)) if cfg.datum == "median" else float(cfg.datum_value or 0.0)
     table["diurnal"] = np.where(missing, 0.0, variation - datum)
     table["flag_base_gap"] = missing
@@ -422,14 +572,29 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
         if {"station", "longitude", "latitude"} <= set(stations.columns):
             warnings.append(remote_reference_caution(stations, lon_c, lat_c))
     if not warnings:
-        warnings.append("Diurnal correction from a remote reference (observatory network model), "
-                        "not a local base: check the levelling misclosures before relying on it.")
-    degraded = ([f"{int(missing.sum()):,} readings outside the remote reference's times: no "
-                 "diurnal correction there (flag_base_gap)"] if missing.any() else [])
-    return StageOutput(table=table, warnings=warnings, degraded=degraded,
-                       metrics={"method": "remote reference", "datum_nT": datum,
-                                "readings_without_reference": int(missing.sum())},
-                       notes=[f"diurnal correction from {cfg.remote_reference} (remote reference)"])
+        warnings.append(
+            "Diurnal correction from a remote reference (observatory network model), "
+            "not a local base: check the levelling misclosures before relying on it."
+        )
+    degraded = (
+        [
+            f"{int(missing.sum()):,} readings outside the remote reference's times: no "
+            "diurnal correction there (flag_base_gap)"
+        ]
+        if missing.any()
+        else []
+    )
+    return StageOutput(
+        table=table,
+        warnings=warnings,
+        degraded=degraded,
+        metrics={
+            "method": "remote reference",
+            "datum_nT": datum,
+            "readings_without_reference": int(missing.sum()),
+        },
+        notes=[f"diurnal correction from {cfg.remote_reference} (remote reference)"],
+    )
 
 
 def _inputs(config, survey):

@@ -73,14 +73,20 @@ def _where(table: pd.DataFrame, positions) -> str:
 def read_calibration(path: Path) -> pd.DataFrame:
     """Read a calibration (interval) table: delimited text with columns counter, mgal, factor."""
     if not path.is_file():
-        raise ConfigError("calibration file not found", file=path, key="drift.calibration_file",
-                          fix="check the file name in survey.toml")
+        raise ConfigError(
+            "calibration file not found",
+            file=path,
+            key="drift.calibration_file",
+            fix="check the file name in survey.toml",
+        )
     try:
         cal = pd.read_csv(path, sep=None, engine="python", comment="#", skipinitialspace=True)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as err:
-        raise InputDataError(f"cannot read the calibration table ({str(err).splitlines()[0]})",
-                             file=path, fix="write a delimited table with a header line "
-                             "'counter,mgal,factor'") from None
+        raise InputDataError(
+            f"cannot read the calibration table ({str(err).splitlines()[0]})",
+            file=path,
+            fix="write a delimited table with a header line 'counter,mgal,factor'",
+        ) from None
     cal.columns = [str(c).strip().lower() for c in cal.columns]
     try:
         gravnet.calibration_arrays(cal)
@@ -108,13 +114,18 @@ def _loop_labels(ctx: StageContext, table: pd.DataFrame) -> tuple[np.ndarray, st
             choice = "day"
     if choice in ("loop", "line"):
         if choice not in table:
-            raise ConfigError(f"the readings have no '{choice}' column", key="drift.loops",
-                              fix=f"map a {choice} column in [input.columns] or set loops = 'day'")
+            raise ConfigError(
+                f"the readings have no '{choice}' column",
+                key="drift.loops",
+                fix=f"map a {choice} column in [input.columns] or set loops = 'day'",
+            )
         col = table[choice]
         missing = col.isna().to_numpy()
         if missing.any():
-            raise InputDataError(f"{_where(table, np.flatnonzero(missing))}: {choice} is missing",
-                                 fix=f"give every reading a {choice}, or set [drift] loops = 'day'")
+            raise InputDataError(
+                f"{_where(table, np.flatnonzero(missing))}: {choice} is missing",
+                fix=f"give every reading a {choice}, or set [drift] loops = 'day'",
+            )
         return col.astype(str).str.strip().to_numpy(dtype=object), choice
     lon = table["longitude"].to_numpy(dtype=float) if "longitude" in table else np.zeros(1)
     lon = float(np.nanmean(lon)) if np.isfinite(lon).any() else 0.0
@@ -127,39 +138,49 @@ def _loop_labels(ctx: StageContext, table: pd.DataFrame) -> tuple[np.ndarray, st
 
 def _station_ids(table: pd.DataFrame) -> np.ndarray:
     if "station" not in table:
-        raise InputDataError("the readings have no station column", key="input.columns.station",
-                             fix="map the station id column in [input.columns]")
+        raise InputDataError(
+            "the readings have no station column",
+            key="input.columns.station",
+            fix="map the station id column in [input.columns]",
+        )
     col = table["station"]
     text = col.astype(str).str.strip()
     if pd.api.types.is_float_dtype(col):  # numeric ids read as floats: "101.0" -> "101"
         values = col.to_numpy(dtype=float)
         whole = np.isfinite(values) & (values == np.round(values))
-        text = pd.Series(np.where(whole, np.char.mod("%d", np.nan_to_num(values).astype(np.int64)),
-                                  text.to_numpy(dtype=str)), index=col.index)
+        text = pd.Series(
+            np.where(
+                whole, np.char.mod("%d", np.nan_to_num(values).astype(np.int64)), text.to_numpy(dtype=str)
+            ),
+            index=col.index,
+        )
     missing = col.isna().to_numpy() | (text == "").to_numpy()
     if missing.any():
-        raise InputDataError(f"{_where(table, np.flatnonzero(missing))}: station id is missing",
-                             fix="give every reading its station id")
+        raise InputDataError(
+            f"{_where(table, np.flatnonzero(missing))}: station id is missing",
+            fix="give every reading its station id",
+        )
     return text.to_numpy(dtype=object)
 
 
-def _calibrated(ctx: StageContext, table: pd.DataFrame, notes: list[str],
-                warnings: list[str]) -> np.ndarray:
+def _calibrated(ctx: StageContext, table: pd.DataFrame, notes: list[str], warnings: list[str]) -> np.ndarray:
     cfg = ctx.config.drift
     units = ctx.config.input.units.get("reading", "mGal")
     reading = table["reading"].to_numpy(dtype=float)
     if units != "cu":
         if cfg.calibration_file:
-            raise ConfigError(f"a calibration file is given but readings are in {units}",
-                              key="drift.calibration_file",
-                              fix="set [input.units] reading = 'cu' for counter units, or remove "
-                              "calibration_file")
+            raise ConfigError(
+                f"a calibration file is given but readings are in {units}",
+                key="drift.calibration_file",
+                fix="set [input.units] reading = 'cu' for counter units, or remove calibration_file",
+            )
         return reading.copy()
     if not cfg.calibration_file:
-        raise ConfigError("readings are in counter units but no calibration table is given",
-                          key="drift.calibration_file",
-                          fix="set [drift] calibration_file to the meter's table "
-                          "(columns counter, mgal, factor)")
+        raise ConfigError(
+            "readings are in counter units but no calibration table is given",
+            key="drift.calibration_file",
+            fix="set [drift] calibration_file to the meter's table (columns counter, mgal, factor)",
+        )
     path = ctx.survey.resolve(cfg.calibration_file)
     cal = read_calibration(path)
     c = cal["counter"].to_numpy(dtype=float)
@@ -169,10 +190,12 @@ def _calibrated(ctx: StageContext, table: pd.DataFrame, notes: list[str],
         raise InputDataError(
             f"{_where(table, np.flatnonzero(outside & ~flagged))}: counter reading outside the "
             f"calibration table {path.name} ({c[0]:g} to {c[-1]:g})",
-            fix="extend the calibration table or correct the reading")
+            fix="extend the calibration table or correct the reading",
+        )
     if flagged.any():
-        warnings.append(f"{int(flagged.sum())} flagged reading(s) outside the calibration table "
-                        "left without a value")
+        warnings.append(
+            f"{int(flagged.sum())} flagged reading(s) outside the calibration table left without a value"
+        )
     with translate(InputDataError, file=path):
         out = gravnet.apply_calibration(np.where(flagged, np.nan, reading), cal)
     notes.append(f"calibrated counter readings with {path.name} ({len(cal)} intervals)")
@@ -182,24 +205,35 @@ def _calibrated(ctx: StageContext, table: pd.DataFrame, notes: list[str],
 def _tide(ctx: StageContext, table: pd.DataFrame) -> np.ndarray:
     missing = [c for c in ("longitude", "latitude") if c not in table]
     if missing:
-        raise StageError(f"the tide correction needs {', '.join(missing)}", key="drift.tide",
-                         fix="map the coordinates in [input.columns] or set [drift] tide = false")
+        raise StageError(
+            f"the tide correction needs {', '.join(missing)}",
+            key="drift.tide",
+            fix="map the coordinates in [input.columns] or set [drift] tide = false",
+        )
     from ..fields.gravity.tides import longman_correction
 
     height = table["height"].to_numpy(dtype=float) if "height" in table else np.zeros(len(table))
     with translate(ModelRangeError, fix="check the dates of the readings"):
-        return np.asarray(longman_correction(
-            table["longitude"].to_numpy(dtype=float), table["latitude"].to_numpy(dtype=float),
-            np.nan_to_num(height), table["time"].to_numpy().astype("datetime64[ns]"),
-            ctx.config.drift.gravimetric_factor), dtype=float)
+        return np.asarray(
+            longman_correction(
+                table["longitude"].to_numpy(dtype=float),
+                table["latitude"].to_numpy(dtype=float),
+                np.nan_to_num(height),
+                table["time"].to_numpy().astype("datetime64[ns]"),
+                ctx.config.drift.gravimetric_factor,
+            ),
+            dtype=float,
+        )
 
 
 def _check_bases(ctx: StageContext, stations: np.ndarray, use: np.ndarray) -> dict:
     cfg = ctx.config.drift
     if not cfg.bases:
-        raise ConfigError("no absolute gravity base is given", key="drift.bases",
-                          fix="add a [[drift.bases]] table with station = 'ID' and gravity = "
-                          "absolute gravity in mGal")
+        raise ConfigError(
+            "no absolute gravity base is given",
+            key="drift.bases",
+            fix="add a [[drift.bases]] table with station = 'ID' and gravity = absolute gravity in mGal",
+        )
     bases = {}
     for i, base in enumerate(cfg.bases):
         name = base.station.strip()
@@ -208,11 +242,17 @@ def _check_bases(ctx: StageContext, stations: np.ndarray, use: np.ndarray) -> di
             raise ConfigError(f"base '{name}' is given twice", key=key, fix="keep one entry per base")
         at = stations == name
         if not at.any():
-            raise ConfigError(f"base station '{name}' is never occupied in the readings", key=key,
-                              fix="use the station id exactly as in the station column")
+            raise ConfigError(
+                f"base station '{name}' is never occupied in the readings",
+                key=key,
+                fix="use the station id exactly as in the station column",
+            )
         if not (at & use).any():
-            raise ConfigError(f"base station '{name}' has only flagged or missing readings",
-                              key=key, fix="check its readings or choose another base")
+            raise ConfigError(
+                f"base station '{name}' has only flagged or missing readings",
+                key=key,
+                fix="check its readings or choose another base",
+            )
         bases[name] = (float(base.gravity), base.sigma_mgal)
     return bases
 
@@ -223,8 +263,11 @@ def _tare_times(ctx: StageContext) -> list[np.datetime64]:
         try:
             stamp = pd.Timestamp(text)
         except (ValueError, TypeError):
-            raise ConfigError(f"tare time '{text}' is not an ISO 8601 time",
-                              key=f"drift.tares[{i}]", fix="write e.g. '2024-05-01T13:20:00'") from None
+            raise ConfigError(
+                f"tare time '{text}' is not an ISO 8601 time",
+                key=f"drift.tares[{i}]",
+                fix="write e.g. '2024-05-01T13:20:00'",
+            ) from None
         if stamp.tzinfo is not None:
             stamp = stamp.tz_convert("UTC").tz_localize(None)
         out.append(np.datetime64(stamp.to_datetime64(), "ns"))
@@ -245,8 +288,11 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings, deg
         at_base = sel & np.isin(stations, list(bases))
         if at_base.sum() >= 2:
             is_base |= at_base
-            base_value[at_base] = pd.Series(stations[at_base]).map(
-                {name: g for name, (g, _) in bases.items()}).to_numpy(dtype=float)
+            base_value[at_base] = (
+                pd.Series(stations[at_base])
+                .map({name: g for name, (g, _) in bases.items()})
+                .to_numpy(dtype=float)
+            )
             continue
         counts = pd.Series(stations[sel]).value_counts(sort=False)
         if counts.empty or counts.max() < 2:
@@ -256,8 +302,9 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings, deg
         best = counts.index[int(np.argmax(counts.to_numpy()))]  # first of the most occupied
         is_base |= sel & (stations == best)
     with translate(InputDataError, key="drift.method"):
-        result = gravnet.loop_drift(time, value, is_base, loops, method=method,
-                                    base_value=base_value, use=use)
+        result = gravnet.loop_drift(
+            time, value, is_base, loops, method=method, base_value=base_value, use=use
+        )
     drift = np.nan_to_num(result.drift, nan=0.0)  # loops without repeats: no drift removed
     corrected = value - drift
 
@@ -287,20 +334,30 @@ def _loop_method(method, time, value, stations, loops, use, bases, warnings, deg
         names = ", ".join(str(labels[k]) for k in pending[:5])
         raise InputDataError(
             f"loop(s) {names} occupy no base and no station of a tied loop",
-            key="drift.method", fix="occupy a base in each loop, add a base, or use method = 'network'")
-    table = result.loops.rename(columns={"base_readings": "drift_base_readings",
-                                         "max_base_residual_mgal": "residual_closure_mgal"})
+            key="drift.method",
+            fix="occupy a base in each loop, add a base, or use method = 'network'",
+        )
+    table = result.loops.rename(
+        columns={"base_readings": "drift_base_readings", "max_base_residual_mgal": "residual_closure_mgal"}
+    )
     table["offset_mgal"] = [float(offset[codes == k][0]) for k in range(len(labels))]  # per loop
     table["readings"] = np.bincount(codes, minlength=len(labels))
     return drift, offset, table, np.nan, None
 
 
-def _network_method(time, value, stations, loops, use, bases, tares, reading_sigma, warnings,
-                    meter=None):
-    with translate({BadParameter: Rule(InputDataError, key="drift.bases"),
-                    FieldError: InputDataError}):
-        result = gravnet.network_adjustment(stations, time, value, loops, bases, tares=tares,
-                                            reading_sigma=reading_sigma, use=use, meter=meter)
+def _network_method(time, value, stations, loops, use, bases, tares, reading_sigma, warnings, meter=None):
+    with translate({BadParameter: Rule(InputDataError, key="drift.bases"), FieldError: InputDataError}):
+        result = gravnet.network_adjustment(
+            stations,
+            time,
+            value,
+            loops,
+            bases,
+            tares=tares,
+            reading_sigma=reading_sigma,
+            use=use,
+            meter=meter,
+        )
     warnings.extend(result.warnings)
     table = result.loops.rename(columns={"max_abs_residual_mgal": "residual_closure_mgal"})
     table = table.drop(columns=["t0"])
@@ -318,14 +375,19 @@ def run(ctx: StageContext) -> StageOutput:
     if ctx.table is None:
         raise StageError("the drift stage needs the readings table", fix="run the ingest stage first")
     if not cfg.enabled:
-        why = ("drift stage disabled ([drift] enabled = false): the readings are taken as final "
-               "observed gravity (mGal); no calibration, tide, drift or base ties applied here")
+        why = (
+            "drift stage disabled ([drift] enabled = false): the readings are taken as final "
+            "observed gravity (mGal); no calibration, tide, drift or base ties applied here"
+        )
         return StageOutput(notes=[why], skipped=why)
     src = ctx.table
     for col in ("time", "reading"):
         if col not in src:
-            raise InputDataError(f"the readings have no {col} column", key=f"input.columns.{col}",
-                                 fix=f"map the {col} column in [input.columns]")
+            raise InputDataError(
+                f"the readings have no {col} column",
+                key=f"input.columns.{col}",
+                fix=f"map the {col} column in [input.columns]",
+            )
     table = src.copy()
     notes: list[str] = []
     warnings: list[str] = []
@@ -342,12 +404,15 @@ def run(ctx: StageContext) -> StageOutput:
     if "instrument_height" in src:
         ih = src["instrument_height"].to_numpy(dtype=float)
         table["instrument_height_correction"] = gravnet.instrument_height_correction(
-            ih, cfg.free_air_gradient)
+            ih, cfg.free_air_gradient
+        )
         missing = ~np.isfinite(ih)
         if missing.any():
             table["flag_instrument_height"] = missing
-            warnings.append(f"{int(missing.sum())} reading(s) without instrument height flagged "
-                            f"({_where(table, np.flatnonzero(missing))})")
+            warnings.append(
+                f"{int(missing.sum())} reading(s) without instrument height flagged "
+                f"({_where(table, np.flatnonzero(missing))})"
+            )
     else:
         table["instrument_height_correction"] = 0.0
         notes.append("no instrument_height column: readings taken as at the station mark")
@@ -357,22 +422,28 @@ def run(ctx: StageContext) -> StageOutput:
         tide_by_meter = "meter_tide" in src and bool(np.nan_to_num(src["meter_tide"].to_numpy(float)).any())
     if tide_by_meter and cfg.tide:
         table["tide"] = 0.0
-        notes.append("Earth tide already corrected by the gravimeter (meter_tide / [drift] "
-                     "meter_tide_applied): potfield adds none")
+        notes.append(
+            "Earth tide already corrected by the gravimeter (meter_tide / [drift] "
+            "meter_tide_applied): potfield adds none"
+        )
     elif cfg.tide:
         table["tide"] = _tide(ctx, table)
-        notes.append(f"Earth tide (Longman 1959) corrected, gravimetric factor "
-                     f"{cfg.gravimetric_factor:g}")
+        notes.append(f"Earth tide (Longman 1959) corrected, gravimetric factor {cfg.gravimetric_factor:g}")
     else:
         table["tide"] = 0.0
         notes.append("Earth tide not corrected ([drift] tide = false)")
-    value = (table["reading_mgal"].to_numpy() + table["instrument_height_correction"].to_numpy()
-             + table["tide"].to_numpy())
+    value = (
+        table["reading_mgal"].to_numpy()
+        + table["instrument_height_correction"].to_numpy()
+        + table["tide"].to_numpy()
+    )
     use = usable(table) & np.isfinite(value)
     lost = usable(table) & ~np.isfinite(value)
     if lost.any():
-        warnings.append(f"{int(lost.sum())} unflagged reading(s) without a value (reading, "
-                        f"instrument height or tide missing) left out: {_where(table, np.flatnonzero(lost))}")
+        warnings.append(
+            f"{int(lost.sum())} unflagged reading(s) without a value (reading, "
+            f"instrument height or tide missing) left out: {_where(table, np.flatnonzero(lost))}"
+        )
     bases = _check_bases(ctx, stations, use)
     tares = _tare_times(ctx)
 
@@ -380,15 +451,16 @@ def run(ctx: StageContext) -> StageOutput:
     if cfg.method == "network":
         meter = src["meter"].astype(str).str.strip().to_numpy(dtype=object) if "meter" in src else None
         drift, offset, loop_table, sigma0, net = _network_method(
-            time, value, stations, loops, use, bases, tares, cfg.reading_sigma_mgal, warnings,
-            meter)
+            time, value, stations, loops, use, bases, tares, cfg.reading_sigma_mgal, warnings, meter
+        )
     else:
         if tares:
             warnings.append("[drift] tares are used only by method = 'network'; ignored")
         if any(sigma is not None for _, sigma in bases.values()):
             notes.append("base sigma_mgal is used only by method = 'network'; bases held fixed")
         drift, offset, loop_table, sigma0, net = _loop_method(
-            cfg.method, time, value, stations, loops, use, bases, warnings, degraded)
+            cfg.method, time, value, stations, loops, use, bases, warnings, degraded
+        )
     table["drift"] = drift
     table["loop_offset"] = offset
     gravity = value - drift - offset
@@ -418,14 +490,16 @@ def run(ctx: StageContext) -> StageOutput:
     table["drift_residual"] = gravity - st["gravity"].reindex(stations).to_numpy()
 
     rep = per[per["count"] >= 2]
-    repeats = pd.DataFrame({
-        "station": rep.index,
-        "occupations": rep["count"].to_numpy(dtype=int),
-        "loops": grouped["loop"].nunique().reindex(rep.index).to_numpy(dtype=int),
-        "range_mgal": (rep["max"] - rep["min"]).to_numpy(),
-        "std_mgal": rep["std"].to_numpy(),
-        "base": rep.index.isin(list(bases)),
-    })
+    repeats = pd.DataFrame(
+        {
+            "station": rep.index,
+            "occupations": rep["count"].to_numpy(dtype=int),
+            "loops": grouped["loop"].nunique().reindex(rep.index).to_numpy(dtype=int),
+            "range_mgal": (rep["max"] - rep["min"]).to_numpy(),
+            "std_mgal": rep["std"].to_numpy(),
+            "base": rep.index.isin(list(bases)),
+        }
+    )
 
     # 6. checks
     rate_tol, rate_src = ctx.tolerance("gravity_drift_rate_mgal_per_h", DRIFT_RATE_DEFAULT, _SPEC_SOURCE)
@@ -434,31 +508,55 @@ def run(ctx: StageContext) -> StageOutput:
     rates = loop_table["drift_rate_mgal_per_h"].to_numpy(dtype=float)
     if np.isfinite(rates).any():
         worst = int(np.nanargmax(np.abs(rates)))
-        checks.append(Check.at_most("gravity_drift_rate", abs(rates[worst]), rate_tol, "mGal/h",
-                                    rate_src, detail=f"largest |drift rate|: loop {loop_table['loop'].iloc[worst]}"))
+        checks.append(
+            Check.at_most(
+                "gravity_drift_rate",
+                abs(rates[worst]),
+                rate_tol,
+                "mGal/h",
+                rate_src,
+                detail=f"largest |drift rate|: loop {loop_table['loop'].iloc[worst]}",
+            )
+        )
     else:
         warnings.append("no loop has a drift rate: drift rate check not made")
         degraded.append(warnings[-1])
     if len(repeats):
         worst = int(np.argmax(repeats["range_mgal"].to_numpy()))
-        checks.append(Check.at_most("gravity_repeat_difference", repeats["range_mgal"].iloc[worst],
-                                    rep_tol, "mGal", rep_src,
-                                    detail=f"largest repeat range: station {repeats['station'].iloc[worst]}"))
+        checks.append(
+            Check.at_most(
+                "gravity_repeat_difference",
+                repeats["range_mgal"].iloc[worst],
+                rep_tol,
+                "mGal",
+                rep_src,
+                detail=f"largest repeat range: station {repeats['station'].iloc[worst]}",
+            )
+        )
     else:
         warnings.append("no station was occupied twice: repeat check not made")
     closure = loop_table["residual_closure_mgal"].to_numpy(dtype=float)
     if np.isfinite(closure).any():
         worst = int(np.nanargmax(closure))
-        checks.append(Check.at_most("gravity_loop_closure", closure[worst], rep_tol, "mGal", rep_src,
-                                    detail=f"largest residual closure after drift: loop "
-                                    f"{loop_table['loop'].iloc[worst]}"))
+        checks.append(
+            Check.at_most(
+                "gravity_loop_closure",
+                closure[worst],
+                rep_tol,
+                "mGal",
+                rep_src,
+                detail=f"largest residual closure after drift: loop {loop_table['loop'].iloc[worst]}",
+            )
+        )
 
     metrics = {
         "method": cfg.method,
         "loops": int(len(loop_table)),
         "stations": int(len(st)),
         "bases": len(bases),
-        "max_abs_drift_rate_mgal_per_h": float(np.nanmax(np.abs(rates))) if np.isfinite(rates).any() else None,
+        "max_abs_drift_rate_mgal_per_h": float(np.nanmax(np.abs(rates)))
+        if np.isfinite(rates).any()
+        else None,
         "max_repeat_range_mgal": float(repeats["range_mgal"].max()) if len(repeats) else None,
         "sigma0": None if not np.isfinite(sigma0) else float(sigma0),
         "tide_range_mgal": float(np.ptp(table["tide"].to_numpy())) if n else 0.0,
@@ -477,10 +575,20 @@ def run(ctx: StageContext) -> StageOutput:
         tables["tares"] = net.tares
     if net is not None and len(net.segments) > len(loop_table):
         tables["segments"] = net.segments  # some loop is cut by a tare
-    notes.append(f"{cfg.method} drift over {len(loop_table)} loop(s), {len(st)} station(s), "
-                 f"tied to {len(bases)} base(s)")
-    return StageOutput(table=table, metrics=metrics, state=state, tables=tables, checks=checks,
-                       notes=notes, warnings=warnings, degraded=degraded)
+    notes.append(
+        f"{cfg.method} drift over {len(loop_table)} loop(s), {len(st)} station(s), "
+        f"tied to {len(bases)} base(s)"
+    )
+    return StageOutput(
+        table=table,
+        metrics=metrics,
+        state=state,
+        tables=tables,
+        checks=checks,
+        notes=notes,
+        warnings=warnings,
+        degraded=degraded,
+    )
 
 
 def _inputs(config, survey) -> list[Path]:
@@ -497,8 +605,15 @@ STAGE = Stage(
     inputs=_inputs,
     kinds=("gravity",),
     contract=Contract(
-        provides_columns=("reading_mgal", "instrument_height_correction", "tide", "drift",
-                          "loop_offset", "gravity", "drift_residual"),
+        provides_columns=(
+            "reading_mgal",
+            "instrument_height_correction",
+            "tide",
+            "drift",
+            "loop_offset",
+            "gravity",
+            "drift_residual",
+        ),
         optional_columns=("loop", "flag_instrument_height"),
         requires_state=("ingest",),
         provides_tables=("loops", "stations", "repeats", "tares", "segments"),

@@ -33,8 +33,11 @@ MIN_CV_DATA = 40
 def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
     column = value_column(table, ctx.config.kind, ctx.state)
     if column is None:
-        raise StageError("the readings table has no anomaly column to grid", key="grid",
-                         fix="run the reference (and level) stages before the grid stage")
+        raise StageError(
+            "the readings table has no anomaly column to grid",
+            key="grid",
+            fix="run the reference (and level) stages before the grid stage",
+        )
     return column
 
 
@@ -53,8 +56,12 @@ def _station_spacing(table: pd.DataFrame, ok: np.ndarray):
         return None
     from scipy.spatial import cKDTree
 
-    pts = np.unique(np.round(np.column_stack([table["easting"].to_numpy(float)[ok],
-                                              table["northing"].to_numpy(float)[ok]]), 1), axis=0)
+    pts = np.unique(
+        np.round(
+            np.column_stack([table["easting"].to_numpy(float)[ok], table["northing"].to_numpy(float)[ok]]), 1
+        ),
+        axis=0,
+    )
     if len(pts) < 2:
         return None
     dist, _ = cKDTree(pts).query(pts, k=2)
@@ -62,8 +69,7 @@ def _station_spacing(table: pd.DataFrame, ok: np.ndarray):
     return spacing if spacing > 0 else None
 
 
-def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing,
-               station_spacing=None):
+def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spacing, station_spacing=None):
     """Cell size (m) and how it was chosen."""
     cfg = ctx.config.grid
     if cfg.spacing_m > 0:
@@ -71,7 +77,8 @@ def _cell_size(ctx: StageContext, table: pd.DataFrame, ok: np.ndarray, line_spac
     if station_spacing:
         return STATION_CELL_FRACTION * station_spacing, (
             f"{STATION_CELL_FRACTION:g} x the median station spacing ({station_spacing:.0f} m, "
-            "nearest neighbour)")
+            "nearest neighbour)"
+        )
     if line_spacing:
         # Common practice: a quarter to a fifth of the line spacing.
         return float(line_spacing) / 4.0, "a quarter of the line spacing"
@@ -96,9 +103,11 @@ def _grid_height(ctx, heights):
         try:
             return float(value), "[grid] height"
         except ValueError:
-            raise ConfigError(f"grid height '{value}' is neither a number nor 'drape'",
-                              key="grid.height",
-                              fix="give a height in metres, 'drape', or remove the key") from None
+            raise ConfigError(
+                f"grid height '{value}' is neither a number nor 'drape'",
+                key="grid.height",
+                fix="give a height in metres, 'drape', or remove the key",
+            ) from None
     return float(value), "[grid] height"
 
 
@@ -111,8 +120,9 @@ def _drape_surface(e, n, h, grid_e, grid_n):
     return h[idx].reshape(idx.shape[0], -1).mean(axis=1).reshape(grid_e.shape)
 
 
-def _grid(model, region, spacing, height, data_e, data_n, data_h, mask_distance, name, units,
-          long_name, history):
+def _grid(
+    model, region, spacing, height, data_e, data_n, data_h, mask_distance, name, units, long_name, history
+):
     import verde as vd
 
     grid_e, grid_n = vd.grid_coordinates(region, spacing=spacing, adjust="region")
@@ -124,8 +134,9 @@ def _grid(model, region, spacing, height, data_e, data_n, data_h, mask_distance,
     values = np.full(grid_e.shape, np.nan)
     if keep.any():
         values[keep] = model.predict((grid_e[keep], grid_n[keep], upward[keep]))
-    grid = make_grid(grid_e[0], grid_n[:, 0], values, name=name, units=units, long_name=long_name,
-                     history=history)
+    grid = make_grid(
+        grid_e[0], grid_n[:, 0], values, name=name, units=units, long_name=long_name, history=history
+    )
     if height == "drape":
         grid = grid.assign_coords(upward=(("northing", "easting"), upward))
     else:
@@ -151,8 +162,11 @@ def _cv_window(e, n, h, d, limit: int = MAX_CV_BLOCKS):
 def _fit_options(cfg, height, depth):
     """Keywords of the final fit: the layer type, the solver's stop and, under a grid of
     constant height, the layer's ceiling (:func:`potfield.fields.harmonic.eqsources.layer_ceiling`)."""
-    return {"depth_type": EQS_DEPTH_TYPE[cfg.source_layer], "tol": float(cfg.tolerance),
-            "ceiling": eqs.layer_ceiling(height, depth)}
+    return {
+        "depth_type": EQS_DEPTH_TYPE[cfg.source_layer],
+        "tol": float(cfg.tolerance),
+        "ceiling": eqs.layer_ceiling(height, depth),
+    }
 
 
 def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
@@ -160,10 +174,17 @@ def _fit(e, n, h, d, cfg, block, line_spacing, progress, height):
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height)
     progress(f"fitting sources (depth {best['depth']:.0f} m, damping {best['damping']:g})")
-    model = eqs.fit_equivalent_sources(be, bn, bh, bd, depth=best["depth"],
-                                       damping=best["damping"], block_size=block,
-                                       method=cfg.method,
-                                       **_fit_options(cfg, height, best["depth"]))
+    model = eqs.fit_equivalent_sources(
+        be,
+        bn,
+        bh,
+        bd,
+        depth=best["depth"],
+        damping=best["damping"],
+        block_size=block,
+        method=cfg.method,
+        **_fit_options(cfg, height, best["depth"]),
+    )
     return model, scores, best, bd.size
 
 
@@ -197,20 +218,33 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
     extent = max(be.max() - be.min(), bn.max() - bn.min(), block)
     if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
         cv_spacing = _cv_spacing(block, depths, line_spacing, extent)
-        progress(f"cross-validating {len(depths)} depths x {len(dampings)} dampings "
-                 f"on {bd.size} blocks")
+        progress(f"cross-validating {len(depths)} depths x {len(dampings)} dampings on {bd.size} blocks")
         ce, cn, ch, cd = _cv_window(be, bn, bh, bd)
         if cd.size < bd.size:
             progress(f"cross-validating on a central window of {cd.size} of {bd.size} blocks")
-        scores, best = eqs.cross_validate(ce, cn, ch, cd, depths=depths, dampings=dampings,
-                                          block_size=block, method=cfg.method,
-                                          folds=cfg.cv_folds, cv_spacing=cv_spacing,
-                                          tol=CV_TOL, depth_type=EQS_DEPTH_TYPE[cfg.source_layer],
-                                          grid_height=height)
+        scores, best = eqs.cross_validate(
+            ce,
+            cn,
+            ch,
+            cd,
+            depths=depths,
+            dampings=dampings,
+            block_size=block,
+            method=cfg.method,
+            folds=cfg.cv_folds,
+            cv_spacing=cv_spacing,
+            tol=CV_TOL,
+            depth_type=EQS_DEPTH_TYPE[cfg.source_layer],
+            grid_height=height,
+        )
     else:
         scores = pd.DataFrame(columns=["depth", "damping", "r2", "r2_se", "rms", "chosen"])
-        best = {"depth": depths[len(depths) // 2], "damping": dampings[len(dampings) // 2],
-                "r2": float("nan"), "rms": float("nan")}
+        best = {
+            "depth": depths[len(depths) // 2],
+            "damping": dampings[len(dampings) // 2],
+            "r2": float("nan"),
+            "rms": float("nan"),
+        }
     return scores, best
 
 
@@ -223,38 +257,51 @@ def run(ctx: StageContext) -> StageOutput:
     column = _value_column(ctx, table)
     for name in ("easting", "northing", "height"):
         if name not in table.columns:
-            raise StageError(f"the readings table has no '{name}' column", key="grid",
-                             fix="run the ingest stage first")
+            raise StageError(
+                f"the readings table has no '{name}' column", key="grid", fix="run the ingest stage first"
+            )
     values = table[column].to_numpy(float)
     e_all = table["easting"].to_numpy(float)
     n_all = table["northing"].to_numpy(float)
     h_all = table["height"].to_numpy(float)
-    ok = usable(table) & np.isfinite(values) & np.isfinite(e_all) & np.isfinite(n_all) \
-        & np.isfinite(h_all)
+    ok = usable(table) & np.isfinite(values) & np.isfinite(e_all) & np.isfinite(n_all) & np.isfinite(h_all)
     if ok.sum() < 10:
-        raise StageError(f"only {int(ok.sum())} usable readings of '{column}' to grid",
-                         key="grid", fix="check the flags of the clean stage or add data")
+        raise StageError(
+            f"only {int(ok.sum())} usable readings of '{column}' to grid",
+            key="grid",
+            fix="check the flags of the clean stage or add data",
+        )
     ingest = ctx.state.get("ingest", {})
     line_spacing = ingest.get("line_spacing_m")
     line_spacing = float(line_spacing) if line_spacing and math.isfinite(line_spacing) else None
     station_spacing = _station_spacing(table, ok)
-    if station_spacing and (ctx.config.kind == "gravity" or not line_spacing
-                            or line_spacing < station_spacing):
+    if station_spacing and (
+        ctx.config.kind == "gravity" or not line_spacing or line_spacing < station_spacing
+    ):
         line_spacing = None  # scattered stations have no lines (ingest's value is spurious)
     else:  # stations pegged along real lines (line spacing above the station spacing)
         station_spacing = None
     spacing, spacing_why = _cell_size(ctx, table, ok, line_spacing, station_spacing)
     if not (spacing > 0 and math.isfinite(spacing)):
-        raise StageError("cannot derive a cell size from the data", key="grid.spacing_m",
-                         fix="set [grid] spacing_m to the cell size in metres")
+        raise StageError(
+            "cannot derive a cell size from the data",
+            key="grid.spacing_m",
+            fix="set [grid] spacing_m to the cell size in metres",
+        )
     block = float(cfg.block_m) if cfg.block_m > 0 else spacing
     e, n, h, d = e_all[ok], n_all[ok], h_all[ok], values[ok]
     height, height_why = _grid_height(ctx, h)
     if height != "drape" and height <= np.median(h) - 2.0 * min(cfg.trial_depths) * block:
-        raise ConfigError(f"grid height {height} m is below the equivalent sources",
-                          key="grid.height", fix="grid at or above the readings' heights")
-    mask_distance = cfg.mask_distance_m if cfg.mask_distance_m > 0 else \
-        2.0 * (line_spacing if line_spacing else (station_spacing or 4.0 * spacing))
+        raise ConfigError(
+            f"grid height {height} m is below the equivalent sources",
+            key="grid.height",
+            fix="grid at or above the readings' heights",
+        )
+    mask_distance = (
+        cfg.mask_distance_m
+        if cfg.mask_distance_m > 0
+        else 2.0 * (line_spacing if line_spacing else (station_spacing or 4.0 * spacing))
+    )
     gravity = column == "bouguer_anomaly" or ctx.config.kind == "gravity"
     name = ANOMALY_COLUMN["gravity" if gravity else "magnetic"]  # the main grid
     units = "mGal" if gravity else "nT"
@@ -263,35 +310,57 @@ def run(ctx: StageContext) -> StageOutput:
     region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
 
     if cfg.tiled:
-        return _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why,
-                          height, height_why, region, mask_distance, name, units, long_name,
-                          line_spacing)
+        return _run_tiled(
+            ctx,
+            table,
+            column,
+            values,
+            ok,
+            e,
+            n,
+            h,
+            d,
+            block,
+            spacing,
+            spacing_why,
+            height,
+            height_why,
+            region,
+            mask_distance,
+            name,
+            units,
+            long_name,
+            line_spacing,
+        )
     out = StageOutput()
-    model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress,
-                                         height)
-    history = (f"equivalent sources ({model.method}, source layer {cfg.source_layer}) of '{column}': "
-               f"depth {best['depth']:.1f} m, damping {best['damping']:g}, blocks {block:g} m")
-    grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name,
-                 history)
+    model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress, height)
+    history = (
+        f"equivalent sources ({model.method}, source layer {cfg.source_layer}) of '{column}': "
+        f"depth {best['depth']:.1f} m, damping {best['damping']:g}, blocks {block:g} m"
+    )
+    grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name, history)
 
     result = table.copy()
     micro_note = None
     if ctx.config.level.micro_levelling:
         if not line_spacing:
             micro_note = "micro-levelling skipped: no line spacing"
-            out.degraded.append("micro-levelling asked for ([level] micro_levelling) but the "
-                                "survey has no line spacing: not applied")
+            out.degraded.append(
+                "micro-levelling asked for ([level] micro_levelling) but the "
+                "survey has no line spacing: not applied"
+            )
         else:
-            correction = np.asarray(micro_level_table(table, grid, line_spacing, ctx.config.level),
-                                    dtype=float)
+            correction = np.asarray(
+                micro_level_table(table, grid, line_spacing, ctx.config.level), dtype=float
+            )
             result["micro_level_correction"] = correction
             result[f"{column}_micro"] = values + correction
             d = (values + correction)[ok]
-            model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing,
-                                                 ctx.progress, height)
+            model, scores, best, n_blocks = _fit(e, n, h, d, cfg, block, line_spacing, ctx.progress, height)
             history += "; micro-levelled (Minty 1991) and gridded again"
-            grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units,
-                         long_name, history)
+            grid = _grid(
+                model, region, spacing, height, e, n, h, mask_distance, name, units, long_name, history
+            )
             values = values + correction
             column = f"{column}_micro"
             micro_note = "micro-levelled (Minty 1991) and gridded again"
@@ -300,8 +369,7 @@ def run(ctx: StageContext) -> StageOutput:
 
     finite_pos = np.isfinite(e_all) & np.isfinite(n_all) & np.isfinite(h_all)
     predicted = np.full(len(table), np.nan)
-    predicted[finite_pos] = model.predict((e_all[finite_pos], n_all[finite_pos],
-                                           h_all[finite_pos]))
+    predicted[finite_pos] = model.predict((e_all[finite_pos], n_all[finite_pos], h_all[finite_pos]))
     result["grid_residual"] = values - predicted
     resid_rms = float(np.sqrt(np.nanmean(result["grid_residual"].to_numpy(float)[ok] ** 2)))
     flagged_rms = _flagged_rms(table, result["grid_residual"].to_numpy(float))
@@ -345,10 +413,12 @@ def run(ctx: StageContext) -> StageOutput:
     if model.info.get("iterations") is not None:
         out.metrics["grid_solver_iterations"] = int(model.info["iterations"])
     _residual_check(ctx, out, resid_rms, units)
-    out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
-                     f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
-                     f"({height_why}), {model.method} equivalent sources, held-out "
-                     f"score {best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}")
+    out.notes.append(
+        f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
+        f"{height if height == 'drape' else format(height, '.1f') + ' m'} "
+        f"({height_why}), {model.method} equivalent sources, held-out "
+        f"score {best['r2']:.4f}, residual RMS {resid_rms:.3g} {units}"
+    )
     return out
 
 
@@ -358,8 +428,16 @@ def _residual_check(ctx: StageContext, out: StageOutput, rms: float, units: str)
     key = f"grid_residual_rms_{units}"
     if key in ctx.spec:
         tol, source = ctx.tolerance(key, 1.0)
-        out.checks.append(Check.at_most("grid residual RMS", rms, tol, units, source,
-                                        detail="reading minus the gridding model at each usable reading"))
+        out.checks.append(
+            Check.at_most(
+                "grid residual RMS",
+                rms,
+                tol,
+                units,
+                source,
+                detail="reading minus the gridding model at each usable reading",
+            )
+        )
 
 
 #: Target number of blocks per tile when [grid] tile_size_m is 0 (a window this size fits in
@@ -367,9 +445,28 @@ def _residual_check(ctx: StageContext, out: StageOutput, rms: float, units: str)
 TILE_BLOCKS = 40_000
 
 
-def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spacing_why, height,
-               height_why, region, mask_distance, name, units, long_name,
-               line_spacing) -> StageOutput:
+def _run_tiled(
+    ctx,
+    table,
+    column,
+    values,
+    ok,
+    e,
+    n,
+    h,
+    d,
+    block,
+    spacing,
+    spacing_why,
+    height,
+    height_why,
+    region,
+    mask_distance,
+    name,
+    units,
+    long_name,
+    line_spacing,
+) -> StageOutput:
     """Tiled gridding (potfield.fields.harmonic.tiles): the depth and damping come from the CV search on
     a central window, every tile is fitted on its own as a Dask task and the tiles are blended;
     the blended model is also evaluated at every reading for the grid residual. There is no
@@ -380,30 +477,56 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
 
     cfg = ctx.config.grid
     if height == "drape":
-        raise ConfigError("tiled gridding needs a constant grid height", key="grid.height",
-                          fix="set [grid] height to a number (m) or set tiled = false")
+        raise ConfigError(
+            "tiled gridding needs a constant grid height",
+            key="grid.height",
+            fix="set [grid] height to a number (m) or set tiled = false",
+        )
     (be, bn, bh), bd = eqs.block_median(e, n, h, d, block)
     scores, best = _search(be, bn, bh, bd, cfg, block, line_spacing, ctx.progress, height)
     area = max((region[1] - region[0]) * (region[3] - region[2]), block**2)
-    tile = cfg.tile_size_m if cfg.tile_size_m > 0 else max(
-        20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
+    tile = (
+        cfg.tile_size_m
+        if cfg.tile_size_m > 0
+        else max(20.0 * best["depth"], math.sqrt(area * TILE_BLOCKS / max(bd.size, 1)))
+    )
     ctx.progress(f"tiled fit, tiles of {tile:.0f} m")
     # the same nodes as the whole-survey grid (verde adjust="region")
     ge, gn = vd.grid_coordinates(region, spacing=spacing, adjust="region")
     nodes = (float(ge.min()), float(ge.max()), float(gn.min()), float(gn.max()))
     e_all, n_all, h_all = (table[c].to_numpy(float) for c in ("easting", "northing", "height"))
-    result = fit_tiled(be, bn, bh, bd, region=nodes, spacing=spacing, height=float(height),
-                       tile_size=tile, depth=best["depth"], damping=best["damping"],
-                       block_size=block, method=cfg.method, name=name, units=units,
-                       long_name=long_name, at=(e_all, n_all, h_all),
-                       fit_options=_fit_options(cfg, height, best["depth"]))
+    result = fit_tiled(
+        be,
+        bn,
+        bh,
+        bd,
+        region=nodes,
+        spacing=spacing,
+        height=float(height),
+        tile_size=tile,
+        depth=best["depth"],
+        damping=best["damping"],
+        block_size=block,
+        method=cfg.method,
+        name=name,
+        units=units,
+        long_name=long_name,
+        at=(e_all, n_all, h_all),
+        fit_options=_fit_options(cfg, height, best["depth"]),
+    )
     grid = result.grid
     ge, gn = np.meshgrid(grid.easting.values, grid.northing.values)
     keep = vd.distance_mask((e, n), maxdist=mask_distance, coordinates=(ge, gn))
     grid = grid.where(keep)
-    grid.attrs.update({"units": units, "long_name": long_name, "height": float(height),
-                       "history": f"tiled equivalent sources of '{column}': tiles {tile:.0f} m, "
-                                  f"depth {best['depth']:.1f} m, damping {best['damping']:g}"})
+    grid.attrs.update(
+        {
+            "units": units,
+            "long_name": long_name,
+            "height": float(height),
+            "history": f"tiled equivalent sources of '{column}': tiles {tile:.0f} m, "
+            f"depth {best['depth']:.1f} m, damping {best['damping']:g}",
+        }
+    )
     out = StageOutput(table=table.copy())
     out.table["grid_residual"] = values - result.predicted
     resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
@@ -411,21 +534,43 @@ def _run_tiled(ctx, table, column, values, ok, e, n, h, d, block, spacing, spaci
     out.grids[name] = grid
     out.tables["grid_cv"] = scores.rename(columns=CV_COLUMNS)
     out.tables["grid_tiles"] = result.tiles
-    out.state = {"column": column, "value_column": column, "grid": name, "method": "tiled", "depth": float(best["depth"]),
-                 "damping": float(best["damping"]), "block_m": block, "spacing_m": spacing,
-                 "height": float(height), "drape": False, "region": list(region),
-                 "mask_distance_m": float(mask_distance), "model_path": None, "units": units,
-                 "tile_size_m": float(tile)}
-    out.metrics = {"grid_method": "tiled", "grid_tiles": int(len(result.tiles)),
-                   "grid_tile_size_m": float(tile), "grid_cells": int(grid.size),
-                   "grid_blocks": int(bd.size), "grid_spacing_m": spacing,
-                   "grid_depth_m": float(best["depth"]), "grid_damping": float(best["damping"]),
-                   "grid_heldout_score": float(best["r2"]), "grid_cv_rms": float(best["rms"]),
-                   "grid_residual_rms": resid_rms, **flagged_rms}
+    out.state = {
+        "column": column,
+        "value_column": column,
+        "grid": name,
+        "method": "tiled",
+        "depth": float(best["depth"]),
+        "damping": float(best["damping"]),
+        "block_m": block,
+        "spacing_m": spacing,
+        "height": float(height),
+        "drape": False,
+        "region": list(region),
+        "mask_distance_m": float(mask_distance),
+        "model_path": None,
+        "units": units,
+        "tile_size_m": float(tile),
+    }
+    out.metrics = {
+        "grid_method": "tiled",
+        "grid_tiles": int(len(result.tiles)),
+        "grid_tile_size_m": float(tile),
+        "grid_cells": int(grid.size),
+        "grid_blocks": int(bd.size),
+        "grid_spacing_m": spacing,
+        "grid_depth_m": float(best["depth"]),
+        "grid_damping": float(best["damping"]),
+        "grid_heldout_score": float(best["r2"]),
+        "grid_cv_rms": float(best["rms"]),
+        "grid_residual_rms": resid_rms,
+        **flagged_rms,
+    }
     _residual_check(ctx, out, resid_rms, units)
-    out.notes.append(f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
-                     f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
-                     f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}")
+    out.notes.append(
+        f"grid: '{column}' on {spacing:g} m cells ({spacing_why}), height "
+        f"{float(height):.1f} m ({height_why}), {len(result.tiles)} tiles of "
+        f"{tile:.0f} m blended, residual RMS {resid_rms:.3g} {units}"
+    )
     return out
 
 
@@ -434,12 +579,17 @@ def _flagged_rms(table, residual) -> dict:
     ``grid_residual`` over readings with any flag and over the spike-flagged ones, so a reviewer
     sees whether the flags removed noise (large misfit) or signal the grid now misses."""
     flagged = ~usable(table) & np.isfinite(residual)
-    out = {"grid_residual_rms_flagged": float(np.sqrt(np.mean(residual[flagged] ** 2)))
-           if flagged.any() else float("nan"), "grid_readings_flagged": int(flagged.sum())}
+    out = {
+        "grid_residual_rms_flagged": float(np.sqrt(np.mean(residual[flagged] ** 2)))
+        if flagged.any()
+        else float("nan"),
+        "grid_readings_flagged": int(flagged.sum()),
+    }
     if "flag_spike" in table:
         spike = table["flag_spike"].to_numpy(bool) & np.isfinite(residual)
-        out["grid_residual_rms_spikes"] = (float(np.sqrt(np.mean(residual[spike] ** 2)))
-                                           if spike.any() else float("nan"))
+        out["grid_residual_rms_spikes"] = (
+            float(np.sqrt(np.mean(residual[spike] ** 2))) if spike.any() else float("nan")
+        )
     return out
 
 

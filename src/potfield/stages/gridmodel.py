@@ -49,8 +49,7 @@ def grid_height(ctx: StageContext, grid):
     return None
 
 
-def load_grid_model(ctx: StageContext, out: StageOutput, *, missing: str,
-                    absent: str | None = None):
+def load_grid_model(ctx: StageContext, out: StageOutput, *, missing: str, absent: str | None = None):
     """The grid stage's equivalent-source model (``ctx.state["grid"]["model_path"]``), or None.
 
     Parameters

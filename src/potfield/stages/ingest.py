@@ -17,13 +17,25 @@ import pyproj
 
 from ..config import SurveyConfig, unit_factor
 from ..errors import ConfigError, CRSError, InputDataError, format_rows
-from ..io.delimited import (KEEP_PREFIX, TEXT_COLUMNS, convert_units, parse_time, read_delimited,
-                            to_numeric)
+from ..io.delimited import KEEP_PREFIX, TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
-NUMERIC_COLUMNS = ("longitude", "latitude", "easting", "northing", "height", "total_field",
-                   "mag_north", "mag_east", "mag_down", "reading", "instrument_height", "elevation",
-                   "reading_sd", "meter_tide")
+NUMERIC_COLUMNS = (
+    "longitude",
+    "latitude",
+    "easting",
+    "northing",
+    "height",
+    "total_field",
+    "mag_north",
+    "mag_east",
+    "mag_down",
+    "reading",
+    "instrument_height",
+    "elevation",
+    "reading_sd",
+    "meter_tide",
+)
 
 
 def parse_crs(text: str, key: str) -> pyproj.CRS:
@@ -31,8 +43,11 @@ def parse_crs(text: str, key: str) -> pyproj.CRS:
     try:
         return pyproj.CRS.from_user_input(text)
     except pyproj.exceptions.CRSError:
-        raise CRSError(f"unknown coordinate reference system '{text}'", key=key,
-                       fix='use an EPSG code such as "EPSG:4326" or "EPSG:32755", or a PROJ string') from None
+        raise CRSError(
+            f"unknown coordinate reference system '{text}'",
+            key=key,
+            fix='use an EPSG code such as "EPSG:4326" or "EPSG:32755", or a PROJ string',
+        ) from None
 
 
 def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs: pyproj.CRS) -> pyproj.CRS:
@@ -49,8 +64,7 @@ def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs
     from pyproj.aoi import AreaOfInterest
     from pyproj.database import query_utm_crs_info
 
-    infos = query_utm_crs_info(datum_name="WGS 84",
-                               area_of_interest=AreaOfInterest(lon0, lat0, lon0, lat0))
+    infos = query_utm_crs_info(datum_name="WGS 84", area_of_interest=AreaOfInterest(lon0, lat0, lon0, lat0))
     zone = 32600 + int((lon0 + 180) // 6) % 60 + 1 if lat0 >= 0 else 32700 + int((lon0 + 180) // 6) % 60 + 1
     code = f"EPSG:{zone}"
     for info in infos:  # prefer the database's answer (it knows Norway/Svalbard exceptions)
@@ -63,13 +77,19 @@ def output_crs(config: SurveyConfig, lon: np.ndarray, lat: np.ndarray, input_crs
 def _require_metric(crs: pyproj.CRS, text: str, key: str) -> None:
     """Gridding, distances and derivatives need a projected CRS in metres."""
     if not crs.is_projected:
-        raise CRSError(f"output CRS '{text}' is {'geographic' if crs.is_geographic else 'not projected'}"
-                       " (degrees); processing needs a projected CRS in metres", key=key,
-                       fix='set survey.output_crs = "auto" (UTM zone) or a projected EPSG code such as "EPSG:32755"')
+        raise CRSError(
+            f"output CRS '{text}' is {'geographic' if crs.is_geographic else 'not projected'}"
+            " (degrees); processing needs a projected CRS in metres",
+            key=key,
+            fix='set survey.output_crs = "auto" (UTM zone) or a projected EPSG code such as "EPSG:32755"',
+        )
     units = {(axis.unit_name or "").lower() for axis in crs.axis_info[:2]}
     if not units <= {"metre", "meter", "m"}:
-        raise CRSError(f"CRS '{text}' has axes in {', '.join(sorted(units))}, not metres", key=key,
-                       fix='set survey.output_crs = "auto" (UTM zone) or a projected CRS in metres')
+        raise CRSError(
+            f"CRS '{text}' has axes in {', '.join(sorted(units))}, not metres",
+            key=key,
+            fix='set survey.output_crs = "auto" (UTM zone) or a projected CRS in metres',
+        )
 
 
 #: Measured-value columns per survey kind: at least one must be mapped (and hold values).
@@ -88,12 +108,14 @@ def check_value_columns(config: SurveyConfig) -> None:
     mapped = config.input.columns
     if any(name in mapped for name in wanted):
         return
-    others = [name for kind, names in KIND_VALUES.items() if kind != config.kind
-              for name in names if name in mapped]
-    hint = (f"; '{others[0]}' is a value of another survey kind (check survey.kind)" if others else "")
+    others = [
+        name for kind, names in KIND_VALUES.items() if kind != config.kind for name in names if name in mapped
+    ]
+    hint = f"; '{others[0]}' is a value of another survey kind (check survey.kind)" if others else ""
     raise ConfigError(
         f"a {config.kind} survey needs its measured value: no input column is mapped to "
-        f"{' or '.join(wanted)}{hint}", key=f"input.columns.{wanted[0]}",
+        f"{' or '.join(wanted)}{hint}",
+        key=f"input.columns.{wanted[0]}",
         fix=f'add {wanted[0]} = "<your column>" under [input.columns], or correct survey.kind',
     )
 
@@ -121,7 +143,8 @@ def check_readings(table: pd.DataFrame, config: SurveyConfig) -> None:
             first = int(np.argmax(blank))
             raise InputDataError(
                 f"line name is blank at line {format_rows(table['source_row'].to_numpy()[blank])}",
-                file=table["source_file"].iat[first], key="input.columns.line",
+                file=table["source_file"].iat[first],
+                key="input.columns.line",
                 fix="fill in the line names, or remove the line mapping to split lines by time gaps",
             )
 
@@ -135,8 +158,11 @@ def _tie_mask(lines: pd.Series, config: SurveyConfig) -> np.ndarray:
         try:
             pattern = re.compile(spec.tie_pattern)
         except re.error as err:
-            raise InputDataError(f"tie_pattern is not a valid regular expression ({err})",
-                                 key="lines.tie_pattern", fix="correct the pattern") from None
+            raise InputDataError(
+                f"tie_pattern is not a valid regular expression ({err})",
+                key="lines.tie_pattern",
+                fix="correct the pattern",
+            ) from None
         mask |= lines.str.contains(pattern).fillna(False).to_numpy(dtype=bool)
     if spec.tie_min is not None:
         numbers = pd.to_numeric(lines, errors="coerce").to_numpy(dtype=float)
@@ -174,15 +200,21 @@ def read_readings(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
         if input_format(config, path) == "aseg-gdf2":
             from ..io.gdf2 import read_gdf2
 
-            frame, declared = read_gdf2(path, columns={**columns, **keep},
-                                        missing_values=config.input.missing_values, units=units)
+            frame, declared = read_gdf2(
+                path, columns={**columns, **keep}, missing_values=config.input.missing_values, units=units
+            )
             units = {**declared, **units}
         else:
-            frame = read_delimited(path, columns={**columns, **keep}, delimiter=config.input.delimiter,
-                                   skip_rows=config.input.skip_rows,
-                                   missing_values=config.input.missing_values,
-                                   encoding=config.input.encoding,
-                                   comment=config.input.comment, decimal=config.input.decimal)
+            frame = read_delimited(
+                path,
+                columns={**columns, **keep},
+                delimiter=config.input.delimiter,
+                skip_rows=config.input.skip_rows,
+                missing_values=config.input.missing_values,
+                encoding=config.input.encoding,
+                comment=config.input.comment,
+                decimal=config.input.decimal,
+            )
         warnings += frame.attrs.get("warnings", [])
         if "time" in columns:
             out = pd.DataFrame({"time": parse_time(frame, config.input.time, path, names=columns)})
@@ -215,15 +247,24 @@ def read_observatory(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
     iaga = [p for p in files if config.input.format == "auto" and looks_like_iaga2002(p)]
     frames = [observatory_table(iaga, geoid_undulation=config.survey.geoid_undulation)] if iaga else []
     for path in (p for p in files if p not in iaga):
-        spec = next((s for s in config.input.stations
-                     if fnmatch.fnmatch(path.name, Path(s.file).name)
-                     or fnmatch.fnmatch(str(path), str(Path(s.file)))
-                     or str(path).endswith(s.file)), None)
+        spec = next(
+            (
+                s
+                for s in config.input.stations
+                if fnmatch.fnmatch(path.name, Path(s.file).name)
+                or fnmatch.fnmatch(str(path), str(Path(s.file)))
+                or str(path).endswith(s.file)
+            ),
+            None,
+        )
         if spec is None:
-            raise InputDataError("not an IAGA-2002 file and no [[input.stations]] entry names it",
-                                 file=path, key="input.stations",
-                                 fix='add [[input.stations]] with file, station, longitude, latitude '
-                                     '(and map time, mag_north, mag_east, mag_down, total_field)')
+            raise InputDataError(
+                "not an IAGA-2002 file and no [[input.stations]] entry names it",
+                file=path,
+                key="input.stations",
+                fix="add [[input.stations]] with file, station, longitude, latitude "
+                "(and map time, mag_north, mag_east, mag_down, total_field)",
+            )
         table = read_readings(config, [path])
         n = len(table)
         for name in ("mag_north", "mag_east", "mag_down", "total_field"):
@@ -237,8 +278,9 @@ def read_observatory(config: SurveyConfig, files: list[Path]) -> pd.DataFrame:
         table["height"] = np.full(n, float(spec.elevation) + config.survey.geoid_undulation)
         frames.append(table)
     if not frames:
-        raise InputDataError("no station files given", key="input.files",
-                             fix="list the station files in [input] files")
+        raise InputDataError(
+            "no station files given", key="input.files", fix="list the station files in [input] files"
+        )
     table = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
     return table.sort_values(["line", "time"], kind="mergesort").reset_index(drop=True)
 
@@ -251,7 +293,8 @@ def _check_range(table: pd.DataFrame, name: str, low: float, high: float, fix: s
         rows = table["source_row"].to_numpy()[bad]
         raise InputDataError(
             f"{name} {values[first]:g} outside {low:g}..{high:g} at line {format_rows(rows)}",
-            file=table["source_file"].iat[first], fix=fix,
+            file=table["source_file"].iat[first],
+            fix=fix,
         )
 
 
@@ -263,7 +306,8 @@ def _check_missing(table: pd.DataFrame, names) -> None:
             first = int(np.argmax(bad))
             raise InputDataError(
                 f"{name} is missing at line {format_rows(table['source_row'].to_numpy()[bad])}",
-                file=table["source_file"].iat[first], key=f"input.columns.{name}",
+                file=table["source_file"].iat[first],
+                key=f"input.columns.{name}",
                 fix="fill in the coordinates or remove those rows",
             )
 
@@ -277,9 +321,15 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
                 raise InputDataError(
                     f"input CRS {config.survey.crs} is geographic but no column is mapped to {name}",
                     key=f"input.columns.{name}",
-                    fix=f'map {name} under [input.columns], or set survey.crs to the projected CRS of easting/northing',
+                    fix=f"map {name} under [input.columns], or set survey.crs to the projected CRS of easting/northing",
                 )
-        _check_range(table, "latitude", -90, 90, "check the latitude column and that longitude/latitude are not swapped")
+        _check_range(
+            table,
+            "latitude",
+            -90,
+            90,
+            "check the latitude column and that longitude/latitude are not swapped",
+        )
         _check_range(table, "longitude", -180, 360, "check the longitude column (degrees, -180..360)")
         _check_missing(table, ("longitude", "latitude"))
         lon, lat = table["longitude"].to_numpy(), table["latitude"].to_numpy()
@@ -294,7 +344,8 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
             if name not in table:
                 raise InputDataError(
                     f"input CRS {config.survey.crs} is projected but no column is mapped to {name}",
-                    key=f"input.columns.{name}", fix=f"map {name} under [input.columns]",
+                    key=f"input.columns.{name}",
+                    fix=f"map {name} under [input.columns]",
                 )
         _check_missing(table, ("easting", "northing"))
         inv = pyproj.Transformer.from_crs(in_crs, "EPSG:4326", always_xy=True)
@@ -311,18 +362,24 @@ def georeference(table: pd.DataFrame, config: SurveyConfig) -> tuple[pd.DataFram
     table["northing"] = np.asarray(northing, dtype=float)
     bad = ~np.isfinite(table["easting"].to_numpy()) & np.isfinite(table["longitude"].to_numpy())
     if bad.any():
-        raise CRSError(f"coordinates cannot be projected to {out_crs.name} at line "
-                       f"{format_rows(table['source_row'].to_numpy()[bad])}",
-                       file=table["source_file"].iat[int(np.argmax(bad))], key="survey.output_crs",
-                       fix="check the coordinates and the CRS")
+        raise CRSError(
+            f"coordinates cannot be projected to {out_crs.name} at line "
+            f"{format_rows(table['source_row'].to_numpy()[bad])}",
+            file=table["source_file"].iat[int(np.argmax(bad))],
+            key="survey.output_crs",
+            fix="check the coordinates and the CRS",
+        )
     return table, out_crs
 
 
 def assign_lines(table: pd.DataFrame, config: SurveyConfig) -> pd.DataFrame:
     """Give every reading a line name and a line type (traverse/tie)."""
     if "line" not in table:
-        if "time" not in table and "loop" not in table and not (
-                config.kind == "observatory" and "station" in table):
+        if (
+            "time" not in table
+            and "loop" not in table
+            and not (config.kind == "observatory" and "station" in table)
+        ):
             # no time to split lines by: one line per input file
             table["line"] = pd.factorize(table["source_file"])[0].astype(str)
             table["line"] = np.char.add("L", (table["line"].astype(int) + 1).astype(str)).astype(object)
@@ -333,8 +390,11 @@ def assign_lines(table: pd.DataFrame, config: SurveyConfig) -> pd.DataFrame:
         elif config.kind == "gravity":
             # One line per local solar day (UTC + mean longitude / 15 h): a field day is not cut
             # at UTC midnight far from Greenwich.
-            shift = np.timedelta64(int(np.nanmean(table["longitude"]) / 15.0 * 3600), "s") \
-                if "longitude" in table else np.timedelta64(0, "s")
+            shift = (
+                np.timedelta64(int(np.nanmean(table["longitude"]) / 15.0 * 3600), "s")
+                if "longitude" in table
+                else np.timedelta64(0, "s")
+            )
             local = pd.Series(table["time"].to_numpy() + shift)
             table["line"] = local.dt.strftime("%Y-%m-%d").to_numpy()
         else:
@@ -342,7 +402,8 @@ def assign_lines(table: pd.DataFrame, config: SurveyConfig) -> pd.DataFrame:
             t = table["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
             new = np.ones(len(table), dtype=bool)
             new[1:] = (np.diff(t) > config.lines.split_gap_s) | (
-                table["source_file"].to_numpy()[1:] != table["source_file"].to_numpy()[:-1])
+                table["source_file"].to_numpy()[1:] != table["source_file"].to_numpy()[:-1]
+            )
             table["line"] = np.char.add("L", np.cumsum(new).astype(str)).astype(object)
     table["line"] = table["line"].astype(str)
     if "line_type" in table:
@@ -374,14 +435,25 @@ def line_geometry(table: pd.DataFrame) -> dict:
     0-180 deg); the spacing is the median gap between sorted perpendicular offsets of the line
     centroids (common practice).
     """
-    result = {"line_direction_deg": None, "line_spacing_m": None, "tie_spacing_m": None,
-              "line_spacing_max_deviation": None}
+    result = {
+        "line_direction_deg": None,
+        "line_spacing_m": None,
+        "tie_spacing_m": None,
+        "line_spacing_max_deviation": None,
+    }
     if len(table) < 2:
         return result
     grouped = table.groupby("line", sort=False)
-    ends = grouped.agg(e0=("easting", "first"), n0=("northing", "first"), e1=("easting", "last"),
-                       n1=("northing", "last"), ec=("easting", "mean"), nc=("northing", "mean"),
-                       kind=("line_type", "first"), count=("easting", "size"))
+    ends = grouped.agg(
+        e0=("easting", "first"),
+        n0=("northing", "first"),
+        e1=("easting", "last"),
+        n1=("northing", "last"),
+        ec=("easting", "mean"),
+        nc=("northing", "mean"),
+        kind=("line_type", "first"),
+        count=("easting", "size"),
+    )
     length = np.hypot(ends.e1 - ends.e0, ends.n1 - ends.n0)
     trav = ends[(ends.kind == "traverse") & (length > 0)]
     if len(trav) >= 2:
@@ -404,7 +476,8 @@ def line_geometry(table: pd.DataFrame) -> dict:
                     result[key] = float(np.median(gaps))
                     if kind == "traverse":
                         result["line_spacing_max_deviation"] = float(
-                            np.max(np.abs(gaps - result[key])) / result[key])
+                            np.max(np.abs(gaps - result[key])) / result[key]
+                        )
     if result["line_spacing_m"] is None:
         # Station surveys: median nearest-neighbour distance between distinct positions.
         from ..fields._numerics import median_spacing
@@ -441,10 +514,24 @@ def run(ctx: StageContext) -> StageOutput:
         table, out_crs = georeference(table, config)
     table = assign_lines(table, config)
     table = _sort(table)
-    table["distance"] = along_line_distance(table["easting"], table["northing"],
-                                            pd.factorize(table["line"])[0])
-    ordered = [c for c in ("time", "longitude", "latitude", "height", "easting", "northing", "line",
-                           "line_type", "distance") if c in table]
+    table["distance"] = along_line_distance(
+        table["easting"], table["northing"], pd.factorize(table["line"])[0]
+    )
+    ordered = [
+        c
+        for c in (
+            "time",
+            "longitude",
+            "latitude",
+            "height",
+            "easting",
+            "northing",
+            "line",
+            "line_type",
+            "distance",
+        )
+        if c in table
+    ]
     ordered += [c for c in table.columns if c not in ordered and c not in ("source_file", "source_row")]
     table = table[ordered + ["source_file", "source_row"]]
     geometry = line_geometry(table)
@@ -454,8 +541,12 @@ def run(ctx: StageContext) -> StageOutput:
         "crs_name": out_crs.name,
         "crs_code": ":".join(out_crs.to_authority()) if out_crs.to_authority() else None,
         "centroid": [float(table["longitude"].mean()), float(table["latitude"].mean())],
-        "region": [float(table["easting"].min()), float(table["easting"].max()),
-                   float(table["northing"].min()), float(table["northing"].max())],
+        "region": [
+            float(table["easting"].min()),
+            float(table["easting"].max()),
+            float(table["northing"].min()),
+            float(table["northing"].max()),
+        ],
         "time_span": [str(t.min()), str(t.max())] if t is not None else [None, None],
         **geometry,
     }
@@ -474,14 +565,23 @@ def run(ctx: StageContext) -> StageOutput:
     checks = []
     if geometry.get("line_spacing_max_deviation") is not None:
         tol, source = ctx.tolerance("line_spacing_tolerance_fraction", 0.25)
-        checks.append(Check.at_most(
-            "line spacing: largest deviation of adjacent traverse lines from nominal (fraction)",
-            geometry["line_spacing_max_deviation"], tol, "", source,
-            detail=f"nominal {geometry['line_spacing_m']:.0f} m from line centroids"))
-    notes = [f"{len(table):,} readings from {len(files)} file(s) on {table['line'].nunique()} line(s); "
-             f"output CRS {out_crs.name}"]
-    return StageOutput(table=table, metrics=metrics, state=state, notes=notes, checks=checks,
-                       warnings=warnings)
+        checks.append(
+            Check.at_most(
+                "line spacing: largest deviation of adjacent traverse lines from nominal (fraction)",
+                geometry["line_spacing_max_deviation"],
+                tol,
+                "",
+                source,
+                detail=f"nominal {geometry['line_spacing_m']:.0f} m from line centroids",
+            )
+        )
+    notes = [
+        f"{len(table):,} readings from {len(files)} file(s) on {table['line'].nunique()} line(s); "
+        f"output CRS {out_crs.name}"
+    ]
+    return StageOutput(
+        table=table, metrics=metrics, state=state, notes=notes, checks=checks, warnings=warnings
+    )
 
 
 def _inputs(config, survey):
@@ -497,8 +597,17 @@ STAGE = Stage(
     inputs=_inputs,
     # ingest makes the table: besides these, every column mapped in [input.columns] is its own
     contract=Contract(
-        provides_columns=("longitude", "latitude", "easting", "northing", "line", "line_type",
-                          "distance", "source_file", "source_row"),
+        provides_columns=(
+            "longitude",
+            "latitude",
+            "easting",
+            "northing",
+            "line",
+            "line_type",
+            "distance",
+            "source_file",
+            "source_row",
+        ),
         optional_columns=("*",),
     ),
 )

@@ -32,9 +32,20 @@ import pandas as pd
 
 from ..errors import StageError
 from ..fields.lines import leveling
-from .base import (ANOMALY_COLUMN, LEVELLED_COLUMN, Check, Contract, Stage, StageContext, StageOutput,
-                   main_grid_names, usable, value_column)
+from .base import (
+    ANOMALY_COLUMN,
+    LEVELLED_COLUMN,
+    Check,
+    Contract,
+    Stage,
+    StageContext,
+    StageOutput,
+    main_grid_names,
+    usable,
+    value_column,
+)
 from .microlevel import micro_level_table  # noqa: F401  (re-exported: the grid stage uses it)
+
 
 def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
     """The reference stage's anomaly (:func:`potfield.stages.base.value_column`)."""
@@ -42,7 +53,8 @@ def _value_column(ctx: StageContext, table: pd.DataFrame) -> str:
     if column is None:
         raise StageError(
             f"the readings table has none of the columns {', '.join(main_grid_names(ctx.config.kind))} "
-            "to level", key="level",
+            "to level",
+            key="level",
             fix="run the reference stage before level (potfield run SURVEY --from reference)",
         )
     return column
@@ -56,15 +68,19 @@ def _passthrough(table: pd.DataFrame, value: str, note: str, metrics=None) -> St
     table = table.copy()
     table["level_correction"] = 0.0
     table[LEVELLED_COLUMN] = table[value].to_numpy(dtype=float)
-    return StageOutput(table=table, notes=[note], metrics=dict(metrics or {}), skipped=note,
-                       state={"value_column": LEVELLED_COLUMN, "levelled_column": value,
-                              "levelled": False})
+    return StageOutput(
+        table=table,
+        notes=[note],
+        metrics=dict(metrics or {}),
+        skipped=note,
+        state={"value_column": LEVELLED_COLUMN, "levelled_column": value, "levelled": False},
+    )
 
 
 def _rms(values) -> float:
     values = np.asarray(values, dtype=float)
     values = values[np.isfinite(values)]
-    return float(np.sqrt(np.mean(values ** 2))) if values.size else float("nan")
+    return float(np.sqrt(np.mean(values**2))) if values.size else float("nan")
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -74,20 +90,31 @@ def run(ctx: StageContext) -> StageOutput:
     cfg = ctx.config.level
     table = ctx.table
     value = _value_column(ctx, table)
-    note_gravity = (" (gravity: anomaly_levelled holds the levelled bouguer_anomaly)"
-                    if value == "bouguer_anomaly" else "")
+    note_gravity = (
+        " (gravity: anomaly_levelled holds the levelled bouguer_anomaly)"
+        if value == "bouguer_anomaly"
+        else ""
+    )
     if not cfg.enabled:
-        return _passthrough(table, value, "levelling disabled ([level] enabled = false): "
-                            "anomaly_levelled = " + value + note_gravity)
+        return _passthrough(
+            table,
+            value,
+            "levelling disabled ([level] enabled = false): anomaly_levelled = " + value + note_gravity,
+        )
     if "line" not in table.columns or "line_type" not in table.columns:
-        return _passthrough(table, value, "no line column: nothing to level; anomaly_levelled = "
-                            + value + note_gravity)
+        return _passthrough(
+            table, value, "no line column: nothing to level; anomaly_levelled = " + value + note_gravity
+        )
     is_tie = table["line_type"].astype(str).to_numpy() == "tie"
     if not is_tie.any() or is_tie.all():
         what = "no tie lines" if not is_tie.any() else "no traverse lines"
-        return _passthrough(table, value, f"{what} (line_type): levelling skipped, zero "
-                            f"correction; anomaly_levelled = {value}{note_gravity}",
-                            {"crossovers": 0})
+        return _passthrough(
+            table,
+            value,
+            f"{what} (line_type): levelling skipped, zero "
+            f"correction; anomaly_levelled = {value}{note_gravity}",
+            {"crossovers": 0},
+        )
 
     ctx.progress("finding crossovers")
     lines = table["line"].astype(str).to_numpy()
@@ -96,15 +123,27 @@ def run(ctx: StageContext) -> StageOutput:
     height = table["height"].to_numpy(dtype=float) if "height" in table.columns else None
     flagged = ~usable(table)
     crossovers = leveling.find_crossovers(
-        table["easting"].to_numpy(float), table["northing"].to_numpy(float), lines, is_tie,
-        values, time, height, flagged=flagged,
-        max_segment_length=cfg.max_segment_m or None, tie_tie=True)
+        table["easting"].to_numpy(float),
+        table["northing"].to_numpy(float),
+        lines,
+        is_tie,
+        values,
+        time,
+        height,
+        flagged=flagged,
+        max_segment_length=cfg.max_segment_m or None,
+        tie_tie=True,
+    )
     huber = cfg.huber_threshold if cfg.huber_threshold > 0 else None
     tie_names = list(pd.unique(lines[is_tie]))
     traverse_names = list(pd.unique(lines[~is_tie]))
     if crossovers.empty:
-        out = _passthrough(table, value, "no traverse line crosses a tie line: levelling skipped, "
-                           "zero correction" + note_gravity, {"crossovers": 0})
+        out = _passthrough(
+            table,
+            value,
+            "no traverse line crosses a tie line: levelling skipped, zero correction" + note_gravity,
+            {"crossovers": 0},
+        )
         out.warnings.append("no crossovers found: check line_type and the tie-line settings in [lines]")
         out.tables["crossovers"] = crossovers
         return out
@@ -114,23 +153,33 @@ def run(ctx: StageContext) -> StageOutput:
     if cfg.max_height_difference_m > 0:
         gate, gate_text = float(cfg.max_height_difference_m), "fixed"
     else:
-        gate = leveling.height_gate(crossovers["height_difference"].to_numpy(float)[candidates],
-                                    cfg.height_gate_mads)
+        gate = leveling.height_gate(
+            crossovers["height_difference"].to_numpy(float)[candidates], cfg.height_gate_mads
+        )
         gate_text = f"adaptive: median |dh| + {cfg.height_gate_mads:g} robust sigma"
     gate_arg = gate if np.isfinite(gate) else None
 
     def solve(cx):
         if cfg.method == "network":
             return leveling.adjust_network(
-                cx, model=cfg.traverse_model, lines=traverse_names, ties=tie_names,
-                huber_threshold=huber, min_crossovers=cfg.min_crossovers,
-                max_height_difference=gate_arg)
-        t = leveling.adjust_ties(cx, tie_names, huber_threshold=huber,
-                                 max_height_difference=gate_arg)
-        a = leveling.adjust_lines(cx, t.corrections, model=cfg.traverse_model,
-                                  lines=traverse_names, huber_threshold=huber,
-                                  min_crossovers=cfg.min_crossovers,
-                                  max_height_difference=gate_arg)
+                cx,
+                model=cfg.traverse_model,
+                lines=traverse_names,
+                ties=tie_names,
+                huber_threshold=huber,
+                min_crossovers=cfg.min_crossovers,
+                max_height_difference=gate_arg,
+            )
+        t = leveling.adjust_ties(cx, tie_names, huber_threshold=huber, max_height_difference=gate_arg)
+        a = leveling.adjust_lines(
+            cx,
+            t.corrections,
+            model=cfg.traverse_model,
+            lines=traverse_names,
+            huber_threshold=huber,
+            min_crossovers=cfg.min_crossovers,
+            max_height_difference=gate_arg,
+        )
         return t, a
 
     def corrections(ties, adjust):
@@ -138,8 +187,10 @@ def run(ctx: StageContext) -> StageOutput:
         corr[is_tie] = pd.Series(lines[is_tie]).map(ties.corrections).fillna(0.0).to_numpy()
         return corr
 
-    ctx.progress(f"levelling {len(tie_names)} tie and {len(traverse_names)} traverse lines "
-                 f"on {len(crossovers)} crossovers")
+    ctx.progress(
+        f"levelling {len(tie_names)} tie and {len(traverse_names)} traverse lines "
+        f"on {len(crossovers)} crossovers"
+    )
     ties, adjust = solve(crossovers)
     gradient = np.full(len(crossovers), np.nan)
     solved = crossovers
@@ -151,9 +202,13 @@ def run(ctx: StageContext) -> StageOutput:
         first = values + corrections(ties, adjust)
         ok = ~flagged
         gradient = leveling.vertical_gradient_at(
-            table["easting"].to_numpy(float)[ok], table["northing"].to_numpy(float)[ok],
-            first[ok], crossovers["easting"].to_numpy(float),
-            crossovers["northing"].to_numpy(float), 0.5 * spacing)
+            table["easting"].to_numpy(float)[ok],
+            table["northing"].to_numpy(float)[ok],
+            first[ok],
+            crossovers["easting"].to_numpy(float),
+            crossovers["northing"].to_numpy(float),
+            0.5 * spacing,
+        )
         solved = crossovers.copy()
         solved["difference"] = leveling.height_corrected_differences(crossovers, gradient)
         ties, adjust = solve(solved)
@@ -176,19 +231,23 @@ def run(ctx: StageContext) -> StageOutput:
     # Crossover table with the misclosure after levelling (raw and height-corrected).
     kind = crossovers["kind"].to_numpy()
     cx = crossovers.copy()
-    by_reading = np.where(np.isin(cx["line"].astype(str), neighbour_lines),
-                          _at_crossing(correction, cx), np.nan)
-    corr_line = np.where(kind == "traverse-tie",
-                         adjust.evaluate(cx["line"].to_numpy(), cx["time_line"].to_numpy()),
-                         cx["line"].map(ties.corrections).fillna(0.0).to_numpy())
+    by_reading = np.where(
+        np.isin(cx["line"].astype(str), neighbour_lines), _at_crossing(correction, cx), np.nan
+    )
+    corr_line = np.where(
+        kind == "traverse-tie",
+        adjust.evaluate(cx["line"].to_numpy(), cx["time_line"].to_numpy()),
+        cx["line"].map(ties.corrections).fillna(0.0).to_numpy(),
+    )
     corr_line = np.where(np.isfinite(by_reading), by_reading, corr_line)
     corr_tie = cx["tie"].map(ties.corrections).fillna(0.0).to_numpy()
     cx["correction_line"] = corr_line
     cx["correction_tie"] = corr_tie
     cx["difference_levelled"] = cx["difference"].to_numpy() + corr_line - corr_tie
     cx["gradient_up"] = gradient
-    cx["height_effect"] = np.where(np.isfinite(gradient),
-                                   gradient * cx["height_difference"].to_numpy(float), 0.0)
+    cx["height_effect"] = np.where(
+        np.isfinite(gradient), gradient * cx["height_difference"].to_numpy(float), 0.0
+    )
     cx["difference_height_corrected"] = cx["difference"] - cx["height_effect"]
     cx["difference_levelled_height_corrected"] = cx["difference_levelled"] - cx["height_effect"]
     used = leveling.usable_crossovers(crossovers, None, gate_arg)
@@ -203,36 +262,51 @@ def run(ctx: StageContext) -> StageOutput:
     else:
         rms_before, rms_after = rms_before_raw, rms_after_raw
     unit = _unit(ctx.config)
-    line_table = _line_table(out, cx, used, adjust, ties, traverse_names, tie_names,
-                             cfg.min_crossovers, neighbour_lines)
-    warnings = [f"line {row.line}: {row.warning}" for row in line_table.itertuples()
-                if row.warning]
+    line_table = _line_table(
+        out, cx, used, adjust, ties, traverse_names, tie_names, cfg.min_crossovers, neighbour_lines
+    )
+    warnings = [f"line {row.line}: {row.warning}" for row in line_table.itertuples() if row.warning]
     if len(warnings) > 10:
         warnings = warnings[:10] + [f"... and {len(warnings) - 10} more (see tables/lines.csv)"]
     degraded = []
     if adjust.unlevelled:
         kept = [n for n in adjust.unlevelled if n not in neighbour_lines]
-        text = (f"{len(adjust.unlevelled)} traverse line(s) with fewer than min_crossovers = "
-                f"{cfg.min_crossovers} usable crossovers: {', '.join(adjust.unlevelled)}")
+        text = (
+            f"{len(adjust.unlevelled)} traverse line(s) with fewer than min_crossovers = "
+            f"{cfg.min_crossovers} usable crossovers: {', '.join(adjust.unlevelled)}"
+        )
         if neighbour_lines:
             text += f"; levelled from the lines flown before and after: {', '.join(neighbour_lines)}"
         if kept:
             text += f"; level kept: {', '.join(kept)}"
         warnings.insert(0, text)
         if kept:
-            degraded.append(f"{len(kept)} traverse line(s) left unlevelled (fewer than "
-                            f"min_crossovers = {cfg.min_crossovers} usable crossovers): {', '.join(kept[:10])}"
-                            + (f" and {len(kept) - 10} more" if len(kept) > 10 else ""))
+            degraded.append(
+                f"{len(kept)} traverse line(s) left unlevelled (fewer than "
+                f"min_crossovers = {cfg.min_crossovers} usable crossovers): {', '.join(kept[:10])}"
+                + (f" and {len(kept) - 10} more" if len(kept) > 10 else "")
+            )
     if not used.any():
-        warnings.insert(0, f"none of the {len(cx)} crossovers is usable (all flagged or above "
-                        f"the height gate of {gate:.3g} m): lines keep their level")
+        warnings.insert(
+            0,
+            f"none of the {len(cx)} crossovers is usable (all flagged or above "
+            f"the height gate of {gate:.3g} m): lines keep their level",
+        )
         degraded.append(warnings[0])
     if ctx.config.kind == "gravity":
         tol, source = ctx.tolerance("crossover_rms_mGal", 1.0, "common practice (from memory)")
     else:
         tol, source = ctx.tolerance("crossover_rms_nT", 1.0)
-    checks = [Check.at_most("crossover RMS after levelling", rms_after, tol, unit, source,
-                            f"{int(used.sum())} crossovers, {rms_before:.3g} {unit} before")]
+    checks = [
+        Check.at_most(
+            "crossover RMS after levelling",
+            rms_after,
+            tol,
+            unit,
+            source,
+            f"{int(used.sum())} crossovers, {rms_before:.3g} {unit} before",
+        )
+    ]
     ratio = rms_before / rms_after if rms_after > 0 else float("inf")
     metrics = {
         "value_column": value,
@@ -252,16 +326,22 @@ def run(ctx: StageContext) -> StageOutput:
         "neighbour_levelled_lines": len(neighbour_lines),
     }
     what = "height-corrected RMS misclosure" if height_corrected else "RMS misclosure"
-    notes = [(f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: {what} "
-              f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({ratio:.3g}x; "
-              f"{cfg.method.replace('_', '-')}, {cfg.traverse_model} per traverse line; datum: "
-              f"mean tie correction 0){note_gravity}"),
-             f"height gate {gate:.3g} m ({gate_text})"]
+    notes = [
+        (
+            f"levelled {value} on {int(used.sum())} of {len(cx)} crossovers: {what} "
+            f"{rms_before:.3g} -> {rms_after:.3g} {unit} ({ratio:.3g}x; "
+            f"{cfg.method.replace('_', '-')}, {cfg.traverse_model} per traverse line; datum: "
+            f"mean tie correction 0){note_gravity}"
+        ),
+        f"height gate {gate:.3g} m ({gate_text})",
+    ]
     if height_corrected:
-        notes.append(f"misclosures corrected for height differences with the vertical gradient "
-                     f"of the data (median |dh| "
-                     f"{float(np.nanmedian(np.abs(cx['height_difference'][used]))):.3g} m); raw "
-                     f"RMS misclosure {rms_before_raw:.3g} -> {rms_after_raw:.3g} {unit}")
+        notes.append(
+            f"misclosures corrected for height differences with the vertical gradient "
+            f"of the data (median |dh| "
+            f"{float(np.nanmedian(np.abs(cx['height_difference'][used]))):.3g} m); raw "
+            f"RMS misclosure {rms_before_raw:.3g} -> {rms_after_raw:.3g} {unit}"
+        )
     state = {
         "value_column": LEVELLED_COLUMN,
         "levelled_column": value,
@@ -273,9 +353,16 @@ def run(ctx: StageContext) -> StageOutput:
         "unlevelled_lines": [n for n in adjust.unlevelled if n not in neighbour_lines],
         "neighbour_levelled_lines": neighbour_lines,
     }
-    return StageOutput(table=out, metrics=metrics, state=state,
-                       tables={"crossovers": cx, "lines": line_table}, checks=checks,
-                       notes=notes, warnings=warnings, degraded=degraded)
+    return StageOutput(
+        table=out,
+        metrics=metrics,
+        state=state,
+        tables={"crossovers": cx, "lines": line_table},
+        checks=checks,
+        notes=notes,
+        warnings=warnings,
+        degraded=degraded,
+    )
 
 
 def _at_crossing(correction, cx):
@@ -305,17 +392,31 @@ def _traverse_spacing(ctx, crossovers):
     return float(np.median(gaps)) if gaps.size else None
 
 
-def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers,
-                neighbour_lines=()):
+def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_crossovers, neighbour_lines=()):
     stats = table.groupby(table["line"].astype(str), sort=False)["level_correction"].agg(
-        ["mean", "min", "max"])
+        ["mean", "min", "max"]
+    )
     rows = []
-    both = pd.concat([
-        pd.DataFrame({"line": cx["line"].astype(str), "before": cx["difference"],
-                      "after": cx["difference_levelled"], "used": used}),
-        pd.DataFrame({"line": cx["tie"].astype(str), "before": cx["difference"],
-                      "after": cx["difference_levelled"], "used": used}),
-    ])
+    both = pd.concat(
+        [
+            pd.DataFrame(
+                {
+                    "line": cx["line"].astype(str),
+                    "before": cx["difference"],
+                    "after": cx["difference_levelled"],
+                    "used": used,
+                }
+            ),
+            pd.DataFrame(
+                {
+                    "line": cx["tie"].astype(str),
+                    "before": cx["difference"],
+                    "after": cx["difference_levelled"],
+                    "used": used,
+                }
+            ),
+        ]
+    )
     both = both[both["used"]]
     per_line = both.groupby("line")
     rms_before = per_line["before"].apply(_rms)
@@ -326,25 +427,32 @@ def _line_table(table, cx, used, adjust, ties, traverse_names, tie_names, min_cr
         if kind == "traverse":
             deg = int(adjust.degree.get(name, -1))
             if name in adjust.unlevelled:
-                warning = (f"only {int(adjust.counts.get(name, 0))} usable crossover(s) "
-                           f"(< min_crossovers = {min_crossovers}): "
-                           + ("levelled from the lines flown before and after"
-                              if name in neighbour_lines else "level kept"))
+                warning = (
+                    f"only {int(adjust.counts.get(name, 0))} usable crossover(s) "
+                    f"(< min_crossovers = {min_crossovers}): "
+                    + (
+                        "levelled from the lines flown before and after"
+                        if name in neighbour_lines
+                        else "level kept"
+                    )
+                )
             elif deg < leveling.MODEL_DEGREE[adjust.model]:
                 warning = f"too few crossovers for a {adjust.model} correction: degree {deg} used"
         elif ties.method.get(name, "none") == "none":
             warning = "no usable crossover: tie level kept"
-        rows.append({
-            "line": name,
-            "type": kind,
-            "crossovers": int(count.get(name, 0)),
-            "correction_mean": float(stats["mean"].get(name, np.nan)),
-            "correction_min": float(stats["min"].get(name, np.nan)),
-            "correction_max": float(stats["max"].get(name, np.nan)),
-            "crossover_rms_before": float(rms_before.get(name, np.nan)),
-            "crossover_rms_after": float(rms_after.get(name, np.nan)),
-            "warning": warning,
-        })
+        rows.append(
+            {
+                "line": name,
+                "type": kind,
+                "crossovers": int(count.get(name, 0)),
+                "correction_mean": float(stats["mean"].get(name, np.nan)),
+                "correction_min": float(stats["min"].get(name, np.nan)),
+                "correction_max": float(stats["max"].get(name, np.nan)),
+                "crossover_rms_before": float(rms_before.get(name, np.nan)),
+                "crossover_rms_after": float(rms_after.get(name, np.nan)),
+                "warning": warning,
+            }
+        )
     return pd.DataFrame(rows)
 
 

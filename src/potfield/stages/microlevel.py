@@ -49,19 +49,29 @@ def micro_level_table(table: pd.DataFrame, grid, line_spacing: float, config_lev
     Geophysics 22:591-592.
     """
     if not line_spacing or not np.isfinite(line_spacing) or line_spacing <= 0:
-        raise StageError(f"micro-levelling needs a positive line spacing, got {line_spacing}",
-                         key="level.micro_levelling",
-                         fix="set [level] micro_levelling = false for surveys without regular lines")
+        raise StageError(
+            f"micro-levelling needs a positive line spacing, got {line_spacing}",
+            key="level.micro_levelling",
+            fix="set [level] micro_levelling = false for surveys without regular lines",
+        )
     east = table["easting"].to_numpy(float)
     north = table["northing"].to_numpy(float)
     lines = table["line"].astype(str).to_numpy()
-    trav = (table["line_type"].astype(str).to_numpy() != "tie") if "line_type" in table \
+    trav = (
+        (table["line_type"].astype(str).to_numpy() != "tie")
+        if "line_type" in table
         else np.ones(len(table), dtype=bool)
+    )
     direction = leveling.line_azimuth(east[trav], north[trav], lines[trav])
     along = config_level.micro_along_spacings * line_spacing
     corrugation = leveling.micro_level(
-        grid, direction, line_spacing, config_level.micro_cutoff_spacings,
-        config_level.micro_max_amplitude, along_wavelength=along)
+        grid,
+        direction,
+        line_spacing,
+        config_level.micro_cutoff_spacings,
+        config_level.micro_max_amplitude,
+        along_wavelength=along,
+    )
     sampled = leveling.sample_grid(corrugation, east, north)
     if "distance" in table:
         distance = table["distance"].to_numpy(float)

@@ -20,16 +20,21 @@ def _as_is(ctx: StageContext) -> StageOutput:
     """The value taken as the anomaly, unchanged (``[reference] enabled = false``)."""
     kind, table = ctx.config.kind, ctx.table
     if kind == "observatory":
-        raise StageError("the reference stage cannot be disabled for observatory surveys (the "
-                         "separation needs the IGRF disturbance)", key="reference.enabled",
-                         fix="remove 'enabled = false' from [reference]")
+        raise StageError(
+            "the reference stage cannot be disabled for observatory surveys (the "
+            "separation needs the IGRF disturbance)",
+            key="reference.enabled",
+            fix="remove 'enabled = false' from [reference]",
+        )
     column = ANOMALY_COLUMN[kind]
     if kind == "magnetic":
         source = "total_field"
         if source not in table.columns:
-            raise StageError("the readings table has no 'total_field' column to take as the anomaly",
-                             key="input.columns.total_field",
-                             fix="map the anomaly column of the input files to total_field")
+            raise StageError(
+                "the readings table has no 'total_field' column to take as the anomaly",
+                key="input.columns.total_field",
+                fix="map the anomaly column of the input files to total_field",
+            )
         values = table[source].to_numpy(dtype=float)
         if "diurnal" in table.columns:
             values = values - table["diurnal"].to_numpy(dtype=float)
@@ -37,20 +42,30 @@ def _as_is(ctx: StageContext) -> StageOutput:
     else:
         source = "gravity" if "gravity" in table.columns else "reading"
         if source not in table.columns:
-            raise StageError("the readings table has neither 'gravity' nor 'reading' to take as "
-                             "the anomaly", key="input.columns.reading",
-                             fix="map the anomaly column of the input files to reading")
+            raise StageError(
+                "the readings table has neither 'gravity' nor 'reading' to take as the anomaly",
+                key="input.columns.reading",
+                fix="map the anomaly column of the input files to reading",
+            )
         if source == "reading" and ctx.config.input.units.get("reading", "mGal") == "cu":
-            raise StageError("readings in counter units cannot be taken as an anomaly",
-                             key="reference.enabled",
-                             fix="give the readings in mGal, or enable the drift and reference stages")
+            raise StageError(
+                "readings in counter units cannot be taken as an anomaly",
+                key="reference.enabled",
+                fix="give the readings in mGal, or enable the drift and reference stages",
+            )
         values = table[source].to_numpy(dtype=float)
     out = table.copy()
     out[column] = values
-    why = (f"reference stage disabled ([reference] enabled = false): {column} = {source} as "
-           "given (taken as already reduced; no reference field removed here)")
-    return StageOutput(table=out, notes=[why], skipped=why,
-                       state={"value_column": column, "source": source, "reduced": False})
+    why = (
+        f"reference stage disabled ([reference] enabled = false): {column} = {source} as "
+        "given (taken as already reduced; no reference field removed here)"
+    )
+    return StageOutput(
+        table=out,
+        notes=[why],
+        skipped=why,
+        state={"value_column": column, "source": source, "reduced": False},
+    )
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -84,9 +99,11 @@ STAGE = Stage(
     inputs=_inputs,
     contract=Contract(
         # all of them when the reference is removed; only the anomaly when it is disabled
-        provides_columns={"magnetic": MAGNETIC_COLUMNS, "gravity": GRAVITY_COLUMNS,
-                          "observatory": ("igrf_north", "igrf_east", "igrf_down", "igrf",
-                                          "flag_reference_missing")},
+        provides_columns={
+            "magnetic": MAGNETIC_COLUMNS,
+            "gravity": GRAVITY_COLUMNS,
+            "observatory": ("igrf_north", "igrf_east", "igrf_down", "igrf", "flag_reference_missing"),
+        },
         optional_columns={"observatory": OBSERVATORY_COLUMNS},
         requires_state=("ingest",),
         provides_tables={"observatory": ("reference_stations",), "*": ()},

@@ -35,14 +35,27 @@ import numpy as np
 
 from ..errors import ConfigError, InputDataError, StageError
 from ..fields.errors import BadParameter, FieldError
-from ..fields.gravity.reductions import (atmospheric_correction, bouguer_cap, bouguer_slab,
-                              free_air_correction, normal_gravity)
+from ..fields.gravity.reductions import (
+    atmospheric_correction,
+    bouguer_cap,
+    bouguer_slab,
+    free_air_correction,
+    normal_gravity,
+)
 from ._boundary import Rule, translate
 from .base import Check, StageContext, StageOutput, usable
 
 #: Columns this module creates.
-COLUMNS = ("normal_gravity", "atmospheric", "disturbance", "free_air_anomaly", "bouguer",
-           "terrain", "bouguer_anomaly", "flag_reference_missing")
+COLUMNS = (
+    "normal_gravity",
+    "atmospheric",
+    "disturbance",
+    "free_air_anomaly",
+    "bouguer",
+    "terrain",
+    "bouguer_anomaly",
+    "flag_reference_missing",
+)
 
 
 def _gravity_column(ctx: StageContext, table, notes):
@@ -52,14 +65,20 @@ def _gravity_column(ctx: StageContext, table, notes):
         unit = ctx.config.input.units.get("reading", "mGal")
         if unit == "cu":
             raise StageError(
-                "gravity readings are in counter units and no drift stage made a 'gravity' "
-                "column", key="drift.calibration_file",
-                fix="give the gravimeter calibration table and run the drift stage first")
-        notes.append("no 'gravity' column from the drift stage: the 'reading' column (mGal) is "
-                     "used as observed gravity, with no tide, drift or base tie applied")
+                "gravity readings are in counter units and no drift stage made a 'gravity' column",
+                key="drift.calibration_file",
+                fix="give the gravimeter calibration table and run the drift stage first",
+            )
+        notes.append(
+            "no 'gravity' column from the drift stage: the 'reading' column (mGal) is "
+            "used as observed gravity, with no tide, drift or base tie applied"
+        )
         return "reading"
-    raise StageError("the readings table has neither 'gravity' nor 'reading'",
-                     key="input.columns", fix="map the gravimeter reading column to 'reading'")
+    raise StageError(
+        "the readings table has neither 'gravity' nor 'reading'",
+        key="input.columns",
+        fix="map the gravimeter reading column to 'reading'",
+    )
 
 
 def _terrain(ctx: StageContext, table, height, notes, warnings, checks, state):
@@ -69,13 +88,18 @@ def _terrain(ctx: StageContext, table, height, notes, warnings, checks, state):
 
     crs = (ctx.state.get("ingest") or {}).get("crs")
     if not crs:
-        raise StageError("no survey CRS recorded by the ingest stage",
-                         key="survey.output_crs", fix="run the ingest stage first")
+        raise StageError(
+            "no survey CRS recorded by the ingest stage",
+            key="survey.output_crs",
+            fix="run the ingest stage first",
+        )
     for column in ("easting", "northing"):
         if column not in table.columns:
-            raise StageError(f"the readings table has no '{column}' column",
-                             key="reference.dem_file",
-                             fix="run the ingest stage, which projects the coordinates")
+            raise StageError(
+                f"the readings table has no '{column}' column",
+                key="reference.dem_file",
+                fix="run the ingest stage, which projects the coordinates",
+            )
     path = ctx.survey.resolve(cfg.dem_file)
     ctx.progress(f"reading DEM {path.name}")
     dem = read_dem(path, crs, cfg.dem_crs)
@@ -86,33 +110,53 @@ def _terrain(ctx: StageContext, table, height, notes, warnings, checks, state):
         dem = (dem + offset).assign_attrs(attrs)
     ctx.progress(f"terrain correction at {len(table)} readings")
     result = terrain_correction(
-        table["easting"].to_numpy(dtype=float), table["northing"].to_numpy(dtype=float),
-        height, dem, density=cfg.density, radius=cfg.terrain_radius_m,
-        inner_radius=cfg.terrain_inner_radius_m, far_ratio=cfg.terrain_far_ratio,
-        curvature=cfg.terrain_curvature, missing_tolerance=cfg.terrain_missing_tolerance,
-        ground=None if cfg.terrain_readings_on_ground else np.full(len(table), np.nan))
+        table["easting"].to_numpy(dtype=float),
+        table["northing"].to_numpy(dtype=float),
+        height,
+        dem,
+        density=cfg.density,
+        radius=cfg.terrain_radius_m,
+        inner_radius=cfg.terrain_inner_radius_m,
+        far_ratio=cfg.terrain_far_ratio,
+        curvature=cfg.terrain_curvature,
+        missing_tolerance=cfg.terrain_missing_tolerance,
+        ground=None if cfg.terrain_readings_on_ground else np.full(len(table), np.nan),
+    )
     warnings.extend(result.warnings)
     worst = float(np.nanmax(result.missing_fraction)) if result.missing_fraction.size else 0.0
-    checks.append(Check.at_most(
-        "terrain_dem_missing_fraction", worst if np.isfinite(worst) else 0.0,
-        cfg.terrain_missing_tolerance, unit="fraction", source="common practice",
-        detail=f"largest share of the {cfg.terrain_radius_m / 1000:g} km terrain disc around a "
-               "reading not covered by the DEM"))
+    checks.append(
+        Check.at_most(
+            "terrain_dem_missing_fraction",
+            worst if np.isfinite(worst) else 0.0,
+            cfg.terrain_missing_tolerance,
+            unit="fraction",
+            source="common practice",
+            detail=f"largest share of the {cfg.terrain_radius_m / 1000:g} km terrain disc around a "
+            "reading not covered by the DEM",
+        )
+    )
     notes.append(
         f"terrain correction from {path.name} with {len(result.zone_spacings)} zones "
         f"(cells {', '.join(f'{sx:g} m' for sx, _ in result.zone_spacings)}), radius "
         f"{cfg.terrain_radius_m / 1000:g} km, density {cfg.density:g} kg/m^3, "
-        f"{'with' if cfg.terrain_curvature else 'without'} Earth curvature")
+        f"{'with' if cfg.terrain_curvature else 'without'} Earth curvature"
+    )
     if cfg.bouguer == "slab" and cfg.terrain_curvature:
-        notes.append("terrain is relative to the spherical shell (curvature on) while the Bouguer "
-                     "correction is a flat slab: the curvature (Bullard B) term is not applied; "
-                     "use reference.bouguer = \"cap\" for a consistent reduction")
+        notes.append(
+            "terrain is relative to the spherical shell (curvature on) while the Bouguer "
+            "correction is a flat slab: the curvature (Bullard B) term is not applied; "
+            'use reference.bouguer = "cap" for a consistent reduction'
+        )
     state["terrain"] = {
-        "dem_file": str(cfg.dem_file), "dem_crs": dem.attrs.get("source_crs"),
-        "dem_height_reference": cfg.dem_height_reference, "dem_height_offset_m": offset,
-        "radius_m": cfg.terrain_radius_m, "inner_radius_m": cfg.terrain_inner_radius_m,
+        "dem_file": str(cfg.dem_file),
+        "dem_crs": dem.attrs.get("source_crs"),
+        "dem_height_reference": cfg.dem_height_reference,
+        "dem_height_offset_m": offset,
+        "radius_m": cfg.terrain_radius_m,
+        "inner_radius_m": cfg.terrain_inner_radius_m,
         "zone_cell_m": [float(sx) for sx, _ in result.zone_spacings],
-        "curvature": cfg.terrain_curvature, "max_missing_fraction": worst,
+        "curvature": cfg.terrain_curvature,
+        "max_missing_fraction": worst,
     }
     return result.correction
 
@@ -142,8 +186,11 @@ def run_gravity(ctx: StageContext) -> StageOutput:
     checks: list[Check] = []
     for column in ("latitude", "height"):
         if column not in table.columns:
-            raise StageError(f"the readings table has no '{column}' column", key="input.columns",
-                             fix=f"map the input column holding {column} in [input.columns]")
+            raise StageError(
+                f"the readings table has no '{column}' column",
+                key="input.columns",
+                fix=f"map the input column holding {column} in [input.columns]",
+            )
     source = _gravity_column(ctx, table, notes)
     g = table[source].to_numpy(dtype=float)
     lat = table["latitude"].to_numpy(dtype=float)
@@ -152,19 +199,24 @@ def run_gravity(ctx: StageContext) -> StageOutput:
     gamma_h = normal_gravity(lat, h, cfg.ellipsoid)
     below = int(np.sum(h < 0))
     if below:
-        notes.append(f"{below} readings lie below the ellipsoid: normal gravity there is the "
-                     "closed form continued inward (as the free-air gradient does)")
+        notes.append(
+            f"{below} readings lie below the ellipsoid: normal gravity there is the "
+            "closed form continued inward (as the free-air gradient does)"
+        )
     gamma_0 = normal_gravity(lat, 0.0, cfg.ellipsoid)
     atm = atmospheric_correction(h) if cfg.atmospheric else np.zeros_like(h)
     order = 1 if cfg.free_air_order == "first" else 2
     fac = free_air_correction(h, lat, order=order)
     free_air = g - gamma_0 + fac + atm
-    bouguer = (bouguer_cap(h, cfg.density) if cfg.bouguer == "cap"
-               else bouguer_slab(h, cfg.density))
+    bouguer = bouguer_cap(h, cfg.density) if cfg.bouguer == "cap" else bouguer_slab(h, cfg.density)
     state = {
-        "ellipsoid": cfg.ellipsoid, "density": cfg.density, "bouguer": cfg.bouguer,
-        "atmospheric": cfg.atmospheric, "free_air_order": cfg.free_air_order,
-        "height_type": "ellipsoidal", "gravity_source": source,
+        "ellipsoid": cfg.ellipsoid,
+        "density": cfg.density,
+        "bouguer": cfg.bouguer,
+        "atmospheric": cfg.atmospheric,
+        "free_air_order": cfg.free_air_order,
+        "height_type": "ellipsoidal",
+        "gravity_source": source,
     }
     if cfg.dem_file:
         terrain = _terrain(ctx, table, h, notes, warnings, checks, state)
@@ -174,11 +226,12 @@ def run_gravity(ctx: StageContext) -> StageOutput:
         terrain = np.full(len(table), np.nan)
         anomaly = free_air - bouguer
         state["bouguer_anomaly"] = "simple"
-        notes.append("no reference.dem_file: no terrain correction, the Bouguer anomaly is the "
-                     "simple one")
-    notes.append(f"anomalies use ellipsoidal heights, the {cfg.ellipsoid} ellipsoid, a "
-                 f"{cfg.bouguer} Bouguer correction at {cfg.density:g} kg/m^3 "
-                 f"(Hinze et al. 2005)")
+        notes.append("no reference.dem_file: no terrain correction, the Bouguer anomaly is the simple one")
+    notes.append(
+        f"anomalies use ellipsoidal heights, the {cfg.ellipsoid} ellipsoid, a "
+        f"{cfg.bouguer} Bouguer correction at {cfg.density:g} kg/m^3 "
+        f"(Hinze et al. 2005)"
+    )
 
     table["normal_gravity"] = gamma_h
     table["atmospheric"] = atm
@@ -190,16 +243,18 @@ def run_gravity(ctx: StageContext) -> StageOutput:
     missing = ~(np.isfinite(g) & np.isfinite(lat) & np.isfinite(h))
     table["flag_reference_missing"] = missing
     if missing.any():
-        warnings.append(f"{int(missing.sum())} readings lack gravity, latitude or height: "
-                        "flagged (flag_reference_missing), anomalies NaN")
+        warnings.append(
+            f"{int(missing.sum())} readings lack gravity, latitude or height: "
+            "flagged (flag_reference_missing), anomalies NaN"
+        )
     ok = usable(table) & np.isfinite(anomaly)
     metrics = {"readings": int(len(table)), "readings_used": int(ok.sum())}
-    for name, values in (("bouguer_anomaly", anomaly), ("free_air_anomaly", free_air),
-                         ("terrain", terrain)):
+    for name, values in (("bouguer_anomaly", anomaly), ("free_air_anomaly", free_air), ("terrain", terrain)):
         v = values[ok & np.isfinite(values)]
         if v.size:
             metrics[f"{name}_min_mgal"] = float(v.min())
             metrics[f"{name}_max_mgal"] = float(v.max())
             metrics[f"{name}_mean_mgal"] = float(v.mean())
-    return StageOutput(table=table, metrics=metrics, state=state, checks=checks, notes=notes,
-                       warnings=warnings)
+    return StageOutput(
+        table=table, metrics=metrics, state=state, checks=checks, notes=notes, warnings=warnings
+    )

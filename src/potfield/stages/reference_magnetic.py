@@ -50,9 +50,17 @@ from .base import StageContext, StageOutput, usable
 
 #: Columns this module creates, by survey kind.
 MAGNETIC_COLUMNS = ("igrf", "anomaly", "flag_reference_missing")
-OBSERVATORY_COLUMNS = ("igrf_north", "igrf_east", "igrf_down", "igrf", "disturbance_north",
-                       "disturbance_east", "disturbance_down", "disturbance_total",
-                       "flag_reference_missing")
+OBSERVATORY_COLUMNS = (
+    "igrf_north",
+    "igrf_east",
+    "igrf_down",
+    "igrf",
+    "disturbance_north",
+    "disturbance_east",
+    "disturbance_down",
+    "disturbance_total",
+    "flag_reference_missing",
+)
 #: Decimal year after which IGRF-14 is a forecast (secular variation only).
 DEFINITIVE_UNTIL = 2025.0
 
@@ -67,7 +75,8 @@ def _require(table: pd.DataFrame, columns, kind: str) -> None:
                 fix += ", or set igrf_date under [reference]"
             raise StageError(
                 f"the readings table has no '{name}' column, needed for the IGRF at each {kind}",
-                key=f"input.columns.{name}", fix=fix,
+                key=f"input.columns.{name}",
+                fix=fix,
             )
 
 
@@ -89,16 +98,23 @@ def _fixed_year(ctx: StageContext) -> float:
     except (ValueError, TypeError):
         stamp = None
     if stamp is None or pd.isna(stamp):
-        raise ConfigError(f"cannot read igrf_date '{text}' as a date", file=config_file,
-                          key="reference.igrf_date", fix='write it as "YYYY-MM-DD" or remove it')
+        raise ConfigError(
+            f"cannot read igrf_date '{text}' as a date",
+            file=config_file,
+            key="reference.igrf_date",
+            fix='write it as "YYYY-MM-DD" or remove it',
+        )
     if stamp.tzinfo is not None:
         stamp = stamp.tz_convert("UTC").tz_localize(None)
     year = float(decimal_year(np.datetime64(stamp.to_datetime64(), "ns")))
     if not FIRST_YEAR <= year <= LAST_YEAR:
         raise ModelRangeError(
             f"igrf_date {text} is outside the {MODEL_NAME} range {FIRST_YEAR:.0f}-01-01 .. "
-            f"{LAST_YEAR:.0f}-01-01", file=config_file, key="reference.igrf_date",
-            fix="give a date in that range or remove igrf_date to use each reading's time")
+            f"{LAST_YEAR:.0f}-01-01",
+            file=config_file,
+            key="reference.igrf_date",
+            fix="give a date in that range or remove igrf_date to use each reading's time",
+        )
     return year
 
 
@@ -113,7 +129,8 @@ def _model_years(ctx: StageContext, table: pd.DataFrame) -> tuple[np.ndarray, st
         raise ModelRangeError(
             f"{bad.size} reading(s) are dated outside the {MODEL_NAME} range "
             f"{FIRST_YEAR:.0f}-01-01 .. {LAST_YEAR:.0f}-01-01 (first: "
-            f"{pd.Timestamp(table['time'].iloc[first])})", **_where(table, first),
+            f"{pd.Timestamp(table['time'].iloc[first])})",
+            **_where(table, first),
             fix="check the time column and [input.time] format, or set reference.igrf_date",
         )
     return years, "per-reading"
@@ -162,12 +179,18 @@ def _stats(prefix: str, values: np.ndarray) -> dict:
     values = values[np.isfinite(values)]
     if values.size == 0:
         return {}
-    return {f"{prefix}_min": float(values.min()), f"{prefix}_max": float(values.max()),
-            f"{prefix}_mean": float(values.mean()), f"{prefix}_std": float(values.std())}
+    return {
+        f"{prefix}_min": float(values.min()),
+        f"{prefix}_max": float(values.max()),
+        f"{prefix}_mean": float(values.mean()),
+        f"{prefix}_std": float(values.std()),
+    }
 
 
-@translate({OutOfModelRange: ModelRangeError, FieldError: InputDataError},
-           fix="check the position and time columns of the input files")
+@translate(
+    {OutOfModelRange: ModelRangeError, FieldError: InputDataError},
+    fix="check the position and time columns of the input files",
+)
 def run_magnetic(ctx: StageContext) -> StageOutput:
     """Remove the IGRF-14 main field (magnetic and observatory surveys).
 
@@ -200,13 +223,19 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
     elif not ({"mag_north", "mag_east", "mag_down"} <= set(table.columns) or "total_field" in table):
         raise StageError(
             "the observatory table has neither mag_north/mag_east/mag_down nor total_field",
-            key="input.columns", fix="map the X, Y, Z (or F) columns of the station files")
+            key="input.columns",
+            fix="map the X, Y, Z (or F) columns of the station files",
+        )
     _check_latitudes(table)
     years, mode = _model_years(ctx, table)
 
     ctx.progress(f"IGRF-14 at {len(table)} readings ({mode} date)")
-    field = igrf(table["longitude"].to_numpy(dtype=float), table["latitude"].to_numpy(dtype=float),
-                 table["height"].to_numpy(dtype=float), years)
+    field = igrf(
+        table["longitude"].to_numpy(dtype=float),
+        table["latitude"].to_numpy(dtype=float),
+        table["height"].to_numpy(dtype=float),
+        years,
+    )
     missing = ~np.isfinite(field.total)
     out = StageOutput(table=table.copy())
     new = out.table
@@ -226,8 +255,10 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
             observed = observed - table["diurnal"].to_numpy(dtype=float)
             notes.append("anomaly = total_field - diurnal - igrf")
         else:
-            warnings.append("no diurnal column (diurnal stage off or not run): "
-                            "anomaly = total_field - igrf, with the external field left in")
+            warnings.append(
+                "no diurnal column (diurnal stage off or not run): "
+                "anomaly = total_field - igrf, with the external field left in"
+            )
         new["anomaly"] = observed - field.total
     new["flag_reference_missing"] = missing
 
@@ -235,10 +266,12 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
     if not ok.any():
         raise InputDataError(
             "no reading has a finite longitude, latitude, height and time for the IGRF",
-            fix="check the position and time columns of the input files")
+            fix="check the position and time columns of the input files",
+        )
     if missing.any():
-        warnings.append(f"{int(missing.sum())} reading(s) lack position or time: "
-                        "flagged in flag_reference_missing")
+        warnings.append(
+            f"{int(missing.sum())} reading(s) lack position or time: flagged in flag_reference_missing"
+        )
 
     lon_c, lat_c, h_c, year_c = _centroid(ctx, table, years, ok)
     centre = igrf(lon_c, lat_c, h_c, year_c)
@@ -265,12 +298,17 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
         f"I {centre.inclination:.3f} deg, D {centre.declination:.3f} deg"
     )
     if np.nanmax(years) > DEFINITIVE_UNTIL:
-        warnings.append(f"{MODEL_NAME} after {DEFINITIVE_UNTIL:.0f}.0 is a forecast from the "
-                        "secular variation; re-process when the next IGRF is published")
+        warnings.append(
+            f"{MODEL_NAME} after {DEFINITIVE_UNTIL:.0f}.0 is a forecast from the "
+            "secular variation; re-process when the next IGRF is published"
+        )
 
     good = ok & usable(table)
-    out.metrics = {"igrf_date_mode": mode, "readings_without_reference": int(missing.sum()),
-                   **{k: v for k, v in _stats("igrf", field.total[ok]).items() if not k.endswith("_std")}}
+    out.metrics = {
+        "igrf_date_mode": mode,
+        "readings_without_reference": int(missing.sum()),
+        **{k: v for k, v in _stats("igrf", field.total[ok]).items() if not k.endswith("_std")},
+    }
     if kind == "observatory":
         for comp in ("north", "east", "down", "total"):
             column = f"disturbance_{comp}"
@@ -282,9 +320,14 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
                     out.metrics[f"{column}_mean"] = float(values.mean())
         out.tables["reference_stations"] = _station_table(new, years, ok)
         out.state["stations"] = {
-            str(row.station): {"longitude": float(row.longitude), "latitude": float(row.latitude),
-                               "height": float(row.height), "inclination": float(row.igrf_inclination),
-                               "declination": float(row.igrf_declination), "total_intensity": float(row.igrf)}
+            str(row.station): {
+                "longitude": float(row.longitude),
+                "latitude": float(row.latitude),
+                "height": float(row.height),
+                "inclination": float(row.igrf_inclination),
+                "declination": float(row.igrf_declination),
+                "total_intensity": float(row.igrf),
+            }
             for row in out.tables["reference_stations"].itertuples()
         }
     else:
@@ -297,13 +340,15 @@ def _station_table(table: pd.DataFrame, years: np.ndarray, ok: np.ndarray) -> pd
     station = table["station"] if "station" in table.columns else table.get("line")
     if station is None:
         station = pd.Series("all", index=table.index)
-    frame = pd.DataFrame({
-        "station": station.astype(str).to_numpy()[ok],
-        "longitude": table["longitude"].to_numpy(dtype=float)[ok],
-        "latitude": table["latitude"].to_numpy(dtype=float)[ok],
-        "height": table["height"].to_numpy(dtype=float)[ok],
-        "year": years[ok],
-    })
+    frame = pd.DataFrame(
+        {
+            "station": station.astype(str).to_numpy()[ok],
+            "longitude": table["longitude"].to_numpy(dtype=float)[ok],
+            "latitude": table["latitude"].to_numpy(dtype=float)[ok],
+            "height": table["height"].to_numpy(dtype=float)[ok],
+            "year": years[ok],
+        }
+    )
     for comp in ("north", "east", "down", "total"):
         if f"disturbance_{comp}" in table.columns:
             frame[f"mean_disturbance_{comp}"] = table[f"disturbance_{comp}"].to_numpy(dtype=float)[ok]
@@ -312,14 +357,32 @@ def _station_table(table: pd.DataFrame, years: np.ndarray, ok: np.ndarray) -> pd
     summary["readings"] = grouped.size()
     for column in [c for c in frame.columns if c.startswith("mean_disturbance_")]:
         summary[column] = grouped[column].mean()
-    centre = igrf(summary["longitude"].to_numpy(), summary["latitude"].to_numpy(),
-                  summary["height"].to_numpy(), summary["year"].to_numpy())
+    centre = igrf(
+        summary["longitude"].to_numpy(),
+        summary["latitude"].to_numpy(),
+        summary["height"].to_numpy(),
+        summary["year"].to_numpy(),
+    )
     summary["time"] = [_year_to_iso(y) for y in summary["year"]]  # loop over stations
     summary["igrf_north"], summary["igrf_east"], summary["igrf_down"] = centre.north, centre.east, centre.down
     summary["igrf"] = centre.total
     summary["igrf_inclination"] = centre.inclination
     summary["igrf_declination"] = centre.declination
     summary = summary.drop(columns="year").reset_index()
-    return summary[["station", "longitude", "latitude", "height", "time", "readings", "igrf_north",
-                    "igrf_east", "igrf_down", "igrf", "igrf_inclination", "igrf_declination",
-                    *[c for c in summary.columns if c.startswith("mean_disturbance_")]]]
+    return summary[
+        [
+            "station",
+            "longitude",
+            "latitude",
+            "height",
+            "time",
+            "readings",
+            "igrf_north",
+            "igrf_east",
+            "igrf_down",
+            "igrf",
+            "igrf_inclination",
+            "igrf_declination",
+            *[c for c in summary.columns if c.startswith("mean_disturbance_")],
+        ]
+    ]

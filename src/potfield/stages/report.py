@@ -16,8 +16,10 @@ def run(ctx: StageContext) -> StageOutput:
     paths = getattr(ctx.grids, "paths", None) or {}
     ctx.progress("drawing maps")
     path, count = build_report(ctx.survey, ctx.config, manifest, ctx.table, paths)
-    return StageOutput(metrics={"figures": count, "report": str(path.name)},
-                       notes=[f"{count} figures in out/maps; report at out/{path.name}"])
+    return StageOutput(
+        metrics={"figures": count, "report": str(path.name)},
+        notes=[f"{count} figures in out/maps; report at out/{path.name}"],
+    )
 
 
 STAGE = Stage(

@@ -54,7 +54,8 @@ def _disturbance(table: pd.DataFrame, comp: str) -> np.ndarray:
         f"the readings table has no '{column}' column (nor mag_{comp} and igrf_{comp})",
         key="input.columns",
         fix="map the stations' X, Y, Z columns to mag_north, mag_east, mag_down and run the "
-            "reference stage before separate")
+        "reference stage before separate",
+    )
 
 
 def run_observatory(ctx: StageContext) -> StageOutput:
@@ -81,8 +82,11 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         raise StageError("no readings table", fix="run the ingest stage first")
     for name in ("time", "longitude", "latitude", "height"):
         if name not in table.columns:
-            raise StageError(f"the readings table has no '{name}' column", key="input.columns",
-                             fix=f"map a column to '{name}' in survey.toml")
+            raise StageError(
+                f"the readings table has no '{name}' column",
+                key="input.columns",
+                fix=f"map a column to '{name}' in survey.toml",
+            )
     station_col = "station" if "station" in table.columns else "line"
     values = {c: _disturbance(table, c) for c in COMPONENTS}
     ok = usable(table)
@@ -91,10 +95,19 @@ def run_observatory(ctx: StageContext) -> StageOutput:
     st_codes, st_names = pd.factorize(table[station_col].astype(str), sort=True)
     t_codes, t_unique = pd.factorize(table["time"], sort=True)
     n_t, n_s = len(t_unique), len(st_names)
-    positions = (pd.DataFrame({"station": st_codes, "longitude": table["longitude"].to_numpy(float),
-                               "latitude": table["latitude"].to_numpy(float),
-                               "height": table["height"].to_numpy(float)})
-                 .groupby("station").median().sort_index())
+    positions = (
+        pd.DataFrame(
+            {
+                "station": st_codes,
+                "longitude": table["longitude"].to_numpy(float),
+                "latitude": table["latitude"].to_numpy(float),
+                "height": table["height"].to_numpy(float),
+            }
+        )
+        .groupby("station")
+        .median()
+        .sort_index()
+    )
     arrays = {}
     for c in COMPONENTS:
         grid = np.full((n_t, n_s), np.nan)
@@ -122,8 +135,9 @@ def run_observatory(ctx: StageContext) -> StageOutput:
     ctx.progress(f"Gauss coefficients at {n_t} epochs from {int(has_data.sum())} stations")
     fit, rejected, station_rms, zscore = _fit_rejecting(cfg, arrays, positions, st_names, has_data)
     # residuals at every station, the rejected ones included (their data were left out of the fit)
-    residual = [np.stack([arrays[c] for c in COMPONENTS])[k] - fit.internal[k] - fit.external[k]
-                for k in range(3)]
+    residual = [
+        np.stack([arrays[c] for c in COMPONENTS])[k] - fit.internal[k] - fit.external[k] for k in range(3)
+    ]
     new = out.table
     for k, c in enumerate(COMPONENTS):
         new[f"sep_internal_{c}"] = fit.internal[k][t_codes, st_codes]
@@ -131,8 +145,12 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         new[f"sep_residual_{c}"] = residual[k][t_codes, st_codes]
     out.tables["coefficients"] = sep.coefficient_table(np.asarray(t_unique, dtype="datetime64[ns]"), fit)
 
-    rows = {"station": list(st_names), "longitude": positions["longitude"].to_numpy(),
-            "latitude": positions["latitude"].to_numpy(), "height": positions["height"].to_numpy()}
+    rows = {
+        "station": list(st_names),
+        "longitude": positions["longitude"].to_numpy(),
+        "latitude": positions["latitude"].to_numpy(),
+        "height": positions["height"].to_numpy(),
+    }
     for c in COMPONENTS:
         rows[f"baseline_{c}"] = np.where(has_data, baselines[c], np.nan)
     rows["has_data"] = has_data
@@ -150,25 +168,38 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         rows[f"epochs_{c}"] = count
     out.tables["station_residuals"] = pd.DataFrame(rows)
 
-    metrics = {"stations": int(has_data.sum()), "epochs": int(n_t), "groups": fit.groups,
-               "unsolved_epochs": fit.unsolved_epochs, "condition_number": fit.condition,
-               "internal_degree": cfg.internal_degree, "external_degree": cfg.external_degree,
-               "damping": cfg.damping}
+    metrics = {
+        "stations": int(has_data.sum()),
+        "epochs": int(n_t),
+        "groups": fit.groups,
+        "unsolved_epochs": fit.unsolved_epochs,
+        "condition_number": fit.condition,
+        "internal_degree": cfg.internal_degree,
+        "external_degree": cfg.external_degree,
+        "damping": cfg.damping,
+    }
     metrics["station_baseline"] = cfg.station_baseline
     metrics["stations_without_data"] = [str(x) for x in np.asarray(st_names)[~has_data]]
     metrics["rejected_stations"] = [str(x) for x in np.asarray(st_names)[rejected]]
     if (~has_data).any():
-        out.notes.append(f"stations with no valid data (not counted): "
-                         f"{', '.join(metrics['stations_without_data'])}")
+        out.notes.append(
+            f"stations with no valid data (not counted): {', '.join(metrics['stations_without_data'])}"
+        )
     if rejected.any():
-        names = ", ".join(f"{st_names[i]} (left-out RMS {station_rms[i]:.2f} nT, modified z "
-                          f"{zscore[i]:.1f})" for i in np.flatnonzero(rejected))
-        out.warnings.append(f"degraded: station(s) left out of the separation as outliers: {names}; "
-                            f"limit [separate] station_outlier_z = {cfg.station_outlier_z:g}. Check "
-                            "their baselines, orientation and timing")
+        names = ", ".join(
+            f"{st_names[i]} (left-out RMS {station_rms[i]:.2f} nT, modified z {zscore[i]:.1f})"
+            for i in np.flatnonzero(rejected)
+        )
+        out.warnings.append(
+            f"degraded: station(s) left out of the separation as outliers: {names}; "
+            f"limit [separate] station_outlier_z = {cfg.station_outlier_z:g}. Check "
+            "their baselines, orientation and timing"
+        )
     if cfg.station_baseline == "median":
-        out.notes.append("each station's median (per component) removed before the fit: the "
-                         "coefficients are variations about the run's median level")
+        out.notes.append(
+            "each station's median (per component) removed before the fit: the "
+            "coefficients are variations about the run's median level"
+        )
     all_res = []
     for k, c in enumerate(COMPONENTS):
         res = fit.residual[k][np.isfinite(fit.residual[k])]
@@ -177,29 +208,51 @@ def run_observatory(ctx: StageContext) -> StageOutput:
     all_res = np.concatenate(all_res)
     overall = float(np.sqrt(np.mean(all_res**2))) if all_res.size else float("nan")
     metrics["residual_rms_nT"] = overall
-    state = {"coefficients": fit.names, "internal_degree": cfg.internal_degree,
-             "external_degree": cfg.external_degree,
-             "stations": {str(s): {"longitude": float(positions["longitude"].iloc[i]),
-                                   "latitude": float(positions["latitude"].iloc[i]),
-                                   "height": float(positions["height"].iloc[i])}
-                          for i, s in enumerate(st_names)}}
+    state = {
+        "coefficients": fit.names,
+        "internal_degree": cfg.internal_degree,
+        "external_degree": cfg.external_degree,
+        "stations": {
+            str(s): {
+                "longitude": float(positions["longitude"].iloc[i]),
+                "latitude": float(positions["latitude"].iloc[i]),
+                "height": float(positions["height"].iloc[i]),
+            }
+            for i, s in enumerate(st_names)
+        },
+    }
     if "g10" in fit.names and "q10" in fit.names:
         ratio = sep.induction_ratio(fit.coefficient("g10"), fit.coefficient("q10"))
-        metrics.update({"induction_ratio_g10_q10": ratio["ratio"],
-                        "induction_offset_g10_nT": ratio["offset"],
-                        "induction_correlation": ratio["correlation"]})
+        metrics.update(
+            {
+                "induction_ratio_g10_q10": ratio["ratio"],
+                "induction_offset_g10_nT": ratio["offset"],
+                "induction_correlation": ratio["correlation"],
+            }
+        )
         state["induction_ratio_g10_q10"] = ratio["ratio"]
-        out.notes.append(f"induced/external ratio g10/q10 = {ratio['ratio']:.3f} (regression over "
-                         f"{ratio['epochs']} epochs, correlation {ratio['correlation']:.3f})")
+        out.notes.append(
+            f"induced/external ratio g10/q10 = {ratio['ratio']:.3f} (regression over "
+            f"{ratio['epochs']} epochs, correlation {ratio['correlation']:.3f})"
+        )
     tol, source = ctx.tolerance("separation_residual_rms_nT", 5.0)
-    out.checks.append(Check.at_most(
-        "separation_residual_rms_nT", overall, tol, "nT", source,
-        detail=f"RMS of station residuals after the degree {cfg.internal_degree} internal + "
-               f"degree {cfg.external_degree} external fit (non-potential part, noise, higher "
-               "degrees)"))
+    out.checks.append(
+        Check.at_most(
+            "separation_residual_rms_nT",
+            overall,
+            tol,
+            "nT",
+            source,
+            detail=f"RMS of station residuals after the degree {cfg.internal_degree} internal + "
+            f"degree {cfg.external_degree} external fit (non-potential part, noise, higher "
+            "degrees)",
+        )
+    )
     if fit.unsolved_epochs:
-        out.warnings.append(f"{fit.unsolved_epochs} epoch(s) had too few stations to resolve the "
-                            "coefficients: NaN in the coefficients table")
+        out.warnings.append(
+            f"{fit.unsolved_epochs} epoch(s) had too few stations to resolve the "
+            "coefficients: NaN in the coefficients table"
+        )
     if cfg.index_file:
         table_idx, idx_metrics = _index_comparison(ctx, out.tables["coefficients"])
         out.tables["index_comparison"] = table_idx
@@ -207,23 +260,41 @@ def run_observatory(ctx: StageContext) -> StageOutput:
         out.notes.append(
             f"q10 against the hourly index '{cfg.index_column}' over {idx_metrics['index_hours']} "
             f"hours: correlation {idx_metrics['index_correlation']:.3f}, slope "
-            f"{idx_metrics['index_slope_nT_per_unit']:.3f} nT per index unit")
-    out.notes.append(f"{len(fit.names)} Gauss coefficients at {n_t} epochs ({fit.groups} station "
-                     f"set(s)); residual RMS {overall:.2f} nT")
+            f"{idx_metrics['index_slope_nT_per_unit']:.3f} nT per index unit"
+        )
+    out.notes.append(
+        f"{len(fit.names)} Gauss coefficients at {n_t} epochs ({fit.groups} station "
+        f"set(s)); residual RMS {overall:.2f} nT"
+    )
     out.metrics, out.state = metrics, state
     return out
 
 
 def _fit(cfg, arrays, positions, st_names):
-    with translate({IllPosed: Rule(InputDataError, key="separate.damping", fix=(
-                        "add stations spread in longitude and latitude, lower the degrees, or "
-                        "set a damping > 0")),
-                    FieldError: Rule(InputDataError, key="separate.internal_degree")}):
+    with translate(
+        {
+            IllPosed: Rule(
+                InputDataError,
+                key="separate.damping",
+                fix=(
+                    "add stations spread in longitude and latitude, lower the degrees, or set a damping > 0"
+                ),
+            ),
+            FieldError: Rule(InputDataError, key="separate.internal_degree"),
+        }
+    ):
         return sep.fit_gauss_coefficients(
-            arrays["north"], arrays["east"], arrays["down"], positions["longitude"].to_numpy(),
-            positions["latitude"].to_numpy(), positions["height"].to_numpy(),
-            internal_degree=cfg.internal_degree, external_degree=cfg.external_degree,
-            damping=cfg.damping, stations=list(st_names))
+            arrays["north"],
+            arrays["east"],
+            arrays["down"],
+            positions["longitude"].to_numpy(),
+            positions["latitude"].to_numpy(),
+            positions["height"].to_numpy(),
+            internal_degree=cfg.internal_degree,
+            external_degree=cfg.external_degree,
+            damping=cfg.damping,
+            stations=list(st_names),
+        )
 
 
 def _station_rms(fit) -> np.ndarray:
@@ -250,8 +321,12 @@ def _leave_one_out_rms(cfg, arrays, positions, st_names, has_data) -> np.ndarray
             fit = _fit(cfg, kept, positions, st_names)
         except PotfieldError:  # the network cannot be solved without this station
             continue
-        res = np.concatenate([arrays[c][:, i] - fit.internal[k][:, i] - fit.external[k][:, i]
-                              for k, c in enumerate(COMPONENTS)])
+        res = np.concatenate(
+            [
+                arrays[c][:, i] - fit.internal[k][:, i] - fit.external[k][:, i]
+                for k, c in enumerate(COMPONENTS)
+            ]
+        )
         res = res[np.isfinite(res)]
         if res.size:
             rms[i] = float(np.sqrt(np.mean(res**2)))
@@ -296,48 +371,78 @@ def _index_comparison(ctx: StageContext, coefficients: pd.DataFrame):
     cfg = ctx.config.separate
     path = ctx.survey.resolve(cfg.index_file)
     if not path.is_file():
-        raise InputDataError("index file not found", file=path, key="separate.index_file",
-                             fix="check the file name under [separate] index_file")
+        raise InputDataError(
+            "index file not found",
+            file=path,
+            key="separate.index_file",
+            fix="check the file name under [separate] index_file",
+        )
     if not cfg.index_column:
-        raise ConfigError("index_file is set but index_column is not", key="separate.index_column",
-                          fix='set index_column = "<column name>" under [separate]')
+        raise ConfigError(
+            "index_file is set but index_column is not",
+            key="separate.index_column",
+            fix='set index_column = "<column name>" under [separate]',
+        )
     if "q10" not in coefficients.columns:
-        raise ConfigError("the index comparison needs the degree-1 external coefficient q10",
-                          key="separate.external_degree", fix="set external_degree >= 1")
+        raise ConfigError(
+            "the index comparison needs the degree-1 external coefficient q10",
+            key="separate.external_degree",
+            fix="set external_degree >= 1",
+        )
     try:
         frame = pd.read_csv(path, sep=None, engine="python", comment="#")
     except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise InputDataError(f"cannot read the index file ({exc.__class__.__name__})", file=path,
-                             fix="give a delimited text table with a header line") from None
+        raise InputDataError(
+            f"cannot read the index file ({exc.__class__.__name__})",
+            file=path,
+            fix="give a delimited text table with a header line",
+        ) from None
     for name, key in ((cfg.index_time_column, "index_time_column"), (cfg.index_column, "index_column")):
         if name not in frame.columns:
-            raise InputDataError(f"no column '{name}' in the index file (columns: "
-                                 f"{', '.join(map(str, frame.columns))})", file=path,
-                                 key=f"separate.{key}", fix="set the column name under [separate]")
+            raise InputDataError(
+                f"no column '{name}' in the index file (columns: {', '.join(map(str, frame.columns))})",
+                file=path,
+                key=f"separate.{key}",
+                fix="set the column name under [separate]",
+            )
     times = pd.to_datetime(frame[cfg.index_time_column], utc=True, errors="coerce")
     value = pd.to_numeric(frame[cfg.index_column], errors="coerce")
     bad = int(times.isna().sum())
     if bad:
         row = int(np.flatnonzero(times.isna().to_numpy())[0]) + 2
-        raise InputDataError(f"cannot read the time '{frame[cfg.index_time_column].iloc[row - 2]}'",
-                             file=path, row=row, key="separate.index_time_column",
-                             fix="use ISO 8601 times, e.g. 2025-05-10T13:00:00Z")
-    index = pd.Series(value.to_numpy(float),
-                      index=times.dt.tz_localize(None).dt.floor("h").to_numpy()).groupby(level=0).mean()
+        raise InputDataError(
+            f"cannot read the time '{frame[cfg.index_time_column].iloc[row - 2]}'",
+            file=path,
+            row=row,
+            key="separate.index_time_column",
+            fix="use ISO 8601 times, e.g. 2025-05-10T13:00:00Z",
+        )
+    index = (
+        pd.Series(value.to_numpy(float), index=times.dt.tz_localize(None).dt.floor("h").to_numpy())
+        .groupby(level=0)
+        .mean()
+    )
     q10 = coefficients.set_index("time")["q10"].astype(float)
     hourly = q10.groupby(q10.index.floor("h")).mean()
     joined = pd.DataFrame({"index": index, "q10_hourly_mean": hourly}).dropna()
     if len(joined) < 3:
-        raise InputDataError(f"only {len(joined)} hours of the index file overlap the coefficients",
-                             file=path, key="separate.index_file",
-                             fix="give an index covering the observatory data's days")
+        raise InputDataError(
+            f"only {len(joined)} hours of the index file overlap the coefficients",
+            file=path,
+            key="separate.index_file",
+            fix="give an index covering the observatory data's days",
+        )
     x, y = joined["index"].to_numpy(), joined["q10_hourly_mean"].to_numpy()
     slope, offset = np.polyfit(x, y, 1)
     r = float(np.corrcoef(x, y)[0, 1]) if np.std(x) > 0 and np.std(y) > 0 else float("nan")
     joined["q10_fitted"] = offset + slope * x
     joined = joined.rename_axis("time").reset_index()
-    return joined, {"index_hours": len(joined), "index_correlation": r,
-                    "index_slope_nT_per_unit": float(slope), "index_offset_nT": float(offset)}
+    return joined, {
+        "index_hours": len(joined),
+        "index_correlation": r,
+        "index_slope_nT_per_unit": float(slope),
+        "index_offset_nT": float(offset),
+    }
 
 
 # ----------------------------------------------------------------------------------------------
@@ -380,36 +485,63 @@ def _two_layer(ctx, grid, height, out):
         out.warnings.append(
             f"two-layer split: the decimated grid's {spacing:g} m cells put the shallow layer at "
             f"{shallow:g} m, below regional_height_m; the deep layer was moved to {2 * shallow:g} m "
-            "(set [separate] deep_depth_m and shallow_depth_m, or raise two_layer_max_data)")
+            "(set [separate] deep_depth_m and shallow_depth_m, or raise two_layer_max_data)"
+        )
         deep = 2.0 * shallow
     if shallow >= deep:
         raise StageError(
             f"the two-layer shallow depth {shallow:g} m is not above the deep depth {deep:g} m",
-            key="separate.shallow_depth_m", fix="set shallow_depth_m below deep_depth_m")
+            key="separate.shallow_depth_m",
+            fix="set shallow_depth_m below deep_depth_m",
+        )
     crossover = cfg.crossover_wavelength_m or 3.0 * cfg.regional_height_m
     ctx.progress(f"two-layer equivalent sources on {int(np.isfinite(small.values).sum())} cells")
-    with translate({BadParameter: Rule(InputDataError, key="separate.deep_depth_m",
-                                       fix="set deep_depth_m larger than shallow_depth_m"),
-                    NotEnoughData: Rule(InputDataError,
-                                        fix="grid the survey first (the separation needs the grid)")}):
-        model = sep.fit_two_layer((ee, nn, uu), small.values, deep_depth=deep,
-                                  shallow_depth=shallow, deep_damping=cfg.deep_damping,
-                                  shallow_damping=cfg.shallow_damping,
-                                  crossover_wavelength=crossover)
+    with translate(
+        {
+            BadParameter: Rule(
+                InputDataError,
+                key="separate.deep_depth_m",
+                fix="set deep_depth_m larger than shallow_depth_m",
+            ),
+            NotEnoughData: Rule(InputDataError, fix="grid the survey first (the separation needs the grid)"),
+        }
+    ):
+        model = sep.fit_two_layer(
+            (ee, nn, uu),
+            small.values,
+            deep_depth=deep,
+            shallow_depth=shallow,
+            deep_damping=cfg.deep_damping,
+            shallow_damping=cfg.shallow_damping,
+            crossover_wavelength=crossover,
+        )
     EE, NN = np.meshgrid(grid.easting.values, grid.northing.values)
     UU = np.broadcast_to(np.asarray(height, dtype=float), EE.shape)
     values = np.where(np.isfinite(grid.values), model.predict_regional((EE, NN, UU)), np.nan)
     units = grid.attrs.get("units", "")
     regional = grid.copy(data=values).rename("regional_two_layer")
-    regional.attrs = {"units": units, "long_name": "regional field: deep equivalent-source layer",
-                      "history": grid.attrs.get("history", "") + f"; two-layer equivalent sources "
-                                 f"(deep {deep:g} m, shallow {shallow:g} m, crossover {crossover:g} m)"}
+    regional.attrs = {
+        "units": units,
+        "long_name": "regional field: deep equivalent-source layer",
+        "history": grid.attrs.get("history", "") + f"; two-layer equivalent sources "
+        f"(deep {deep:g} m, shallow {shallow:g} m, crossover {crossover:g} m)",
+    }
     residual = (grid - regional).rename("residual_two_layer")
-    residual.attrs = {"units": units, "long_name": "residual field: field minus the deep layer",
-                      "history": regional.attrs["history"] + "; residual = field - regional"}
-    out.metrics.update({"two_layer_deep_depth_m": deep, "two_layer_shallow_depth_m": shallow,
-                        "two_layer_crossover_m": crossover, "two_layer_fit_rms": model.rms,
-                        "two_layer_decimation": step, "two_layer_shallow_damping": model.shallow_damping})
+    residual.attrs = {
+        "units": units,
+        "long_name": "residual field: field minus the deep layer",
+        "history": regional.attrs["history"] + "; residual = field - regional",
+    }
+    out.metrics.update(
+        {
+            "two_layer_deep_depth_m": deep,
+            "two_layer_shallow_depth_m": shallow,
+            "two_layer_crossover_m": crossover,
+            "two_layer_fit_rms": model.rms,
+            "two_layer_decimation": step,
+            "two_layer_shallow_damping": model.shallow_damping,
+        }
+    )
     return model, regional, residual
 
 
@@ -432,28 +564,39 @@ def _vector(ctx, table, grid, height, out):
         v = table[f"mag_{comp}"].to_numpy(dtype=float)
         keep = ok & np.isfinite(v) & np.isfinite(e) & np.isfinite(n) & np.isfinite(u)
         if keep.sum() < 10:
-            raise StageError(f"only {int(keep.sum())} usable readings have mag_{comp}",
-                             key=f"input.columns.mag_{comp}",
-                             fix="check the vector columns of the input files")
-        model = fit_equivalent_sources(e[keep], n[keep], u[keep], v[keep], depth=depth,
-                                       damping=damping, block_size=spacing)
+            raise StageError(
+                f"only {int(keep.sum())} usable readings have mag_{comp}",
+                key=f"input.columns.mag_{comp}",
+                fix="check the vector columns of the input files",
+            )
+        model = fit_equivalent_sources(
+            e[keep], n[keep], u[keep], v[keep], depth=depth, damping=damping, block_size=spacing
+        )
         values = np.where(mask, model.predict((EE, NN, UU)), np.nan)
         grids.append(grid.copy(data=values).rename(f"mag_{comp}"))
-    with translate({BadParameter: Rule(InputDataError, key="separate.uniform_part"),
-                    NotEnoughData: Rule(InputDataError,
-                                        fix="check the mag_north, mag_east and mag_down columns"),
-                    FieldError: InputDataError}):
-        parts = sep.separate_vector_plane(*grids, uniform=cfg.uniform_part,
-                                          pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode)
+    with translate(
+        {
+            BadParameter: Rule(InputDataError, key="separate.uniform_part"),
+            NotEnoughData: Rule(InputDataError, fix="check the mag_north, mag_east and mag_down columns"),
+            FieldError: InputDataError,
+        }
+    ):
+        parts = sep.separate_vector_plane(
+            *grids, uniform=cfg.uniform_part, pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode
+        )
     new = out.table
     for name, part in parts.items():
         out.grids[name] = part
         new[name] = sample_grid(part, e, n)
         vals = part.values[np.isfinite(part.values)]
-        out.metrics[f"{name}_rms_nT"] = float(np.sqrt(np.mean((vals - vals.mean()) ** 2))) if vals.size else float("nan")
-    out.notes.append("vector components gridded by equivalent sources and split into the fields "
-                     f"of sources below and above the survey (uniform part to the "
-                     f"{cfg.uniform_part} side; grid north taken as true north)")
+        out.metrics[f"{name}_rms_nT"] = (
+            float(np.sqrt(np.mean((vals - vals.mean()) ** 2))) if vals.size else float("nan")
+        )
+    out.notes.append(
+        "vector components gridded by equivalent sources and split into the fields "
+        f"of sources below and above the survey (uniform part to the "
+        f"{cfg.uniform_part} side; grid north taken as true north)"
+    )
 
 
 def run_grids(ctx: StageContext) -> StageOutput:
@@ -479,16 +622,19 @@ def run_grids(ctx: StageContext) -> StageOutput:
     table = ctx.table
     name, grid = _main_grid(ctx)
     if grid is None:
-        return StageOutput(notes=["no grid from the grid stage (not available or nothing gridded): "
-                                  "separation skipped"])
+        return StageOutput(
+            notes=["no grid from the grid stage (not available or nothing gridded): separation skipped"]
+        )
     out = StageOutput(table=None if table is None else table.copy())
     present = [c for c in VECTOR if table is not None and c in table.columns]
     if ctx.config.kind == "magnetic" and 0 < len(present) < 3:
         missing = [c for c in VECTOR if c not in present]
         raise StageError(
             f"vector separation needs mag_north, mag_east and mag_down; {', '.join(missing)} "
-            "missing from the readings table", key="input.columns",
-            fix="map all three vector columns in [input.columns], or none")
+            "missing from the readings table",
+            key="input.columns",
+            fix="map all three vector columns in [input.columns], or none",
+        )
     model = load_grid_model(ctx, out, missing="regional by FFT instead")
     height = grid_height(ctx, grid)
     if model is not None and height is None:
@@ -501,10 +647,14 @@ def run_grids(ctx: StageContext) -> StageOutput:
     results = {}
     if "upward" in methods:
         with translate(InputDataError, key="separate.regional_height_m"):
-            regional, residual = sep.regional_upward(grid, cfg.regional_height_m, model=model,
-                                                     grid_height=height,
-                                                     pad_fraction=cfg.pad_fraction,
-                                                     pad_mode=cfg.pad_mode)
+            regional, residual = sep.regional_upward(
+                grid,
+                cfg.regional_height_m,
+                model=model,
+                grid_height=height,
+                pad_fraction=cfg.pad_fraction,
+                pad_mode=cfg.pad_mode,
+            )
         out.grids["regional_upward"], out.grids["residual_upward"] = regional, residual
         results["upward"] = regional
         out.metrics["upward_method"] = regional.attrs["separation_method"]
@@ -528,22 +678,29 @@ def run_grids(ctx: StageContext) -> StageOutput:
 
             full = fill_masked(grid) if np.isnan(grid.values).any() else grid
             with translate(InputDataError, key="separate.regional_height_m"):
-                regional = sample_grid(sep.regional_upward(full, cfg.regional_height_m,
-                                                           pad_fraction=cfg.pad_fraction,
-                                                           pad_mode=cfg.pad_mode)[0], e, n)
+                regional = sample_grid(
+                    sep.regional_upward(
+                        full, cfg.regional_height_m, pad_fraction=cfg.pad_fraction, pad_mode=cfg.pad_mode
+                    )[0],
+                    e,
+                    n,
+                )
         else:
             regional = results["two_layer"].predict_regional((e, n, u))
         out.table["regional"] = regional
         out.table["residual"] = table[column].to_numpy(dtype=float) - regional
         out.notes.append(f"regional/residual columns from the {first} method applied to '{column}'")
     else:
-        out.notes.append("no value column or coordinates in the table: regional/residual columns "
-                         "not added")
+        out.notes.append("no value column or coordinates in the table: regional/residual columns not added")
     if len(present) == 3 and table is not None:
         _vector(ctx, table, grid, height if height is not None else 0.0, out)
-    out.state = {"input_grid": name, "methods": methods,
-                 "regional_height_m": cfg.regional_height_m, "value_column": column,
-                 "grids": sorted(out.grids)}
+    out.state = {
+        "input_grid": name,
+        "methods": methods,
+        "regional_height_m": cfg.regional_height_m,
+        "value_column": column,
+        "grids": sorted(out.grids),
+    }
     out.notes.append(f"regional/residual of '{name}' by {', '.join(methods)}")
     return out
 
@@ -563,12 +720,14 @@ STAGE = Stage(
     sections=("separate", "grid"),
     contract=Contract(
         requires_columns={"observatory": ("time",)},
-        optional_columns={"observatory": ("sep_internal_*", "sep_external_*", "sep_residual_*"),
-                          "*": ("regional", "residual", "internal_*", "external_*")},
-        provides_grids={"observatory": (),
-                        "*": ("regional_*", "residual_*", "internal_*", "external_*")},
+        optional_columns={
+            "observatory": ("sep_internal_*", "sep_external_*", "sep_residual_*"),
+            "*": ("regional", "residual", "internal_*", "external_*"),
+        },
+        provides_grids={"observatory": (), "*": ("regional_*", "residual_*", "internal_*", "external_*")},
         provides_tables={"observatory": ("coefficients", "station_residuals", "index_comparison"), "*": ()},
     ),
-    inputs=lambda config, survey: ([survey.resolve(config.separate.index_file)]
-                                   if config.separate.index_file else []),
+    inputs=lambda config, survey: (
+        [survey.resolve(config.separate.index_file)] if config.separate.index_file else []
+    ),
 )

@@ -27,11 +27,13 @@ def at(hours):
 # ------------------------------------------------------------------------------------------------
 # calibration
 # ------------------------------------------------------------------------------------------------
-CAL = pd.DataFrame({
-    "counter": [2000.0, 2100.0, 2200.0],
-    "mgal": [2058.320, 2161.255, 2264.195],
-    "factor": [1.02935, 1.02940, 1.02948],
-})
+CAL = pd.DataFrame(
+    {
+        "counter": [2000.0, 2100.0, 2200.0],
+        "mgal": [2058.320, 2161.255, 2264.195],
+        "factor": [1.02935, 1.02940, 1.02948],
+    }
+)
 
 
 def test_calibration_hand_computed():
@@ -127,9 +129,13 @@ def test_loop_drift_two_bases_and_missing_base():
     # Open at base P (g = 10.000), close at base Q (g = 12.500): 2 h, reading level 500.
     # Hand computation: P read 510.000 at 0 h, Q read 512.560 at 2 h -> misclosure
     # (512.560 - 12.500) - (510.000 - 10.000) = 0.060 -> 0.030 mGal/h.
-    res = gn.loop_drift(at([0, 1, 2, 0, 1]), [510.0, 511.0, 512.56, 1.0, 2.0],
-                        [True, False, True, False, False], ["a", "a", "a", "b", "b"],
-                        base_value=[10.0, 0.0, 12.5, 0.0, 0.0])
+    res = gn.loop_drift(
+        at([0, 1, 2, 0, 1]),
+        [510.0, 511.0, 512.56, 1.0, 2.0],
+        [True, False, True, False, False],
+        ["a", "a", "a", "b", "b"],
+        base_value=[10.0, 0.0, 12.5, 0.0, 0.0],
+    )
     assert res.loops.iloc[0]["drift_rate_mgal_per_h"] == pytest.approx(0.03, abs=1e-9)
     assert res.drift[1] == pytest.approx(0.03, abs=1e-9)
     assert res.offset[0] == pytest.approx(500.0)
@@ -152,8 +158,12 @@ TARE_H, TARE = 25.0, 0.35
 
 
 def synthetic(noise=None):
-    value = np.array([TRUE_G[s] + OFFSET[lp] + RATE[lp] * (h - LOOP_T0[lp]) + TARE * (h > TARE_H)
-                      for s, lp, h in zip(STATIONS, LOOPS, HOURS)])
+    value = np.array(
+        [
+            TRUE_G[s] + OFFSET[lp] + RATE[lp] * (h - LOOP_T0[lp]) + TARE * (h > TARE_H)
+            for s, lp, h in zip(STATIONS, LOOPS, HOURS)
+        ]
+    )
     if noise is not None:
         value = value + noise
     return value
@@ -175,8 +185,7 @@ def numpy_design(fixed_base="B"):
 
 def test_network_exact_recovery_and_numpy_lstsq():
     value = synthetic()
-    res = gn.network_adjustment(STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]},
-                                tares=[at(TARE_H)])
+    res = gn.network_adjustment(STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]}, tares=[at(TARE_H)])
     # exact recovery of the noise-free synthetic truth
     for s, g in TRUE_G.items():
         assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-6)
@@ -189,8 +198,7 @@ def test_network_exact_recovery_and_numpy_lstsq():
     assert res.dof == len(STATIONS) - 9
     # independent solution: numpy.linalg.lstsq on the explicit design matrix
     A, free = numpy_design()
-    x, *_ = np.linalg.lstsq(A, value - np.where(np.array(STATIONS) == "B", TRUE_G["B"], 0.0),
-                            rcond=None)
+    x, *_ = np.linalg.lstsq(A, value - np.where(np.array(STATIONS) == "B", TRUE_G["B"], 0.0), rcond=None)
     np.testing.assert_allclose(res.stations.loc[free, "gravity"], x[:4], atol=1e-6)
     np.testing.assert_allclose(loops["offset_mgal"], x[4:6], atol=1e-6)
     np.testing.assert_allclose(loops["drift_rate_mgal_per_h"], x[6:8], atol=1e-7)
@@ -204,8 +212,9 @@ def test_network_noisy_matches_numpy_weighted_lstsq():
     noise = rng.normal(0.0, 0.01, len(STATIONS))
     value = synthetic(noise)
     sigma = np.where(np.array(STATIONS) == "B", 0.005, 0.01)
-    res = gn.network_adjustment(STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]},
-                                tares=[at(TARE_H)], reading_sigma=sigma)
+    res = gn.network_adjustment(
+        STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]}, tares=[at(TARE_H)], reading_sigma=sigma
+    )
     # independent weighted solution: rows scaled by 1/sigma, numpy.linalg.lstsq
     A, free = numpy_design()
     y = value - np.where(np.array(STATIONS) == "B", TRUE_G["B"], 0.0)
@@ -264,8 +273,12 @@ def test_network_larger_random_network_matches_numpy_lstsq():
     level = rng.normal(2000, 5, n_loop)
     rate = rng.normal(0, 0.03, n_loop)
     k_of = np.array([int(lp[1:]) for lp in loops])
-    value = (np.array([truth[s] for s in names]) + level[k_of] + rate[k_of] * (hours - 24.0 * k_of)
-             + rng.normal(0, 0.01, names.size))
+    value = (
+        np.array([truth[s] for s in names])
+        + level[k_of]
+        + rate[k_of] * (hours - 24.0 * k_of)
+        + rng.normal(0, 0.01, names.size)
+    )
     res = gn.network_adjustment(names, at(hours), value, loops, {"B0": 0.0})
     free = sorted(s for s in truth if s != "B0")
     A = np.zeros((names.size, len(free) + 2 * n_loop))
@@ -279,7 +292,7 @@ def test_network_larger_random_network_matches_numpy_lstsq():
     sd = s0 * np.sqrt(np.diag(np.linalg.inv(A.T @ A)))
     np.testing.assert_allclose(res.stations.loc[free, "gravity"], x[: len(free)], atol=1e-8)
     np.testing.assert_allclose(res.stations.loc[free, "sigma_mgal"], sd[: len(free)], rtol=1e-6)
-    np.testing.assert_allclose(res.loops["drift_rate_mgal_per_h"], x[len(free) + n_loop:], atol=1e-9)
+    np.testing.assert_allclose(res.loops["drift_rate_mgal_per_h"], x[len(free) + n_loop :], atol=1e-9)
     assert res.sigma0 == pytest.approx(s0 / 0.01, rel=1e-8)
 
 
@@ -294,14 +307,16 @@ def test_network_failures_are_named():
     # a loop whose stations are each read once cannot give its drift: the error names it
     st = ["B", "S1", "S2", "B"] + ["B", "S3", "S4"]
     with pytest.raises(gn.NetworkError, match="loop L2 drift"):
-        gn.network_adjustment(st, at([0, 1, 2, 3, 24, 25, 26]), np.zeros(7),
-                              ["L1"] * 4 + ["L2"] * 3, {"B": 0.0})
+        gn.network_adjustment(
+            st, at([0, 1, 2, 3, 24, 25, 26]), np.zeros(7), ["L1"] * 4 + ["L2"] * 3, {"B": 0.0}
+        )
 
 
 def test_network_tare_between_loops_not_estimated():
     value = synthetic()
-    res = gn.network_adjustment(STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]},
-                                tares=[at(TARE_H), at(12.0)])
+    res = gn.network_adjustment(
+        STATIONS, at(HOURS), value, LOOPS, {"B": TRUE_G["B"]}, tares=[at(TARE_H), at(12.0)]
+    )
     assert list(res.tares["estimated"]) == [True, False]
     assert any("between loops" in w for w in res.warnings)
     assert res.stations.loc["S3", "gravity"] == pytest.approx(TRUE_G["S3"], abs=1e-6)
@@ -313,16 +328,42 @@ def test_network_tare_between_loops_not_estimated():
 # ------------------------------------------------------------------------------------------------
 # tares cut the meter's record into segments tied through shared stations
 # ------------------------------------------------------------------------------------------------
-SEG_G = {"B": 979800.000, "S1": 979801.234, "S2": 979799.500, "S3": 979802.750, "S4": 979800.600,
-         "S5": 979803.125, "S6": 979798.870, "S7": 979800.015, "S8": 979804.440, "S9": 979797.333}
+SEG_G = {
+    "B": 979800.000,
+    "S1": 979801.234,
+    "S2": 979799.500,
+    "S3": 979802.750,
+    "S4": 979800.600,
+    "S5": 979803.125,
+    "S6": 979798.870,
+    "S7": 979800.015,
+    "S8": 979804.440,
+    "S9": 979797.333,
+}
 # Loop L1 opens and closes at base B. Loop L2 opens at B; a tare at 25.3 h; the crew rereads S7
 # and S6 and ends the day at stations of L1 (S4, S5) without coming back to B: no base repeat
 # spans the tare, only the shared stations tie the segment after it.
-SEG_PLAN = [("L1", "B", 0.0), ("L1", "S1", 0.4), ("L1", "S2", 0.8), ("L1", "S3", 1.2),
-            ("L1", "B", 1.6), ("L1", "S4", 2.1), ("L1", "S5", 2.4), ("L1", "B", 2.8),
-            ("L2", "B", 24.0), ("L2", "S1", 24.3), ("L2", "S6", 24.7), ("L2", "S7", 25.1),
-            ("L2", "S7", 25.5), ("L2", "S6", 25.8), ("L2", "S8", 26.2), ("L2", "S4", 26.6),
-            ("L2", "S9", 27.0), ("L2", "S5", 27.4), ("L2", "S8", 27.7)]
+SEG_PLAN = [
+    ("L1", "B", 0.0),
+    ("L1", "S1", 0.4),
+    ("L1", "S2", 0.8),
+    ("L1", "S3", 1.2),
+    ("L1", "B", 1.6),
+    ("L1", "S4", 2.1),
+    ("L1", "S5", 2.4),
+    ("L1", "B", 2.8),
+    ("L2", "B", 24.0),
+    ("L2", "S1", 24.3),
+    ("L2", "S6", 24.7),
+    ("L2", "S7", 25.1),
+    ("L2", "S7", 25.5),
+    ("L2", "S6", 25.8),
+    ("L2", "S8", 26.2),
+    ("L2", "S4", 26.6),
+    ("L2", "S9", 27.0),
+    ("L2", "S5", 27.4),
+    ("L2", "S8", 27.7),
+]
 SEG_T0 = {"L1": 0.0, "L2": 24.0}
 SEG_LEVEL = {"L1": 2500.0, "L2": 2503.75}
 SEG_RATE = {"L1": 0.035, "L2": -0.02}
@@ -343,15 +384,17 @@ def segment_survey(rate_after=None):
     if rate_after is None:
         value += rate * (hours - t0) + SEG_TARE * after
     else:
-        value += np.where(after, rate * (SEG_TARE_H - t0) + rate_after * (hours - SEG_TARE_H)
-                          + SEG_TARE, rate * (hours - t0))
+        value += np.where(
+            after,
+            rate * (SEG_TARE_H - t0) + rate_after * (hours - SEG_TARE_H) + SEG_TARE,
+            rate * (hours - t0),
+        )
     return station, at(hours), value, loop, hours
 
 
 def test_tare_not_spanned_by_a_base_repeat_tied_through_shared_stations():
     station, time, value, loop, hours = segment_survey()
-    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
-                                tares=[at(SEG_TARE_H)])
+    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)])
     # analytic truth of the synthetic network: every station to 0.001 mGal
     for s, g in SEG_G.items():
         assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
@@ -360,7 +403,9 @@ def test_tare_not_spanned_by_a_base_repeat_tied_through_shared_stations():
     assert tare["step_mgal"] == pytest.approx(SEG_TARE, abs=1e-3)
     seg = res.segments.set_index("segment")
     assert list(seg.index) == ["L1", "L2#1", "L2#2"]
-    assert seg.loc["L2#2", "offset_mgal"] - seg.loc["L2#1", "offset_mgal"] == pytest.approx(SEG_TARE, abs=1e-6)
+    assert seg.loc["L2#2", "offset_mgal"] - seg.loc["L2#1", "offset_mgal"] == pytest.approx(
+        SEG_TARE, abs=1e-6
+    )
     # value - drift - offset is gravity at the mark at every reading
     np.testing.assert_allclose(value - res.drift - res.offset, [SEG_G[s] for s in station], atol=1e-6)
     # independent solution: numpy.linalg.lstsq on the explicit design matrix of the segment model
@@ -381,8 +426,9 @@ def test_tare_not_spanned_by_a_base_repeat_tied_through_shared_stations():
 def test_tare_restarting_the_drift():
     # the jolt also changed the drift rate: each segment with its own drift (tare_drift="restart")
     station, time, value, loop, _ = segment_survey(rate_after=0.05)
-    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
-                                tares=[at(SEG_TARE_H)], tare_drift="restart")
+    res = gn.network_adjustment(
+        station, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)], tare_drift="restart"
+    )
     for s, g in SEG_G.items():  # analytic truth
         assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
     rates = res.loops.set_index("loop")["drift_rate_mgal_per_h"]
@@ -390,8 +436,7 @@ def test_tare_restarting_the_drift():
     assert rates["L2#2"] == pytest.approx(0.05, abs=1e-6)
     assert res.tares.iloc[0]["step_mgal"] == pytest.approx(SEG_TARE, abs=1e-3)
     # one drift through the tare cannot fit a changed rate: residuals remain (the test can fail)
-    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]},
-                                tares=[at(SEG_TARE_H)])
+    res = gn.network_adjustment(station, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)])
     assert np.nanmax(np.abs(res.residuals)) > 1e-3
 
 
@@ -409,8 +454,15 @@ def test_isolated_segment_is_named():
     assert "reoccupy a station read before it" in text  # the fix
     # with several meters, the message names the meter
     with pytest.raises(gn.NetworkError, match="meter M-0417: loop L2 segment 2"):
-        gn.network_adjustment(lonely, time, value, loop, {"B": SEG_G["B"]}, tares=[at(SEG_TARE_H)],
-                              meter=["M-0417"] * len(lonely))
+        gn.network_adjustment(
+            lonely,
+            time,
+            value,
+            loop,
+            {"B": SEG_G["B"]},
+            tares=[at(SEG_TARE_H)],
+            meter=["M-0417"] * len(lonely),
+        )
 
 
 def test_tare_between_last_station_and_closing_base_cannot_be_told_from_drift():
@@ -419,8 +471,7 @@ def test_tare_between_last_station_and_closing_base_cannot_be_told_from_drift():
     st = ["B", "S1", "S2", "B", "B", "S3", "S4", "B"]
     h = np.array([0.0, 0.5, 1.0, 1.5, 24.0, 24.5, 25.0, 25.5])
     with pytest.raises(gn.NetworkError, match=r"loop L2: its drift and the tare.*2024-03-06T09:15:00"):
-        gn.network_adjustment(st, at(h), np.zeros(8), ["L1"] * 4 + ["L2"] * 4, {"B": 0.0},
-                              tares=[at(25.25)])
+        gn.network_adjustment(st, at(h), np.zeros(8), ["L1"] * 4 + ["L2"] * 4, {"B": 0.0}, tares=[at(25.25)])
 
 
 def test_dial_jump_detected_and_proposed_as_tare():
@@ -446,8 +497,9 @@ def test_dial_jump_detected_and_proposed_as_tare():
     assert proposed == np.datetime64("2024-03-05T09:51:00")
     assert "'2024-03-05T09:51:00Z'" in text
     # taking the proposal as a tare recovers the stations (analytic truth, 0.001 mGal)
-    res = gn.network_adjustment(station, time, jumped, loop, {"B": SEG_G["B"]},
-                                tares=[proposed, at(SEG_TARE_H)])
+    res = gn.network_adjustment(
+        station, time, jumped, loop, {"B": SEG_G["B"]}, tares=[proposed, at(SEG_TARE_H)]
+    )
     for s, g in SEG_G.items():
         assert res.stations.loc[s, "gravity"] == pytest.approx(g, abs=1e-3)
     steps = res.tares.set_index("loop")["step_mgal"]

@@ -14,8 +14,9 @@ from potfield.fields.harmonic.eqsources.solve import LatticeProblem
 G = 6.6743e-11  # CODATA 2018 gravitational constant (m^3 kg^-1 s^-2)
 
 # Two buried prisms (west, east, south, north, bottom, top) in m and their density contrasts.
-PRISMS = np.array([[1200.0, 1800.0, 1000.0, 2200.0, -900.0, -400.0],
-                   [2400.0, 3100.0, 2500.0, 3000.0, -700.0, -350.0]])
+PRISMS = np.array(
+    [[1200.0, 1800.0, 1000.0, 2200.0, -900.0, -400.0], [2400.0, 3100.0, 2500.0, 3000.0, -700.0, -350.0]]
+)
 DENSITY = np.array([400.0, -300.0])
 SURVEY = (0.0, 4000.0, 0.0, 4000.0)
 LINE_SPACING = 200.0
@@ -62,8 +63,9 @@ def _relative_rms(pred, true):
 @pytest.mark.parametrize("method", ["fft", "dense"])
 def test_grid_matches_forward_model(lines, method):
     _, _, blocked, bdata = lines
-    model = eqs.fit_equivalent_sources(*blocked, bdata, depth=4.5 * CELL, damping=1e-3,
-                                       block_size=CELL, method=method)
+    model = eqs.fit_equivalent_sources(
+        *blocked, bdata, depth=4.5 * CELL, damping=1e-3, block_size=CELL, method=method
+    )
     assert model.method == method
     east, north, up = _grid_points(150.0)
     keep = _inside(blocked, east, north)
@@ -77,8 +79,9 @@ def test_grid_matches_forward_model(lines, method):
 
 def test_upward_continuation_matches_analytic_field(lines):
     _, _, blocked, bdata = lines
-    model = eqs.fit_equivalent_sources(*blocked, bdata, depth=4.5 * CELL, damping=1e-3,
-                                       block_size=CELL, method="fft")
+    model = eqs.fit_equivalent_sources(
+        *blocked, bdata, depth=4.5 * CELL, damping=1e-3, block_size=CELL, method="fft"
+    )
     east, north, up = _grid_points(150.0 + 300.0)
     keep = _inside(blocked, east, north)
     # The forward-modelled field at 450 m is the exact upward continuation of the field at
@@ -94,8 +97,7 @@ def test_dense_fit_reproduces_data_with_tiny_damping():
     coords = (coords[0], coords[1], coords[2] + rng.normal(0, 10, 300))
     data = truth(coords)
     spacing = eqs.median_spacing(*coords[:2])
-    model = eqs.fit_equivalent_sources(*coords, data, depth=2.0 * spacing, damping=1e-10,
-                                       method="dense")
+    model = eqs.fit_equivalent_sources(*coords, data, depth=2.0 * spacing, damping=1e-10, method="dense")
     # Exact interpolation: with (almost) no damping the layer passes through every datum
     # (Cordell 1992, Geophysics 57:629); tolerance set by the conditioning of 300 sources.
     resid = data - model.predict(coords)
@@ -108,8 +110,9 @@ def test_sources_field_is_the_point_mass_potential():
     rng = np.random.default_rng(5)
     coords = vd.scatter_points((0, 3000, 0, 3000), size=2000, random_state=2, extra_coords=120.0)
     data = rng.normal(size=2000)
-    model = eqs.fit_equivalent_sources(*coords, data, depth=200.0, damping=1e-2,
-                                       block_size=60.0, method="fft")
+    model = eqs.fit_equivalent_sources(
+        *coords, data, depth=200.0, damping=1e-2, block_size=60.0, method="fft"
+    )
     points = vd.grid_coordinates((-500, 3500, -500, 3500), spacing=37.0, extra_coords=160.0)
     masses = model.coefs * model.scale / G
     reference = hm.point_gravity(points, model.points, masses, field="potential")
@@ -135,9 +138,9 @@ def test_lattice_operator_and_adjoint():
     assert np.linalg.norm(fast - exact) < 1e-4 * np.linalg.norm(exact)
     resid = rng.normal(size=1500)
     # <A c, r> = <c, A^T r> (the adjoint used by CGLS) to rounding: double-precision FFTs.
-    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) \
-        * np.linalg.norm(resid)
-
+    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) * np.linalg.norm(
+        resid
+    )
 
 
 def test_lattice_operator_small_case():
@@ -158,11 +161,13 @@ def test_lattice_operator_small_case():
     lattice = model._predict_fft(*(np.ravel(c).astype(float) for c in above))
     assert np.linalg.norm(lattice - model.predict(above)) < 1e-4 * np.linalg.norm(lattice)
     resid = rng.normal(size=120)
-    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) \
-        * np.linalg.norm(resid)
+    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) * np.linalg.norm(
+        resid
+    )
     blocks = problem._preconditioner(1e-3)
     x, y = rng.normal(size=(2, problem.n_sources))
     assert abs(x @ blocks.apply(y) - y @ blocks.apply(x)) < 1e-9 * abs(x @ blocks.apply(x))
+
 
 def test_preconditioned_cgls_solves_the_damped_least_squares_problem():
     # The lattice solver's answer against numpy's least squares on the explicit stacked matrix
@@ -196,9 +201,15 @@ def test_source_lattice_spacing_follows_depth():
     # and never a lattice finer than the blocks.
     assert eqs.source_spacing(300.0, 50.0) == pytest.approx(75.0)
     assert eqs.source_spacing(100.0, 50.0) == 50.0
-    model = eqs.fit_equivalent_sources(*_grid_points(150.0), np.zeros(_grid_points(150.0)[0].shape)
-                                       + 1.0, depth=600.0, damping=1e-2, block_size=CELL,
-                                       method="fft", maxiter=5)
+    model = eqs.fit_equivalent_sources(
+        *_grid_points(150.0),
+        np.zeros(_grid_points(150.0)[0].shape) + 1.0,
+        depth=600.0,
+        damping=1e-2,
+        block_size=CELL,
+        method="fft",
+        maxiter=5,
+    )
     assert model.lattice[2] == pytest.approx(150.0)
 
 
@@ -220,8 +231,9 @@ def test_cross_validation_prefers_a_sensible_depth(lines):
     half = blocked[1] < 2100.0  # half the survey keeps the test fast
     blocked, bdata = tuple(c[half] for c in blocked), bdata[half]
     depths = [0.2 * CELL, 2.5 * LINE_SPACING, 20.0 * LINE_SPACING]
-    scores, best = eqs.cross_validate(*blocked, bdata, depths=depths, dampings=[1e-3],
-                                      block_size=CELL, folds=3, cv_spacing=800.0)
+    scores, best = eqs.cross_validate(
+        *blocked, bdata, depths=depths, dampings=[1e-3], block_size=CELL, folds=3, cv_spacing=800.0
+    )
     assert set(scores.columns) >= {"depth", "damping", "r2", "r2_se", "rms", "chosen"}
     assert len(scores) == 3
     # the chosen pair is the one of highest mean R^2 (common practice)
@@ -239,8 +251,9 @@ def test_cross_validation_prefers_a_sensible_depth(lines):
 def test_save_load_round_trip(tmp_path, lines, method):
     _, _, blocked, bdata = lines
     take = slice(None) if method == "fft" else slice(None, None, 4)
-    model = eqs.fit_equivalent_sources(*(c[take] for c in blocked), bdata[take], depth=150.0,
-                                       damping=1e-2, block_size=CELL, method=method)
+    model = eqs.fit_equivalent_sources(
+        *(c[take] for c in blocked), bdata[take], depth=150.0, damping=1e-2, block_size=CELL, method=method
+    )
     path = eqs.save_model(tmp_path / "cache" / "eqs.npz", model)
     again = eqs.load_model(path)
     points = _grid_points(300.0)
@@ -250,8 +263,9 @@ def test_save_load_round_trip(tmp_path, lines, method):
 
 def test_grid_method_ascending_and_drape(lines):
     _, _, blocked, bdata = lines
-    model = eqs.fit_equivalent_sources(*blocked, bdata, depth=150.0, damping=1e-2,
-                                       block_size=CELL, method="fft")
+    model = eqs.fit_equivalent_sources(
+        *blocked, bdata, depth=150.0, damping=1e-2, block_size=CELL, method="fft"
+    )
     flat = model.grid(spacing=100.0, height=200.0, name="g")
     assert flat.dims == ("northing", "easting")
     assert np.all(np.diff(flat.northing) > 0) and np.all(np.diff(flat.easting) > 0)
@@ -283,8 +297,9 @@ def test_block_median_matches_verde():
     d = rng.normal(0, 1, 5000)
     region = (0.0, 1000.0, 0.0, 600.0)
     (be, bn, bu), bd = block_median(e, n, u, d, 100.0, region=region)
-    reducer = vd.BlockReduce(np.median, spacing=100.0, region=region, drop_coords=False,
-                             adjust="spacing", center_coordinates=False)
+    reducer = vd.BlockReduce(
+        np.median, spacing=100.0, region=region, drop_coords=False, adjust="spacing", center_coordinates=False
+    )
     (ve, vn, vu), vdat = reducer.filter((e, n, u), d)
     ours = np.c_[be, bn, bu, bd]
     theirs = np.c_[ve, vn, vu, vdat]
@@ -297,8 +312,9 @@ def test_block_median_matches_verde():
 # ------------------------------------------------------------------------------------------------
 # a draped survey: sources follow the flight surface (relative depth)
 # ------------------------------------------------------------------------------------------------
-DRAPE_PRISMS = np.array([[1500.0, 2100.0, 800.0, 3200.0, -300.0, 60.0],
-                         [2800.0, 3300.0, 2500.0, 3100.0, -500.0, 0.0]])
+DRAPE_PRISMS = np.array(
+    [[1500.0, 2100.0, 800.0, 3200.0, -300.0, 60.0], [2800.0, 3300.0, 2500.0, 3100.0, -500.0, 0.0]]
+)
 DRAPE_DENSITY = np.array([500.0, -400.0])
 
 
@@ -331,8 +347,9 @@ def test_relative_layer_follows_a_draped_survey(draped):
     blocked, bdata, grid, true = draped
     errors = {}
     for depth_type in ("relative", "constant"):
-        model = eqs.fit_equivalent_sources(*blocked, bdata, depth=150.0, damping=1e-4,
-                                           block_size=CELL, method="fft", depth_type=depth_type)
+        model = eqs.fit_equivalent_sources(
+            *blocked, bdata, depth=150.0, damping=1e-4, block_size=CELL, method="fft", depth_type=depth_type
+        )
         errors[depth_type] = _relative_rms(model.predict(grid), true)
         if depth_type == "relative":
             relative = model
@@ -343,8 +360,9 @@ def test_relative_layer_follows_a_draped_survey(draped):
     assert errors["relative"] < 0.8 * errors["constant"], errors
     # The layer follows the drape: its sources rise and fall with the heights of the data
     # above them (150 m below, or deeper where nearby data are lower).
-    below = eqs.fit_equivalent_sources(*blocked, bdata, depth=150.0, damping=1e-4,
-                                       block_size=CELL, method="fft", maxiter=1).points
+    below = eqs.fit_equivalent_sources(
+        *blocked, bdata, depth=150.0, damping=1e-4, block_size=CELL, method="fft", maxiter=1
+    ).points
     above = _terrain(below[0], below[1]) + 80.0
     assert np.corrcoef(below[2], above)[0, 1] > 0.95
     assert np.all(below[2] <= above - 75.0 + 10.0)  # at least depth/2 under the data (+ noise)
@@ -365,8 +383,9 @@ def test_lattice_operator_when_source_planes_cross_data_levels(draped):
     assert np.linalg.norm(fast - exact) < 1e-4 * np.linalg.norm(exact)
     resid = rng.normal(size=blocked[0].size)
     # double-precision FFTs: the adjoint is the forward's transpose to rounding
-    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) \
-        * np.linalg.norm(resid)
+    assert abs(fast @ resid - coefs @ problem.adjoint(resid)) < 1e-10 * np.linalg.norm(fast) * np.linalg.norm(
+        resid
+    )
 
 
 def test_preconditioner_is_symmetric_positive_and_covers_every_source(draped):
@@ -394,9 +413,9 @@ def test_preconditioner_is_symmetric_positive_and_covers_every_source(draped):
 
 def test_ceiling_and_points_below_the_layer(draped):
     blocked, bdata, _, _ = draped
-    model = eqs.fit_equivalent_sources(*blocked, bdata, depth=150.0, damping=1e-3,
-                                       block_size=CELL, method="fft", ceiling=250.0, maxiter=20)
+    model = eqs.fit_equivalent_sources(
+        *blocked, bdata, depth=150.0, damping=1e-3, block_size=CELL, method="fft", ceiling=250.0, maxiter=20
+    )
     assert model.points[2].max() <= 250.0
     with pytest.raises(ValueError, match="above the equivalent sources"):
-        model._predict_fft(np.array([2000.0]), np.array([2000.0]),
-                           np.array([model.points[2].min() - 10.0]))
+        model._predict_fft(np.array([2000.0]), np.array([2000.0]), np.array([model.points[2].min() - 10.0]))

@@ -10,7 +10,6 @@ import pytest
 
 from potfield.fields.errors import FieldError
 from potfield.fields.harmonic import spherical as sp
-from potfield.fields.magnetic.igrf import igrf
 from potfield.fields.harmonic.separation import (
     coefficient_table,
     external_field_at,
@@ -24,6 +23,7 @@ from potfield.fields.harmonic.separation import (
     separate_vector_plane,
     two_layer_dampings,
 )
+from potfield.fields.magnetic.igrf import igrf
 from potfield.io.grids import make_grid
 
 LAT = np.array([60.0, 40.0, 15.0, -10.0, -35.0, -55.0, 25.0, 5.0])
@@ -41,13 +41,15 @@ def test_uniform_external_field_closed_form():
     # External q10 alone: V = q10 r cos(theta), a uniform field B = -q10 along the axis, so at
     # the equator X = -q10 and Z = 0, at the north pole Z = q10 (Chapman and Bartels 1940; the
     # ring-current signature Dst ~ -q10 at low latitude).
-    br, bt, bp = sp.synthesis(np.array([10.0, 0.0, 0.0]), 6371.2e3, np.array([90.0, 1e-9]),
-                              np.array([30.0, 0.0]), source="external")
+    br, bt, bp = sp.synthesis(
+        np.array([10.0, 0.0, 0.0]), 6371.2e3, np.array([90.0, 1e-9]), np.array([30.0, 0.0]), source="external"
+    )
     np.testing.assert_allclose(-bt, [-10.0, 0.0], atol=1e-6)
     np.testing.assert_allclose(-br, [0.0, 10.0], atol=1e-6)
     # Internal g10 at r = a: an axial dipole, Z = -2 g10 at the north pole, X = -g10 at the equator
-    br, bt, bp = sp.synthesis(np.array([10.0, 0.0, 0.0]), 6371.2e3, np.array([1e-9, 90.0]),
-                              np.array([0.0, 0.0]))
+    br, bt, bp = sp.synthesis(
+        np.array([10.0, 0.0, 0.0]), 6371.2e3, np.array([1e-9, 90.0]), np.array([0.0, 0.0])
+    )
     np.testing.assert_allclose([-br[0], -bt[1]], [-20.0, -10.0], atol=1e-6)
 
 
@@ -55,7 +57,7 @@ def test_fit_is_exact_on_noise_free_data_and_groups_gaps():
     rng = np.random.default_rng(0)
     gi, qe = rng.normal(0, 5, (30, 3)), rng.normal(0, 20, (30, 3))
     north, east, down = _network(gi, qe)
-    north[5:9, 2] = np.nan      # one station's X missing for 4 epochs
+    north[5:9, 2] = np.nan  # one station's X missing for 4 epochs
     down[12, [0, 3, 5]] = np.nan
     for comp in (north, east, down):
         comp[20, 1:] = np.nan  # epoch 20: one station only = 3 data < 6 unknowns
@@ -74,8 +76,9 @@ def test_fit_is_exact_on_noise_free_data_and_groups_gaps():
 def test_too_few_stations_is_a_clear_error():
     north, east, down = _network(np.ones((2, 8)), np.ones((2, 8)), LON[:3], LAT[:3], HGT[:3])
     with pytest.raises(FieldError) as err:
-        fit_gauss_coefficients(north, east, down, LON[:3], LAT[:3], HGT[:3],
-                               internal_degree=2, external_degree=2)
+        fit_gauss_coefficients(
+            north, east, down, LON[:3], LAT[:3], HGT[:3], internal_degree=2, external_degree=2
+        )
     text = str(err.value)
     assert "16 Gauss coefficients" in text and "3 stations" in text and "9 components" in text
     assert "\n" not in text
@@ -112,8 +115,9 @@ def test_induction_ratio_exact_line():
 
 
 def _coef_table(times, q10, ratio=0.0):
-    return pd.DataFrame({"time": times, "g10": ratio * q10, "g11": 0.0, "h11": 0.0,
-                         "q10": q10, "q11": 0.0, "s11": 0.0})
+    return pd.DataFrame(
+        {"time": times, "g10": ratio * q10, "g11": 0.0, "h11": 0.0, "q10": q10, "q11": 0.0, "s11": 0.0}
+    )
 
 
 def test_external_field_at_equator_is_minus_q10_along_north():
@@ -139,8 +143,9 @@ def test_external_field_at_interpolates_and_refuses_outside():
     dF = external_field_at(table, 40.0, 0.0, 0.0, half)
     main = igrf(40.0, 0.0, 0.0, half)
     np.testing.assert_allclose(dF, -np.array([15.0, 25.0]) * main.north / main.total, rtol=1e-9)
-    outside = external_field_at(table, 40.0, 0.0, 0.0, [times[0] - np.timedelta64(1, "h"),
-                                                        times[-1] + np.timedelta64(1, "h")])
+    outside = external_field_at(
+        table, 40.0, 0.0, 0.0, [times[0] - np.timedelta64(1, "h"), times[-1] + np.timedelta64(1, "h")]
+    )
     assert np.all(np.isnan(outside))
     gappy = table.drop(index=[1, 2, 3]).reset_index(drop=True)  # 4 min between epochs
     assert np.isnan(external_field_at(gappy, 40.0, 0.0, 0.0, times[2]))
@@ -195,12 +200,11 @@ def test_vector_parts_add_up_to_the_data_and_masks_are_kept():
         # the split is linear and complete: the parts add up to the data (algebra)
         np.testing.assert_allclose(total[~mask], comps[k][~mask], atol=1e-9)
     # a uniform field added to the data goes wholly to the side named by `uniform`
-    base = separate_vector_plane(*(_grid(c, n) for c, n in zip(comps, ("n", "e", "d"))),
-                                 uniform="internal")
-    shifted = separate_vector_plane(*(_grid(c + 100.0, n) for c, n in zip(comps, ("n", "e", "d"))),
-                                    uniform="internal")
-    np.testing.assert_allclose(shifted["external_down"].values, base["external_down"].values,
-                               atol=1e-9)
+    base = separate_vector_plane(*(_grid(c, n) for c, n in zip(comps, ("n", "e", "d"))), uniform="internal")
+    shifted = separate_vector_plane(
+        *(_grid(c + 100.0, n) for c, n in zip(comps, ("n", "e", "d"))), uniform="internal"
+    )
+    np.testing.assert_allclose(shifted["external_down"].values, base["external_down"].values, atol=1e-9)
     diff = shifted["internal_down"].values - base["internal_down"].values
     assert np.nanmax(np.abs(diff - 100.0)) < 1e-9
 
@@ -232,8 +236,7 @@ def test_two_heights_of_a_field_from_below_is_internal():
     # plane cannot attribute; with the default regularisation the longest wavelengths go to
     # the external side: 5 % (measured 2.3 %)
     for reg, bound in ((0.0, 0.01), (0.1, 0.05)):
-        internal, external = separate_two_heights(_grid(gz(0.0)), _grid(gz(50.0)), 50.0,
-                                                  regularisation=reg)
+        internal, external = separate_two_heights(_grid(gz(0.0)), _grid(gz(50.0)), 50.0, regularisation=reg)
         err = internal.values - gz(0.0)
         assert np.abs(err - err[inner].mean())[inner].max() < bound * gz(0.0).max()
         assert np.all(np.isfinite(internal.values))
@@ -253,11 +256,21 @@ def test_regional_upward_parts_add_up_and_bad_height():
 
 def test_two_layer_checks_and_damping_rule():
     with pytest.raises(FieldError, match="deep > shallow"):
-        fit_two_layer((EE, NN, np.zeros_like(EE)), np.ones_like(EE), deep_depth=100.0,
-                      shallow_depth=200.0, crossover_wavelength=1000.0)
+        fit_two_layer(
+            (EE, NN, np.zeros_like(EE)),
+            np.ones_like(EE),
+            deep_depth=100.0,
+            shallow_depth=200.0,
+            crossover_wavelength=1000.0,
+        )
     with pytest.raises(FieldError, match="finite data"):
-        fit_two_layer((EE[:1, :5], NN[:1, :5], np.zeros((1, 5))), np.ones((1, 5)),
-                      deep_depth=1000.0, shallow_depth=200.0, crossover_wavelength=1000.0)
+        fit_two_layer(
+            (EE[:1, :5], NN[:1, :5], np.zeros((1, 5))),
+            np.ones((1, 5)),
+            deep_depth=1000.0,
+            shallow_depth=200.0,
+            crossover_wavelength=1000.0,
+        )
     # the rule: deep fraction 1 / (1 + exp(2 k (h_d - h_s)) / rho) is 1/2 at the crossover
     deep_d, shallow_d = two_layer_dampings(4000.0, 2000.0, 300.0, 1000.0, 100.0)
     rho = shallow_d * (100.0 / 300.0) ** 2 / (deep_d * (1000.0 / 2000.0) ** 2)

@@ -55,8 +55,7 @@ def _dipoles():
 def _tfa(easting, northing, upward):
     """Total-field anomaly of the dipoles by harmonica (reference library)."""
     dipoles, moments = _dipoles()
-    be, bn, bu = harmonica.dipole_magnetic((easting, northing, upward), dipoles, moments,
-                                           field="b")
+    be, bn, bu = harmonica.dipole_magnetic((easting, northing, upward), dipoles, moments, field="b")
     f_hat = _direction()
     return be * f_hat[0] + bn * f_hat[1] + bu * f_hat[2]
 
@@ -120,8 +119,7 @@ def test_blend_weights_sum_to_one():
     # the outer tiles keep their weight beyond the region (extrapolation by the nearest tile).
     in_region = (e >= REGION[0]) & (e <= REGION[1]) & (n >= REGION[2]) & (n <= REGION[3])
     for k, win in enumerate(windows):
-        outside = ((e < win.support[0]) | (e > win.support[1]) | (n < win.support[2])
-                   | (n > win.support[3]))
+        outside = (e < win.support[0]) | (e > win.support[1]) | (n < win.support[2]) | (n > win.support[3])
         assert np.all(weights[k][outside] == 0.0)
         inner = (e >= win.fit[0]) & (e <= win.fit[1]) & (n >= win.fit[2]) & (n <= win.fit[3])
         assert np.all(inner[(weights[k] > 0) & in_region])
@@ -138,18 +136,34 @@ def test_whole_fit_matches_harmonica(whole):
     e, n = np.meshgrid(whole.easting.values, whole.northing.values)
     truth = _interior(whole.copy(data=_tfa(e, n, np.full(e.shape, HEIGHT))))
     misfit = _interior(whole) - truth
-    assert np.sqrt(np.mean(misfit ** 2)) < 0.01 * truth.std()  # measured 0.27 %
+    assert np.sqrt(np.mean(misfit**2)) < 0.01 * truth.std()  # measured 0.27 %
 
 
 def test_tiled_agrees_with_whole_on_a_local_cluster(survey, whole):
     distributed = pytest.importorskip("distributed")
     e, n, u, d = survey
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster, \
-            distributed.Client(cluster) as client:
-        result = fit_tiled(e, n, u, d, region=REGION, spacing=SPACING, height=HEIGHT,
-                           tile_size=TILE, overlap=OVERLAP, depth=DEPTH, damping=DAMPING,
-                           block_size=BLOCK, client=client, residuals=True)
+    with (
+        distributed.LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
+        result = fit_tiled(
+            e,
+            n,
+            u,
+            d,
+            region=REGION,
+            spacing=SPACING,
+            height=HEIGHT,
+            tile_size=TILE,
+            overlap=OVERLAP,
+            depth=DEPTH,
+            damping=DAMPING,
+            block_size=BLOCK,
+            client=client,
+            residuals=True,
+        )
     tiled = result.grid
     assert tiled.dims == ("northing", "easting")
     np.testing.assert_array_equal(tiled.easting.values, whole.easting.values)
@@ -165,35 +179,59 @@ def test_tiled_agrees_with_whole_on_a_local_cluster(survey, whole):
     # leave room for other BLAS/FFT builds yet fail on a blending error (a missing or doubled
     # tile at a seam is tens of %).
     diff = _interior(tiled) - _interior(whole)
-    assert np.sqrt(np.mean(diff ** 2)) < 0.01 * truth.std()
+    assert np.sqrt(np.mean(diff**2)) < 0.01 * truth.std()
     # And against harmonica's forward model (reference library) itself, as for the whole fit.
     misfit = _interior(tiled) - truth
-    assert np.sqrt(np.mean(misfit ** 2)) < 0.01 * truth.std()
+    assert np.sqrt(np.mean(misfit**2)) < 0.01 * truth.std()
     # Residuals at the data: the blended model fits the data it was fitted to (the field is
     # exactly harmonic, so the residual is only interpolation/damping error; measured 0.15 %).
     assert np.isfinite(result.residual).all()
-    assert np.sqrt(np.mean(result.residual ** 2)) < 0.005 * d.std()
+    assert np.sqrt(np.mean(result.residual**2)) < 0.005 * d.std()
 
 
 def test_grid_tiled_threads_scheduler_without_client(survey, whole):
     e, n, u, d = survey
-    tiled = grid_tiled(e, n, u, d, region=REGION, spacing=SPACING, height=HEIGHT,
-                       tile_size=TILE, overlap=OVERLAP, depth=DEPTH, damping=DAMPING,
-                       block_size=BLOCK, scheduler="threads")
+    tiled = grid_tiled(
+        e,
+        n,
+        u,
+        d,
+        region=REGION,
+        spacing=SPACING,
+        height=HEIGHT,
+        tile_size=TILE,
+        overlap=OVERLAP,
+        depth=DEPTH,
+        damping=DAMPING,
+        block_size=BLOCK,
+        scheduler="threads",
+    )
     diff = _interior(tiled) - _interior(whole)
     gx, gy = np.meshgrid(tiled.easting.values, tiled.northing.values)
     truth = _interior(tiled.copy(data=_tfa(gx, gy, np.full(gx.shape, HEIGHT))))
     # Same tolerance and reasoning as the cluster test (harmonica forward model as reference).
-    assert np.sqrt(np.mean(diff ** 2)) < 0.01 * truth.std()
+    assert np.sqrt(np.mean(diff**2)) < 0.01 * truth.std()
     assert tiled.attrs["windows"] == 4
 
 
 def test_window_without_data_leaves_nan_far_from_data(survey):
     e, n, u, d = survey
     keep = ~((e > 3_900.0) & (n > 3_900.0))  # no data in the north-east tile's fit window
-    tiled = grid_tiled(e[keep], n[keep], u[keep], d[keep], region=REGION, spacing=SPACING,
-                       height=HEIGHT, tile_size=TILE, overlap=OVERLAP, depth=DEPTH,
-                       damping=DAMPING, block_size=BLOCK, scheduler="synchronous")
+    tiled = grid_tiled(
+        e[keep],
+        n[keep],
+        u[keep],
+        d[keep],
+        region=REGION,
+        spacing=SPACING,
+        height=HEIGHT,
+        tile_size=TILE,
+        overlap=OVERLAP,
+        depth=DEPTH,
+        damping=DAMPING,
+        block_size=BLOCK,
+        scheduler="synchronous",
+    )
     assert tiled.attrs["windows"] == 3
     ne = tiled.sel(easting=slice(10_000, None), northing=slice(10_000, None)).values
     sw = tiled.sel(easting=slice(None, 3_000), northing=slice(None, 3_000)).values
@@ -203,5 +241,16 @@ def test_window_without_data_leaves_nan_far_from_data(survey):
 def test_bad_overlap_is_refused(survey):
     e, n, u, d = survey
     with pytest.raises(ValueError, match="overlap"):
-        grid_tiled(e, n, u, d, region=REGION, spacing=SPACING, height=HEIGHT, tile_size=1_000.0,
-                   overlap=1_000.0, depth=DEPTH, damping=DAMPING)
+        grid_tiled(
+            e,
+            n,
+            u,
+            d,
+            region=REGION,
+            spacing=SPACING,
+            height=HEIGHT,
+            tile_size=1_000.0,
+            overlap=1_000.0,
+            depth=DEPTH,
+            damping=DAMPING,
+        )

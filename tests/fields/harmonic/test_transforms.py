@@ -29,8 +29,7 @@ def _point_gz(height=0.0, depth=800.0, mass=5e10, e0=4100.0, n0=2900.0):
 
 def _grid(values=None, name="bouguer_anomaly"):
     values = _point_gz() if values is None else values
-    return make_grid(E, N, values, name=name, units="mGal", long_name="Bouguer anomaly",
-                     history="gridded")
+    return make_grid(E, N, values, name=name, units="mGal", long_name="Bouguer anomaly", history="gridded")
 
 
 def _plane(a=3.0, b=2e-3, c=-1e-3):
@@ -122,8 +121,9 @@ def test_same_result_for_descending_coordinates(name):
         dim = next(iter(flip))
         # returned in the input's order, equal cell by cell (Blakely 1995 pitfall: N-S flip)
         assert result[dim].values[0] > result[dim].values[-1]
-        np.testing.assert_allclose(result.sortby(dim).values, ref.values, rtol=1e-9, atol=1e-12,
-                                   equal_nan=True)
+        np.testing.assert_allclose(
+            result.sortby(dim).values, ref.values, rtol=1e-9, atol=1e-12, equal_nan=True
+        )
 
 
 def test_transposed_input_is_accepted():
@@ -225,8 +225,9 @@ def test_rtp_method_choice_and_attributes():
     np.testing.assert_allclose(same.values, auto_high.values, atol=1e-9 * np.abs(auto_high.values).max())
     # the default pseudo filter is continuous with the plain one at the auto threshold (30 deg)
     at = tf.reduction_to_pole(grid, 30.0, 3.0, method="pseudo")
-    np.testing.assert_allclose(at.values, tf.reduction_to_pole(grid, 30.0, 3.0).values,
-                               atol=1e-9 * np.abs(at.values).max())
+    np.testing.assert_allclose(
+        at.values, tf.reduction_to_pole(grid, 30.0, 3.0).values, atol=1e-9 * np.abs(at.values).max()
+    )
 
 
 def test_rtp_refuses_half_a_magnetisation_direction():

@@ -22,10 +22,10 @@ def dipole_tmi(east, north, up, source=(2000.0, 1100.0, -800.0), moment=2e9, inc
     i, d = np.radians(inc), np.radians(dec)
     f = np.array([np.cos(i) * np.sin(d), np.cos(i) * np.cos(d), -np.sin(i)])  # east, north, up
     r = np.stack([east - source[0], north - source[1], up - source[2]])
-    dist = np.sqrt((r ** 2).sum(axis=0))
+    dist = np.sqrt((r**2).sum(axis=0))
     m = moment * f
     mdotr = np.tensordot(m, r, axes=1)
-    b = 1e-7 * (3 * mdotr * r / dist ** 5 - m[:, None] * np.ones_like(dist) / dist ** 3) * 1e9
+    b = 1e-7 * (3 * mdotr * r / dist**5 - m[:, None] * np.ones_like(dist) / dist**3) * 1e9
     return np.tensordot(f, b, axes=1)
 
 
@@ -58,11 +58,13 @@ def synthetic_survey(seed=0, noise=0.05, line_sd=5.0, tie_sd=3.0, diagonal_tie=F
     for name, kind, x, y in rows:
         t = t0 + ((clock + np.arange(x.size) * 0.3) * 1e9).astype("timedelta64[ns]")
         clock += x.size * 0.3 + 120.0
-        frames.append(pd.DataFrame({"line": name, "line_type": kind, "easting": x, "northing": y,
-                                    "time": t, "height": 120.0}))
+        frames.append(
+            pd.DataFrame(
+                {"line": name, "line_type": kind, "easting": x, "northing": y, "time": t, "height": 120.0}
+            )
+        )
     table = pd.concat(frames, ignore_index=True)
-    truth = dipole_tmi(table["easting"].to_numpy(), table["northing"].to_numpy(),
-                       table["height"].to_numpy())
+    truth = dipole_tmi(table["easting"].to_numpy(), table["northing"].to_numpy(), table["height"].to_numpy())
     table["truth"] = truth
     offset = table["line"].map(offsets).to_numpy()
     table["offset"] = offset
@@ -71,9 +73,16 @@ def synthetic_survey(seed=0, noise=0.05, line_sd=5.0, tie_sd=3.0, diagonal_tie=F
 
 
 def crossovers_of(table, **kwargs):
-    return lv.find_crossovers(table["easting"], table["northing"], table["line"],
-                              table["line_type"] == "tie", table["anomaly"], table["time"],
-                              table["height"], **kwargs)
+    return lv.find_crossovers(
+        table["easting"],
+        table["northing"],
+        table["line"],
+        table["line_type"] == "tie",
+        table["anomaly"],
+        table["time"],
+        table["height"],
+        **kwargs,
+    )
 
 
 def brute_force_points(x, y, names, is_tie):
@@ -81,8 +90,11 @@ def brute_force_points(x, y, names, is_tie):
     seg = []
     for name in pd.unique(names):  # loop over lines
         sel = np.flatnonzero(names == name)
-        seg.append(np.column_stack([x[sel][:-1], y[sel][:-1], x[sel][1:], y[sel][1:],
-                                    np.full(sel.size - 1, is_tie[sel][0])]))
+        seg.append(
+            np.column_stack(
+                [x[sel][:-1], y[sel][:-1], x[sel][1:], y[sel][1:], np.full(sel.size - 1, is_tie[sel][0])]
+            )
+        )
     seg = np.vstack(seg)
     a, b = seg[seg[:, 4] == 0], seg[seg[:, 4] == 1]
     p = a[:, None, :2]
@@ -180,8 +192,7 @@ def test_crossovers_match_shapely_if_installed():
 
     table, _ = synthetic_survey(seed=4, diagonal_tie=True)
     c = crossovers_of(table, tie_tie=True)
-    tracks = {n: LineString(g[["easting", "northing"]].to_numpy())
-              for n, g in table.groupby("line")}
+    tracks = {n: LineString(g[["easting", "northing"]].to_numpy()) for n, g in table.groupby("line")}
     for row in c.itertuples():
         hit = tracks[row.line].intersection(tracks[row.tie])
         pts = np.array([[p.x, p.y] for p in getattr(hit, "geoms", [hit])])
@@ -230,8 +241,12 @@ def test_tie_network_matches_explicit_lstsq():
 def test_parallel_ties_use_mean_traverse_misclosure():
     # Ties that do not cross: each tie's constant is the mean misclosure (line - tie) at it,
     # then the mean over ties is removed (datum; Luyendyk 1997).
-    rows = [("traverse-tie", "L1", "A", 3.0, 0.0), ("traverse-tie", "L2", "A", 5.0, 0.0),
-            ("traverse-tie", "L1", "B", -1.0, 0.0), ("traverse-tie", "L2", "B", 1.0, 0.0)]
+    rows = [
+        ("traverse-tie", "L1", "A", 3.0, 0.0),
+        ("traverse-tie", "L2", "A", 5.0, 0.0),
+        ("traverse-tie", "L1", "B", -1.0, 0.0),
+        ("traverse-tie", "L2", "B", 1.0, 0.0),
+    ]
     result = lv.adjust_ties(_crossover_rows(rows), ["A", "B", "C"], huber_threshold=None)
     # by hand: means 4 and 0 -> minus their mean 2 -> +2, -2; C has no crossover -> 0
     assert result.corrections["A"] == pytest.approx(2.0)
@@ -276,14 +291,21 @@ def test_huber_irls_is_a_weighted_least_squares_fixed_point():
 
 
 def test_too_few_crossovers_keep_level_and_degree_is_lowered():
-    rows = [("traverse-tie", "L1", "A", 2.0, 0.0),
-            ("traverse-tie", "L2", "A", 1.0, 0.0), ("traverse-tie", "L2", "B", 3.0, 50.0)]
-    adj = lv.adjust_lines(_crossover_rows(rows), model="quadratic", lines=["L1", "L2", "L3"],
-                          min_crossovers=2, huber_threshold=None)
+    rows = [
+        ("traverse-tie", "L1", "A", 2.0, 0.0),
+        ("traverse-tie", "L2", "A", 1.0, 0.0),
+        ("traverse-tie", "L2", "B", 3.0, 50.0),
+    ]
+    adj = lv.adjust_lines(
+        _crossover_rows(rows),
+        model="quadratic",
+        lines=["L1", "L2", "L3"],
+        min_crossovers=2,
+        huber_threshold=None,
+    )
     assert adj.unlevelled == ["L1", "L3"]
     assert adj.degree["L2"] == 1  # two crossovers fix at most a line
-    assert adj.evaluate(["L1", "L2", "L2"], np.array([0.0, 0.0, 50.0])) == pytest.approx(
-        [0.0, -1.0, -3.0])
+    assert adj.evaluate(["L1", "L2", "L2"], np.array([0.0, 0.0, 50.0])) == pytest.approx([0.0, -1.0, -3.0])
 
 
 # --------------------------------------------------------------------------------------------
@@ -312,10 +334,13 @@ def test_offsets_recovered_on_synthetic_survey(diagonal):
     # the injected offsets have a standard deviation of 5 nT.
     assert np.allclose(per_line, tie_mean, atol=3 * np.sqrt(2) * 0.05)
     before = np.sqrt(np.mean(cx["difference"] ** 2))
-    corr_line = np.where(cx["kind"] == "traverse-tie", adj.evaluate(cx["line"], cx["time_line"]),
-                         cx["line"].map(ties.corrections).to_numpy())
+    corr_line = np.where(
+        cx["kind"] == "traverse-tie",
+        adj.evaluate(cx["line"], cx["time_line"]),
+        cx["line"].map(ties.corrections).to_numpy(),
+    )
     d_after = cx["difference"] + corr_line - cx["tie"].map(ties.corrections)
-    after = np.sqrt(np.mean(d_after ** 2))
+    after = np.sqrt(np.mean(d_after**2))
     assert before / after >= 5.0  # brief: crossover RMS drops at least 5x
     assert after < 0.15
 
@@ -359,8 +384,14 @@ def test_one_wild_crossover_does_not_move_a_line():
 
 
 def test_height_and_flag_filters_drop_crossovers():
-    cx = _crossover_rows([("traverse-tie", "L1", "A", 1.0, 0.0), ("traverse-tie", "L1", "B", 1.0, 1.0),
-                          ("traverse-tie", "L1", "C", 9.0, 2.0), ("traverse-tie", "L1", "D", 9.0, 3.0)])
+    cx = _crossover_rows(
+        [
+            ("traverse-tie", "L1", "A", 1.0, 0.0),
+            ("traverse-tie", "L1", "B", 1.0, 1.0),
+            ("traverse-tie", "L1", "C", 9.0, 2.0),
+            ("traverse-tie", "L1", "D", 9.0, 3.0),
+        ]
+    )
     cx.loc[2, "height_difference"] = 45.0  # above the 30 m limit (common practice)
     cx.loc[3, "flagged"] = True
     adj = lv.adjust_lines(cx, model="constant", max_height_difference=30.0, huber_threshold=None)
@@ -376,8 +407,9 @@ def striped_grid(seed=0, spacing=100.0, cell=25.0):
     east = np.arange(0.0, 6000.0 + 1, cell)
     north = np.arange(0.0, 6000.0 + 1, cell)
     ee, nn = np.meshgrid(east, north)
-    anomaly = dipole_tmi(ee.ravel(), nn.ravel(), np.full(ee.size, 100.0),
-                         source=(3000.0, 3000.0, -500.0), moment=5e8).reshape(ee.shape)
+    anomaly = dipole_tmi(
+        ee.ravel(), nn.ravel(), np.full(ee.size, 100.0), source=(3000.0, 3000.0, -500.0), moment=5e8
+    ).reshape(ee.shape)
     line_index = np.floor(north / spacing + 0.5).astype(int)  # nearest line (ties upward)
     amp = rng.uniform(0.5, 1.5, line_index.max() + 1) * (-1.0) ** np.arange(line_index.max() + 1)
     stripes = np.repeat(amp[line_index][:, None], east.size, axis=1)
@@ -386,8 +418,9 @@ def striped_grid(seed=0, spacing=100.0, cell=25.0):
 
 def test_micro_level_removes_corrugation_and_keeps_anomaly():
     east, north, anomaly, stripes = striped_grid()
-    grid = xr.DataArray(anomaly + stripes, coords={"northing": north, "easting": east},
-                        dims=("northing", "easting"))
+    grid = xr.DataArray(
+        anomaly + stripes, coords={"northing": north, "easting": east}, dims=("northing", "easting")
+    )
     corr = lv.micro_level(grid, 90.0, 100.0, cutoff_spacings=3.0, max_amplitude=2.0).to_numpy()
     cleaned = grid.to_numpy() - corr
     core = (slice(20, -20), slice(20, -20))
@@ -412,8 +445,7 @@ def test_micro_level_direction_and_mask():
     east, north, _, stripes = striped_grid(seed=1)
     values = stripes.T.copy()
     values[:5, :5] = np.nan
-    grid = xr.DataArray(values, coords={"northing": north, "easting": east},
-                        dims=("northing", "easting"))
+    grid = xr.DataArray(values, coords={"northing": north, "easting": east}, dims=("northing", "easting"))
     core = (slice(20, -20), slice(20, -20))
     good = lv.micro_level(grid, 0.0, 100.0, max_amplitude=5.0).to_numpy()
     wrong = lv.micro_level(grid, 90.0, 100.0, max_amplitude=5.0).to_numpy()
@@ -429,7 +461,8 @@ def test_line_azimuth_axial_mean():
     y = np.r_[0.0, 10.0, 200.0, 190.0]
     # both lines are 10 m off east-west over 1000 m: azimuth atan2(1000, 10) = 89.43 deg
     assert lv.line_azimuth(x, y, ["a", "a", "b", "b"]) == pytest.approx(
-        np.degrees(np.arctan2(1000.0, 10.0)), abs=1e-9)
+        np.degrees(np.arctan2(1000.0, 10.0)), abs=1e-9
+    )
     assert lv.line_azimuth([0, 0], [0, 5], ["a", "a"]) == pytest.approx(0.0)
 
 
@@ -476,8 +509,12 @@ def test_network_solve_matches_explicit_lstsq():
     t = cx["time_line"].to_numpy()
     mask = cx["kind"].to_numpy() == "traverse-tie"
     got = line_adj.evaluate(cx["line"][mask], t[mask])
-    ref = np.array([x[3 + 2 * lines.index(n)] + x[4 + 2 * lines.index(n)] * tt
-                    for n, tt in zip(cx["line"][mask], t[mask])])
+    ref = np.array(
+        [
+            x[3 + 2 * lines.index(n)] + x[4 + 2 * lines.index(n)] * tt
+            for n, tt in zip(cx["line"][mask], t[mask])
+        ]
+    )
     assert np.allclose(got, ref, atol=1e-6)
 
 
@@ -505,8 +542,7 @@ def test_micro_level_oblique_lines_and_descending_grid():
     ee, nn = np.meshgrid(east, north)
     across = (ee - nn) / np.sqrt(2.0)
     stripes = np.where(np.floor(across / 100.0) % 2 == 0, 1.0, -1.0)
-    grid = xr.DataArray(stripes, coords={"northing": north, "easting": east},
-                        dims=("northing", "easting"))
+    grid = xr.DataArray(stripes, coords={"northing": north, "easting": east}, dims=("northing", "easting"))
     core = (slice(30, -30), slice(30, -30))
     good = lv.micro_level(grid, 45.0, 100.0, max_amplitude=5.0).to_numpy()
     wrong = lv.micro_level(grid, 135.0, 100.0, max_amplitude=5.0).to_numpy()
@@ -539,10 +575,12 @@ def test_vertical_gradient_matches_a_finite_difference_of_the_dipole():
     rng = np.random.default_rng(0)
     pe, pn = rng.uniform(800, 3200, 200), rng.uniform(600, 2400, 200)
     got = lv.vertical_gradient_at(e, n, values, pe, pn, cell=50.0, smoothing=0.0)
-    true = (dipole_tmi(pe, pn, np.full(pe.size, 121.0), source=(2000.0, 1500.0, -400.0))
-            - dipole_tmi(pe, pn, np.full(pe.size, 119.0), source=(2000.0, 1500.0, -400.0))) / 2.0
+    true = (
+        dipole_tmi(pe, pn, np.full(pe.size, 121.0), source=(2000.0, 1500.0, -400.0))
+        - dipole_tmi(pe, pn, np.full(pe.size, 119.0), source=(2000.0, 1500.0, -400.0))
+    ) / 2.0
     assert np.corrcoef(got, true)[0, 1] > 0.98
-    assert np.sqrt(np.mean((got - true) ** 2)) < 0.15 * np.sqrt(np.mean(true ** 2))
+    assert np.sqrt(np.mean((got - true) ** 2)) < 0.15 * np.sqrt(np.mean(true**2))
 
 
 def test_height_corrected_differences_remove_the_taylor_step():

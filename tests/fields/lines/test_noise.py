@@ -47,6 +47,7 @@ def test_robust_spikes_finds_injected_spikes_only():
 
 # --- coarse sampling over strong smooth geology ------------------------------------------------
 
+
 def _dipole_lines(spacing=50.0, depth=150.0, n_lines=12, length=20_000.0, seed=0):
     """Invented lines over buried vertical dipoles (total-field anomaly of a vertical dipole at
     the pole: A (z^3 / 2) (2 z^2 - x^2) / (x^2 + z^2)^(5/2), peak A at x = 0; Blakely 1995,

@@ -10,11 +10,22 @@ import scipy.interpolate
 import scipy.ndimage
 import scipy.signal
 
-from potfield.fields.magnetic.diurnal import (base_datum, chord_deviation, clean_base, combine_bases,
-                                     diurnal_correction, estimate_time_offset, find_gaps,
-                                     great_circle_distance, interpolate_base, running_median,
-                                     station_difference)
-from potfield.fields.magnetic.diurnal import base_sessions, session_datums, setup_transients
+from potfield.fields.magnetic.diurnal import (
+    base_datum,
+    base_sessions,
+    chord_deviation,
+    clean_base,
+    combine_bases,
+    diurnal_correction,
+    estimate_time_offset,
+    find_gaps,
+    great_circle_distance,
+    interpolate_base,
+    running_median,
+    session_datums,
+    setup_transients,
+    station_difference,
+)
 
 T0 = np.datetime64("2024-05-01T00:00:00", "ns")
 
@@ -25,11 +36,15 @@ def _stamp(seconds):
 
 def external(t):
     """An analytic external variation (nT): daily, 30-minute and 47-second terms."""
-    return (25.0 * np.sin(2 * np.pi * t / 86400.0 + 0.3) + 3.0 * np.sin(2 * np.pi * t / 1800.0)
-            + 0.8 * np.sin(2 * np.pi * t / 47.0 + 1.0))
+    return (
+        25.0 * np.sin(2 * np.pi * t / 86400.0 + 0.3)
+        + 3.0 * np.sin(2 * np.pi * t / 1800.0)
+        + 0.8 * np.sin(2 * np.pi * t / 47.0 + 1.0)
+    )
 
 
 # --- interpolation ---------------------------------------------------------------------------
+
 
 def test_linear_interpolation_equals_numpy_interp():
     rng = np.random.default_rng(0)
@@ -66,7 +81,7 @@ def test_nearest_interpolation_equals_scipy():
 
 
 def test_gap_and_outside_flags_hand_case():
-    tb = np.array([0.0, 1, 2, 3, 40, 41, 42])      # a 37 s gap between 3 and 40
+    tb = np.array([0.0, 1, 2, 3, 40, 41, 42])  # a 37 s gap between 3 and 40
     vb = np.arange(7.0)
     vb_nan = vb.copy()
     tr = np.array([-1.0, 0.5, 3.0, 10.0, 40.0, 41.5, 43.0])
@@ -74,7 +89,7 @@ def test_gap_and_outside_flags_hand_case():
     # hand: outside before, inside, on the sample bounding the gap, inside the gap, on sample,
     # inside, outside after
     assert flag.tolist() == [True, False, False, True, False, False, True]
-    assert values[0] == 0.0 and values[-1] == 6.0    # outside: hold the end value
+    assert values[0] == 0.0 and values[-1] == 6.0  # outside: hold the end value
     # a NaN in the base record is a gap too
     vb_nan[1:3] = np.nan
     _, flag = interpolate_base(tb, vb_nan, np.array([1.5]), "linear", max_gap_s=2.5)
@@ -85,6 +100,7 @@ def test_gap_and_outside_flags_hand_case():
 
 
 # --- cleaning --------------------------------------------------------------------------------
+
 
 def test_running_median_equals_scipy_median_filter():
     rng = np.random.default_rng(3)
@@ -112,8 +128,12 @@ def test_clean_base_leaves_an_active_record_alone():
     # short-period variations of ~1 nT are signal, not spikes (the local MAD nearly vanishes
     # where the oscillations cross; the record-median floor keeps those samples)
     t = np.arange(3000.0)
-    v = 50_000 + 0.6 * np.sin(2 * np.pi * t / 13) + 0.4 * np.sin(2 * np.pi * t / 29 + 1) \
+    v = (
+        50_000
+        + 0.6 * np.sin(2 * np.pi * t / 13)
+        + 0.4 * np.sin(2 * np.pi * t / 29 + 1)
         + 0.3 * np.sin(2 * np.pi * t / 7.3 + 2)
+    )
     assert not clean_base(t, v).spike.any()
     v[1234] += 6.0
     assert np.flatnonzero(clean_base(t, v).spike).tolist() == [1234]
@@ -190,11 +210,12 @@ def test_setup_transient_is_flagged_and_session_datums():
 
 # --- datum -----------------------------------------------------------------------------------
 
+
 def test_datum_modes():
     t = np.arange(0.0, 100.0)
     v = 2.0 * t
     assert base_datum(t, v, "value", value=123.0) == 123.0
-    assert base_datum(t, v, "time", at_time=10.25) == pytest.approx(20.5)      # hand: 2 x 10.25
+    assert base_datum(t, v, "time", at_time=10.25) == pytest.approx(20.5)  # hand: 2 x 10.25
     assert base_datum(t, v, "median", span=(10.0, 20.0)) == pytest.approx(30.0)  # median 15 x 2
     assert base_datum(_stamp(t), v, "median") == pytest.approx(99.0)
     with pytest.raises(ValueError):
@@ -202,6 +223,7 @@ def test_datum_modes():
 
 
 # --- the whole correction against an analytic external field --------------------------------
+
 
 @pytest.mark.parametrize("method, tolerance", [("linear", 3e-3), ("cubic", 1e-4)])
 def test_correction_recovers_analytic_variation(method, tolerance):
@@ -227,6 +249,7 @@ def test_correction_recovers_analytic_variation(method, tolerance):
 
 # --- several bases ---------------------------------------------------------------------------
 
+
 def test_great_circle_distance_against_pyproj():
     import pyproj
 
@@ -246,8 +269,9 @@ def test_inverse_distance_power_one_is_linear_between_two_bases():
     lon = np.zeros_like(lat)
     d = np.stack([great_circle_distance(0, 0, lon, lat), great_circle_distance(0, 1, lon, lat)])
     a, b = 10.0, 30.0  # variations at the two bases
-    value, flag, weights = combine_bases(np.stack([np.full(11, a), np.full(11, b)]),
-                                         np.zeros((2, 11), bool), d, "distance", power=1.0)
+    value, flag, weights = combine_bases(
+        np.stack([np.full(11, a), np.full(11, b)]), np.zeros((2, 11), bool), d, "distance", power=1.0
+    )
     np.testing.assert_allclose(value, a + (b - a) * lat, atol=1e-9)
     np.testing.assert_allclose(weights.sum(axis=0), 1.0)
     assert not flag.any()
@@ -276,6 +300,7 @@ def test_station_difference_statistics():
 
 
 # --- chord deviation -------------------------------------------------------------------------
+
 
 def test_chord_deviation_hand_cases():
     t = np.arange(0.0, 21.0)
@@ -309,6 +334,7 @@ def test_chord_deviation_of_a_sine_matches_curvature_bound():
 
 # --- time offset -----------------------------------------------------------------------------
 
+
 def _pulsations(t, seed=6):
     rng = np.random.default_rng(seed)
     periods = rng.uniform(6.0, 40.0, 25)
@@ -323,8 +349,13 @@ def test_time_offset_recovers_a_known_shift_and_agrees_with_scipy():
     base = 50_000.0 + external(tb) + _pulsations(tb)
     lag = 3.4  # survey clock ahead of the base clock by 3.4 s
     ts = np.arange(600.0, 1800.0, 0.5)
-    survey = 51_000.0 + external(ts - lag) + _pulsations(ts - lag) + 0.002 * (ts - 600) \
+    survey = (
+        51_000.0
+        + external(ts - lag)
+        + _pulsations(ts - lag)
+        + 0.002 * (ts - 600)
         + rng.normal(0, 0.02, ts.size)
+    )
     result = estimate_time_offset(_stamp(tb), base, _stamp(ts), survey, highpass_s=60, max_lag_s=20)
     assert result.lag_s == pytest.approx(lag, abs=0.15)
     assert result.correlation > 0.95
@@ -358,12 +389,13 @@ def test_total_field_diurnal_of_a_uniform_external_field_with_igrf():
     lon_b, lat_b = 138.0, -33.0
     lon_s = np.full(50, 138.02)
     lat_s = np.linspace(-33.0, -32.96, 50)
-    be, bn, bu = ppigrf.igrf(np.r_[lon_b, lon_s], np.r_[lat_b, lat_s], np.full(51, 0.1),
-                             datetime.datetime(2024, 5, 1))
-    main = np.stack([bn[0], be[0], -bu[0]])              # X (north), Y (east), Z (down)
+    be, bn, bu = ppigrf.igrf(
+        np.r_[lon_b, lon_s], np.r_[lat_b, lat_s], np.full(51, 0.1), datetime.datetime(2024, 5, 1)
+    )
+    main = np.stack([bn[0], be[0], -bu[0]])  # X (north), Y (east), Z (down)
     theta = np.radians(90.0 - np.r_[lat_b, lat_s])
 
-    def total(i, q):                                     # |B_main + B_ext| at point i
+    def total(i, q):  # |B_main + B_ext| at point i
         x = main[0, i] - q * np.sin(theta[i])
         z = main[2, i] + q * np.cos(theta[i])
         return np.sqrt(x**2 + main[1, i] ** 2 + z**2)
@@ -382,11 +414,10 @@ def test_total_field_diurnal_of_a_uniform_external_field_with_igrf():
     # what stays: base-to-survey change of the field direction times ΔB and the second-order
     # term ΔB_perp^2 / 2F, both below 0.05 nT for 30 nT at < 5 km (hand estimate)
     assert np.ptp(offset) < 0.05
-    assert np.ptp(survey - undisturbed) > 1.0          # the uncorrected variation is much larger
+    assert np.ptp(survey - undisturbed) > 1.0  # the uncorrected variation is much larger
     # and the correction itself is the first-order projection F̂·ΔB at the base
     unit = main[:, 0] / np.linalg.norm(main[:, 0])
     first_order = unit[0] * (-qs * np.sin(theta[0])) + unit[2] * (qs * np.cos(theta[0]))
     first_order_t = unit[0] * (-q10 * np.sin(theta[0])) + unit[2] * (q10 * np.cos(theta[0]))
-    np.testing.assert_allclose(correction + datum - base[0],
-                               first_order - first_order_t[0], atol=0.05)
+    np.testing.assert_allclose(correction + datum - base[0], first_order - first_order_t[0], atol=0.05)
     assert not flag.any()

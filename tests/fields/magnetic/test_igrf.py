@@ -16,8 +16,8 @@ from potfield.fields.magnetic.igrf import (
     igrf_geocentric,
 )
 
-
 # --- coefficients ---------------------------------------------------------------------------
+
 
 def test_published_coefficients():
     g, h = coefficients(np.array([1900.0, 2025.0, 2030.0]))
@@ -57,6 +57,7 @@ def test_field_continuous_across_the_1995_degree_change():
 
 # --- dates ----------------------------------------------------------------------------------
 
+
 def test_decimal_year_definition():
     times = np.array(["2020-07-02T00:00", "2019-07-02T12:00", "2021-01-01", "NaT"], dtype="datetime64[ns]")
     years = decimal_year(times)
@@ -88,7 +89,10 @@ def test_unreadable_time_is_a_field_error():
 
 # --- ranges ---------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("year", [1899.999, 2030.001, np.datetime64("2031-05-01"), np.datetime64("1850-01-01")])
+
+@pytest.mark.parametrize(
+    "year", [1899.999, 2030.001, np.datetime64("2031-05-01"), np.datetime64("1850-01-01")]
+)
 def test_dates_outside_model_raise(year):
     with pytest.raises(OutOfModelRange, match="1900.0 to 2030.0"):
         igrf(0.0, 0.0, 0.0, year)
@@ -115,6 +119,7 @@ def test_nan_inputs_give_nan_not_errors():
 
 # --- shapes ---------------------------------------------------------------------------------
 
+
 def test_scalars_give_0d_arrays():
     f = igrf(10.0, 50.0, 100.0, 2020.0)
     assert all(np.ndim(v) == 0 for v in f)
@@ -139,6 +144,7 @@ def test_empty_input():
 
 
 # --- definitions ----------------------------------------------------------------------------
+
 
 def test_intensity_inclination_declination_definitions():
     rng = np.random.default_rng(3)

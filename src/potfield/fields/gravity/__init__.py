@@ -40,7 +40,7 @@ _API = {
     "longman_gravity": "tides",
     "longman_correction": "tides",
 }
-_MODULES = ('network', 'reductions', 'terrain', 'tides')
+_MODULES = ("network", "reductions", "terrain", "tides")
 
 __all__ = [*_MODULES, *_API]
 

@@ -120,13 +120,16 @@ def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
                 f"calibration table has no column {', '.join(missing)}",
                 hint="give the columns counter, mgal, factor (one row per interval)",
             )
-        cols = [np.asarray(pd.to_numeric(pd.Series(table[lower[c]]), errors="coerce"), dtype=float)
-                for c in ("counter", "mgal", "factor")]
+        cols = [
+            np.asarray(pd.to_numeric(pd.Series(table[lower[c]]), errors="coerce"), dtype=float)
+            for c in ("counter", "mgal", "factor")
+        ]
     else:
         arr = np.asarray(table, dtype=float)
         if arr.ndim != 2 or arr.shape[1] != 3:
-            raise CalibrationTableError("calibration table must have three columns",
-                                        hint="give the columns counter, mgal, factor")
+            raise CalibrationTableError(
+                "calibration table must have three columns", hint="give the columns counter, mgal, factor"
+            )
         cols = [arr[:, 0], arr[:, 1], arr[:, 2]]
     counter, mgal, factor = cols
     if counter.size == 0:
@@ -134,13 +137,19 @@ def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     bad = ~(np.isfinite(counter) & np.isfinite(mgal) & np.isfinite(factor))
     if bad.any():
         row = int(np.flatnonzero(bad)[0]) + 1
-        raise CalibrationTableError("calibration table value is missing or not a number", row=row,
-                                    hint="write numbers in counter, mgal and factor")
+        raise CalibrationTableError(
+            "calibration table value is missing or not a number",
+            row=row,
+            hint="write numbers in counter, mgal and factor",
+        )
     steps = np.diff(counter)
     if (steps <= 0).any():
         row = int(np.flatnonzero(steps <= 0)[0]) + 2
-        raise CalibrationTableError("calibration table counter readings must increase", row=row,
-                                    hint="sort the table by counter reading and remove duplicates")
+        raise CalibrationTableError(
+            "calibration table counter readings must increase",
+            row=row,
+            hint="sort the table by counter reading and remove duplicates",
+        )
     return counter, mgal, factor
 
 
@@ -192,8 +201,9 @@ def apply_calibration(counter, table) -> np.ndarray:
         )
     # Interval index: the last i with C_i <= c (a reading equal to the last counter uses the
     # last row, which gives M_last exactly).
-    i = np.clip(np.searchsorted(c_tab, np.where(finite, counter, c_tab[0]), side="right") - 1,
-                0, c_tab.size - 1)
+    i = np.clip(
+        np.searchsorted(c_tab, np.where(finite, counter, c_tab[0]), side="right") - 1, 0, c_tab.size - 1
+    )
     out = m_tab[i] + (counter - c_tab[i]) * f_tab[i]
     out[~finite] = np.nan
     return out
@@ -283,8 +293,9 @@ def _interp_extrapolate(x, xp, fp):
     return out
 
 
-def loop_drift(time, value, is_base, loop_id, method: str = "linear", base_value=None,
-               use=None) -> LoopDriftResult:
+def loop_drift(
+    time, value, is_base, loop_id, method: str = "linear", base_value=None, use=None
+) -> LoopDriftResult:
     """Instrument drift per loop from repeated base readings.
 
     In each loop the drift is zero at the first base occupation. With ``method="linear"`` it
@@ -463,8 +474,10 @@ def _normalise_bases(bases) -> dict[str, tuple[float, float | None]]:
         else:
             g, sigma = float(spec), None
         if sigma is not None and not sigma > 0:
-            raise BadParameter(f"base '{name}': sigma must be positive, not {sigma}",
-                               hint="give a sigma > 0, or none to hold the base fixed")
+            raise BadParameter(
+                f"base '{name}': sigma must be positive, not {sigma}",
+                hint="give a sigma > 0, or none to hold the base fixed",
+            )
         out[str(name)] = (g, sigma)
     return out
 
@@ -474,9 +487,16 @@ def _stamp(t) -> str:
     return str(np.datetime64(t, "s"))
 
 
-def detect_steps(station, time, value, segment=None, use=None, *,
-                 limit_mgal: float = STEP_LIMIT_MGAL,
-                 rate_allowance: float = STEP_RATE_ALLOWANCE) -> pd.DataFrame:
+def detect_steps(
+    station,
+    time,
+    value,
+    segment=None,
+    use=None,
+    *,
+    limit_mgal: float = STEP_LIMIT_MGAL,
+    rate_allowance: float = STEP_RATE_ALLOWANCE,
+) -> pd.DataFrame:
     """Steps in a meter's record that drift cannot explain (dial/range changes, lost tares).
 
     Consecutive readings of the same station within one segment of the meter's record (one
@@ -509,8 +529,11 @@ def detect_steps(station, time, value, segment=None, use=None, *,
     time = np.asarray(time).astype("datetime64[ns]")
     value = np.asarray(value, dtype=float)
     n = value.size
-    seg = np.zeros(n, dtype=np.int64) if segment is None else pd.factorize(
-        pd.Series(np.asarray(segment, dtype=object)), sort=False)[0]
+    seg = (
+        np.zeros(n, dtype=np.int64)
+        if segment is None
+        else pd.factorize(pd.Series(np.asarray(segment, dtype=object)), sort=False)[0]
+    )
     use = (np.ones(n, dtype=bool) if use is None else np.asarray(use, dtype=bool)) & np.isfinite(value)
     columns = ["segment", "station", "before", "after", "hours", "step_mgal", "proposed_tare"]
     idx = np.flatnonzero(use)
@@ -539,10 +562,17 @@ def detect_steps(station, time, value, segment=None, use=None, *,
         gaps = np.diff(times)
         k = int(np.argmax(gaps)) if gaps.size else 0
         proposed = times[k] + gaps[k] // 2 if gaps.size else time[i]
-        rows.append({"segment": seg_values[i], "station": station[i], "before": time[i],
-                     "after": time[j], "hours": float(hours_since(time[j], time[i])),
-                     "step_mgal": float(value[j] - value[i]),
-                     "proposed_tare": np.datetime64(proposed, "s")})
+        rows.append(
+            {
+                "segment": seg_values[i],
+                "station": station[i],
+                "before": time[i],
+                "after": time[j],
+                "hours": float(hours_since(time[j], time[i])),
+                "step_mgal": float(value[j] - value[i]),
+                "proposed_tare": np.datetime64(proposed, "s"),
+            }
+        )
     return pd.DataFrame(rows, columns=columns)
 
 
@@ -554,9 +584,20 @@ class _Undetermined(Exception):
         self.index = list(index)
 
 
-def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_sigma=0.01,
-                       use=None, estimate_drift: bool = True, meter=None,
-                       tare_drift: str = "continue") -> NetworkResult:
+def network_adjustment(
+    station,
+    time,
+    value,
+    loop,
+    bases,
+    *,
+    tares=(),
+    reading_sigma=0.01,
+    use=None,
+    estimate_drift: bool = True,
+    meter=None,
+    tare_drift: str = "continue",
+) -> NetworkResult:
     """Least-squares adjustment of a relative gravity network with loop drift and tares.
 
     A tare (an abrupt step of the meter's reading level) splits the meter's record: every loop
@@ -637,16 +678,14 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     n = value.size
     loop = np.asarray(loop, dtype=object)
     named_meters = meter is not None
-    meter = (np.full(n, "", dtype=object) if meter is None
-             else np.asarray(meter, dtype=object).astype(str))
+    meter = np.full(n, "", dtype=object) if meter is None else np.asarray(meter, dtype=object).astype(str)
     use = (np.ones(n, dtype=bool) if use is None else np.asarray(use, dtype=bool)) & np.isfinite(value)
     sig = np.broadcast_to(np.asarray(reading_sigma, dtype=float), (n,))
     use &= np.isfinite(sig) & (sig > 0)
     bases = _normalise_bases(bases)
     warnings: list[str] = []
     if not bases:
-        raise NetworkError("no absolute base given",
-                           hint="add at least one base with its absolute gravity")
+        raise NetworkError("no absolute base given", hint="add at least one base with its absolute gravity")
     used = np.flatnonzero(use)
     if used.size == 0:
         raise NetworkError("no usable reading to adjust", hint="check the flags and readings")
@@ -667,8 +706,10 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     name_to_code = {name: i for i, name in enumerate(st_names)}
     for name in bases:
         if name not in name_to_code or occupations[name_to_code[name]] == 0:
-            raise NetworkError(f"base '{name}' is never occupied by a usable reading",
-                               hint="check the station id of the base, or its flagged readings")
+            raise NetworkError(
+                f"base '{name}' is never occupied by a usable reading",
+                hint="check the station id of the base, or its flagged readings",
+            )
     base_code = np.array([name_to_code[b] for b in bases], dtype=int)
     base_g = np.array([bases[b][0] for b in bases])
     base_sigma = np.array([np.nan if bases[b][1] is None else bases[b][1] for b in bases])
@@ -685,8 +726,7 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     tare_rank = np.empty(tare_sort.size, dtype=int)
     tare_rank[tare_sort] = np.arange(tare_sort.size)
     piece = np.searchsorted(tare_hours[tare_sort], hours, side="left")  # tares strictly before t
-    seg_codes, seg_keys = pd.factorize(unit_codes.astype(np.int64) * (tare_hours.size + 1) + piece,
-                                       sort=True)
+    seg_codes, seg_keys = pd.factorize(unit_codes.astype(np.int64) * (tare_hours.size + 1) + piece, sort=True)
     seg_keys = np.asarray(seg_keys, dtype=np.int64)
     seg_unit = seg_keys // (tare_hours.size + 1)
     seg_piece = seg_keys % (tare_hours.size + 1)
@@ -738,12 +778,14 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
             f"({s['hours']:.2f} h){more}, more than tide and drift explain: a dial (range) "
             "change or a tare",
             hint=f"add the tare to [drift] tares at the time it happened (proposed: "
-                f"'{_stamp(s['proposed_tare'])}Z', {s['step_mgal']:+.2f} mGal), or flag the "
-                "readings after the jump")
+            f"'{_stamp(s['proposed_tare'])}Z', {s['step_mgal']:+.2f} mGal), or flag the "
+            "readings after the jump",
+        )
 
     # --- connectivity: every segment/station component needs a base ---------------------------
     graph = scipy.sparse.coo_matrix(
-        (np.ones(used.size), (st_codes[used], n_st + seg_codes[used])), shape=(n_st + n_seg,) * 2)
+        (np.ones(used.size), (st_codes[used], n_st + seg_codes[used])), shape=(n_st + n_seg,) * 2
+    )
     _, comp = scipy.sparse.csgraph.connected_components(graph, directed=False)
     tied = np.zeros(comp.max() + 1, dtype=bool)
     tied[comp[base_code]] = True
@@ -751,20 +793,21 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     if untied:
         whole = [k for k in untied if seg_number[k] == 0]
         if whole:
-            shown = ", ".join(f"{meter_text(seg_unit[k])}{unit_loop[seg_unit[k]]}"
-                              for k in whole[:5])
+            shown = ", ".join(f"{meter_text(seg_unit[k])}{unit_loop[seg_unit[k]]}" for k in whole[:5])
             shown += f" (and {len(whole) - 5} more)" if len(whole) > 5 else ""
             raise NetworkError(
                 f"loop(s) {shown} share no station with any base or tied loop "
                 f"(first: readings {_stamp(seg_start[whole[0]])} to {_stamp(seg_end[whole[0]])})",
-                hint="occupy a base or an already tied station in each loop, or add a base")
+                hint="occupy a base or an already tied station in each loop, or add a base",
+            )
         k = untied[0]
         more = f" (and {len(untied) - 1} more segment(s))" if len(untied) > 1 else ""
         raise NetworkError(
             f"{seg_where(k)} shares no station with a base or with another tied segment{more}: "
             "the tare leaves its level unknown",
             hint="after a tare reoccupy a station read before it (or a base), or remove the tare "
-                "from [drift] tares if the meter did not jump")
+            "from [drift] tares if the meter did not jump",
+        )
 
     # --- drift units --------------------------------------------------------------------------
     grp_of_seg = seg_unit.copy() if tare_drift == "continue" else np.arange(n_seg)
@@ -784,8 +827,11 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     tt = per_grp["t"].agg(["min", "max"])
     grp_start[tt.index.to_numpy()] = tt["min"].to_numpy().astype("datetime64[ns]")
     grp_end[tt.index.to_numpy()] = tt["max"].to_numpy().astype("datetime64[ns]")
-    grp_label = ([str(unit_loop[u]) for u in range(n_unit)] if tare_drift == "continue"
-                 else [seg_label(k) for k in range(n_seg)])
+    grp_label = (
+        [str(unit_loop[u]) for u in range(n_unit)]
+        if tare_drift == "continue"
+        else [seg_label(k) for k in range(n_seg)]
+    )
     grp_unit = np.arange(n_unit) if tare_drift == "continue" else seg_unit
     drift_on = np.zeros(n_grp, dtype=bool)
     if estimate_drift:
@@ -814,13 +860,16 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
             if seg_piece[a] != rank:
                 continue  # an earlier tare in the same gap between readings carries the step
             if seg_piece[b] != rank + 1:
-                warnings.append(f"loop {unit_loop[u]}: several tares fall between the same two "
-                                f"readings; their sum is reported at {_stamp(tare_times[j])}")
+                warnings.append(
+                    f"loop {unit_loop[u]}: several tares fall between the same two "
+                    f"readings; their sum is reported at {_stamp(tare_times[j])}"
+                )
             tare_rows.append((j, u, a, b))
         if not spanned:
             tare_rows.append((j, -1, -1, -1))
-            warnings.append(f"tare at {tare_times[j]} falls between loops: the loop offsets "
-                            "absorb it, no step estimated")
+            warnings.append(
+                f"tare at {tare_times[j]} falls between loops: the loop offsets absorb it, no step estimated"
+            )
 
     # --- unknowns -----------------------------------------------------------------------------
     st_col = np.full(n_st, -1)
@@ -834,9 +883,11 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     dr_on = np.flatnonzero(drift_on)
     dr_col[dr_on] = nxt + np.arange(dr_on.size)
     n_unk = nxt + dr_on.size
-    names = ([f"station {st_names[s]}" for s in free_st]
-             + [f"loop {seg_label(k)} offset" for k in live_idx]
-             + [f"loop {grp_label[g]} drift" for g in dr_on])
+    names = (
+        [f"station {st_names[s]}" for s in free_st]
+        + [f"loop {seg_label(k)} offset" for k in live_idx]
+        + [f"loop {grp_label[g]} drift" for g in dr_on]
+    )
     owner = np.r_[np.full(free_st.size, -1), seg_unit[live_idx], grp_unit[dr_on]].astype(int)
 
     # --- design matrix (sparse, by blocks; no loop over readings) -----------------------------
@@ -845,23 +896,31 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     s_u, k_u, g_u, h_u = st_codes[used], seg_codes[used], grp_codes[used], hours[used]
     rows, cols, vals = [], [], []
     free_r = st_col[s_u] >= 0
-    rows.append(r_idx[free_r]); cols.append(st_col[s_u][free_r]); vals.append(np.ones(free_r.sum()))
-    rows.append(r_idx); cols.append(off_col[k_u]); vals.append(np.ones(m))
+    rows.append(r_idx[free_r])
+    cols.append(st_col[s_u][free_r])
+    vals.append(np.ones(free_r.sum()))
+    rows.append(r_idx)
+    cols.append(off_col[k_u])
+    vals.append(np.ones(m))
     dr_r = dr_col[g_u] >= 0
-    rows.append(r_idx[dr_r]); cols.append(dr_col[g_u][dr_r]); vals.append((h_u - t0[g_u])[dr_r])
+    rows.append(r_idx[dr_r])
+    cols.append(dr_col[g_u][dr_r])
+    vals.append((h_u - t0[g_u])[dr_r])
     # Free stations are solved relative to the mean base gravity (better conditioned sums).
     g_ref = float(base_g.mean())
     y = value[used] - np.where(fixed_mask[s_u], fixed_g[s_u], g_ref)
     w = 1.0 / sig[used] ** 2
     weighted = np.flatnonzero(~np.isnan(base_sigma))
     if weighted.size:
-        rows.append(m + np.arange(weighted.size)); cols.append(st_col[base_code[weighted]])
+        rows.append(m + np.arange(weighted.size))
+        cols.append(st_col[base_code[weighted]])
         vals.append(np.ones(weighted.size))
         y = np.concatenate([y, base_g[weighted] - g_ref])
         w = np.concatenate([w, 1.0 / base_sigma[weighted] ** 2])
     n_obs = y.size
     A = scipy.sparse.csr_matrix(
-        (np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n_obs, n_unk))
+        (np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n_obs, n_unk)
+    )
 
     try:
         x, qdiag, q_p = _solve_normal(A, w, y, free_st.size)
@@ -876,7 +935,8 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
                 f"{', '.join(cuts)} cannot be told apart: no station read on both sides of the "
                 f"tare ties its segments (undetermined: {', '.join(bad[:6])})",
                 hint="after a tare reoccupy a station read before it (or a base), or remove the "
-                    "tare from [drift] tares if the meter did not jump") from None
+                "tare from [drift] tares if the meter did not jump",
+            ) from None
         raise NetworkError(*_undetermined(bad)) from None
     v = y - A @ x  # residuals, observed minus modelled
     dof = int(n_obs - n_unk)
@@ -892,9 +952,10 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     g[fixed_mask], g_sd[fixed_mask] = fixed_g[fixed_mask], 0.0
     is_base = np.zeros(n_st, dtype=bool)
     is_base[base_code] = True
-    stations = pd.DataFrame({"gravity": g, "sigma_mgal": g_sd, "occupations": occupations,
-                             "fixed": fixed_mask, "base": is_base},
-                            index=pd.Index(st_names, name="station"))
+    stations = pd.DataFrame(
+        {"gravity": g, "sigma_mgal": g_sd, "occupations": occupations, "fixed": fixed_mask, "base": is_base},
+        index=pd.Index(st_names, name="station"),
+    )
     seg_off = np.full(n_seg, np.nan)
     seg_off_sd = np.full(n_seg, np.nan)
     seg_off[live_idx], seg_off_sd[live_idx] = x[off_col[live_idx]], sd[off_col[live_idx]]
@@ -905,8 +966,13 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     # Tare steps and their standard deviations (from the covariance of the reduced unknowns).
     tare_table = []
     for j, u, a, b in tare_rows:  # loop over the tares
-        row = {"time": tare_times[j], "loop": "" if u < 0 else unit_loop[u], "step_mgal": np.nan,
-               "sigma_mgal": np.nan, "estimated": u >= 0}
+        row = {
+            "time": tare_times[j],
+            "loop": "" if u < 0 else unit_loop[u],
+            "step_mgal": np.nan,
+            "sigma_mgal": np.nan,
+            "estimated": u >= 0,
+        }
         if named_meters:
             row["meter"] = "" if u < 0 else unit_meter[u]
         if u >= 0:
@@ -921,8 +987,11 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
             cp = c[ns:]
             row["sigma_mgal"] = float(scale * np.sqrt(max(cp @ q_p @ cp, 0.0)))
         tare_table.append(row)
-    tare_table = pd.DataFrame(tare_table, columns=["time", "loop", "step_mgal", "sigma_mgal",
-                                                   "estimated"] + (["meter"] if named_meters else []))
+    tare_table = pd.DataFrame(
+        tare_table,
+        columns=["time", "loop", "step_mgal", "sigma_mgal", "estimated"]
+        + (["meter"] if named_meters else []),
+    )
 
     # Drift and offset at every reading (used or not): the unit's first segment is its level,
     # later segments differ by the tare steps.
@@ -934,37 +1003,50 @@ def network_adjustment(station, time, value, loop, bases, *, tares=(), reading_s
     max_res = np.full(n_grp, np.nan)
     res_frame = pd.Series(np.abs(v[:m])).groupby(g_u).max()
     max_res[res_frame.index.to_numpy()] = res_frame.to_numpy()
-    loops = pd.DataFrame({
-        "loop": grp_label,
-        "t0": grp_start,
-        "start": grp_start,
-        "end": grp_end,
-        "hours": t_end - t0,
-        "readings": grp_used,
-        "segments": np.bincount(grp_of_seg[live_idx], minlength=n_grp),
-        "offset_mgal": grp_level,
-        "offset_sigma_mgal": np.where(grp_first >= 0, seg_off_sd[np.maximum(grp_first, 0)], np.nan),
-        "drift_rate_mgal_per_h": rate,
-        "drift_rate_sigma_mgal_per_h": rate_sd,
-        "drift_estimated": drift_on,
-        "closure_mgal": rate * (t_end - t0),
-        "max_abs_residual_mgal": max_res,
-    })
+    loops = pd.DataFrame(
+        {
+            "loop": grp_label,
+            "t0": grp_start,
+            "start": grp_start,
+            "end": grp_end,
+            "hours": t_end - t0,
+            "readings": grp_used,
+            "segments": np.bincount(grp_of_seg[live_idx], minlength=n_grp),
+            "offset_mgal": grp_level,
+            "offset_sigma_mgal": np.where(grp_first >= 0, seg_off_sd[np.maximum(grp_first, 0)], np.nan),
+            "drift_rate_mgal_per_h": rate,
+            "drift_rate_sigma_mgal_per_h": rate_sd,
+            "drift_estimated": drift_on,
+            "closure_mgal": rate * (t_end - t0),
+            "max_abs_residual_mgal": max_res,
+        }
+    )
     if named_meters:
         loops.insert(1, "meter", [unit_meter[u] for u in grp_unit])
-    segments = pd.DataFrame({
-        "segment": [seg_label(k) for k in live_idx],
-        "meter": [unit_meter[seg_unit[k]] for k in live_idx],
-        "loop": [unit_loop[seg_unit[k]] for k in live_idx],
-        "start": seg_start[live_idx],
-        "end": seg_end[live_idx],
-        "readings": seg_used[live_idx],
-        "offset_mgal": seg_off[live_idx],
-        "offset_sigma_mgal": seg_off_sd[live_idx],
-    })
-    return NetworkResult(stations=stations, loops=loops, tares=tare_table, residuals=residuals,
-                         drift=drift, offset=offset, sigma0=sigma0, dof=dof, warnings=warnings,
-                         segments=segments)
+    segments = pd.DataFrame(
+        {
+            "segment": [seg_label(k) for k in live_idx],
+            "meter": [unit_meter[seg_unit[k]] for k in live_idx],
+            "loop": [unit_loop[seg_unit[k]] for k in live_idx],
+            "start": seg_start[live_idx],
+            "end": seg_end[live_idx],
+            "readings": seg_used[live_idx],
+            "offset_mgal": seg_off[live_idx],
+            "offset_sigma_mgal": seg_off_sd[live_idx],
+        }
+    )
+    return NetworkResult(
+        stations=stations,
+        loops=loops,
+        tares=tare_table,
+        residuals=residuals,
+        drift=drift,
+        offset=offset,
+        sigma0=sigma0,
+        dof=dof,
+        warnings=warnings,
+        segments=segments,
+    )
 
 
 def _solve_normal(A, w, y, n_station):
@@ -1040,6 +1122,8 @@ def _undetermined(bad):
     """Message (positional) of a :class:`NetworkError` for undetermined unknowns."""
     shown = ", ".join(bad[:6]) + (f" (and {len(bad) - 6} more)" if len(bad) > 6 else "")
     what = f": {shown}" if shown else ""
-    return (f"the readings do not determine every unknown of the network adjustment{what} "
-            "(fix: reoccupy stations within each loop, since a drift needs a repeat; tie each loop "
-            "to a base; after a tare reoccupy a station read before it)",)
+    return (
+        f"the readings do not determine every unknown of the network adjustment{what} "
+        "(fix: reoccupy stations within each loop, since a drift needs a repeat; tie each loop "
+        "to a base; after a tare reoccupy a station read before it)",
+    )

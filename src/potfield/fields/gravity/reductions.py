@@ -84,10 +84,8 @@ class ReferenceEllipsoid:
 
 #: Ellipsoids by name. WGS84: NIMA TR8350.2 (2000); GRS80: Moritz (1980), f derived from J2.
 ELLIPSOIDS = {
-    "WGS84": ReferenceEllipsoid("WGS84", 6_378_137.0, 1.0 / 298.257223563, 3.986004418e14,
-                                7.292115e-5),
-    "GRS80": ReferenceEllipsoid("GRS80", 6_378_137.0, 1.0 / 298.257222101, 3.986005e14,
-                                7.292115e-5),
+    "WGS84": ReferenceEllipsoid("WGS84", 6_378_137.0, 1.0 / 298.257223563, 3.986004418e14, 7.292115e-5),
+    "GRS80": ReferenceEllipsoid("GRS80", 6_378_137.0, 1.0 / 298.257222101, 3.986005e14, 7.292115e-5),
 }
 
 
@@ -135,11 +133,11 @@ def normal_gravity(latitude: ArrayLike, height: ArrayLike = 0.0, ellipsoid: str 
     lat = np.radians(np.asarray(latitude, dtype=float))
     h = np.asarray(height, dtype=float)
     a, b, E = ell.semimajor_axis, ell.semiminor_axis, ell.linear_eccentricity
-    omega2 = ell.angular_velocity ** 2
+    omega2 = ell.angular_velocity**2
     # geodetic -> Cartesian (distance from the axis p, z)
     sinlat, coslat = np.sin(lat), np.cos(lat)
     e2 = ell.first_eccentricity_sq
-    prime_vertical = a / np.sqrt(1.0 - e2 * sinlat ** 2)
+    prime_vertical = a / np.sqrt(1.0 - e2 * sinlat**2)
     p = (prime_vertical + h) * coslat
     z = (prime_vertical * (1.0 - e2) + h) * sinlat
     # Cartesian -> ellipsoidal harmonic (Li and Goetze 2001, eq. 9-10)
@@ -152,15 +150,19 @@ def normal_gravity(latitude: ArrayLike, height: ArrayLike = 0.0, ellipsoid: str 
     sinb2 = np.sin(beta) ** 2
     cosb2 = 1.0 - sinb2
     q0 = 0.5 * ((1.0 + 3.0 * (b / E) ** 2) * np.arctan2(E, b) - 3.0 * b / E)
-    qp = 3.0 * (1.0 + u2 / E ** 2) * (1.0 - u / E * np.arctan2(E, u)) - 1.0
+    qp = 3.0 * (1.0 + u2 / E**2) * (1.0 - u / E * np.arctan2(E, u)) - 1.0
     w = np.sqrt((u2 + E * E * sinb2) / (u2 + E * E))
-    gamma = (ell.geocentric_grav_const / (u2 + E * E)
-             + omega2 * a * a * E * qp / ((u2 + E * E) * q0) * (0.5 * sinb2 - 1.0 / 6.0)
-             - omega2 * u * cosb2) / w
+    gamma = (
+        ell.geocentric_grav_const / (u2 + E * E)
+        + omega2 * a * a * E * qp / ((u2 + E * E) * q0) * (0.5 * sinb2 - 1.0 / 6.0)
+        - omega2 * u * cosb2
+    ) / w
     return gamma * MGAL
 
 
-def free_air_correction(height: ArrayLike, latitude: ArrayLike | None = None, *, order: int = 1) -> np.ndarray:
+def free_air_correction(
+    height: ArrayLike, latitude: ArrayLike | None = None, *, order: int = 1
+) -> np.ndarray:
     """Free-air (height) correction in mGal, to ADD to observed gravity.
 
     ``order=1``: the classic constant gradient, 0.3086 mGal/m x h (common practice).
@@ -246,8 +248,13 @@ def bouguer_slab(height: ArrayLike, density: ArrayLike = 2670.0) -> np.ndarray:
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(24)
 
 
-def bouguer_cap(height: ArrayLike, density: ArrayLike = 2670.0, *, arc_length: float = CAP_ARC_LENGTH,
-                earth_radius: float = CAP_EARTH_RADIUS) -> np.ndarray:
+def bouguer_cap(
+    height: ArrayLike,
+    density: ArrayLike = 2670.0,
+    *,
+    arc_length: float = CAP_ARC_LENGTH,
+    earth_radius: float = CAP_EARTH_RADIUS,
+) -> np.ndarray:
     """Attraction (mGal) of a spherical cap of thickness ``height`` out to 166.735 km.
 
     The cap (LaFehr 1991) lies between the sphere of radius R0 and R0 + h and spans the

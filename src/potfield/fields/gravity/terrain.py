@@ -60,8 +60,8 @@ from typing import TYPE_CHECKING
 
 import numba
 import numpy as np
-from numpy.typing import ArrayLike
 from choclo.prism import gravity_u
+from numpy.typing import ArrayLike
 
 from ..errors import BadGeometry, BadParameter, NotEnoughData
 
@@ -134,7 +134,7 @@ def _zone_plan(dx0, dy0, inner_radius, radius, far_ratio):
     factors, holes, inner = [1], [0], [0.0]
     k = 1
     while True:
-        f = ZONE_FACTOR ** k
+        f = ZONE_FACTOR**k
         s = max(dx0, dy0) * f
         # zone k starts beyond far_ratio cells of its own size (and zone 1 beyond inner_radius)
         need = max(inner_radius, far_ratio * s) if k == 1 else far_ratio * s
@@ -152,8 +152,28 @@ def _zone_plan(dx0, dy0, inner_radius, radius, far_ratio):
 
 
 @numba.njit(parallel=True)
-def _terrain_kernel(x, y, h, ground, z_flat, offsets, nys, nxs, factors, holes, x0, y0, dx0, dy0,
-                    density, radius, curvature, earth_radius, out, missing):
+def _terrain_kernel(
+    x,
+    y,
+    h,
+    ground,
+    z_flat,
+    offsets,
+    nys,
+    nxs,
+    factors,
+    holes,
+    x0,
+    y0,
+    dx0,
+    dy0,
+    density,
+    radius,
+    curvature,
+    earth_radius,
+    out,
+    missing,
+):
     nlev = factors.size
     r2max = radius * radius
     for p in numba.prange(x.size):
@@ -208,18 +228,37 @@ def _terrain_kernel(x, y, h, ground, z_flat, offsets, nys, nxs, factors, holes, 
                         bottom, top, sign = zc - drop, hs - drop, -1.0
                     else:
                         continue
-                    total += sign * gravity_u(xs, ys, hs, xc - 0.5 * sx, xc + 0.5 * sx,
-                                              yc - 0.5 * sy, yc + 0.5 * sy, bottom, top,
-                                              density)
+                    total += sign * gravity_u(
+                        xs,
+                        ys,
+                        hs,
+                        xc - 0.5 * sx,
+                        xc + 0.5 * sx,
+                        yc - 0.5 * sy,
+                        yc + 0.5 * sy,
+                        bottom,
+                        top,
+                        density,
+                    )
         out[p] = total * 1e5
         missing[p] = lost / (np.pi * r2max)
 
 
-def terrain_correction(easting: ArrayLike, northing: ArrayLike, height: ArrayLike, dem: xr.DataArray, *, density: float = 2670.0,
-                       radius: float = 166_700.0, inner_radius: float = 2_000.0,
-                       far_ratio: float = 8.0, curvature: bool = True,
-                       earth_radius: float = EARTH_RADIUS,
-                       missing_tolerance: float = 0.01, ground: xr.DataArray | None = None) -> TerrainResult:
+def terrain_correction(
+    easting: ArrayLike,
+    northing: ArrayLike,
+    height: ArrayLike,
+    dem: xr.DataArray,
+    *,
+    density: float = 2670.0,
+    radius: float = 166_700.0,
+    inner_radius: float = 2_000.0,
+    far_ratio: float = 8.0,
+    curvature: bool = True,
+    earth_radius: float = EARTH_RADIUS,
+    missing_tolerance: float = 0.01,
+    ground: xr.DataArray | None = None,
+) -> TerrainResult:
     """Terrain correction (mGal, positive, ADDED to the simple Bouguer anomaly) at stations.
 
     Parameters
@@ -268,13 +307,11 @@ def terrain_correction(easting: ArrayLike, northing: ArrayLike, height: ArrayLik
     """
     x = np.ascontiguousarray(np.asarray(easting, dtype=float).ravel())
     y = np.ascontiguousarray(np.asarray(northing, dtype=float).ravel())
-    h = np.ascontiguousarray(np.broadcast_to(np.asarray(height, dtype=float), np.shape(easting))
-                             .ravel())
+    h = np.ascontiguousarray(np.broadcast_to(np.asarray(height, dtype=float), np.shape(easting)).ravel())
     if ground is None:
         gr = h.copy()
     else:
-        gr = np.ascontiguousarray(np.broadcast_to(np.asarray(ground, dtype=float), h.shape)
-                                  .ravel())
+        gr = np.ascontiguousarray(np.broadcast_to(np.asarray(ground, dtype=float), h.shape).ravel())
     if not (x.size == y.size == h.size):
         raise BadGeometry("easting, northing and height must have the same size")
     if not (radius > 0 and inner_radius >= 0 and far_ratio > 0):
@@ -292,10 +329,28 @@ def terrain_correction(easting: ArrayLike, northing: ArrayLike, height: ArrayLik
     if finite.any():
         sub_out = np.zeros(int(finite.sum()))
         sub_missing = np.zeros(int(finite.sum()))
-        _terrain_kernel(x[finite], y[finite], h[finite], gr[finite], z_flat, offsets, nys, nxs,
-                        np.asarray(factors, dtype=np.int64), np.asarray(holes, dtype=np.int64),
-                        x0, y0, dx0, dy0, float(density), float(radius), bool(curvature),
-                        float(earth_radius), sub_out, sub_missing)
+        _terrain_kernel(
+            x[finite],
+            y[finite],
+            h[finite],
+            gr[finite],
+            z_flat,
+            offsets,
+            nys,
+            nxs,
+            np.asarray(factors, dtype=np.int64),
+            np.asarray(holes, dtype=np.int64),
+            x0,
+            y0,
+            dx0,
+            dy0,
+            float(density),
+            float(radius),
+            bool(curvature),
+            float(earth_radius),
+            sub_out,
+            sub_missing,
+        )
         out[finite] = sub_out
         missing[finite] = sub_missing
     out[~finite] = np.nan
@@ -309,6 +364,7 @@ def terrain_correction(easting: ArrayLike, northing: ArrayLike, height: ArrayLik
             f"{short.size} of {x.size} stations (worst: station index {worst}, "
             f"{100 * missing[worst]:.1f} % of the area missing); terrain there was taken at the "
             "station height, so the correction is too small: extend the DEM or reduce "
-            "reference.terrain_radius_m")
+            "reference.terrain_radius_m"
+        )
     spacings = [(dx0 * f, dy0 * f) for f in factors]
     return TerrainResult(out, missing, spacings, inner, warnings)

@@ -56,7 +56,9 @@ def _as_times(time) -> np.ndarray:
     return t.astype("datetime64[ns]")
 
 
-def longman_components(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+def longman_components(
+    longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike
+) -> tuple[np.ndarray, np.ndarray]:
     """Longman's upward tidal accelerations of the Moon and of the Sun (rigid Earth, mGal).
 
     Parameters
@@ -79,14 +81,18 @@ def longman_components(longitude: ArrayLike, latitude: ArrayLike, height: ArrayL
     Longman, I. M. (1959), J. Geophys. Res. 64(12), 2351-2355, eq. 1-34.
     """
     t = _as_times(time)
-    lon, lat, h, t = np.broadcast_arrays(np.asarray(longitude, dtype=float),
-                                         np.asarray(latitude, dtype=float),
-                                         np.asarray(height, dtype=float), t)
+    lon, lat, h, t = np.broadcast_arrays(
+        np.asarray(longitude, dtype=float),
+        np.asarray(latitude, dtype=float),
+        np.asarray(height, dtype=float),
+        t,
+    )
     years = t.astype("datetime64[Y]").astype(int) + 1970
     if np.any((years < VALID_YEARS[0]) | (years > VALID_YEARS[1])):
         raise OutOfModelRange(
             f"tide asked for a time outside {VALID_YEARS[0]}-{VALID_YEARS[1]}",
-            hint="check the dates of the readings")
+            hint="check the dates of the readings",
+        )
     shape = lon.shape
     lon, lat, h, t = (a.ravel() for a in (lon, lat, h, t))
     moon, sun = np.empty(lon.size), np.empty(lon.size)
@@ -119,8 +125,7 @@ def _longman(lon, lat, h, t):
     N = 4.52360161181 - 33.757146295 * T + 3.6264063347e-05 * T2 + 3.39369576777e-08 * T3
     cosN, sinN = np.cos(N), np.sin(N)
     # Moon's orbit relative to the equator, eq. 15-20
-    incl = np.arccos(np.cos(_OBLIQUITY) * np.cos(_MOON_INCL)
-                     - np.sin(_OBLIQUITY) * np.sin(_MOON_INCL) * cosN)
+    incl = np.arccos(np.cos(_OBLIQUITY) * np.cos(_MOON_INCL) - np.sin(_OBLIQUITY) * np.sin(_MOON_INCL) * cosN)
     nu = np.arcsin(np.sin(_MOON_INCL) * sinN / np.sin(incl))
     hour_angle = np.radians(15.0 * (t0 - 12.0) - west)
     chi = hour_angle + hs - nu
@@ -130,36 +135,53 @@ def _longman(lon, lat, h, t):
     xi = N - alpha
     sigma = s - xi
     # Longitude of the Moon in its orbit from the ascending intersection with the equator, eq. 22
-    ell = (sigma + 2.0 * e * np.sin(s - p) + 1.25 * e * e * np.sin(2.0 * (s - p))
-           + 3.75 * m * e * np.sin(s - 2.0 * hs + p) + 1.375 * m * m * np.sin(2.0 * (s - hs)))
+    ell = (
+        sigma
+        + 2.0 * e * np.sin(s - p)
+        + 1.25 * e * e * np.sin(2.0 * (s - p))
+        + 3.75 * m * e * np.sin(s - 2.0 * hs + p)
+        + 1.375 * m * m * np.sin(2.0 * (s - hs))
+    )
     # Sun, eq. 23-27
     p1 = 4.90822941839 + 0.0300025492114 * T + 7.85398163397e-06 * T2 + 5.3329504922e-08 * T3
     e1 = 0.01675104 - 0.00004180 * T - 0.000000126 * T2
     chi1 = hour_angle + hs
     ell1 = hs + 2.0 * e1 * np.sin(hs - p1)
     # Zenith angles, eq. 28-29
-    cos_moon = (sinlat * np.sin(incl) * np.sin(ell)
-                + coslat * (np.cos(0.5 * incl) ** 2 * np.cos(ell - chi)
-                            + np.sin(0.5 * incl) ** 2 * np.cos(ell + chi)))
-    cos_sun = (sinlat * np.sin(_OBLIQUITY) * np.sin(ell1)
-               + coslat * (np.cos(0.5 * _OBLIQUITY) ** 2 * np.cos(ell1 - chi1)
-                           + np.sin(0.5 * _OBLIQUITY) ** 2 * np.cos(ell1 + chi1)))
+    cos_moon = sinlat * np.sin(incl) * np.sin(ell) + coslat * (
+        np.cos(0.5 * incl) ** 2 * np.cos(ell - chi) + np.sin(0.5 * incl) ** 2 * np.cos(ell + chi)
+    )
+    cos_sun = sinlat * np.sin(_OBLIQUITY) * np.sin(ell1) + coslat * (
+        np.cos(0.5 * _OBLIQUITY) ** 2 * np.cos(ell1 - chi1)
+        + np.sin(0.5 * _OBLIQUITY) ** 2 * np.cos(ell1 + chi1)
+    )
     # Distances, eq. 30-34 (cm)
-    radius = np.sqrt(1.0 / (1.0 + 0.006738 * sinlat ** 2)) * _EARTH_A + h * 100.0
+    radius = np.sqrt(1.0 / (1.0 + 0.006738 * sinlat**2)) * _EARTH_A + h * 100.0
     ap = 1.0 / (_MOON_DIST * (1.0 - e * e))
     ap1 = 1.0 / (_SUN_DIST * (1.0 - e1 * e1))
-    d = 1.0 / (1.0 / _MOON_DIST + ap * e * np.cos(s - p) + ap * e * e * np.cos(2.0 * (s - p))
-               + 1.875 * ap * m * e * np.cos(s - 2.0 * hs + p)
-               + ap * m * m * np.cos(2.0 * (s - hs)))
+    d = 1.0 / (
+        1.0 / _MOON_DIST
+        + ap * e * np.cos(s - p)
+        + ap * e * e * np.cos(2.0 * (s - p))
+        + 1.875 * ap * m * e * np.cos(s - 2.0 * hs + p)
+        + ap * m * m * np.cos(2.0 * (s - hs))
+    )
     D = 1.0 / (1.0 / _SUN_DIST + ap1 * e1 * np.cos(hs - p1))
     # Vertical accelerations, eq. 1-2 (gal -> mGal)
-    gm = (_MU * _MOON_MASS * radius / d ** 3 * (3.0 * cos_moon ** 2 - 1.0)
-          + 1.5 * _MU * _MOON_MASS * radius ** 2 / d ** 4 * (5.0 * cos_moon ** 3 - 3.0 * cos_moon))
-    gs = _MU * _SUN_MASS * radius / D ** 3 * (3.0 * cos_sun ** 2 - 1.0)
+    gm = _MU * _MOON_MASS * radius / d**3 * (
+        3.0 * cos_moon**2 - 1.0
+    ) + 1.5 * _MU * _MOON_MASS * radius**2 / d**4 * (5.0 * cos_moon**3 - 3.0 * cos_moon)
+    gs = _MU * _SUN_MASS * radius / D**3 * (3.0 * cos_sun**2 - 1.0)
     return gm * 1e3, gs * 1e3
 
 
-def longman_gravity(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
+def longman_gravity(
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    time: ArrayLike,
+    gravimetric_factor: float = 1.16,
+) -> np.ndarray:
     """Tidal change of measured gravity (mGal): what a gravimeter sees of the Earth tide.
 
     Equal to minus Longman's upward tidal acceleration of Moon and Sun times the gravimetric
@@ -189,7 +211,13 @@ def longman_gravity(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike
     return -float(gravimetric_factor) * (gm + gs)
 
 
-def longman_correction(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, gravimetric_factor: float = 1.16) -> np.ndarray:
+def longman_correction(
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    time: ArrayLike,
+    gravimetric_factor: float = 1.16,
+) -> np.ndarray:
     """Tide correction (mGal) to ADD to gravity readings: ``-longman_gravity(...)``.
 
     See :func:`longman_gravity` (Longman 1959, J. Geophys. Res. 64(12), 2351-2355).

@@ -70,7 +70,7 @@ _API = {
     "default_pseudo_inclination": "transforms",
     "reduction_to_pole": "transforms",
 }
-_MODULES = ('eqsources', 'separation', 'spherical', 'tiles', 'transforms')
+_MODULES = ("eqsources", "separation", "spherical", "tiles", "transforms")
 
 __all__ = [*_MODULES, *_API]
 

@@ -43,7 +43,6 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
-
 from ..errors import BadGeometry, NotEnoughData
 
 __all__ = ["DEFAULT_DAMPING", "DEFAULT_DEPTH_CELLS", "LayerRTP", "layer_reduction_to_pole"]
@@ -105,8 +104,12 @@ def _kernel_spectrum(shape, spacing, depth, moment_dir, field_dir, fft_shape):
     off_n = d_n * np.r_[np.arange(ny), -np.arange(ny - 1, 0, -1)]
     off_e = d_e * np.r_[np.arange(nx), -np.arange(nx - 1, 0, -1)]
     ee, nn = np.meshgrid(off_e, off_n)
-    be, bn, bu = hm.dipole_magnetic((ee, nn, np.zeros_like(ee)), ([0.0], [0.0], [-depth]),
-                                    tuple(np.array([c]) for c in moment_dir), field="b")
+    be, bn, bu = hm.dipole_magnetic(
+        (ee, nn, np.zeros_like(ee)),
+        ([0.0], [0.0], [-depth]),
+        tuple(np.array([c]) for c in moment_dir),
+        field="b",
+    )
     k = be * field_dir[0] + bn * field_dir[1] + bu * field_dir[2]
     full = np.zeros(fft_shape)
     # offsets 0..ny-1 at the start, negative offsets wrapped to the end of each axis
@@ -116,9 +119,19 @@ def _kernel_spectrum(shape, spacing, depth, moment_dir, field_dir, fft_shape):
     return scipy.fft.rfft2(full)
 
 
-def layer_reduction_to_pole(values, spacing, inclination, declination, mag_inclination=None,
-                            mag_declination=None, *, depth=None, damping=DEFAULT_DAMPING,
-                            tol=3e-4, max_iter=500) -> LayerRTP:
+def layer_reduction_to_pole(
+    values,
+    spacing,
+    inclination,
+    declination,
+    mag_inclination=None,
+    mag_declination=None,
+    *,
+    depth=None,
+    damping=DEFAULT_DAMPING,
+    tol=3e-4,
+    max_iter=500,
+) -> LayerRTP:
     """Reduce a total-field anomaly grid to the pole with an equivalent dipole layer.
 
     Parameters
@@ -166,8 +179,10 @@ def layer_reduction_to_pole(values, spacing, inclination, declination, mag_incli
     if depth is None:
         depth = DEFAULT_DEPTH_CELLS * max(d_n, d_e)
     ny, nx = data.shape
-    fft_shape = (scipy.fft.next_fast_len(2 * ny - 1, real=True),
-                 scipy.fft.next_fast_len(2 * nx - 1, real=True))
+    fft_shape = (
+        scipy.fft.next_fast_len(2 * ny - 1, real=True),
+        scipy.fft.next_fast_len(2 * nx - 1, real=True),
+    )
     f_dir = _unit_vector(inclination, declination)
     m_dir = _unit_vector(m_inc, m_dec)
     down = np.array([0.0, 0.0, -1.0])
@@ -178,8 +193,7 @@ def layer_reduction_to_pole(values, spacing, inclination, declination, mag_incli
         return scipy.fft.irfft2(scipy.fft.rfft2(m, s=fft_shape) * spectrum, s=fft_shape)[:ny, :nx]
 
     def corr(spectrum, r):  # adjoint of conv (real kernel: conjugate spectrum)
-        return scipy.fft.irfft2(scipy.fft.rfft2(r, s=fft_shape) * np.conj(spectrum),
-                                s=fft_shape)[:ny, :nx]
+        return scipy.fft.irfft2(scipy.fft.rfft2(r, s=fft_shape) * np.conj(spectrum), s=fft_shape)[:ny, :nx]
 
     def forward(m):
         return np.where(use, conv(k_tmi, m), 0.0)
@@ -199,19 +213,25 @@ def layer_reduction_to_pole(values, spacing, inclination, declination, mag_incli
     gamma0 = gamma
     it = 0
     if gamma0 > 0:
-        for it in range(1, int(max_iter) + 1):
+        for it in range(1, int(max_iter) + 1):  # noqa: B007  (it is the count after the loop)
             q = forward(p)
             alpha = gamma / (float(np.vdot(q, q)) + lam2 * float(np.vdot(p, p)))
             m += alpha * p
             r -= alpha * q
             s = adjoint(r) - lam2 * m
             new = float(np.vdot(s, s))
-            if new <= (tol ** 2) * gamma0:
+            if new <= (tol**2) * gamma0:
                 break
             p = s + (new / gamma) * p
             gamma = new
     fitted = conv(k_tmi, m)
     rtp = conv(k_rtp, m)
     resid = (data - fitted)[use]
-    return LayerRTP(rtp=rtp, fitted=fitted, residual_rms=float(np.sqrt(np.mean(resid ** 2))),
-                    iterations=it, depth=float(depth), damping=float(damping))
+    return LayerRTP(
+        rtp=rtp,
+        fitted=fitted,
+        residual_rms=float(np.sqrt(np.mean(resid**2))),
+        iterations=it,
+        depth=float(depth),
+        damping=float(damping),
+    )

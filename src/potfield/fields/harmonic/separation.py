@@ -34,11 +34,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from numpy.typing import ArrayLike
 import pandas as pd
 import scipy.fft
 import scipy.linalg
 import xarray as xr
+from numpy.typing import ArrayLike
 
 from .._numerics import block_median, damped_lstsq, median_spacing
 from ..errors import BadGeometry, BadParameter, IllPosed, NotEnoughData
@@ -75,8 +75,15 @@ RANK_TOLERANCE = 1e-2
 # ==============================================================================================
 # Regional / residual
 # ==============================================================================================
-def regional_upward(grid: xr.DataArray, height: float, *, model: EquivalentSourceModel | None = None, grid_height: float | None = None,
-                    pad_fraction: float = 0.5, pad_mode: str = "reflect") -> tuple[xr.DataArray, xr.DataArray]:
+def regional_upward(
+    grid: xr.DataArray,
+    height: float,
+    *,
+    model: EquivalentSourceModel | None = None,
+    grid_height: float | None = None,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+) -> tuple[xr.DataArray, xr.DataArray]:
     """Regional field by upward continuation, residual = field - regional.
 
     Continuing the field upward by ``height`` attenuates each wavenumber by ``exp(-|k| height)``,
@@ -107,29 +114,33 @@ def regional_upward(grid: xr.DataArray, height: float, *, model: EquivalentSourc
         ``separation_method`` is ``"model"`` or ``"fft"``.
     """
     if not (np.isfinite(height) and height > 0):
-        raise BadParameter(f"regional height {height} m must be positive",
-                             hint="give a height in metres > 0")
+        raise BadParameter(f"regional height {height} m must be positive", hint="give a height in metres > 0")
     grid = grid.transpose("northing", "easting")
     if model is not None and grid_height is not None:
         regional = tf.model_upward_continuation(model.predict, grid, height, grid_height)
         how = "model"
     else:
-        regional = tf.upward_continuation(grid, height, pad_fraction=pad_fraction,
-                                          pad_mode=pad_mode)
+        regional = tf.upward_continuation(grid, height, pad_fraction=pad_fraction, pad_mode=pad_mode)
         how = "fft"
     units = grid.attrs.get("units", "")
     regional = regional.rename("regional_upward")
-    regional.attrs.update({
-        "long_name": f"regional field: upward continuation by {height:g} m ({how})",
-        "units": units, "separation_method": how,
-        "history": regional.attrs.get("history", "") + "; regional by upward continuation "
-                   "(Jacobsen 1987)",
-    })
+    regional.attrs.update(
+        {
+            "long_name": f"regional field: upward continuation by {height:g} m ({how})",
+            "units": units,
+            "separation_method": how,
+            "history": regional.attrs.get("history", "") + "; regional by upward continuation "
+            "(Jacobsen 1987)",
+        }
+    )
     residual = (grid - regional).rename("residual_upward")
-    residual.attrs = {"units": units, "separation_method": how,
-                      "long_name": f"residual field: field minus its upward continuation by {height:g} m",
-                      "history": grid.attrs.get("history", "") + "; residual = field - regional "
-                                 "(upward continuation, Jacobsen 1987)"}
+    residual.attrs = {
+        "units": units,
+        "separation_method": how,
+        "long_name": f"residual field: field minus its upward continuation by {height:g} m",
+        "history": grid.attrs.get("history", "") + "; residual = field - regional "
+        "(upward continuation, Jacobsen 1987)",
+    }
     return regional, residual
 
 
@@ -181,8 +192,14 @@ def _block_positions(e, n, u, block):
     return positions
 
 
-def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_depth: float,
-                       deep_spacing: float, shallow_spacing: float, deep_damping: float = 1e-3) -> tuple[float, float]:
+def two_layer_dampings(
+    crossover_wavelength: float,
+    deep_depth: float,
+    shallow_depth: float,
+    deep_spacing: float,
+    shallow_spacing: float,
+    deep_damping: float = 1e-3,
+) -> tuple[float, float]:
     """Damping of the shallow layer that puts the deep/shallow split at a chosen wavelength.
 
     With the dimensionless kernel ``depth / r``, a layer of sources at spacing ``s`` and depth
@@ -215,10 +232,19 @@ def two_layer_dampings(crossover_wavelength: float, deep_depth: float, shallow_d
     return float(deep_damping), float(deep_damping * ratio)
 
 
-def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, shallow_depth: float,
-                  deep_block: float | None = None, shallow_block: float | None = None,
-                  deep_damping: float | None = None, shallow_damping: float | None = None,
-                  crossover_wavelength: float | None = None, weights: ArrayLike | None = None) -> TwoLayerSources:
+def fit_two_layer(
+    coordinates: tuple,
+    data: ArrayLike,
+    *,
+    deep_depth: float,
+    shallow_depth: float,
+    deep_block: float | None = None,
+    shallow_block: float | None = None,
+    deep_damping: float | None = None,
+    shallow_damping: float | None = None,
+    crossover_wavelength: float | None = None,
+    weights: ArrayLike | None = None,
+) -> TwoLayerSources:
     """Fit a deep and a shallow equivalent-source layer together; the deep layer is the regional.
 
     Each layer is a set of point sources with the ``1/r`` Green's function at a relative depth
@@ -260,18 +286,20 @@ def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, sha
     -------
     TwoLayerSources
     """
-    e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(
-        *coordinates[:3], data))
+    e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(*coordinates[:3], data))
     w = np.ones_like(d) if weights is None else np.asarray(weights, dtype=float).ravel()
     good = np.isfinite(e) & np.isfinite(n) & np.isfinite(u) & np.isfinite(d) & np.isfinite(w) & (w > 0)
     e, n, u, d, w = e[good], n[good], u[good], d[good], w[good]
     if d.size < 10:
-        raise NotEnoughData(f"only {d.size} finite data for the two-layer separation",
-                            hint="at least 10 are needed")
+        raise NotEnoughData(
+            f"only {d.size} finite data for the two-layer separation", hint="at least 10 are needed"
+        )
     if not (deep_depth > shallow_depth > 0):
         raise BadParameter(
             f"two-layer depths must satisfy deep > shallow > 0 (got deep {deep_depth:g} m, "
-            f"shallow {shallow_depth:g} m)", hint="make the deep layer deeper than the shallow one")
+            f"shallow {shallow_depth:g} m)",
+            hint="make the deep layer deeper than the shallow one",
+        )
     w = w / w.mean()
     deep_block = float(deep_block) if deep_block else 0.5 * float(deep_depth)
     pos_d = _block_positions(e, n, u, deep_block)
@@ -283,17 +311,20 @@ def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, sha
         if crossover_wavelength is None:
             raise BadParameter("give shallow_damping or crossover_wavelength")
         deep_damping, shallow_damping = two_layer_dampings(
-            crossover_wavelength, deep_depth, shallow_depth, deep_block, spacing_s,
-            1e-3 if deep_damping is None else deep_damping)
+            crossover_wavelength,
+            deep_depth,
+            shallow_depth,
+            deep_block,
+            spacing_s,
+            1e-3 if deep_damping is None else deep_damping,
+        )
     elif deep_damping is None:
         deep_damping = 1e-3
     nd, ns = pts_d[0].size, pts_s[0].size
     jac = np.empty((e.size, nd + ns))
-    for cols, pts, depth in ((slice(0, nd), pts_d, deep_depth),
-                             (slice(nd, nd + ns), pts_s, shallow_depth)):
+    for cols, pts, depth in ((slice(0, nd), pts_d, deep_depth), (slice(nd, nd + ns), pts_s, shallow_depth)):
         layer = np.empty((e.size, pts[0].size))
-        _dense_jacobian(e, n, u, *(np.ascontiguousarray(p, dtype=float) for p in pts),
-                        float(depth), layer)
+        _dense_jacobian(e, n, u, *(np.ascontiguousarray(p, dtype=float) for p in pts), float(depth), layer)
         jac[:, cols] = layer
     sw = np.sqrt(w)
     jac *= sw[:, None]
@@ -303,17 +334,31 @@ def fit_two_layer(coordinates: tuple, data: ArrayLike, *, deep_depth: float, sha
     del jac
     region = (float(e.min()), float(e.max()), float(n.min()), float(n.max()))
     deep, shallow = (
-        EquivalentSourceModel("dense", pts, c, float(depth), float(depth), float(damp),
-                              float(block or 0.0), region)
+        EquivalentSourceModel(
+            "dense", pts, c, float(depth), float(depth), float(damp), float(block or 0.0), region
+        )
         for pts, c, depth, damp, block in (
             (pts_d, coefs[:nd], deep_depth, deep_damping, deep_block),
-            (pts_s, coefs[nd:], shallow_depth, shallow_damping, shallow_block)))
+            (pts_s, coefs[nd:], shallow_depth, shallow_damping, shallow_block),
+        )
+    )
     rms = float(np.sqrt(np.mean((d - fitted) ** 2)))
-    return TwoLayerSources(deep, shallow, float(deep_depth), float(shallow_depth),
-                           float(deep_damping), float(shallow_damping), rms,
-                           info={"deep_sources": int(nd), "shallow_sources": int(pts_s[0].size),
-                                 "data": int(d.size), "deep_block": deep_block,
-                                 "shallow_spacing": spacing_s})
+    return TwoLayerSources(
+        deep,
+        shallow,
+        float(deep_depth),
+        float(shallow_depth),
+        float(deep_damping),
+        float(shallow_damping),
+        rms,
+        info={
+            "deep_sources": int(nd),
+            "shallow_sources": int(pts_s[0].size),
+            "data": int(d.size),
+            "deep_block": deep_block,
+            "shallow_spacing": spacing_s,
+        },
+    )
 
 
 # ==============================================================================================
@@ -334,33 +379,54 @@ def _prepared(grid: xr.DataArray, pad_fraction, pad_mode, detrend):
 
 def _check_trend(trend: str) -> None:
     if trend not in ("mean", "plane"):
-        raise BadParameter(f"trend '{trend}' is not 'mean' or 'plane'",
-                             hint="use 'mean' (default) or 'plane'")
+        raise BadParameter(
+            f"trend '{trend}' is not 'mean' or 'plane'", hint="use 'mean' (default) or 'plane'"
+        )
 
 
 def _check_same(grids, names):
     first = grids[0].transpose("northing", "easting")
     for g, name in zip(grids, names):
         g = g.transpose("northing", "easting")
-        if g.shape != first.shape or not (np.allclose(g.easting, first.easting)
-                                          and np.allclose(g.northing, first.northing)):
-            raise BadGeometry(f"grid '{name}' is not on the same cells as '{names[0]}'",
-                                 hint="grid every component on the same region and spacing")
+        if g.shape != first.shape or not (
+            np.allclose(g.easting, first.easting) and np.allclose(g.northing, first.northing)
+        ):
+            raise BadGeometry(
+                f"grid '{name}' is not on the same cells as '{names[0]}'",
+                hint="grid every component on the same region and spacing",
+            )
     return [g.transpose("northing", "easting").sortby(["northing", "easting"]) for g in grids]
 
 
-def _out_grid(template: xr.DataArray, values: np.ndarray, mask: np.ndarray, name: str,
-              long_name: str, units: str, history: str) -> xr.DataArray:
-    out = xr.DataArray(np.where(mask, np.nan, values), dims=("northing", "easting"),
-                       coords={"northing": template.northing.values,
-                               "easting": template.easting.values}, name=name)
+def _out_grid(
+    template: xr.DataArray,
+    values: np.ndarray,
+    mask: np.ndarray,
+    name: str,
+    long_name: str,
+    units: str,
+    history: str,
+) -> xr.DataArray:
+    out = xr.DataArray(
+        np.where(mask, np.nan, values),
+        dims=("northing", "easting"),
+        coords={"northing": template.northing.values, "easting": template.easting.values},
+        name=name,
+    )
     out.attrs = {"units": units, "long_name": long_name, "history": history}
     return out
 
 
-def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.DataArray, *,
-                          uniform: str = "external", trend: str = "mean",
-                          pad_fraction: float = 1.0, pad_mode: str = "edge") -> dict[str, xr.DataArray]:
+def separate_vector_plane(
+    north: xr.DataArray,
+    east: xr.DataArray,
+    down: xr.DataArray,
+    *,
+    uniform: str = "external",
+    trend: str = "mean",
+    pad_fraction: float = 1.0,
+    pad_mode: str = "edge",
+) -> dict[str, xr.DataArray]:
     """Split a vector field on a plane into the parts of sources below and above the plane.
 
     On the plane ``z = 0`` (``z`` down) outside the sources, the Fourier transforms (convention
@@ -399,16 +465,20 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
         ``external_east``, ``external_down`` (ascending coordinates, masked like the input).
     """
     if uniform not in UNIFORM_CHOICES:
-        raise BadParameter(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
-                             hint="use 'external' or 'internal'")
+        raise BadParameter(
+            f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}", hint="use 'external' or 'internal'"
+        )
     _check_trend(trend)
     north, east, down = _check_same([north, east, down], ["north", "east", "down"])
     mask = ~(np.isfinite(north.values) & np.isfinite(east.values) & np.isfinite(down.values))
     if mask.all():
-        raise NotEnoughData("the vector grids have no cell where all three components are known",
-                             hint="the north, east and down grids must overlap")
-    (pn, mn, sn), (pe, me, se), (pd_, md, sd) = (_prepared(g, pad_fraction, pad_mode, trend == "plane")
-                                                 for g in (north, east, down))
+        raise NotEnoughData(
+            "the vector grids have no cell where all three components are known",
+            hint="the north, east and down grids must overlap",
+        )
+    (pn, mn, sn), (pe, me, se), (pd_, md, sd) = (
+        _prepared(g, pad_fraction, pad_mode, trend == "plane") for g in (north, east, down)
+    )
     k_e, k_n, k = pn.wavenumbers()
     with np.errstate(divide="ignore", invalid="ignore"):
         ue, un = np.where(k > 0, k_e / k, 0.0), np.where(k > 0, k_n / k, 0.0)
@@ -422,27 +492,48 @@ def separate_vector_plane(north: xr.DataArray, east: xr.DataArray, down: xr.Data
         target[0, 0], other[0, 0] = spec[0, 0], 0.0
     shape = pn.padded.shape
     means = {"north": mn, "east": me, "down": md}
-    parts = {"internal_north": n_int, "internal_east": e_int, "internal_down": z_int,
-             "external_north": n_ext, "external_east": e_ext, "external_down": z_ext}
+    parts = {
+        "internal_north": n_int,
+        "internal_east": e_int,
+        "internal_down": z_int,
+        "external_north": n_ext,
+        "external_east": e_ext,
+        "external_down": z_ext,
+    }
     out = {}
-    history = ("internal/external separation on a plane (Weaver 1964; Porath, Oldenburg and Gough "
-               f"1970); uniform part to the {uniform} side; {'; '.join(pn.notes)}")
+    history = (
+        "internal/external separation on a plane (Weaver 1964; Porath, Oldenburg and Gough "
+        f"1970); uniform part to the {uniform} side; {'; '.join(pn.notes)}"
+    )
     for name, spec in parts.items():
         side, comp = name.split("_")
         values = pn.unpad(scipy.fft.irfft2(spec, s=shape))
         if side == uniform:
             values = values + means[comp]
-        out[name] = _out_grid(north, values, mask, name,
-                              f"{comp} component of the field of sources "
-                              f"{'below' if side == 'internal' else 'above'} the plane",
-                              north.attrs.get("units", "nT"), history)
+        out[name] = _out_grid(
+            north,
+            values,
+            mask,
+            name,
+            f"{comp} component of the field of sources "
+            f"{'below' if side == 'internal' else 'above'} the plane",
+            north.attrs.get("units", "nT"),
+            history,
+        )
     return out
 
 
-def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m: float, *,
-                         uniform: str = "external", trend: str = "mean",
-                         regularisation: float = 0.1, pad_fraction: float = 1.0,
-                         pad_mode: str = "edge") -> dict[str, xr.DataArray]:
+def separate_two_heights(
+    lower: xr.DataArray,
+    upper: xr.DataArray,
+    separation_m: float,
+    *,
+    uniform: str = "external",
+    trend: str = "mean",
+    regularisation: float = 0.1,
+    pad_fraction: float = 1.0,
+    pad_mode: str = "edge",
+) -> dict[str, xr.DataArray]:
     """Split a harmonic scalar measured on two horizontal planes into internal and external parts.
 
     A harmonic scalar (gravity, one field component, or approximately a total-field anomaly)
@@ -483,16 +574,20 @@ def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m:
         Parts at the lower plane (ascending coordinates, masked like the inputs).
     """
     if not (np.isfinite(separation_m) and separation_m > 0):
-        raise BadParameter(f"height difference {separation_m} m between the planes must be > 0",
-                             hint="give the upper plane's height above the lower one")
+        raise BadParameter(
+            f"height difference {separation_m} m between the planes must be > 0",
+            hint="give the upper plane's height above the lower one",
+        )
     if uniform not in UNIFORM_CHOICES:
-        raise BadParameter(f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}",
-                             hint="use 'external' or 'internal'")
+        raise BadParameter(
+            f"uniform part '{uniform}' is not one of {UNIFORM_CHOICES}", hint="use 'external' or 'internal'"
+        )
     _check_trend(trend)
     lower, upper = _check_same([lower, upper], ["lower", "upper"])
     mask = ~(np.isfinite(lower.values) & np.isfinite(upper.values))
-    (p0, m0, s0), (p1, m1, s1) = (_prepared(g, pad_fraction, pad_mode, trend == "plane")
-                                      for g in (lower, upper))
+    (p0, m0, s0), (p1, m1, s1) = (
+        _prepared(g, pad_fraction, pad_mode, trend == "plane") for g in (lower, upper)
+    )
     _, _, k = p0.wavenumbers()
     kd = k * float(separation_m)
     two_sinh = 2.0 * np.sinh(np.minimum(kd, 350.0))
@@ -516,8 +611,10 @@ def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m:
         spec_ext[0, 0] = 0.0
         spec_int = s0 - spec_ext
     shape = p0.padded.shape
-    history = (f"internal/external separation from two planes {separation_m:g} m apart "
-               f"(continuation, Blakely 1995 ch. 12); relative regularisation {regularisation:g}")
+    history = (
+        f"internal/external separation from two planes {separation_m:g} m apart "
+        f"(continuation, Blakely 1995 ch. 12); relative regularisation {regularisation:g}"
+    )
     values_int = p0.unpad(scipy.fft.irfft2(spec_int, s=shape))
     values_ext = p0.unpad(scipy.fft.irfft2(spec_ext, s=shape))
     if uniform == "external":
@@ -525,10 +622,10 @@ def separate_two_heights(lower: xr.DataArray, upper: xr.DataArray, separation_m:
     else:
         values_int = values_int + m0
     units = lower.attrs.get("units", "")
-    return (_out_grid(lower, values_int, mask, "internal", "field of sources below the planes",
-                      units, history),
-            _out_grid(lower, values_ext, mask, "external", "field of sources above the planes",
-                      units, history))
+    return (
+        _out_grid(lower, values_int, mask, "internal", "field of sources below the planes", units, history),
+        _out_grid(lower, values_ext, mask, "external", "field of sources above the planes", units, history),
+    )
 
 
 # ==============================================================================================
@@ -585,9 +682,19 @@ def _same_longitude(longitude) -> bool:
     return bool(np.max(np.abs(z - z[0])) < 1e-9)
 
 
-def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, *,
-                           internal_degree: int = 1, external_degree: int = 1,
-                           damping: float = 0.0, stations: list[str] | None = None) -> GaussFit:
+def fit_gauss_coefficients(
+    north: ArrayLike,
+    east: ArrayLike,
+    down: ArrayLike,
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    *,
+    internal_degree: int = 1,
+    external_degree: int = 1,
+    damping: float = 0.0,
+    stations: list[str] | None = None,
+) -> GaussFit:
     """Least-squares Gauss coefficients of internal and external potentials at every epoch.
 
     The disturbance field ``(X, Y, Z)`` at ``S`` stations (main field removed) is modelled at
@@ -629,20 +736,19 @@ def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, l
     lon, lat, h = (np.asarray(a, dtype=float).ravel() for a in (longitude, latitude, height))
     if not (lon.size == lat.size == h.size == n_st):
         raise BadGeometry("one longitude, latitude and height per station (column) is needed")
-    names = list(stations) if stations is not None else [f"#{i + 1}" for i in range(n_st)]
     ni, ne = int(internal_degree), int(external_degree)
     if ni < 0 or ne < 0 or ni + ne == 0:
-        raise BadParameter(f"internal_degree {ni} and external_degree {ne}: at least one must be "
-                             ">= 1 and neither negative", hint="use e.g. internal_degree = 1 and external_degree = 1")
+        raise BadParameter(
+            f"internal_degree {ni} and external_degree {ne}: at least one must be >= 1 and neither negative",
+            hint="use e.g. internal_degree = 1 and external_degree = 1",
+        )
     if not damping >= 0:
         raise BadParameter(f"damping {damping} must be >= 0", hint="use 0 (none) or a small positive value")
     blocks = []
     if ni:
-        blocks.append(np.concatenate(spherical.geodetic_design_matrices(lon, lat, h, ni, "internal"),
-                                     axis=0))
+        blocks.append(np.concatenate(spherical.geodetic_design_matrices(lon, lat, h, ni, "internal"), axis=0))
     if ne:
-        blocks.append(np.concatenate(spherical.geodetic_design_matrices(lon, lat, h, ne, "external"),
-                                     axis=0))
+        blocks.append(np.concatenate(spherical.geodetic_design_matrices(lon, lat, h, ne, "external"), axis=0))
     G = np.hstack(blocks)  # (3 S, unknowns), rows: north of all stations, east, down
     n_int = spherical.n_coefficients(ni) if ni else 0
     n_unk = G.shape[1]
@@ -654,23 +760,28 @@ def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, l
         raise NotEnoughData(
             f"{n_unk} Gauss coefficients (internal degree {ni}, external degree {ne}) but only "
             f"{present.sum()} stations with data = {n_data} components",
-            hint=f"lower the degrees (degree 1 + 1 needs 6 unknowns, i.e. at least 2 stations) "
-                "or add stations")
+            hint="lower the degrees (degree 1 + 1 needs 6 unknowns, i.e. at least 2 stations) "
+            "or add stations",
+        )
     cols = np.tile(present, 3)
     singular = scipy.linalg.svdvals(G[cols])
     rank = int(np.sum(singular > singular[0] * RANK_TOLERANCE))
     condition = float(singular[0] / singular[-1]) if singular[-1] > 0 else float("inf")
     if rank < n_unk and damping == 0:
         if _same_longitude(lon[present]):
-            detail = (f"all {present.sum()} stations lie on longitude {lon[present][0]:g}, so the "
-                      "internal and external order m > 0 terms cannot be told apart")
+            detail = (
+                f"all {present.sum()} stations lie on longitude {lon[present][0]:g}, so the "
+                "internal and external order m > 0 terms cannot be told apart"
+            )
         else:
-            detail = (f"the design matrix of the {present.sum()} stations has effective rank "
-                      f"{rank} for {n_unk} unknowns (condition number {condition:.3g})")
+            detail = (
+                f"the design matrix of the {present.sum()} stations has effective rank "
+                f"{rank} for {n_unk} unknowns (condition number {condition:.3g})"
+            )
         raise IllPosed(
             f"the station network cannot resolve the Gauss coefficients: {detail}",
-            hint="add stations spread in longitude and latitude, lower the degrees, or set a "
-                "damping > 0")
+            hint="add stations spread in longitude and latitude, lower the degrees, or set a damping > 0",
+        )
     coefs = np.full((n_epochs, n_unk), np.nan)
     patterns, inverse = np.unique(avail, axis=0, return_inverse=True)
     inverse = np.asarray(inverse).ravel()
@@ -699,9 +810,15 @@ def fit_gauss_coefficients(north: ArrayLike, east: ArrayLike, down: ArrayLike, l
     return GaussFit(
         internal_names=spherical.coefficient_names(ni, "internal") if ni else [],
         external_names=spherical.coefficient_names(ne, "external") if ne else [],
-        coefficients=coefs, internal=internal, external=external, residual=residual,
-        groups=int(len(patterns)), unsolved_epochs=int(unsolved), condition=condition,
-        damping=float(damping))
+        coefficients=coefs,
+        internal=internal,
+        external=external,
+        residual=residual,
+        groups=int(len(patterns)),
+        unsolved_epochs=int(unsolved),
+        condition=condition,
+        damping=float(damping),
+    )
 
 
 def coefficient_table(times: ArrayLike, fit: GaussFit) -> pd.DataFrame:
@@ -733,15 +850,23 @@ def induction_ratio(internal: ArrayLike, external: ArrayLike) -> dict[str, float
     y = np.asarray(internal, dtype=float).ravel()
     ok = np.isfinite(x) & np.isfinite(y)
     if ok.sum() < 3 or np.ptp(x[ok]) == 0:
-        return {"ratio": float("nan"), "offset": float("nan"), "correlation": float("nan"),
-                "epochs": int(ok.sum())}
+        return {
+            "ratio": float("nan"),
+            "offset": float("nan"),
+            "correlation": float("nan"),
+            "epochs": int(ok.sum()),
+        }
     x, y = x[ok], y[ok]
     xm, ym = x.mean(), y.mean()
     sxx, sxy, syy = np.sum((x - xm) ** 2), np.sum((x - xm) * (y - ym)), np.sum((y - ym) ** 2)
     ratio = sxy / sxx
     corr = sxy / np.sqrt(sxx * syy) if syy > 0 else float("nan")
-    return {"ratio": float(ratio), "offset": float(ym - ratio * xm), "correlation": float(corr),
-            "epochs": int(x.size)}
+    return {
+        "ratio": float(ratio),
+        "offset": float(ym - ratio * xm),
+        "correlation": float(corr),
+        "epochs": int(x.size),
+    }
 
 
 def _split_names(columns):
@@ -763,7 +888,8 @@ def _split_names(columns):
             raise BadParameter(
                 f"the coefficient table's {source} columns {', '.join(cols)} are not a full set "
                 f"to one degree (expected {', '.join(names)})",
-                hint="use a table made by coefficient_table")
+                hint="use a table made by coefficient_table",
+            )
         out.append((nmax, names))
     return out
 
@@ -774,8 +900,16 @@ def _as_ns(values) -> np.ndarray:
     return series.dt.tz_localize(None).to_numpy(dtype="datetime64[ns]")
 
 
-def external_field_at(coefficients_table: pd.DataFrame, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: ArrayLike, *,
-                      include_induced: bool = True, max_gap_s: float = 180.0) -> np.ndarray:
+def external_field_at(
+    coefficients_table: pd.DataFrame,
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    time: ArrayLike,
+    *,
+    include_induced: bool = True,
+    max_gap_s: float = 180.0,
+) -> np.ndarray:
     """Total-field variation of the fitted external (plus induced) field at a site.
 
     The external Gauss coefficients (``q``, ``s``) and, with ``include_induced``, the internal
@@ -814,19 +948,24 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude: ArrayLike, la
     from ..magnetic.igrf import igrf
 
     if "time" not in coefficients_table.columns:
-        raise BadParameter("the coefficient table has no 'time' column",
-                             hint="use a table made by coefficient_table")
+        raise BadParameter(
+            "the coefficient table has no 'time' column", hint="use a table made by coefficient_table"
+        )
     (ni, int_names), (ne, ext_names) = _split_names(coefficients_table.columns)
     if ne == 0:
-        raise BadParameter("the coefficient table has no external (q, s) coefficients",
-                             hint="fit with an external degree >= 1")
+        raise BadParameter(
+            "the coefficient table has no external (q, s) coefficients",
+            hint="fit with an external degree >= 1",
+        )
     t_stamp = _as_ns(coefficients_table["time"])
     t_ok = ~np.isnat(t_stamp)
     t_table = t_stamp.astype("int64").astype(float)
-    lon, lat, hgt, times = np.broadcast_arrays(np.asarray(longitude, dtype=float),
-                                               np.asarray(latitude, dtype=float),
-                                               np.asarray(height, dtype=float),
-                                               np.asarray(time))
+    lon, lat, hgt, times = np.broadcast_arrays(
+        np.asarray(longitude, dtype=float),
+        np.asarray(latitude, dtype=float),
+        np.asarray(height, dtype=float),
+        np.asarray(time),
+    )
     shape = lon.shape
     t_req = _as_ns(times.ravel())
     t_val = t_req.astype("int64").astype(float)
@@ -866,11 +1005,15 @@ def external_field_at(coefficients_table: pd.DataFrame, longitude: ArrayLike, la
     return result.reshape(shape)
 
 
-def nearest_station(station_longitude: ArrayLike, station_latitude: ArrayLike, longitude: float, latitude: float) -> tuple[int, float]:
+def nearest_station(
+    station_longitude: ArrayLike, station_latitude: ArrayLike, longitude: float, latitude: float
+) -> tuple[int, float]:
     """Index and great-circle distance (km) of the station nearest to a site (haversine on a
     sphere of radius 6371.2 km; common practice)."""
-    slon, slat = np.radians(np.asarray(station_longitude, dtype=float)), np.radians(
-        np.asarray(station_latitude, dtype=float))
+    slon, slat = (
+        np.radians(np.asarray(station_longitude, dtype=float)),
+        np.radians(np.asarray(station_latitude, dtype=float)),
+    )
     lon, lat = np.radians(float(longitude)), np.radians(float(latitude))
     a = np.sin((slat - lat) / 2) ** 2 + np.cos(slat) * np.cos(lat) * np.sin((slon - lon) / 2) ** 2
     dist = 2 * EARTH_RADIUS_KM * np.arcsin(np.sqrt(np.clip(a, 0, 1)))
@@ -897,8 +1040,10 @@ def remote_reference_caution(stations: pd.DataFrame, longitude: float, latitude:
     i, dist = nearest_station(stations["longitude"], stations["latitude"], longitude, latitude)
     row = stations.iloc[i]
     dlat = float(latitude) - float(row["latitude"])
-    return (f"Diurnal correction from a spherical-harmonic model of the observatory network "
-            f"(remote reference), not a local base: nearest station {row['station']} is "
-            f"{dist:.0f} km away with a latitude difference of {dlat:+.1f} deg; external fields "
-            "shorter than the model's degrees (e.g. electrojets, local induction) are not "
-            "represented, so check the levelling misclosures before relying on it.")
+    return (
+        f"Diurnal correction from a spherical-harmonic model of the observatory network "
+        f"(remote reference), not a local base: nearest station {row['station']} is "
+        f"{dist:.0f} km away with a latitude difference of {dlat:+.1f} deg; external fields "
+        "shorter than the model's degrees (e.g. electrojets, local induction) are not "
+        "represented, so check the levelling misclosures before relying on it."
+    )

@@ -28,8 +28,8 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ..magnetic.igrf import REFERENCE_RADIUS_M, geodetic_to_geocentric
 from ..errors import BadGeometry, BadParameter
+from ..magnetic.igrf import REFERENCE_RADIUS_M, geodetic_to_geocentric
 
 __all__ = [
     "coefficient_index",
@@ -145,8 +145,14 @@ def schmidt_legendre(nmax: int, colatitude: ArrayLike) -> tuple[np.ndarray, np.n
     return P, dP, Q
 
 
-def design_matrices(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, nmax: int, source: str = "internal",
-                    reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def design_matrices(
+    radius: ArrayLike,
+    colatitude: ArrayLike,
+    longitude: ArrayLike,
+    nmax: int,
+    source: str = "internal",
+    reference_radius: float = REFERENCE_RADIUS_M,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Matrices mapping Gauss coefficients to ``(B_r, B_theta, B_phi)`` at points.
 
     For an internal coefficient ``g_n^m`` (``h``: cos -> sin, and the sign of the ``B_phi``
@@ -180,9 +186,11 @@ def design_matrices(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLi
         coefficients are in nT).
     """
     _check_source(source)
-    r, th, ph = np.broadcast_arrays(np.asarray(radius, dtype=float),
-                                    np.asarray(colatitude, dtype=float),
-                                    np.asarray(longitude, dtype=float))
+    r, th, ph = np.broadcast_arrays(
+        np.asarray(radius, dtype=float),
+        np.asarray(colatitude, dtype=float),
+        np.asarray(longitude, dtype=float),
+    )
     nmax = int(nmax)
     P, dP, Q = schmidt_legendre(nmax, th)
     rho = r / float(reference_radius)
@@ -211,8 +219,14 @@ def _psi(latitude, height):
     return radius, 90.0 - lat_c, psi
 
 
-def geodetic_design_matrices(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, nmax: int, source: str = "internal",
-                             reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def geodetic_design_matrices(
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    nmax: int,
+    source: str = "internal",
+    reference_radius: float = REFERENCE_RADIUS_M,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Matrices mapping Gauss coefficients to geodetic north, east, down at geodetic positions.
 
     The positions are converted to geocentric coordinates on the WGS84 ellipsoid and the
@@ -235,9 +249,9 @@ def geodetic_design_matrices(longitude: ArrayLike, latitude: ArrayLike, height: 
     G_north, G_east, G_down : numpy.ndarray
         Shape ``S + (nmax (nmax + 2),)``.
     """
-    lon, lat, h = np.broadcast_arrays(np.asarray(longitude, dtype=float),
-                                      np.asarray(latitude, dtype=float),
-                                      np.asarray(height, dtype=float))
+    lon, lat, h = np.broadcast_arrays(
+        np.asarray(longitude, dtype=float), np.asarray(latitude, dtype=float), np.asarray(height, dtype=float)
+    )
     radius, colat, psi = _psi(lat, h)
     g_r, g_t, g_p = design_matrices(radius, colat, lon, nmax, source, reference_radius)
     cpsi, spsi = np.cos(psi)[..., None], np.sin(psi)[..., None]
@@ -245,8 +259,14 @@ def geodetic_design_matrices(longitude: ArrayLike, latitude: ArrayLike, height: 
     return xs * cpsi + zs * spsi, g_p, -xs * spsi + zs * cpsi
 
 
-def synthesis(coefficients: ArrayLike, radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, source: str = "internal",
-              reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def synthesis(
+    coefficients: ArrayLike,
+    radius: ArrayLike,
+    colatitude: ArrayLike,
+    longitude: ArrayLike,
+    source: str = "internal",
+    reference_radius: float = REFERENCE_RADIUS_M,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Field of an internal or external potential at geocentric points.
 
     Parameters
@@ -272,12 +292,22 @@ def synthesis(coefficients: ArrayLike, radius: ArrayLike, colatitude: ArrayLike,
     coefficients = np.asarray(coefficients, dtype=float)
     nmax = degree_of(coefficients.shape[-1])
     mats = design_matrices(radius, colatitude, longitude, nmax, source, reference_radius)
-    return tuple(np.einsum("...k,sk->...s", coefficients, np.atleast_1d(g).reshape(-1, g.shape[-1]))
-                 .reshape(coefficients.shape[:-1] + g.shape[:-1]) for g in mats)
+    return tuple(
+        np.einsum("...k,sk->...s", coefficients, np.atleast_1d(g).reshape(-1, g.shape[-1])).reshape(
+            coefficients.shape[:-1] + g.shape[:-1]
+        )
+        for g in mats
+    )
 
 
-def geodetic_synthesis(coefficients: ArrayLike, longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, source: str = "internal",
-                       reference_radius: float = REFERENCE_RADIUS_M) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def geodetic_synthesis(
+    coefficients: ArrayLike,
+    longitude: ArrayLike,
+    latitude: ArrayLike,
+    height: ArrayLike,
+    source: str = "internal",
+    reference_radius: float = REFERENCE_RADIUS_M,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Geodetic north, east, down (nT) of an internal or external potential.
 
     As :func:`synthesis` with positions given geodetically (see
@@ -286,5 +316,9 @@ def geodetic_synthesis(coefficients: ArrayLike, longitude: ArrayLike, latitude: 
     coefficients = np.asarray(coefficients, dtype=float)
     nmax = degree_of(coefficients.shape[-1])
     mats = geodetic_design_matrices(longitude, latitude, height, nmax, source, reference_radius)
-    return tuple(np.einsum("...k,sk->...s", coefficients, np.atleast_1d(g).reshape(-1, g.shape[-1]))
-                 .reshape(coefficients.shape[:-1] + g.shape[:-1]) for g in mats)
+    return tuple(
+        np.einsum("...k,sk->...s", coefficients, np.atleast_1d(g).reshape(-1, g.shape[-1])).reshape(
+            coefficients.shape[:-1] + g.shape[:-1]
+        )
+        for g in mats
+    )

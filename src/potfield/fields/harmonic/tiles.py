@@ -37,9 +37,9 @@ import sys
 from dataclasses import dataclass, field
 
 import numpy as np
-from numpy.typing import ArrayLike
 import pandas as pd
 import xarray as xr
+from numpy.typing import ArrayLike
 
 from ...io.grids import make_grid
 from .._numerics import nearest_neighbour_distances
@@ -145,7 +145,9 @@ class _Window:
     support: tuple
 
 
-def tile_windows(region: tuple[float, float, float, float], tile_size: float, overlap: float) -> list[_Window]:
+def tile_windows(
+    region: tuple[float, float, float, float], tile_size: float, overlap: float
+) -> list[_Window]:
     """The tiles of ``region``: core, fit window (core + overlap) and blending support
     (core + overlap / 2), row by row from the south-west.
 
@@ -165,13 +167,23 @@ def tile_windows(region: tuple[float, float, float, float], tile_size: float, ov
             core = (bx[i], bx[i + 1], by[j], by[j + 1])
             fit = (core[0] - overlap, core[1] + overlap, core[2] - overlap, core[3] + overlap)
             # Outer tiles keep full weight beyond the region; their support is the fit window.
-            support = (core[0] - half if i > 0 else -np.inf, core[1] + half if i < bx.size - 2 else np.inf,
-                       core[2] - half if j > 0 else -np.inf, core[3] + half if j < by.size - 2 else np.inf)
+            support = (
+                core[0] - half if i > 0 else -np.inf,
+                core[1] + half if i < bx.size - 2 else np.inf,
+                core[2] - half if j > 0 else -np.inf,
+                core[3] + half if j < by.size - 2 else np.inf,
+            )
             windows.append(_Window(j, i, core, fit, support))
     return windows
 
 
-def blend_weights(easting: ArrayLike, northing: ArrayLike, region: tuple[float, float, float, float], tile_size: float, overlap: float) -> np.ndarray:
+def blend_weights(
+    easting: ArrayLike,
+    northing: ArrayLike,
+    region: tuple[float, float, float, float],
+    tile_size: float,
+    overlap: float,
+) -> np.ndarray:
     """Blending weight of every tile at points (separable cosine partition of unity).
 
     Parameters
@@ -210,8 +222,13 @@ def _fit_window(e, n, u, d, w, grid_e, grid_n, grid_h, points, fit_kwargs):
     at_points = None
     if points is not None:
         at_points = model.predict(points) if points[0].size else np.empty(0)
-    info = {"data": int(d.size), "sources": model.n_sources, "method": model.method,
-            "iterations": model.info.get("iterations"), "converged": model.info.get("converged")}
+    info = {
+        "data": int(d.size),
+        "sources": model.n_sources,
+        "method": model.method,
+        "iterations": model.info.get("iterations"),
+        "converged": model.info.get("converged"),
+    }
     return sub, at_points, info
 
 
@@ -265,11 +282,32 @@ class TiledGrid:
     predicted: np.ndarray | None = None
 
 
-def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, *, region: tuple[float, float, float, float], spacing: float, height: float, tile_size: float,
-              overlap: float | None = None, depth: float | str = "default", damping: float = 1e-3, block_size: float | None = None, weights: ArrayLike | None = None,
-              method: str = "auto", client: object = None, scheduler: str = "threads", max_pending: int | None = None,
-              residuals: bool = False, at: tuple | None = None, name: str = "field", units: str = "",
-              long_name: str = "equivalent-source grid (tiled)", fit_options: dict | None = None) -> TiledGrid:
+def fit_tiled(
+    easting: ArrayLike,
+    northing: ArrayLike,
+    upward: ArrayLike,
+    data: ArrayLike,
+    *,
+    region: tuple[float, float, float, float],
+    spacing: float,
+    height: float,
+    tile_size: float,
+    overlap: float | None = None,
+    depth: float | str = "default",
+    damping: float = 1e-3,
+    block_size: float | None = None,
+    weights: ArrayLike | None = None,
+    method: str = "auto",
+    client: object = None,
+    scheduler: str = "threads",
+    max_pending: int | None = None,
+    residuals: bool = False,
+    at: tuple | None = None,
+    name: str = "field",
+    units: str = "",
+    long_name: str = "equivalent-source grid (tiled)",
+    fit_options: dict | None = None,
+) -> TiledGrid:
     """Grid scattered potential-field data by tiled, blended equivalent sources on Dask.
 
     Parameters
@@ -332,8 +370,9 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
     import dask
     import verde as vd
 
-    e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(
-        easting, northing, upward, data))
+    e, n, u, d = (
+        np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(easting, northing, upward, data)
+    )
     w = None if weights is None else np.asarray(weights, dtype=float).ravel()
     good = np.isfinite(e) & np.isfinite(n) & np.isfinite(u) & np.isfinite(d)
     if w is not None:
@@ -352,11 +391,17 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
         overlap = max(2.0 * depth, tile_size / 8.0)
     overlap = float(overlap)
     if not 0 <= overlap < tile_size:
-        raise BadParameter(f"overlap ({overlap:g} m) must be >= 0 and smaller than tile_size "
-                         f"({tile_size:g} m)")
+        raise BadParameter(
+            f"overlap ({overlap:g} m) must be >= 0 and smaller than tile_size ({tile_size:g} m)"
+        )
     block_size = float(spacing) if block_size is None else float(block_size)
-    fit_kwargs = {**(fit_options or {}), "depth": depth, "damping": float(damping),
-                  "block_size": block_size, "method": method}
+    fit_kwargs = {
+        **(fit_options or {}),
+        "depth": depth,
+        "damping": float(damping),
+        "block_size": block_size,
+        "method": method,
+    }
 
     ge2, gn2 = vd.grid_coordinates(tuple(region), spacing=spacing)
     grid_e, grid_n = ge2[0], gn2[:, 0]
@@ -383,14 +428,14 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
             lo, hi = np.searchsorted(sorted_east, [fw, fe], side="left")
             cand = ordered[lo:hi]
             return cand[(north[cand] >= fs) & (north[cand] <= fn)]
+
         return select
 
     select = selector(e, n, idx)
     # where the blended model is evaluated besides the grid: other points, or the data
     if at is not None:
         pe, pn, pu = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(*at[:3]))
-        select_points = selector(pe, pn, np.flatnonzero(np.isfinite(pe) & np.isfinite(pn)
-                                                        & np.isfinite(pu)))
+        select_points = selector(pe, pn, np.flatnonzero(np.isfinite(pe) & np.isfinite(pn) & np.isfinite(pu)))
     else:
         pe, pn, pu = e, n, u
         select_points = select
@@ -401,9 +446,20 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
         ix = np.flatnonzero(wgx[win.col] > 0)
         iy = np.flatnonzero(wgy[win.row] > 0)
         fw, fe, fs, fn = win.fit
-        row = {"row": win.row, "col": win.col, "core_west": win.core[0], "core_east": win.core[1],
-               "core_south": win.core[2], "core_north": win.core[3], "fit_west": fw, "fit_east": fe,
-               "fit_south": fs, "fit_north": fn, "data": int(select(win).size), "fitted": False}
+        row = {
+            "row": win.row,
+            "col": win.col,
+            "core_west": win.core[0],
+            "core_east": win.core[1],
+            "core_south": win.core[2],
+            "core_north": win.core[3],
+            "fit_west": fw,
+            "fit_east": fe,
+            "fit_south": fs,
+            "fit_north": fn,
+            "data": int(select(win).size),
+            "fitted": False,
+        }
         rows.append(row)
         if row["data"] < MIN_WINDOW_DATA or ix.size == 0 or iy.size == 0:
             continue
@@ -423,14 +479,24 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
         points = None
         if evaluate:
             sel_p = select_points(win)
-            wp = (tile_axis_weight(pe[sel_p], bx, win.col, ramp)
-                  * tile_axis_weight(pn[sel_p], by, win.row, ramp))
+            wp = tile_axis_weight(pe[sel_p], bx, win.col, ramp) * tile_axis_weight(
+                pn[sel_p], by, win.row, ramp
+            )
             keep = wp > 0
             pts_idx = sel_p[keep]
             pending_points[k] = (pts_idx, wp[keep])
             points = (pe[pts_idx], pn[pts_idx], pu[pts_idx])
-        return (e[sel], n[sel], u[sel], d[sel], None if w is None else w[sel],
-                grid_e[xs], grid_n[ys], np.ascontiguousarray(heights[ys, xs]), points)
+        return (
+            e[sel],
+            n[sel],
+            u[sel],
+            d[sel],
+            None if w is None else w[sel],
+            grid_e[xs],
+            grid_n[ys],
+            np.ascontiguousarray(heights[ys, xs]),
+            points,
+        )
 
     def absorb(k, result):
         sub, at_points, info = result
@@ -471,21 +537,28 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
             max_pending = 2 * (os.cpu_count() or 1)
         for start in range(0, len(plans), max_pending):  # loop over batches of tiles
             batch = range(start, min(start + max_pending, len(plans)))
-            delayed = [dask.delayed(_fit_window, pure=False)(*arguments(k), fit_kwargs)
-                       for k in batch]
+            delayed = [dask.delayed(_fit_window, pure=False)(*arguments(k), fit_kwargs) for k in batch]
             for k, result in zip(batch, dask.compute(*delayed, scheduler=scheduler)):
                 absorb(k, result)
 
     # Renormalise where a window was left out (too few data); where none covers a cell: NaN.
     with np.errstate(invalid="ignore", divide="ignore"):
         values = np.where(wsum > 1e-12, total / wsum, np.nan)
-    history = (f"tiled equivalent sources: {len(plans)} windows, tile {tile_size:g} m, overlap "
-               f"{overlap:g} m, depth {depth:g} m, damping {damping:g}, block {block_size:g} m")
-    grid = make_grid(grid_e, grid_n, values, name=name, units=units, long_name=long_name,
-                     history=history)
-    grid.attrs.update({"tile_size_m": tile_size, "overlap_m": overlap, "depth_m": depth,
-                       "damping": float(damping), "block_size_m": block_size,
-                       "windows": len(plans)})
+    history = (
+        f"tiled equivalent sources: {len(plans)} windows, tile {tile_size:g} m, overlap "
+        f"{overlap:g} m, depth {depth:g} m, damping {damping:g}, block {block_size:g} m"
+    )
+    grid = make_grid(grid_e, grid_n, values, name=name, units=units, long_name=long_name, history=history)
+    grid.attrs.update(
+        {
+            "tile_size_m": tile_size,
+            "overlap_m": overlap,
+            "depth_m": depth,
+            "damping": float(damping),
+            "block_size_m": block_size,
+            "windows": len(plans),
+        }
+    )
     residual = predicted = None
     if evaluate:
         predicted = np.full(pe.size, np.nan)
@@ -497,9 +570,23 @@ def fit_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: 
     return TiledGrid(grid=grid, residual=residual, tiles=pd.DataFrame(rows), predicted=predicted)
 
 
-def grid_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, *, region: tuple[float, float, float, float], spacing: float, height: float, tile_size: float,
-               overlap: float | None = None, depth: float | str = "default", damping: float = 1e-3, block_size: float | None = None, client: object = None,
-               **kwargs: object) -> xr.DataArray:
+def grid_tiled(
+    easting: ArrayLike,
+    northing: ArrayLike,
+    upward: ArrayLike,
+    data: ArrayLike,
+    *,
+    region: tuple[float, float, float, float],
+    spacing: float,
+    height: float,
+    tile_size: float,
+    overlap: float | None = None,
+    depth: float | str = "default",
+    damping: float = 1e-3,
+    block_size: float | None = None,
+    client: object = None,
+    **kwargs: object,
+) -> xr.DataArray:
     """Tiled, blended equivalent-source grid (the grid of :func:`fit_tiled`).
 
     Parameters and references as :func:`fit_tiled` (extra keywords are passed on to it).
@@ -510,7 +597,20 @@ def grid_tiled(easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data:
         Dims ``("northing", "easting")``, both ascending.
     """
     kwargs.pop("residuals", None)
-    return fit_tiled(easting, northing, upward, data, region=region, spacing=spacing,
-                     height=height, tile_size=tile_size, overlap=overlap, depth=depth,
-                     damping=damping, block_size=block_size, client=client, residuals=False,
-                     **kwargs).grid
+    return fit_tiled(
+        easting,
+        northing,
+        upward,
+        data,
+        region=region,
+        spacing=spacing,
+        height=height,
+        tile_size=tile_size,
+        overlap=overlap,
+        depth=depth,
+        damping=damping,
+        block_size=block_size,
+        client=client,
+        residuals=False,
+        **kwargs,
+    ).grid

@@ -21,8 +21,8 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Callable
 
 import numpy as np
 import scipy.fft
@@ -158,9 +158,14 @@ def _filler_values(filler, grid: xr.DataArray, flipped: tuple[bool, bool]) -> np
         _check_grid(filler, "filler grid")
         filler, _ = _ascending(filler)
         same = filler.shape == grid.shape and all(
-            np.allclose(filler[d].values, grid[d].values, rtol=1e-9,
-                        atol=1e-6 * abs(float(grid[d].values[1] - grid[d].values[0])))
-            for d in ("northing", "easting"))
+            np.allclose(
+                filler[d].values,
+                grid[d].values,
+                rtol=1e-9,
+                atol=1e-6 * abs(float(grid[d].values[1] - grid[d].values[0])),
+            )
+            for d in ("northing", "easting")
+        )
         if not same:
             raise BadGeometry(
                 "the filler grid does not have the same cells as the grid to transform",
@@ -192,8 +197,10 @@ def _smooth_fill(values: np.ndarray, holes: np.ndarray, passes: int = 8, sigma: 
     # smooth only within the bounding box of the holes plus the filter's reach
     margin = int(4 * sigma) + 1
     rows, cols = np.flatnonzero(holes.any(axis=1)), np.flatnonzero(holes.any(axis=0))
-    box = (slice(max(rows[0] - margin, 0), rows[-1] + margin + 1),
-           slice(max(cols[0] - margin, 0), cols[-1] + margin + 1))
+    box = (
+        slice(max(rows[0] - margin, 0), rows[-1] + margin + 1),
+        slice(max(cols[0] - margin, 0), cols[-1] + margin + 1),
+    )
     sub, sub_holes = filled[box], holes[box]
     for _ in range(passes):
         smooth = ndimage.gaussian_filter(sub, sigma=sigma, mode="nearest")
@@ -251,8 +258,14 @@ def _fill_values(asc: xr.DataArray, filler, flipped) -> tuple[np.ndarray, np.nda
     return values, mask, how
 
 
-def pad_grid(grid: xr.DataArray, pad_fraction: float = 0.5, mode: str = "reflect",
-             taper: bool = True, detrend: bool = True, filler=None) -> PaddedGrid:
+def pad_grid(
+    grid: xr.DataArray,
+    pad_fraction: float = 0.5,
+    mode: str = "reflect",
+    taper: bool = True,
+    detrend: bool = True,
+    filler=None,
+) -> PaddedGrid:
     """Prepare a grid for a wavenumber-domain filter.
 
     Steps: sort both coordinates ascending; fill masked cells (:func:`fill_masked`); remove the
@@ -326,8 +339,17 @@ def pad_grid(grid: xr.DataArray, pad_fraction: float = 0.5, mode: str = "reflect
         padded *= weights[0][:, None] * weights[1][None, :]
     notes.append(f"padded {pad_fraction:.0%} per side ({mode}{' + cosine taper' if taper else ''})")
     inner = (slice(pads[0][0], pads[0][0] + ny), slice(pads[1][0], pads[1][0] + nx))
-    return PaddedGrid(padded=padded, inner=inner, filled=values, mask=mask, plane=plane,
-                      slope=slope, spacing=spacing, flipped=flipped, notes=notes)
+    return PaddedGrid(
+        padded=padded,
+        inner=inner,
+        filled=values,
+        mask=mask,
+        plane=plane,
+        slope=slope,
+        spacing=spacing,
+        flipped=flipped,
+        notes=notes,
+    )
 
 
 def _taper(n: int, before: int, after: int) -> np.ndarray:
@@ -338,7 +360,7 @@ def _taper(n: int, before: int, after: int) -> np.ndarray:
         weight[:before] = 0.5 * (1 + np.cos(np.pi * d / (before + 1)))
     if after:
         d = np.arange(1, after + 1)
-        weight[n + before:] = 0.5 * (1 + np.cos(np.pi * d / (after + 1)))
+        weight[n + before :] = 0.5 * (1 + np.cos(np.pi * d / (after + 1)))
     return weight
 
 
@@ -364,13 +386,26 @@ def _apply_kernel(prep: PaddedGrid, kernel: Callable) -> np.ndarray:
     return prep.unpad(result)
 
 
-def _finish(grid: xr.DataArray, prep: PaddedGrid, values: np.ndarray, *, suffix: str, units: str,
-            long_name: str, step: str, **attrs) -> xr.DataArray:
+def _finish(
+    grid: xr.DataArray,
+    prep: PaddedGrid,
+    values: np.ndarray,
+    *,
+    suffix: str,
+    units: str,
+    long_name: str,
+    step: str,
+    **attrs,
+) -> xr.DataArray:
     asc, _ = _ascending(grid)
     values = np.where(prep.mask, np.nan, values)
     name = f"{grid.name}_{suffix}" if grid.name else suffix
-    out = xr.DataArray(values, coords={"northing": asc.northing.values, "easting": asc.easting.values},
-                       dims=("northing", "easting"), name=name)
+    out = xr.DataArray(
+        values,
+        coords={"northing": asc.northing.values, "easting": asc.easting.values},
+        dims=("northing", "easting"),
+        name=name,
+    )
     for coord in asc.coords:  # keep non-dimension coordinates (e.g. a 2-D height)
         if coord not in ("northing", "easting") and set(asc[coord].dims) <= {"northing", "easting"}:
             out = out.assign_coords({coord: asc[coord]})
@@ -398,8 +433,9 @@ def _per_metre(units: str, order: int) -> str:
 # --------------------------------------------------------------------------------------------
 # Continuation
 # --------------------------------------------------------------------------------------------
-def upward_continuation(grid: xr.DataArray, height: float, *, pad_fraction: float = 0.5,
-                        pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+def upward_continuation(
+    grid: xr.DataArray, height: float, *, pad_fraction: float = 0.5, pad_mode: str = "reflect", filler=None
+) -> xr.DataArray:
     """Continue a grid upward by ``height`` metres.
 
     The spectrum is multiplied by ``exp(-|k| height)`` (Blakely 1995, Potential Theory in Gravity
@@ -422,15 +458,23 @@ def upward_continuation(grid: xr.DataArray, height: float, *, pad_fraction: floa
     """
     _check_grid(grid)
     if not (np.isfinite(height) and height >= 0):
-        raise BadParameter(f"upward continuation height {height} m must be >= 0",
-                             hint="give a positive height; use downward_continuation to go down")
+        raise BadParameter(
+            f"upward continuation height {height} m must be >= 0",
+            hint="give a positive height; use downward_continuation to go down",
+        )
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     values = _apply_kernel(prep, lambda ke, kn, k: np.exp(-k * height)) + prep.plane
     units, long_name = _source(grid)
-    out = _finish(grid, prep, values, suffix="upward", units=units,
-                  long_name=f"{long_name} continued upward by {height:g} m",
-                  step=f"upward continuation by {height:g} m (Blakely 1995 ch. 12)",
-                  continuation_m=float(height))
+    out = _finish(
+        grid,
+        prep,
+        values,
+        suffix="upward",
+        units=units,
+        long_name=f"{long_name} continued upward by {height:g} m",
+        step=f"upward continuation by {height:g} m (Blakely 1995 ch. 12)",
+        continuation_m=float(height),
+    )
     return _shift_height(out, height)
 
 
@@ -460,10 +504,17 @@ def _choose_regularisation(k_max: float, depth: float, max_gain: float) -> float
     return float(10.0**hi)
 
 
-def downward_continuation(grid: xr.DataArray, depth: float, regularisation: float | None = None, *,
-                          source_depth: float | None = None, max_gain: float = 100.0,
-                          pad_fraction: float = 0.5, pad_mode: str = "reflect",
-                          filler=None) -> xr.DataArray:
+def downward_continuation(
+    grid: xr.DataArray,
+    depth: float,
+    regularisation: float | None = None,
+    *,
+    source_depth: float | None = None,
+    max_gain: float = 100.0,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+) -> xr.DataArray:
     """Continue a grid downward by ``depth`` metres, stabilised by Tikhonov regularisation.
 
     Downward continuation multiplies the spectrum by ``exp(+|k| depth)``, which amplifies noise
@@ -500,12 +551,16 @@ def downward_continuation(grid: xr.DataArray, depth: float, regularisation: floa
     """
     _check_grid(grid)
     if not (np.isfinite(depth) and depth >= 0):
-        raise BadParameter(f"downward continuation depth {depth} m must be >= 0",
-                             hint="give a positive depth; use upward_continuation to go up")
+        raise BadParameter(
+            f"downward continuation depth {depth} m must be >= 0",
+            hint="give a positive depth; use upward_continuation to go up",
+        )
     warning = None
     if source_depth is not None and depth >= 0.8 * source_depth:
-        warning = (f"downward continuation by {depth:g} m approaches or passes the source depth "
-                   f"{source_depth:g} m: the result is unstable and not a valid field there")
+        warning = (
+            f"downward continuation by {depth:g} m approaches or passes the source depth "
+            f"{source_depth:g} m: the result is unstable and not a valid field there"
+        )
         warnings.warn(warning, UserWarning, stacklevel=2)
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     _, _, k = prep.wavenumbers()
@@ -513,22 +568,38 @@ def downward_continuation(grid: xr.DataArray, depth: float, regularisation: floa
         alpha = _choose_regularisation(float(k.max()), depth, max_gain)
     else:
         if not (np.isfinite(regularisation) and regularisation >= 0):
-            raise BadParameter(f"regularisation {regularisation} must be >= 0 (m^2)",
-                                 hint="give a non-negative alpha or None for the automatic choice")
+            raise BadParameter(
+                f"regularisation {regularisation} must be >= 0 (m^2)",
+                hint="give a non-negative alpha or None for the automatic choice",
+            )
         alpha = float(regularisation)
     peak = float(_tikhonov_gain(np.linspace(0, float(k.max()), 4097), depth, alpha).max())
     values = _apply_kernel(prep, lambda ke, kn, kk: _tikhonov_gain(kk, depth, alpha)) + prep.plane
     units, long_name = _source(grid)
-    return _shift_height(_finish(grid, prep, values, suffix="downward", units=units,
-                   long_name=f"{long_name} continued downward by {depth:g} m",
-                   step=(f"downward continuation by {depth:g} m, Tikhonov alpha {alpha:.3g} m^2, "
-                         f"peak gain {peak:.3g} (Tikhonov and Arsenin 1977; Blakely 1995 ch. 12)"),
-                   continuation_m=-float(depth), regularisation_m2=alpha, peak_gain=peak,
-                   warning=warning), -float(depth))
+    return _shift_height(
+        _finish(
+            grid,
+            prep,
+            values,
+            suffix="downward",
+            units=units,
+            long_name=f"{long_name} continued downward by {depth:g} m",
+            step=(
+                f"downward continuation by {depth:g} m, Tikhonov alpha {alpha:.3g} m^2, "
+                f"peak gain {peak:.3g} (Tikhonov and Arsenin 1977; Blakely 1995 ch. 12)"
+            ),
+            continuation_m=-float(depth),
+            regularisation_m2=alpha,
+            peak_gain=peak,
+            warning=warning,
+        ),
+        -float(depth),
+    )
 
 
-def model_upward_continuation(predict: Callable, grid: xr.DataArray, height: float,
-                              grid_height) -> xr.DataArray:
+def model_upward_continuation(
+    predict: Callable, grid: xr.DataArray, height: float, grid_height
+) -> xr.DataArray:
     """Upward continuation by evaluating a source model at the higher surface.
 
     An equivalent-source layer reproduces the field it was fitted to and is harmonic above the
@@ -555,8 +626,9 @@ def model_upward_continuation(predict: Callable, grid: xr.DataArray, height: flo
     """
     _check_grid(grid)
     if not (np.isfinite(height) and height >= 0):
-        raise BadParameter(f"upward continuation height {height} m must be >= 0",
-                             hint="give a positive height")
+        raise BadParameter(
+            f"upward continuation height {height} m must be >= 0", hint="give a positive height"
+        )
     grid = grid.transpose("northing", "easting")
     easting, northing = np.meshgrid(grid.easting.values, grid.northing.values)
     upward = np.broadcast_to(np.asarray(grid_height, dtype=float), easting.shape) + height
@@ -567,17 +639,21 @@ def model_upward_continuation(predict: Callable, grid: xr.DataArray, height: flo
     step = f"upward continuation by {height:g} m by source-model prediction (Dampney 1969)"
     out = grid.copy(data=values)
     out.name = f"{grid.name}_upward_model" if grid.name else "upward_model"
-    out.attrs = {"units": units, "long_name": f"{long_name} continued upward by {height:g} m (source model)",
-                 "history": f"{previous}; {step}" if previous else step,
-                 "continuation_m": float(height)}
+    out.attrs = {
+        "units": units,
+        "long_name": f"{long_name} continued upward by {height:g} m (source model)",
+        "history": f"{previous}; {step}" if previous else step,
+        "continuation_m": float(height),
+    }
     return _shift_height(out, height)
 
 
 # --------------------------------------------------------------------------------------------
 # Derivatives
 # --------------------------------------------------------------------------------------------
-def vertical_derivative(grid: xr.DataArray, order: int = 1, *, pad_fraction: float = 0.5,
-                        pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+def vertical_derivative(
+    grid: xr.DataArray, order: int = 1, *, pad_fraction: float = 0.5, pad_mode: str = "reflect", filler=None
+) -> xr.DataArray:
     """Vertical derivative of order 1 or 2, z positive down.
 
     The spectrum is multiplied by ``|k|^order`` (Blakely 1995, Potential Theory in Gravity and
@@ -600,23 +676,27 @@ def vertical_derivative(grid: xr.DataArray, order: int = 1, *, pad_fraction: flo
     """
     _check_grid(grid)
     if order not in (1, 2):
-        raise BadParameter(f"vertical derivative order {order} is not supported",
-                             hint="use order 1 or 2")
+        raise BadParameter(f"vertical derivative order {order} is not supported", hint="use order 1 or 2")
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     values = _apply_kernel(prep, lambda ke, kn, k: k**order)
     units, long_name = _source(grid)
     label = "first" if order == 1 else "second"
-    return _finish(grid, prep, values, suffix=f"dz{order}", units=_per_metre(units, order),
-                   long_name=f"{label} vertical derivative of {long_name} (z down)",
-                   step=f"vertical derivative order {order}, |k|^{order} (Blakely 1995 ch. 12)",
-                   positive="down")
+    return _finish(
+        grid,
+        prep,
+        values,
+        suffix=f"dz{order}",
+        units=_per_metre(units, order),
+        long_name=f"{label} vertical derivative of {long_name} (z down)",
+        step=f"vertical derivative order {order}, |k|^{order} (Blakely 1995 ch. 12)",
+        positive="down",
+    )
 
 
 def _horizontal(grid: xr.DataArray, method: str, pad_fraction: float, pad_mode: str, filler):
     """(dx, dy, prep) on the ascending grid: d/d easting, d/d northing."""
     if method not in ("central", "fft"):
-        raise BadParameter(f"unknown horizontal derivative method '{method}'",
-                             hint="use 'central' or 'fft'")
+        raise BadParameter(f"unknown horizontal derivative method '{method}'", hint="use 'central' or 'fft'")
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
     if method == "central":
         d_n, d_e = prep.spacing
@@ -640,12 +720,20 @@ def _central_difference(values: np.ndarray, step: float, axis: int) -> np.ndarra
     return out
 
 
-_METHOD_TEXT = {"central": "central differences (fourth order)",
-                "fft": "wavenumber domain, i k (Blakely 1995 ch. 12)"}
+_METHOD_TEXT = {
+    "central": "central differences (fourth order)",
+    "fft": "wavenumber domain, i k (Blakely 1995 ch. 12)",
+}
 
 
-def horizontal_derivatives(grid: xr.DataArray, method: str = "central", *, pad_fraction: float = 0.5,
-                           pad_mode: str = "reflect", filler=None) -> tuple[xr.DataArray, xr.DataArray]:
+def horizontal_derivatives(
+    grid: xr.DataArray,
+    method: str = "central",
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+) -> tuple[xr.DataArray, xr.DataArray]:
     """Derivatives along easting (dx) and northing (dy).
 
     ``method="central"``: fourth-order central differences (second order next to the edges;
@@ -671,10 +759,24 @@ def horizontal_derivatives(grid: xr.DataArray, method: str = "central", *, pad_f
     dx, dy, prep = _horizontal(grid, method, pad_fraction, pad_mode, filler)
     units, long_name = _source(grid)
     common = dict(units=_per_metre(units, 1))
-    out_dx = _finish(grid, prep, dx, suffix="dx", long_name=f"easting derivative of {long_name}",
-                     step=f"easting derivative, {_METHOD_TEXT[method]}", **common)
-    out_dy = _finish(grid, prep, dy, suffix="dy", long_name=f"northing derivative of {long_name}",
-                     step=f"northing derivative, {_METHOD_TEXT[method]}", **common)
+    out_dx = _finish(
+        grid,
+        prep,
+        dx,
+        suffix="dx",
+        long_name=f"easting derivative of {long_name}",
+        step=f"easting derivative, {_METHOD_TEXT[method]}",
+        **common,
+    )
+    out_dy = _finish(
+        grid,
+        prep,
+        dy,
+        suffix="dy",
+        long_name=f"northing derivative of {long_name}",
+        step=f"northing derivative, {_METHOD_TEXT[method]}",
+        **common,
+    )
     return out_dx, out_dy
 
 
@@ -684,8 +786,14 @@ def _gradients(grid, method, pad_fraction, pad_mode, filler):
     return dx, dy, dz, prep
 
 
-def total_horizontal_gradient(grid: xr.DataArray, method: str = "central", *, pad_fraction: float = 0.5,
-                              pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+def total_horizontal_gradient(
+    grid: xr.DataArray,
+    method: str = "central",
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+) -> xr.DataArray:
     """Total horizontal gradient ``sqrt(dx^2 + dy^2)``.
 
     Its maxima lie over steep contacts of the reduced-to-pole magnetic or gravity field
@@ -708,13 +816,25 @@ def total_horizontal_gradient(grid: xr.DataArray, method: str = "central", *, pa
     _check_grid(grid)
     dx, dy, prep = _horizontal(grid, method, pad_fraction, pad_mode, filler)
     units, long_name = _source(grid)
-    return _finish(grid, prep, np.hypot(dx, dy), suffix="thg", units=_per_metre(units, 1),
-                   long_name=f"total horizontal gradient of {long_name}",
-                   step=f"total horizontal gradient, {_METHOD_TEXT[method]} (Cordell and Grauch 1985)")
+    return _finish(
+        grid,
+        prep,
+        np.hypot(dx, dy),
+        suffix="thg",
+        units=_per_metre(units, 1),
+        long_name=f"total horizontal gradient of {long_name}",
+        step=f"total horizontal gradient, {_METHOD_TEXT[method]} (Cordell and Grauch 1985)",
+    )
 
 
-def total_gradient_amplitude(grid: xr.DataArray, method: str = "central", *, pad_fraction: float = 0.5,
-                             pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+def total_gradient_amplitude(
+    grid: xr.DataArray,
+    method: str = "central",
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+) -> xr.DataArray:
     """Total gradient amplitude (3-D analytic signal amplitude) ``sqrt(dx^2 + dy^2 + dz^2)``.
 
     For a 2-D contact it is a bell ``alpha / sqrt(h^2 + x^2)`` centred over the contact whatever
@@ -737,14 +857,28 @@ def total_gradient_amplitude(grid: xr.DataArray, method: str = "central", *, pad
     _check_grid(grid)
     dx, dy, dz, prep = _gradients(grid, method, pad_fraction, pad_mode, filler)
     units, long_name = _source(grid)
-    return _finish(grid, prep, np.sqrt(dx**2 + dy**2 + dz**2), suffix="tga", units=_per_metre(units, 1),
-                   long_name=f"total gradient amplitude (analytic signal) of {long_name}",
-                   step=(f"total gradient amplitude, horizontal {_METHOD_TEXT[method]}, vertical |k| "
-                         "(Nabighian 1972; Roest et al. 1992)"))
+    return _finish(
+        grid,
+        prep,
+        np.sqrt(dx**2 + dy**2 + dz**2),
+        suffix="tga",
+        units=_per_metre(units, 1),
+        long_name=f"total gradient amplitude (analytic signal) of {long_name}",
+        step=(
+            f"total gradient amplitude, horizontal {_METHOD_TEXT[method]}, vertical |k| "
+            "(Nabighian 1972; Roest et al. 1992)"
+        ),
+    )
 
 
-def tilt_angle(grid: xr.DataArray, method: str = "central", *, pad_fraction: float = 0.5,
-               pad_mode: str = "reflect", filler=None) -> xr.DataArray:
+def tilt_angle(
+    grid: xr.DataArray,
+    method: str = "central",
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+) -> xr.DataArray:
     """Tilt angle ``atan(dz / sqrt(dx^2 + dy^2))`` in degrees, within [-90, 90].
 
     Positive over the source, zero near its edges, negative outside (Miller and Singh 1994,
@@ -768,10 +902,17 @@ def tilt_angle(grid: xr.DataArray, method: str = "central", *, pad_fraction: flo
     dx, dy, dz, prep = _gradients(grid, method, pad_fraction, pad_mode, filler)
     tilt = np.degrees(np.arctan2(dz, np.hypot(dx, dy)))
     _, long_name = _source(grid)
-    return _finish(grid, prep, tilt, suffix="tilt", units="degree",
-                   long_name=f"tilt angle of {long_name}",
-                   step=f"tilt angle, horizontal {_METHOD_TEXT[method]}, vertical |k| (Miller and Singh 1994)",
-                   valid_min=-90.0, valid_max=90.0)
+    return _finish(
+        grid,
+        prep,
+        tilt,
+        suffix="tilt",
+        units="degree",
+        long_name=f"tilt angle of {long_name}",
+        step=f"tilt angle, horizontal {_METHOD_TEXT[method]}, vertical |k| (Miller and Singh 1994)",
+        valid_min=-90.0,
+        valid_max=90.0,
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -818,20 +959,25 @@ def grid_declination(declination: float, crs, longitude: float, latitude: float)
     try:
         to_grid = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
     except pyproj.exceptions.CRSError as err:
-        raise BadGeometry(f"cannot use the grid CRS for the grid declination ({err})",
-                          hint="give a CRS that pyproj understands") from None
+        raise BadGeometry(
+            f"cannot use the grid CRS for the grid declination ({err})",
+            hint="give a CRS that pyproj understands",
+        ) from None
     step = 1e-4 if latitude < 89.0 else -1e-4
     e0, n0 = to_grid.transform(longitude, latitude)
     e1, n1 = to_grid.transform(longitude, latitude + step)
     true_north = float(np.degrees(np.arctan2(np.sign(step) * (e1 - e0), np.sign(step) * (n1 - n0))))
     if not np.isfinite(true_north):
-        raise BadGeometry(f"the grid CRS cannot project the point ({longitude}, {latitude})",
-                          hint="the point must lie inside the CRS's area of use")
+        raise BadGeometry(
+            f"the grid CRS cannot project the point ({longitude}, {latitude})",
+            hint="the point must lie inside the CRS's area of use",
+        )
     return float(declination) + true_north, true_north
 
 
-def rtp_method_for(inclination: float, threshold: float = AUTO_RTP_THRESHOLD_DEG,
-                   low: str = "sources") -> str:
+def rtp_method_for(
+    inclination: float, threshold: float = AUTO_RTP_THRESHOLD_DEG, low: str = "sources"
+) -> str:
     """``"plain"`` when ``|inclination| >= threshold`` degrees, else ``low`` (default the
     equivalent-layer RTP, :mod:`potfield.fields.harmonic.rtp_layer`)."""
     return "plain" if abs(float(inclination)) >= threshold else low
@@ -848,13 +994,23 @@ def default_pseudo_inclination(inclination: float, threshold: float = PSEUDO_INC
     return math.copysign(max(abs(inc), threshold), inc if inc != 0 else 1.0)
 
 
-def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float,
-                      mag_inclination: float | None = None, mag_declination: float | None = None,
-                      method: str = "plain", pseudo_inclination: float | None = None, *,
-                      auto_threshold: float = AUTO_RTP_THRESHOLD_DEG, pad_fraction: float = 0.5,
-                      pad_mode: str = "reflect", filler=None, wiener_level: float = WIENER_LEVEL,
-                      layer_depth: float | None = None,
-                      layer_damping: float | None = None) -> xr.DataArray:
+def reduction_to_pole(
+    grid: xr.DataArray,
+    inclination: float,
+    declination: float,
+    mag_inclination: float | None = None,
+    mag_declination: float | None = None,
+    method: str = "plain",
+    pseudo_inclination: float | None = None,
+    *,
+    auto_threshold: float = AUTO_RTP_THRESHOLD_DEG,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler=None,
+    wiener_level: float = WIENER_LEVEL,
+    layer_depth: float | None = None,
+    layer_damping: float | None = None,
+) -> xr.DataArray:
     """Reduce a total-field anomaly grid to the magnetic pole.
 
     ``method="plain"``: Baranov's filter ``1 / (Theta_m Theta_f)`` with
@@ -925,27 +1081,38 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
     """
     _check_grid(grid)
     if (mag_inclination is None) != (mag_declination is None):
-        raise BadParameter("give both magnetisation inclination and declination, or neither",
-                             hint="set both angles (degrees) or leave both out for induced magnetisation")
-    for label, value in (("inclination", inclination), ("declination", declination),
-                         ("mag_inclination", mag_inclination), ("mag_declination", mag_declination)):
+        raise BadParameter(
+            "give both magnetisation inclination and declination, or neither",
+            hint="set both angles (degrees) or leave both out for induced magnetisation",
+        )
+    for label, value in (
+        ("inclination", inclination),
+        ("declination", declination),
+        ("mag_inclination", mag_inclination),
+        ("mag_declination", mag_declination),
+    ):
         if value is not None and not np.isfinite(value):
-            raise BadParameter(f"RTP {label} is not a finite number ({value})",
-                                 hint="give the field's inclination and declination in degrees")
+            raise BadParameter(
+                f"RTP {label} is not a finite number ({value})",
+                hint="give the field's inclination and declination in degrees",
+            )
     if abs(inclination) > 90 or (mag_inclination is not None and abs(mag_inclination) > 90):
-        raise BadParameter("an inclination is outside [-90, 90] degrees",
-                             hint="give inclinations in degrees, positive down")
+        raise BadParameter(
+            "an inclination is outside [-90, 90] degrees", hint="give inclinations in degrees, positive down"
+        )
     m_inc = inclination if mag_inclination is None else float(mag_inclination)
     m_dec = declination if mag_declination is None else float(mag_declination)
     if method == "auto":
         method = rtp_method_for(min(abs(inclination), abs(m_inc)), auto_threshold)
     if method not in RTP_METHODS[1:]:
-        raise BadParameter(f"unknown reduction-to-pole method '{method}'",
-                           hint="use one of " + ", ".join(RTP_METHODS))
+        raise BadParameter(
+            f"unknown reduction-to-pole method '{method}'", hint="use one of " + ", ".join(RTP_METHODS)
+        )
     if method == "sources":
         return _layer_rtp(grid, inclination, declination, m_inc, m_dec, layer_depth, layer_damping)
     extra = {}
     if method == "plain":
+
         def kernel(ke, kn, k):
             return 1.0 / (_theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k))
 
@@ -953,15 +1120,16 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
     elif method == "filter":
         level = float(wiener_level)
         if not level > 0:
-            raise BadParameter(f"RTP filter level {wiener_level} must be positive",
-                               hint="use e.g. 0.1")
+            raise BadParameter(f"RTP filter level {wiener_level} must be positive", hint="use e.g. 0.1")
 
         def kernel(ke, kn, k):
             t = _theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k)
-            return np.conj(t) / (np.abs(t) ** 2 + level ** 2)
+            return np.conj(t) / (np.abs(t) ** 2 + level**2)
 
-        step = (f"reduction to the pole, regularised inverse filter conj(T)/(|T|^2 + {level:g}^2) "
-                "(Hansen and Pawlowski 1989)")
+        step = (
+            f"reduction to the pole, regularised inverse filter conj(T)/(|T|^2 + {level:g}^2) "
+            "(Hansen and Pawlowski 1989)"
+        )
         extra["wiener_level"] = level
     else:
         if pseudo_inclination is None:
@@ -969,18 +1137,24 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
         else:
             pseudo = abs(float(pseudo_inclination))
             if pseudo > 90:
-                raise BadParameter(f"pseudo inclination {pseudo_inclination} is outside [-90, 90] degrees",
-                                     hint="give degrees, e.g. 30")
+                raise BadParameter(
+                    f"pseudo inclination {pseudo_inclination} is outside [-90, 90] degrees",
+                    hint="give degrees, e.g. 30",
+                )
         amp_f = math.copysign(max(abs(inclination), pseudo), inclination if inclination else 1.0)
         amp_m = math.copysign(max(abs(m_inc), pseudo), m_inc if m_inc else 1.0)
 
         def kernel(ke, kn, k):
             true = _theta(m_inc, m_dec, ke, kn, k) * _theta(inclination, declination, ke, kn, k)
-            amplitude = np.abs(_theta(amp_m, m_dec, ke, kn, k)) * np.abs(_theta(amp_f, declination, ke, kn, k))
+            amplitude = np.abs(_theta(amp_m, m_dec, ke, kn, k)) * np.abs(
+                _theta(amp_f, declination, ke, kn, k)
+            )
             return np.exp(-1j * np.angle(true)) / amplitude
 
-        step = (f"reduction to the pole, pseudo-inclination filter, amplitude inclination {pseudo:g} deg "
-                "(MacLeod, Jones and Dai 1993)")
+        step = (
+            f"reduction to the pole, pseudo-inclination filter, amplitude inclination {pseudo:g} deg "
+            "(MacLeod, Jones and Dai 1993)"
+        )
     prep = pad_grid(grid, pad_fraction, pad_mode, filler=filler)
 
     def zero_dc(ke, kn, k):
@@ -989,12 +1163,22 @@ def reduction_to_pole(grid: xr.DataArray, inclination: float, declination: float
 
     values = _apply_kernel(prep, zero_dc)
     units, long_name = _source(grid)
-    return _finish(grid, prep, values, suffix="rtp", units=units,
-                   long_name=f"{long_name} reduced to the pole",
-                   step=f"{step}, I {inclination:g} D {declination:g}",
-                   rtp_method=method, inclination=float(inclination), declination=float(declination),
-                   mag_inclination=float(m_inc), mag_declination=float(m_dec),
-                   pseudo_inclination=float(pseudo) if method == "pseudo" else None, **extra)
+    return _finish(
+        grid,
+        prep,
+        values,
+        suffix="rtp",
+        units=units,
+        long_name=f"{long_name} reduced to the pole",
+        step=f"{step}, I {inclination:g} D {declination:g}",
+        rtp_method=method,
+        inclination=float(inclination),
+        declination=float(declination),
+        mag_inclination=float(m_inc),
+        mag_declination=float(m_dec),
+        pseudo_inclination=float(pseudo) if method == "pseudo" else None,
+        **extra,
+    )
 
 
 def _layer_rtp(grid, inclination, declination, m_inc, m_dec, depth, damping) -> xr.DataArray:
@@ -1004,27 +1188,62 @@ def _layer_rtp(grid, inclination, declination, m_inc, m_dec, depth, damping) -> 
     asc, flipped = _ascending(grid)
     values = np.asarray(asc.values, dtype=float)
     if not np.isfinite(values).any():
-        raise NotEnoughData(f"grid '{asc.name}' has no valid (finite) cell",
-                            hint="check the gridding output and its mask distance")
-    spacing = (float(asc.northing.values[1] - asc.northing.values[0]),
-               float(asc.easting.values[1] - asc.easting.values[0]))
+        raise NotEnoughData(
+            f"grid '{asc.name}' has no valid (finite) cell",
+            hint="check the gridding output and its mask distance",
+        )
+    spacing = (
+        float(asc.northing.values[1] - asc.northing.values[0]),
+        float(asc.easting.values[1] - asc.easting.values[0]),
+    )
     kwargs = {} if damping is None else {"damping": float(damping)}
-    result = rtp_layer.layer_reduction_to_pole(values, spacing, float(inclination),
-                                               float(declination), float(m_inc), float(m_dec),
-                                               depth=depth, **kwargs)
-    prep = PaddedGrid(padded=values, inner=(slice(None), slice(None)), filled=values,
-                      mask=~np.isfinite(values), plane=np.zeros_like(values), slope=(0.0, 0.0),
-                      spacing=spacing, flipped=flipped,
-                      notes=[(f"dipole layer {result.depth:g} m below the grid, one source per "
-                              f"cell, damping {result.damping:g}, {result.iterations} CGLS "
-                              f"iterations, fit RMS {result.residual_rms:.3g}")])
+    result = rtp_layer.layer_reduction_to_pole(
+        values,
+        spacing,
+        float(inclination),
+        float(declination),
+        float(m_inc),
+        float(m_dec),
+        depth=depth,
+        **kwargs,
+    )
+    prep = PaddedGrid(
+        padded=values,
+        inner=(slice(None), slice(None)),
+        filled=values,
+        mask=~np.isfinite(values),
+        plane=np.zeros_like(values),
+        slope=(0.0, 0.0),
+        spacing=spacing,
+        flipped=flipped,
+        notes=[
+            (
+                f"dipole layer {result.depth:g} m below the grid, one source per "
+                f"cell, damping {result.damping:g}, {result.iterations} CGLS "
+                f"iterations, fit RMS {result.residual_rms:.3g}"
+            )
+        ],
+    )
     units, long_name = _source(grid)
-    step = ("reduction to the pole by an equivalent dipole layer (Silva 1986; Li and Oldenburg "
-            f"2001), I {inclination:g} D {declination:g}")
-    return _finish(grid, prep, result.rtp, suffix="rtp", units=units,
-                   long_name=f"{long_name} reduced to the pole", step=step,
-                   rtp_method="sources", inclination=float(inclination),
-                   declination=float(declination), mag_inclination=float(m_inc),
-                   mag_declination=float(m_dec), layer_depth=result.depth,
-                   layer_damping=result.damping, layer_iterations=int(result.iterations),
-                   layer_residual_rms=result.residual_rms)
+    step = (
+        "reduction to the pole by an equivalent dipole layer (Silva 1986; Li and Oldenburg "
+        f"2001), I {inclination:g} D {declination:g}"
+    )
+    return _finish(
+        grid,
+        prep,
+        result.rtp,
+        suffix="rtp",
+        units=units,
+        long_name=f"{long_name} reduced to the pole",
+        step=step,
+        rtp_method="sources",
+        inclination=float(inclination),
+        declination=float(declination),
+        mag_inclination=float(m_inc),
+        mag_declination=float(m_dec),
+        layer_depth=result.depth,
+        layer_damping=result.damping,
+        layer_iterations=int(result.iterations),
+        layer_residual_rms=result.residual_rms,
+    )

@@ -32,7 +32,7 @@ _API = {
     "first_difference_spikes": "noise",
     "line_noise": "noise",
 }
-_MODULES = ('leveling', 'noise')
+_MODULES = ("leveling", "noise")
 
 __all__ = [*_MODULES, *_API]
 

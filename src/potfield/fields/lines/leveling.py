@@ -199,9 +199,20 @@ def _intersect(a, b, closes_a, closes_b):
     return ok & in_t & in_u, t, u
 
 
-def find_crossovers(easting, northing, line_ids, is_tie, values, time=None, height=None, *,
-                    flagged=None, max_segment_length=None, cell_size=None,
-                    tie_tie=True) -> pd.DataFrame:
+def find_crossovers(
+    easting,
+    northing,
+    line_ids,
+    is_tie,
+    values,
+    time=None,
+    height=None,
+    *,
+    flagged=None,
+    max_segment_length=None,
+    cell_size=None,
+    tie_tie=True,
+) -> pd.DataFrame:
     """Find every intersection of traverse-line tracks with tie-line tracks.
 
     Each line's track is the polyline through its readings in input order (the readings table is
@@ -263,8 +274,15 @@ def find_crossovers(easting, northing, line_ids, is_tie, values, time=None, heig
     h = np.full(n, np.nan) if height is None else np.asarray(height, dtype=float)
     bad = np.zeros(n, dtype=bool) if flagged is None else np.asarray(flagged, dtype=bool).copy()
     bad |= ~np.isfinite(v)
-    if not (y.size == n and line_ids.size == n and is_tie.size == n and v.size == n
-            and h.size == n and tnum.size == n and bad.size == n):
+    if not (
+        y.size == n
+        and line_ids.size == n
+        and is_tie.size == n
+        and v.size == n
+        and h.size == n
+        and tnum.size == n
+        and bad.size == n
+    ):
         raise BadGeometry("find_crossovers: all arrays must have the same length")
 
     codes, names = pd.factorize(pd.Series(line_ids), sort=False)
@@ -295,24 +313,34 @@ def find_crossovers(easting, northing, line_ids, is_tie, values, time=None, heig
             continue
         ga, gb = geometry(ia), geometry(ib)
         # tie-tie: each pair of ties once (ordered line codes), never a tie with itself
-        pa, pb = _candidate_pairs(ga, gb, cell_size, local_origin, ncx, codes[start[ia]],
-                                  codes[start[ib]], ordered=(kind == "tie-tie"))
+        pa, pb = _candidate_pairs(
+            ga,
+            gb,
+            cell_size,
+            local_origin,
+            ncx,
+            codes[start[ia]],
+            codes[start[ib]],
+            ordered=(kind == "tie-tie"),
+        )
         sa, sb = ia[pa], ib[pb]
         ga = tuple(g[pa] for g in ga)
         gb = tuple(g[pb] for g in gb)
         hit, t, u = _intersect(ga, gb, closes[sa], closes[sb])
         sa, sb, t, u = sa[hit], sb[hit], t[hit], u[hit]
         ga = tuple(g[hit] for g in ga)
-        frames.append(_crossover_frame(kind, sa, sb, t, u, ga, start, end, origin, names, codes,
-                                       v, tnum, is_datetime, h, bad))
+        frames.append(
+            _crossover_frame(
+                kind, sa, sb, t, u, ga, start, end, origin, names, codes, v, tnum, is_datetime, h, bad
+            )
+        )
     if not frames:
         return empty
     out = pd.concat(frames, ignore_index=True)
     return out.sort_values(["kind", "line", "tie", "time_line"], kind="stable", ignore_index=True)
 
 
-def _crossover_frame(kind, sa, sb, t, u, ga, start, end, origin, names, codes, v, tnum,
-                     is_datetime, h, bad):
+def _crossover_frame(kind, sa, sb, t, u, ga, start, end, origin, names, codes, v, tnum, is_datetime, h, bad):
     s_a, e_a, s_b, e_b = start[sa], end[sa], start[sb], end[sb]
 
     def lerp(arr, s, e, f):
@@ -329,42 +357,58 @@ def _crossover_frame(kind, sa, sb, t, u, ga, start, end, origin, names, codes, v
 
     value_line, value_tie = lerp(v, s_a, e_a, t), lerp(v, s_b, e_b, u)
     height_line, height_tie = lerp(h, s_a, e_a, t), lerp(h, s_b, e_b, u)
-    return pd.DataFrame({
-        "kind": kind,
-        "line": np.asarray(names)[codes[s_a]],
-        "tie": np.asarray(names)[codes[s_b]],
-        "easting": ga[0] + t * (ga[2] - ga[0]) + origin[0],
-        "northing": ga[1] + t * (ga[3] - ga[1]) + origin[1],
-        "time_line": tlerp(s_a, e_a, t),
-        "time_tie": tlerp(s_b, e_b, u),
-        "value_line": value_line,
-        "value_tie": value_tie,
-        "difference": value_line - value_tie,
-        "height_line": height_line,
-        "height_tie": height_tie,
-        "height_difference": height_line - height_tie,
-        "index_line": s_a,
-        "index_tie": s_b,
-        "fraction_line": t,
-        "fraction_tie": u,
-        "flagged": bad[s_a] | bad[e_a] | bad[s_b] | bad[e_b],
-    })
+    return pd.DataFrame(
+        {
+            "kind": kind,
+            "line": np.asarray(names)[codes[s_a]],
+            "tie": np.asarray(names)[codes[s_b]],
+            "easting": ga[0] + t * (ga[2] - ga[0]) + origin[0],
+            "northing": ga[1] + t * (ga[3] - ga[1]) + origin[1],
+            "time_line": tlerp(s_a, e_a, t),
+            "time_tie": tlerp(s_b, e_b, u),
+            "value_line": value_line,
+            "value_tie": value_tie,
+            "difference": value_line - value_tie,
+            "height_line": height_line,
+            "height_tie": height_tie,
+            "height_difference": height_line - height_tie,
+            "index_line": s_a,
+            "index_tie": s_b,
+            "fraction_line": t,
+            "fraction_tie": u,
+            "flagged": bad[s_a] | bad[e_a] | bad[s_b] | bad[e_b],
+        }
+    )
 
 
 def _empty_crossovers(is_datetime):
     tdtype = "datetime64[ns]" if is_datetime else float
-    return pd.DataFrame({
-        "kind": pd.Series([], dtype=object), "line": pd.Series([], dtype=object),
-        "tie": pd.Series([], dtype=object),
-        **{c: pd.Series([], dtype=float) for c in ("easting", "northing")},
-        "time_line": pd.Series([], dtype=tdtype), "time_tie": pd.Series([], dtype=tdtype),
-        **{c: pd.Series([], dtype=float) for c in (
-            "value_line", "value_tie", "difference", "height_line", "height_tie",
-            "height_difference")},
-        "index_line": pd.Series([], dtype=np.int64), "index_tie": pd.Series([], dtype=np.int64),
-        "fraction_line": pd.Series([], dtype=float), "fraction_tie": pd.Series([], dtype=float),
-        "flagged": pd.Series([], dtype=bool),
-    })
+    return pd.DataFrame(
+        {
+            "kind": pd.Series([], dtype=object),
+            "line": pd.Series([], dtype=object),
+            "tie": pd.Series([], dtype=object),
+            **{c: pd.Series([], dtype=float) for c in ("easting", "northing")},
+            "time_line": pd.Series([], dtype=tdtype),
+            "time_tie": pd.Series([], dtype=tdtype),
+            **{
+                c: pd.Series([], dtype=float)
+                for c in (
+                    "value_line",
+                    "value_tie",
+                    "difference",
+                    "height_line",
+                    "height_tie",
+                    "height_difference",
+                )
+            },
+            "index_line": pd.Series([], dtype=np.int64),
+            "index_tie": pd.Series([], dtype=np.int64),
+            "fraction_line": pd.Series([], dtype=float),
+            "fraction_tie": pd.Series([], dtype=float),
+            "flagged": pd.Series([], dtype=bool),
+        }
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -502,8 +546,9 @@ def usable_crossovers(crossovers, use=None, max_height_difference=None) -> np.nd
     return ok
 
 
-def adjust_ties(crossovers, ties=None, *, huber_threshold=1.5, max_height_difference=None,
-                use=None) -> TieAdjustment:
+def adjust_ties(
+    crossovers, ties=None, *, huber_threshold=1.5, max_height_difference=None, use=None
+) -> TieAdjustment:
     """Level the tie lines: one constant per tie line.
 
     Where tie lines cross each other, the constants ``a`` minimise
@@ -549,9 +594,15 @@ def adjust_ties(crossovers, ties=None, *, huber_threshold=1.5, max_height_differ
     tt = np.flatnonzero(ok & (kind == "tie-tie"))
     lt = np.flatnonzero(ok & (kind == "traverse-tie"))
     if ties is None:
-        ties = pd.unique(np.concatenate([crossovers["tie"].to_numpy()[kind == "traverse-tie"],
-                                         crossovers["line"].to_numpy()[kind == "tie-tie"],
-                                         crossovers["tie"].to_numpy()[kind == "tie-tie"]]))
+        ties = pd.unique(
+            np.concatenate(
+                [
+                    crossovers["tie"].to_numpy()[kind == "traverse-tie"],
+                    crossovers["line"].to_numpy()[kind == "tie-tie"],
+                    crossovers["tie"].to_numpy()[kind == "tie-tie"],
+                ]
+            )
+        )
     ties = [str(t) for t in ties]
     index = {t: k for k, t in enumerate(ties)}
     nt = len(ties)
@@ -560,8 +611,7 @@ def adjust_ties(crossovers, ties=None, *, huber_threshold=1.5, max_height_differ
     method = np.array(["none"] * nt, dtype=object)
     determined = np.zeros(nt, dtype=bool)
     if nt == 0:
-        return TieAdjustment(pd.Series(a, index=ties, dtype=float), pd.Series(method, index=ties),
-                             weights)
+        return TieAdjustment(pd.Series(a, index=ties, dtype=float), pd.Series(method, index=ties), weights)
 
     i = np.array([index.get(str(s), -1) for s in crossovers["line"].to_numpy()[tt]], dtype=int)
     j = np.array([index.get(str(s), -1) for s in crossovers["tie"].to_numpy()[tt]], dtype=int)
@@ -600,8 +650,7 @@ def adjust_ties(crossovers, ties=None, *, huber_threshold=1.5, max_height_differ
     a[~determined] = 0.0
     if determined.any():
         a[determined] -= a[determined].mean()
-    return TieAdjustment(pd.Series(a, index=ties, dtype=float), pd.Series(method, index=ties),
-                         weights)
+    return TieAdjustment(pd.Series(a, index=ties, dtype=float), pd.Series(method, index=ties), weights)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -672,18 +721,26 @@ class LineAdjustment:
             c = self.coefficients.get(key)
             if c is None:
                 continue
-            coef[k, :len(c)] = c
+            coef[k, : len(c)] = c
             lo[k], hi[k] = self.t_min[key], self.t_max[key]
             center[k], scale[k] = self.t_center[key], self.t_scale[key]
         codes = np.where(codes < 0, m - 1, codes)
-        tau = (np.clip(np.nan_to_num(sec, nan=0.0), lo[codes], hi[codes]) - center[codes])
+        tau = np.clip(np.nan_to_num(sec, nan=0.0), lo[codes], hi[codes]) - center[codes]
         tau = tau / scale[codes]
         return coef[codes, 0] + tau * (coef[codes, 1] + tau * coef[codes, 2])
 
 
-def adjust_lines(crossovers, tie_corrections=None, *, model="constant", lines=None,
-                 huber_threshold=1.5, min_crossovers=2, max_height_difference=None,
-                 use=None) -> LineAdjustment:
+def adjust_lines(
+    crossovers,
+    tie_corrections=None,
+    *,
+    model="constant",
+    lines=None,
+    huber_threshold=1.5,
+    min_crossovers=2,
+    max_height_difference=None,
+    use=None,
+) -> LineAdjustment:
     """Level each traverse line to the (adjusted) tie lines.
 
     For traverse line ``i`` the correction ``f_i(t)`` (a constant, or a linear or quadratic
@@ -753,8 +810,9 @@ def adjust_lines(crossovers, tie_corrections=None, *, model="constant", lines=No
     weights = np.full(len(crossovers), np.nan)
     coefficients, t_center, t_scale, t_min, t_max = {}, {}, {}, {}, {}
     counts, degrees, unlevelled = {}, {}, []
-    rows_of = pd.Series(np.flatnonzero(ok)).groupby(line_col[ok]).apply(np.asarray).to_dict() \
-        if ok.any() else {}
+    rows_of = (
+        pd.Series(np.flatnonzero(ok)).groupby(line_col[ok]).apply(np.asarray).to_dict() if ok.any() else {}
+    )
     for name in lines:
         rows = rows_of.get(name, np.zeros(0, dtype=int))
         counts[name] = int(rows.size)
@@ -774,9 +832,19 @@ def adjust_lines(crossovers, tie_corrections=None, *, model="constant", lines=No
         coefficients[name] = coef
         t_center[name], t_scale[name], t_min[name], t_max[name] = center, scale, lo, hi
         degrees[name] = deg
-    return LineAdjustment(model, coefficients, t_center, t_scale, t_min, t_max, epoch,
-                          pd.Series(counts, dtype=int), pd.Series(degrees, dtype=int), unlevelled,
-                          weights)
+    return LineAdjustment(
+        model,
+        coefficients,
+        t_center,
+        t_scale,
+        t_min,
+        t_max,
+        epoch,
+        pd.Series(counts, dtype=int),
+        pd.Series(degrees, dtype=int),
+        unlevelled,
+        weights,
+    )
 
 
 def _constrained_irls(design, target, constraints, threshold, max_iter=50, tol=1e-10):
@@ -823,8 +891,17 @@ def _constrained_irls(design, target, constraints, threshold, max_iter=50, tol=1
     return x, w
 
 
-def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber_threshold=1.5,
-                   min_crossovers=2, max_height_difference=None, use=None):
+def adjust_network(
+    crossovers,
+    *,
+    model="constant",
+    lines=None,
+    ties=None,
+    huber_threshold=1.5,
+    min_crossovers=2,
+    max_height_difference=None,
+    use=None,
+):
     """Level traverse and tie lines together in one least-squares network.
 
     All unknowns are solved at once: a constant per tie line and a polynomial in time per
@@ -871,9 +948,16 @@ def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber
         ties = pd.unique(np.concatenate([tie_col, line_col[~trav]]))
     lines, ties = [str(s) for s in lines], [str(s) for s in ties]
     # First pass (no solve) fixes degrees, time scaling and the unlevelled lines.
-    shape = adjust_lines(crossovers, None, model=model, lines=lines, huber_threshold=None,
-                         min_crossovers=min_crossovers, max_height_difference=max_height_difference,
-                         use=use)
+    shape = adjust_lines(
+        crossovers,
+        None,
+        model=model,
+        lines=lines,
+        huber_threshold=None,
+        min_crossovers=min_crossovers,
+        max_height_difference=max_height_difference,
+        use=use,
+    )
     levelled = [n for n in lines if n not in shape.unlevelled]
     ok &= ~trav | np.isin(line_col, levelled)
     ok &= np.isin(tie_col, ties) & (trav | np.isin(line_col, ties))
@@ -890,24 +974,27 @@ def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber
     r_idx, c_idx, vals = [], [], []
     for name in levelled:  # loop over lines: their polynomial columns
         sel = rows[trav[rows] & (line_col[rows] == name)]
-        tau = (np.clip(sec[sel], shape.t_min[name], shape.t_max[name]) - shape.t_center[name])
+        tau = np.clip(sec[sel], shape.t_min[name], shape.t_max[name]) - shape.t_center[name]
         tau = tau / shape.t_scale[name]
         for k in range(int(shape.degree[name]) + 1):
             r_idx.append(np.searchsorted(rows, sel))
             c_idx.append(np.full(sel.size, col0[name] + k))
-            vals.append(tau ** k)
+            vals.append(tau**k)
     tt = rows[~trav[rows]]
     pos = np.searchsorted(rows, tt)
     r_idx += [pos, pos]
-    c_idx += [np.array([tie_index[s] for s in line_col[tt]], dtype=int),
-              np.array([tie_index[s] for s in tie_col[tt]], dtype=int)]
+    c_idx += [
+        np.array([tie_index[s] for s in line_col[tt]], dtype=int),
+        np.array([tie_index[s] for s in tie_col[tt]], dtype=int),
+    ]
     vals += [np.ones(tt.size), -np.ones(tt.size)]
     tj = np.array([tie_index[s] for s in tie_col[rows[trav[rows]]]], dtype=int)
     r_idx.append(np.searchsorted(rows, rows[trav[rows]]))
     c_idx.append(tj)
     vals.append(-np.ones(tj.size))
-    design = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(r_idx),
-                                np.concatenate(c_idx))), shape=(rows.size, ncol))
+    design = sparse.csr_matrix(
+        (np.concatenate(vals), (np.concatenate(r_idx), np.concatenate(c_idx))), shape=(rows.size, ncol)
+    )
     target = -crossovers["difference"].to_numpy(float)[rows]
     # Datum per connected group: sum of its tie constants = 0 (or of its line constants if it
     # has no tie with a crossover). Unknowns touched by no crossover are pinned to zero.
@@ -934,12 +1021,21 @@ def adjust_network(crossovers, *, model="constant", lines=None, ties=None, huber
     weights[rows] = w
     a = pd.Series(x[:nt], index=ties, dtype=float)
     method = pd.Series(np.where(touched[:nt], "network", "none"), index=ties)
-    coefficients = {n: x[col0[n]:col0[n] + int(shape.degree[n]) + 1] for n in levelled}
-    counts = pd.Series({n: int(np.sum(trav[rows] & (line_col[rows] == n))) for n in lines},
-                       dtype=int)
-    line_adj = LineAdjustment(model, coefficients, dict(shape.t_center), dict(shape.t_scale),
-                              dict(shape.t_min), dict(shape.t_max), shape.epoch, counts,
-                              shape.degree.copy(), list(shape.unlevelled), weights)
+    coefficients = {n: x[col0[n] : col0[n] + int(shape.degree[n]) + 1] for n in levelled}
+    counts = pd.Series({n: int(np.sum(trav[rows] & (line_col[rows] == n))) for n in lines}, dtype=int)
+    line_adj = LineAdjustment(
+        model,
+        coefficients,
+        dict(shape.t_center),
+        dict(shape.t_scale),
+        dict(shape.t_min),
+        dict(shape.t_max),
+        shape.epoch,
+        counts,
+        shape.degree.copy(),
+        list(shape.unlevelled),
+        weights,
+    )
     return TieAdjustment(a, method, weights), line_adj
 
 
@@ -978,8 +1074,9 @@ def height_gate(height_difference, multiple=3.0, floor=10.0) -> float:
     return float(max(med + multiple * mad, floor))
 
 
-def vertical_gradient_at(easting, northing, values, at_easting, at_northing, cell,
-                         smoothing=None) -> np.ndarray:
+def vertical_gradient_at(
+    easting, northing, values, at_easting, at_northing, cell, smoothing=None
+) -> np.ndarray:
     """Upward vertical gradient ``dT/dh`` (units per metre) of line data at given points.
 
     The readings are averaged in square cells of side ``cell``, interpolated linearly between
@@ -1037,8 +1134,13 @@ def vertical_gradient_at(easting, northing, values, at_easting, at_northing, cel
     ee, nn = np.meshgrid(ge, gn)
     grid = griddata((mean_x, mean_y), mean_v, (ee, nn), method="linear")
     grid = _fill_nearest(grid)
-    da = xr.DataArray(grid, coords={"northing": gn, "easting": ge}, dims=("northing", "easting"),
-                      name="levelling_field", attrs={"units": ""})
+    da = xr.DataArray(
+        grid,
+        coords={"northing": gn, "easting": ge},
+        dims=("northing", "easting"),
+        name="levelling_field",
+        attrs={"units": ""},
+    )
     up = tf.upward_continuation(da, cell if smoothing is None else float(smoothing))
     dz = tf.vertical_derivative(up, 1)
     return -sample_grid(dz, at_easting, at_northing)
@@ -1124,8 +1226,9 @@ def line_azimuth(easting, northing, line_ids) -> float:
     length; directions are axial (a line flown north equals one flown south), so the mean is
     taken over doubled angles (Mardia and Jupp 2000, Directional Statistics, Wiley, sec. 9.3).
     """
-    frame = pd.DataFrame({"x": np.asarray(easting, float), "y": np.asarray(northing, float),
-                          "line": np.asarray(line_ids)}).dropna()
+    frame = pd.DataFrame(
+        {"x": np.asarray(easting, float), "y": np.asarray(northing, float), "line": np.asarray(line_ids)}
+    ).dropna()
     if frame.empty:
         raise NotEnoughData("line_azimuth: no finite coordinates")
     group = frame.groupby("line", sort=False)
@@ -1149,8 +1252,17 @@ def _fill_nearest(values):
     return values[tuple(idx)]
 
 
-def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max_amplitude=None,
-                *, along_wavelength=None, order=4, pad_fraction=0.5):
+def micro_level(
+    grid,
+    line_direction_deg,
+    line_spacing,
+    cutoff_spacings=3.0,
+    max_amplitude=None,
+    *,
+    along_wavelength=None,
+    order=4,
+    pad_fraction=0.5,
+):
     """Corrugation (line-parallel level residuals) in a grid, by directional filtering.
 
     The grid is padded by mirror reflection (``pad_fraction`` of each side, empty cells filled by
@@ -1224,17 +1336,23 @@ def micro_level(grid, line_direction_deg, line_spacing, cutoff_spacings=3.0, max
     kc_across = 1.0 / (cutoff_spacings * line_spacing)
     kc_along = 1.0 / (along_wavelength if along_wavelength is not None else 20.0 * line_spacing)
     n2 = 2 * int(order)
-    high = f_across ** order / np.sqrt(f_across ** n2 + kc_across ** n2)
+    high = f_across**order / np.sqrt(f_across**n2 + kc_across**n2)
     low = 1.0 / np.sqrt(1.0 + (f_along / kc_along) ** n2)
     spectrum = np.fft.fft2(padded) * (high * low)
-    corrugation = np.fft.ifft2(spectrum).real[pad_y:pad_y + ny, pad_x:pad_x + nx]
+    corrugation = np.fft.ifft2(spectrum).real[pad_y : pad_y + ny, pad_x : pad_x + nx]
     if max_amplitude is not None:
         corrugation = np.clip(corrugation, -max_amplitude, max_amplitude)
     corrugation[missing] = np.nan
-    return xr.DataArray(corrugation, coords={"northing": north, "easting": east},
-                        dims=("northing", "easting"), name="corrugation",
-                        attrs={"units": grid.attrs.get("units", ""),
-                               "long_name": "line-parallel corrugation (directional filter)"})
+    return xr.DataArray(
+        corrugation,
+        coords={"northing": north, "easting": east},
+        dims=("northing", "easting"),
+        name="corrugation",
+        attrs={
+            "units": grid.attrs.get("units", ""),
+            "long_name": "line-parallel corrugation (directional filter)",
+        },
+    )
 
 
 def sample_grid(grid, easting, northing) -> np.ndarray:
@@ -1280,6 +1398,5 @@ def lowpass_along_lines(values, line_ids, distance, wavelength) -> np.ndarray:
         resampled = np.interp(regular, dist, val)
         sigma = np.sqrt(np.log(2.0) / 2.0) / np.pi * wavelength / step
         smooth = gaussian_filter1d(resampled, sigma, mode="nearest")
-        out[idx] = np.interp(np.where(np.isfinite(distance[idx]), distance[idx], dist[0]),
-                             regular, smooth)
+        out[idx] = np.interp(np.where(np.isfinite(distance[idx]), distance[idx], dist[0]), regular, smooth)
     return out

@@ -41,7 +41,7 @@ def fourth_difference(values, groups=None, normalised: bool = False) -> np.ndarr
     if n < 5:
         return out
     g = None if groups is None else np.asarray(groups)
-    core = (x[:-4] - 4 * x[1:-3] + 6 * x[2:-2] - 4 * x[3:-1] + x[4:])
+    core = x[:-4] - 4 * x[1:-3] + 6 * x[2:-2] - 4 * x[3:-1] + x[4:]
     valid = np.ones(n - 4, dtype=bool)
     if g is not None:
         valid &= g[:-4] == g[4:]  # contiguous groups: ends equal means the whole window is inside
@@ -70,9 +70,12 @@ def _odd_reflect(x: np.ndarray, groups: np.ndarray, half: int):
     rank = rank_of_code[groups]
     values = np.concatenate([head.ravel(), x, tail.ravel()])
     line_key = np.concatenate([np.repeat(np.arange(nlines), half), rank, np.repeat(np.arange(nlines), half)])
-    part = np.concatenate([np.zeros(nlines * half, np.int8), np.ones(x.size, np.int8),
-                           np.full(nlines * half, 2, np.int8)])
-    pos = np.concatenate([np.tile(np.arange(half), nlines), np.arange(x.size), np.tile(np.arange(half), nlines)])
+    part = np.concatenate(
+        [np.zeros(nlines * half, np.int8), np.ones(x.size, np.int8), np.full(nlines * half, 2, np.int8)]
+    )
+    pos = np.concatenate(
+        [np.tile(np.arange(half), nlines), np.arange(x.size), np.tile(np.arange(half), nlines)]
+    )
     order = np.lexsort((pos, part, line_key))
     return values[order], line_key[order], part[order] == 1
 
@@ -105,16 +108,27 @@ def _group_rolling_median(values: np.ndarray, groups: np.ndarray, window: int) -
     """Centred rolling median (NaN ignored, shorter windows at the ends) restarted at every
     group; lines must be contiguous."""
     series = pd.Series(np.asarray(values, dtype=float))
-    return (series.groupby(np.asarray(groups), sort=False)
-            .rolling(int(window), center=True, min_periods=1).median()
-            .reset_index(level=0, drop=True).sort_index().to_numpy())
+    return (
+        series.groupby(np.asarray(groups), sort=False)
+        .rolling(int(window), center=True, min_periods=1)
+        .median()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )
 
 
 def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
     """Median of values[i - width + 1 .. i] on the same line (NaN ignored)."""
     series = pd.Series(values)
-    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).median()
-            .reset_index(level=0, drop=True).sort_index().to_numpy())
+    return (
+        series.groupby(groups, sort=False)
+        .rolling(int(width), min_periods=1)
+        .median()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )
 
 
 def _beside_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
@@ -138,8 +152,16 @@ def _shift(x: np.ndarray, groups: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
-def robust_spikes(values, groups, window: int = 11, threshold: float = 6.0,
-                  minimum: float = 0.0, fourth=None, *, return_strength: bool = False):
+def robust_spikes(
+    values,
+    groups,
+    window: int = 11,
+    threshold: float = 6.0,
+    minimum: float = 0.0,
+    fourth=None,
+    *,
+    return_strength: bool = False,
+):
     """Flag single-sample spikes from the fourth difference, against the line's own roughness.
 
     The fourth difference d4 = T[i-2] - 4T[i-1] + 6T[i] - 4T[i+1] + T[i+2] is exactly zero for a
@@ -244,8 +266,9 @@ def cap_flags(flags, strength, max_fraction: float) -> tuple[np.ndarray, int]:
     return flags, count - limit
 
 
-def first_difference_spikes(values, groups, window: int = 11, threshold: float = 6.0,
-                            floor: float = 3.0) -> tuple[np.ndarray, np.ndarray]:
+def first_difference_spikes(
+    values, groups, window: int = 11, threshold: float = 6.0, floor: float = 3.0
+) -> tuple[np.ndarray, np.ndarray]:
     """Spikes in one-minute observatory variation data from first differences.
 
     d1[i] = T[i] - T[i-1]. A spike at i is a jump away and straight back: d1[i] and d1[i+1] of
@@ -269,7 +292,7 @@ def first_difference_spikes(values, groups, window: int = 11, threshold: float =
     scale = 1.4826 * _group_rolling_median(np.abs(d1), g, window) if x.size else x
     limit = np.maximum(threshold * np.nan_to_num(scale, nan=0.0), float(floor))
     with np.errstate(invalid="ignore"):
-        flags = ((np.abs(d1) > limit) & (np.abs(d1_next) > limit) & (d1 * d1_next < 0))
+        flags = (np.abs(d1) > limit) & (np.abs(d1_next) > limit) & (d1 * d1_next < 0)
     return flags & np.isfinite(x), limit
 
 
@@ -280,8 +303,10 @@ def line_noise(fourth: np.ndarray, groups: np.ndarray, usable: np.ndarray | None
         d4 = np.where(usable, d4, np.nan)
     frame = pd.DataFrame({"g": groups, "d4": d4, "d4sq": d4**2})
     grouped = frame.groupby("g", sort=False)
-    return pd.DataFrame({
-        "fourth_difference_max": grouped["d4"].max(),
-        "fourth_difference_p95": grouped["d4"].quantile(0.95),
-        "fourth_difference_rms": np.sqrt(grouped["d4sq"].mean()),
-    })
+    return pd.DataFrame(
+        {
+            "fourth_difference_max": grouped["d4"].max(),
+            "fourth_difference_p95": grouped["d4"].quantile(0.95),
+            "fourth_difference_rms": np.sqrt(grouped["d4sq"].mean()),
+        }
+    )

@@ -45,7 +45,7 @@ _API = {
     "LAST_YEAR": "igrf",
     "MODEL_NAME": "igrf",
 }
-_MODULES = ('diurnal', 'igrf')
+_MODULES = ("diurnal", "igrf")
 
 __all__ = [*_MODULES, *_API]
 

@@ -32,6 +32,7 @@ METHODS = ("linear", "cubic", "nearest")
 
 # --- time ---------------------------------------------------------------------------------------
 
+
 def _as_time_array(time) -> np.ndarray:
     arr = np.asarray(time)
     if np.issubdtype(arr.dtype, np.datetime64):
@@ -60,6 +61,7 @@ def to_seconds(time, epoch=None) -> np.ndarray:
 
 
 # --- cleaning -----------------------------------------------------------------------------------
+
 
 @dataclass
 class BaseCleaning:
@@ -94,8 +96,15 @@ def running_median(value, window: int) -> np.ndarray:
     return series.rolling(int(window), center=True, min_periods=1).median().to_numpy()
 
 
-def clean_base(time, value, *, window: int = 11, threshold: float = 6.0, min_spike: float = 3.0,
-               max_gap_s: float | None = None) -> BaseCleaning:
+def clean_base(
+    time,
+    value,
+    *,
+    window: int = 11,
+    threshold: float = 6.0,
+    min_spike: float = 3.0,
+    max_gap_s: float | None = None,
+) -> BaseCleaning:
     """Flag spikes and missing samples of a base-station record.
 
     A sample is a spike when it departs from the running median of ``window`` samples by more
@@ -166,6 +175,7 @@ def find_gaps(seconds, good, max_gap_s: float) -> np.ndarray:
 
 # --- sessions, datum jumps and set-up transients -------------------------------------------------
 
+
 @dataclass
 class BaseSessions:
     """Result of :func:`base_sessions`.
@@ -189,18 +199,31 @@ class BaseSessions:
 
 def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
     series = pd.Series(values)
-    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).median()
-            .reset_index(level=0, drop=True).sort_index().to_numpy())
+    return (
+        series.groupby(groups, sort=False)
+        .rolling(int(width), min_periods=1)
+        .median()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )
 
 
 def _trailing_count(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
     series = pd.Series(np.isfinite(values).astype(float))
-    return (series.groupby(groups, sort=False).rolling(int(width), min_periods=1).sum()
-            .reset_index(level=0, drop=True).sort_index().to_numpy())
+    return (
+        series.groupby(groups, sort=False)
+        .rolling(int(width), min_periods=1)
+        .sum()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )
 
 
-def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: float = 20.0,
-                  window: int = 60) -> BaseSessions:
+def base_sessions(
+    time, value, good=None, *, gap_s: float = 1800.0, jump_nT: float = 20.0, window: int = 60
+) -> BaseSessions:
     """Split a base record into sessions and find datum jumps (relocations, re-set-ups).
 
     A new session starts after a recording gap longer than ``gap_s`` and at a step inside a
@@ -252,8 +275,15 @@ def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: flo
     n_after = _trailing_count(vg[::-1], part[::-1], k)[::-1]
     d1 = np.r_[np.nan, np.diff(vg)]
     d1[np.r_[True, part[1:] != part[:-1]]] = np.nan
-    slope = pd.Series(d1).groupby(part, sort=False).rolling(2 * k, center=True, min_periods=1) \
-        .median().reset_index(level=0, drop=True).sort_index().to_numpy()
+    slope = (
+        pd.Series(d1)
+        .groupby(part, sort=False)
+        .rolling(2 * k, center=True, min_periods=1)
+        .median()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )
     prev_before = np.r_[np.nan, before[:-1]]
     prev_count = np.r_[0.0, n_before[:-1]]
     same = np.r_[False, part[1:] == part[:-1]]
@@ -264,22 +294,37 @@ def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: flo
     steps = []
     if candidate.any():
         run_id = np.cumsum(np.r_[True, ~candidate[1:] | ~candidate[:-1]])
-        frame = pd.DataFrame({"run": run_id[candidate], "pos": np.flatnonzero(candidate),
-                              "d1": np.abs(d1[candidate])})
+        frame = pd.DataFrame(
+            {"run": run_id[candidate], "pos": np.flatnonzero(candidate), "d1": np.abs(d1[candidate])}
+        )
         best = frame.loc[frame.groupby("run")["d1"].idxmax(), "pos"].to_numpy()
         for pos in best:  # loop over steps found (a few), not samples
-            level_before = float(np.median(vg[max(pos - k, 0):pos]))
-            level_after = float(np.median(vg[pos:pos + k]))
+            level_before = float(np.median(vg[max(pos - k, 0) : pos]))
+            level_after = float(np.median(vg[pos : pos + k]))
             steps.append(int(pos))
-            changes.append({"index": int(idx[pos]), "kind": "step", "seconds": float(tg[pos]),
-                            "size_nT": level_after - level_before, "jump": True})
+            changes.append(
+                {
+                    "index": int(idx[pos]),
+                    "kind": "step",
+                    "seconds": float(tg[pos]),
+                    "size_nT": level_after - level_before,
+                    "jump": True,
+                }
+            )
     for pos in gap_cut:  # loop over gaps (a few)
-        lo = vg[max(pos - k, 0):pos][part[max(pos - k, 0):pos] == part[pos - 1]]
-        hi = vg[pos:pos + k][part[pos:pos + k] == part[pos]]
+        lo = vg[max(pos - k, 0) : pos][part[max(pos - k, 0) : pos] == part[pos - 1]]
+        hi = vg[pos : pos + k][part[pos : pos + k] == part[pos]]
         size = float(np.median(hi) - np.median(lo))
-        changes.append({"index": int(idx[pos]), "kind": "gap", "seconds": float(tg[pos]),
-                        "size_nT": size, "jump": bool(abs(size) > jump_nT),
-                        "gap_s": float(tg[pos] - tg[pos - 1])})
+        changes.append(
+            {
+                "index": int(idx[pos]),
+                "kind": "gap",
+                "seconds": float(tg[pos]),
+                "size_nT": size,
+                "jump": bool(abs(size) > jump_nT),
+                "gap_s": float(tg[pos] - tg[pos - 1]),
+            }
+        )
     changes.sort(key=lambda c: c["index"])
     starts = np.array([c["index"] for c in changes], dtype=np.int64)
     if starts.size:
@@ -288,8 +333,9 @@ def base_sessions(time, value, good=None, *, gap_s: float = 1800.0, jump_nT: flo
     return BaseSessions(session, jumps, changes)
 
 
-def setup_transients(time, value, session, good=None, *, settle_s: float = 300.0,
-                     min_nT: float = 3.0) -> np.ndarray:
+def setup_transients(
+    time, value, session, good=None, *, settle_s: float = 300.0, min_nT: float = 3.0
+) -> np.ndarray:
     """Flag the settling transient at the start of each base session.
 
     A magnetometer just set up drifts for its first minutes (the sensor and its electronics
@@ -372,8 +418,8 @@ def session_datums(time, value, session, good=None, span=None) -> np.ndarray:
 
 # --- interpolation ------------------------------------------------------------------------------
 
-def interpolate_base(base_time, base_value, reading_time, method: str = "linear",
-                     max_gap_s: float = 10.0):
+
+def interpolate_base(base_time, base_value, reading_time, method: str = "linear", max_gap_s: float = 10.0):
     """Base record at the readings' times, and a flag for readings it does not cover.
 
     Parameters
@@ -435,8 +481,10 @@ def interpolate_base(base_time, base_value, reading_time, method: str = "linear"
 
 # --- datum --------------------------------------------------------------------------------------
 
-def base_datum(base_time, base_value, mode: str = "median", *, value: float | None = None,
-               at_time=None, span=None) -> float:
+
+def base_datum(
+    base_time, base_value, mode: str = "median", *, value: float | None = None, at_time=None, span=None
+) -> float:
     """The datum B0 subtracted from the base record.
 
     Parameters
@@ -462,8 +510,9 @@ def base_datum(base_time, base_value, mode: str = "median", *, value: float | No
         if value is None or not np.isfinite(value):
             raise BadParameter("datum mode 'value' needs a finite value")
         return float(value)
-    epoch = time_epoch(base_time, [] if span is None else np.asarray(span),
-                       [] if at_time is None else np.atleast_1d(at_time))
+    epoch = time_epoch(
+        base_time, [] if span is None else np.asarray(span), [] if at_time is None else np.atleast_1d(at_time)
+    )
     tb = to_seconds(base_time, epoch)
     good = np.isfinite(vb)
     if mode == "median":
@@ -487,8 +536,15 @@ def base_datum(base_time, base_value, mode: str = "median", *, value: float | No
     raise BadParameter(f"datum mode must be 'median', 'value' or 'time', not {mode!r}")
 
 
-def diurnal_correction(base_time, base_value, reading_time, *, method: str = "linear",
-                       max_gap_s: float = 10.0, datum: float | None = None):
+def diurnal_correction(
+    base_time,
+    base_value,
+    reading_time,
+    *,
+    method: str = "linear",
+    max_gap_s: float = 10.0,
+    datum: float | None = None,
+):
     """Diurnal variation at the readings: interpolated base minus the datum.
 
     ``corrected = total_field - correction`` (Reford 1980, Geophysics 45:1640).
@@ -512,6 +568,7 @@ def diurnal_correction(base_time, base_value, reading_time, *, method: str = "li
 
 
 # --- several bases ------------------------------------------------------------------------------
+
 
 def great_circle_distance(lon1, lat1, lon2, lat2) -> np.ndarray:
     """Haversine distance (m) on the sphere of GRS80's mean radius (Sinnott 1984, Sky and
@@ -587,11 +644,17 @@ def station_difference(time_a, value_a, time_b, value_b, max_gap_s: float = 10.0
         return {"n": 0, "level_difference": nan, "std": nan, "max_abs": nan, "peak_to_peak": nan}
     level = float(np.median(diff))
     rest = diff - level
-    return {"n": int(diff.size), "level_difference": level, "std": float(np.std(rest)),
-            "max_abs": float(np.max(np.abs(rest))), "peak_to_peak": float(np.ptp(rest))}
+    return {
+        "n": int(diff.size),
+        "level_difference": level,
+        "std": float(np.std(rest)),
+        "max_abs": float(np.max(np.abs(rest))),
+        "peak_to_peak": float(np.ptp(rest)),
+    }
 
 
 # --- spec measures ------------------------------------------------------------------------------
+
 
 @numba.njit(parallel=True, cache=True)
 def _chord_kernel(t, v, end, out):  # pragma: no cover - compiled
@@ -693,9 +756,16 @@ class TimeOffset:
     curve: np.ndarray
 
 
-def estimate_time_offset(base_time, base_value, survey_time, survey_value, *,
-                         highpass_s: float = 60.0, max_lag_s: float = 30.0,
-                         step_s: float | None = None) -> TimeOffset:
+def estimate_time_offset(
+    base_time,
+    base_value,
+    survey_time,
+    survey_value,
+    *,
+    highpass_s: float = 60.0,
+    max_lag_s: float = 30.0,
+    step_s: float | None = None,
+) -> TimeOffset:
     """Clock offset between a survey and a base record from their short-period variations.
 
     Both records are high-passed (minus a running mean over ``highpass_s``), the base's high-pass

@@ -313,8 +313,9 @@ def geodetic_to_geocentric(latitude: ArrayLike, height: ArrayLike) -> tuple[np.n
 
 
 @numba.njit(parallel=True, cache=True, fastmath={"contract", "arcp", "reassoc", "nsz"})
-def _synthesis_kernel(lon, lat_or_colat, height_or_radius, year, geodetic,
-                      g0, dg, h0, dh, nmax_interval, k1, k2, sect, out):  # pragma: no cover
+def _synthesis_kernel(
+    lon, lat_or_colat, height_or_radius, year, geodetic, g0, dg, h0, dh, nmax_interval, k1, k2, sect, out
+):  # pragma: no cover
     """Field at each point; ``out`` rows: X, Y, Z, H, F, I, D (nT, nT, nT, nT, nT, deg, deg).
 
     Per point: geodetic -> geocentric position, coefficients at the point's date from its
@@ -434,8 +435,10 @@ def _run_kernel(longitude, coord1, coord2, time, geodetic: bool):
     years = _as_years(time)
     _check_years(years)
     arrays = np.broadcast_arrays(
-        np.asarray(longitude, dtype=float), np.asarray(coord1, dtype=float),
-        np.asarray(coord2, dtype=float), years,
+        np.asarray(longitude, dtype=float),
+        np.asarray(coord1, dtype=float),
+        np.asarray(coord2, dtype=float),
+        years,
     )
     shape = arrays[0].shape
     flat = [np.ascontiguousarray(a, dtype=np.float64).ravel() for a in arrays]
@@ -497,7 +500,9 @@ def igrf(longitude: ArrayLike, latitude: ArrayLike, height: ArrayLike, time: Arr
     return IGRFField(*_run_kernel(longitude, lat, height, time, True))
 
 
-def igrf_geocentric(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, time: ArrayLike) -> GeocentricField:
+def igrf_geocentric(
+    radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLike, time: ArrayLike
+) -> GeocentricField:
     """IGRF-14 main field in geocentric spherical coordinates.
 
     The same synthesis as :func:`igrf` (IAGA Working Group V-MOD 2024; Langel 1987), without the
@@ -531,7 +536,8 @@ def igrf_geocentric(radius: ArrayLike, colatitude: ArrayLike, longitude: ArrayLi
     if np.any((colat < 0) | (colat > 180)):
         raise BadGeometry("colatitude outside [0, 180] degrees", hint="give geocentric colatitudes")
     if np.any(radius <= 0):
-        raise BadGeometry("radius must be positive (m from the Earth's centre)",
-                             hint="give geocentric radii in metres")
+        raise BadGeometry(
+            "radius must be positive (m from the Earth's centre)", hint="give geocentric radii in metres"
+        )
     x, y, z, *_ = _run_kernel(longitude, colat, radius, time, False)
     return GeocentricField(radial=-z, theta=-x, phi=y)

@@ -22,20 +22,32 @@ from .solve import (
 def _scores(obs, pred, w):
     """Weighted R^2 and RMS of the held-out residuals."""
     resid = obs - pred
-    rms = float(np.sqrt(np.sum(w * resid ** 2) / np.sum(w)))
+    rms = float(np.sqrt(np.sum(w * resid**2) / np.sum(w)))
     mean = np.sum(w * obs) / np.sum(w)
     total = np.sum(w * (obs - mean) ** 2)
-    r2 = float(1.0 - np.sum(w * resid ** 2) / total) if total > 0 else float("nan")
+    r2 = float(1.0 - np.sum(w * resid**2) / total) if total > 0 else float("nan")
     return r2, rms
 
 
-def cross_validate(easting: np.ndarray, northing: np.ndarray, upward: np.ndarray,
-                   data: np.ndarray, weights: np.ndarray | None = None, *,
-                   depths: Sequence[float], dampings: Sequence[float],
-                   block_size: float | None = None, method: str = "auto", folds: int = 4,
-                   cv_spacing: float | None = None, random_state: int = 0, tol: float = 3e-4,
-                   maxiter: int = 500, depth_type: str = "relative",
-                   grid_height: float | str | None = None) -> tuple[pd.DataFrame, dict]:
+def cross_validate(
+    easting: np.ndarray,
+    northing: np.ndarray,
+    upward: np.ndarray,
+    data: np.ndarray,
+    weights: np.ndarray | None = None,
+    *,
+    depths: Sequence[float],
+    dampings: Sequence[float],
+    block_size: float | None = None,
+    method: str = "auto",
+    folds: int = 4,
+    cv_spacing: float | None = None,
+    random_state: int = 0,
+    tol: float = 3e-4,
+    maxiter: int = 500,
+    depth_type: str = "relative",
+    grid_height: float | str | None = None,
+) -> tuple[pd.DataFrame, dict]:
     """Blocked K-fold cross-validation of depth and damping.
 
     Data are grouped in square blocks of ``cv_spacing`` (default 10 x block size or 10 x median
@@ -70,8 +82,9 @@ def cross_validate(easting: np.ndarray, northing: np.ndarray, upward: np.ndarray
     spacing = float(block_size) if block_size else median_spacing(e, n)
     if cv_spacing is None:
         cv_spacing = 10.0 * spacing
-    kfold = vd.BlockKFold(spacing=cv_spacing, n_splits=folds, shuffle=True,
-                          random_state=random_state, balance=True)
+    kfold = vd.BlockKFold(
+        spacing=cv_spacing, n_splits=folds, shuffle=True, random_state=random_state, balance=True
+    )
     splits = list(kfold.split(np.column_stack([e, n])))
     rows = []
     for depth in depths:
@@ -82,18 +95,35 @@ def cross_validate(easting: np.ndarray, northing: np.ndarray, upward: np.ndarray
             n_est = _source_count(train.size, region, spacing if block_size else None)
             chosen = _choose_method(method, n_est, block_size, e, n)
             if chosen == "fft":
-                problem = LatticeProblem(e[train], n[train], u[train], w[train], depth,
-                                          source_spacing(depth, spacing), depth_type, ceiling)
+                problem = LatticeProblem(
+                    e[train],
+                    n[train],
+                    u[train],
+                    w[train],
+                    depth,
+                    source_spacing(depth, spacing),
+                    depth_type,
+                    ceiling,
+                )
             z = None
             for damp in sorted(fold_scores, reverse=True):
                 if chosen == "fft":
                     coefs, z, _ = problem.solve(d[train], damp, tol=tol, maxiter=maxiter, z0=z)
                     model = problem.model(coefs, damp, region)
                 else:
-                    model = fit_equivalent_sources(e[train], n[train], u[train], d[train],
-                                                   w[train], depth=depth, damping=damp,
-                                                   block_size=block_size, method="dense",
-                                                   depth_type=depth_type, ceiling=ceiling)
+                    model = fit_equivalent_sources(
+                        e[train],
+                        n[train],
+                        u[train],
+                        d[train],
+                        w[train],
+                        depth=depth,
+                        damping=damp,
+                        block_size=block_size,
+                        method="dense",
+                        depth_type=depth_type,
+                        ceiling=ceiling,
+                    )
                 pred = model.predict((e[test], n[test], u[test]))
                 fold_scores[damp].append(_scores(d[test], pred, w[test]))
             if chosen == "fft":
@@ -101,11 +131,16 @@ def cross_validate(easting: np.ndarray, northing: np.ndarray, upward: np.ndarray
         for damp, values in fold_scores.items():
             arr = np.array(values)
             se = float(arr[:, 0].std(ddof=1) / np.sqrt(len(arr))) if len(arr) > 1 else 0.0
-            rows.append({"depth": float(depth), "damping": damp, "r2": float(arr[:, 0].mean()),
-                         "r2_se": se, "rms": float(arr[:, 1].mean())})
-    scores = pd.DataFrame(rows).sort_values(["r2", "damping"], ascending=False,
-                                            ignore_index=True)
+            rows.append(
+                {
+                    "depth": float(depth),
+                    "damping": damp,
+                    "r2": float(arr[:, 0].mean()),
+                    "r2_se": se,
+                    "rms": float(arr[:, 1].mean()),
+                }
+            )
+    scores = pd.DataFrame(rows).sort_values(["r2", "damping"], ascending=False, ignore_index=True)
     scores["chosen"] = scores.index == 0
     best = scores.drop(columns="chosen").iloc[0].to_dict()
     return scores, {k: float(v) for k, v in best.items()}
-

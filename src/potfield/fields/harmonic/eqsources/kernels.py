@@ -264,8 +264,7 @@ def _schwarz_apply(s, src, src_off, fac, fac_off, buffers):
 
 
 @numba.njit(cache=True)
-def _near_value(ei, ni, ui, px, py, zsj, vpj, table, reach, wz, wy, wx, bx, by, x0, y0, dx,
-                order, scale):
+def _near_value(ei, ni, ui, px, py, zsj, vpj, table, reach, wz, wy, wx, bx, by, x0, y0, dx, order, scale):
     """Exact kernel minus its lattice interpolation, for one point and the source at lattice
     node (px, py), height ``zsj``, plane weights ``vpj``; ``table[l, oy, ox, p]`` holds the
     (scaled, cored) lattice kernel between level l and plane p at node offset (ox, oy) - reach."""
@@ -292,13 +291,13 @@ def _near_value(ei, ni, ui, px, py, zsj, vpj, table, reach, wz, wy, wx, bx, by, 
 
 
 @numba.njit(parallel=True, cache=True)
-def _near_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, src_z, src_v, table, reach,
-                  scale, half, sw, cols, vals):
+def _near_entries(
+    e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, src_z, src_v, table, reach, scale, half, sw, cols, vals
+):
     """Near-field correction (exact minus interpolated kernel, times sw_i) of the sources in the
     (2 half + 1)^2 cells around every point; one fixed-width row per point, column -1 = empty."""
     for i in numba.prange(e.size):
-        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
-                                                    order)
+        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
         ix = int(np.floor(fx + 0.5))
         iy = int(np.floor(fy + 0.5))
         k = 0
@@ -309,22 +308,40 @@ def _near_entries(e, n, u, zl, x0, y0, dx, nx, ny, order, src_id, src_z, src_v, 
                     j = src_id[q, p]
                 cols[i, k] = j
                 if j >= 0:
-                    vals[i, k] = sw[i] * _near_value(e[i], n[i], u[i], p, q, src_z[j], src_v[j],
-                                                     table, reach, wz, wy, wx, bx, by, x0, y0,
-                                                     dx, order, scale)
+                    vals[i, k] = sw[i] * _near_value(
+                        e[i],
+                        n[i],
+                        u[i],
+                        p,
+                        q,
+                        src_z[j],
+                        src_v[j],
+                        table,
+                        reach,
+                        wz,
+                        wy,
+                        wx,
+                        bx,
+                        by,
+                        x0,
+                        y0,
+                        dx,
+                        order,
+                        scale,
+                    )
                 else:
                     vals[i, k] = 0.0
                 k += 1
 
 
 @numba.njit(parallel=True, cache=True)
-def _predict_lattice(e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, src_z, src_v, table,
-                     reach, scale, half, near, out):
+def _predict_lattice(
+    e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, src_z, src_v, table, reach, scale, half, near, out
+):
     """Interpolate the level grids to points and (``near``) add the exact near field on the fly."""
     nlev, ny, nx = levels.shape
     for i in numba.prange(e.size):
-        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny,
-                                                    order)
+        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
         val = 0.0
         for lev in range(nlev):
             acc = 0.0
@@ -341,9 +358,27 @@ def _predict_lattice(e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, src_
                 for p in range(max(ix - half, 0), min(ix + half + 1, nx)):
                     j = src_id[q, p]
                     if j >= 0:
-                        val += coefs[j] * _near_value(e[i], n[i], u[i], p, q, src_z[j],
-                                                      src_v[j], table, reach, wz, wy, wx, bx,
-                                                      by, x0, y0, dx, order, scale)
+                        val += coefs[j] * _near_value(
+                            e[i],
+                            n[i],
+                            u[i],
+                            p,
+                            q,
+                            src_z[j],
+                            src_v[j],
+                            table,
+                            reach,
+                            wz,
+                            wy,
+                            wx,
+                            bx,
+                            by,
+                            x0,
+                            y0,
+                            dx,
+                            order,
+                            scale,
+                        )
         out[i] = val
 
 
@@ -368,15 +403,18 @@ def _plane_weights(zs, planes, out):
         _lagrange_nodes(zs[j], planes, out[j])
 
 
-
 # ------------------------------------------------------------------------------------------------
 # wrappers: holders in, plain arrays to numba
 # ------------------------------------------------------------------------------------------------
 def stencils(points: Points, grid: LevelGrid) -> Stencils:
     """Stencil origins and interpolation weights of every point (see :class:`Stencils`)."""
     size = points.easting.size
-    out = Stencils(np.empty((size, 2), dtype=np.int64), np.empty((size, grid.order)),
-                   np.empty((size, grid.order)), np.empty((size, grid.levels.size)))
+    out = Stencils(
+        np.empty((size, 2), dtype=np.int64),
+        np.empty((size, grid.order)),
+        np.empty((size, grid.order)),
+        np.empty((size, grid.levels.size)),
+    )
     _stencils(*points, *grid, *out)
     return out
 
@@ -391,16 +429,40 @@ def scatter(r: np.ndarray, st: Stencils, sw: np.ndarray, buffers: np.ndarray) ->
     _scatter(r, *st, sw, buffers)
 
 
-def near_entries(points: Points, grid: LevelGrid, near: NearField, sw: np.ndarray,
-                 cols: np.ndarray, vals: np.ndarray) -> None:
+def near_entries(
+    points: Points, grid: LevelGrid, near: NearField, sw: np.ndarray, cols: np.ndarray, vals: np.ndarray
+) -> None:
     """Fixed-width rows of the near-field correction (times ``sw_i``) of every point."""
     _near_entries(*points, *grid, *near, sw, cols, vals)
 
 
-def predict_lattice(points: Points, levels: np.ndarray, grid: LevelGrid, near: NearField,
-                    coefs: np.ndarray, with_near: bool, out: np.ndarray) -> None:
+def predict_lattice(
+    points: Points,
+    levels: np.ndarray,
+    grid: LevelGrid,
+    near: NearField,
+    coefs: np.ndarray,
+    with_near: bool,
+    out: np.ndarray,
+) -> None:
     """Interpolate the level grids (``levels``, shaped like ``grid``) to the points and, with
     ``with_near``, add the exact near field of the sources on the fly."""
-    _predict_lattice(*points, levels, grid.levels, grid.x0, grid.y0, grid.dx, grid.order,
-                     near.src_id, coefs, near.src_z, near.src_v, near.table, near.reach,
-                     near.scale, near.half, with_near, out)
+    _predict_lattice(
+        *points,
+        levels,
+        grid.levels,
+        grid.x0,
+        grid.y0,
+        grid.dx,
+        grid.order,
+        near.src_id,
+        coefs,
+        near.src_z,
+        near.src_v,
+        near.table,
+        near.reach,
+        near.scale,
+        near.half,
+        with_near,
+        out,
+    )

@@ -79,7 +79,9 @@ class Lattice:
     ny: int
 
     @classmethod
-    def covering(cls, dx: float, west: float, east: float, south: float, north: float, margin: int) -> Lattice:
+    def covering(
+        cls, dx: float, west: float, east: float, south: float, north: float, margin: int
+    ) -> Lattice:
         x0 = west - margin * dx
         y0 = south - margin * dx
         nx = int(np.ceil((east - x0) / dx - 1e-9)) + margin + 1
@@ -87,13 +89,15 @@ class Lattice:
         return cls(float(x0), float(y0), float(dx), int(nx), int(ny))
 
 
-def lattice_kernel(ox: ArrayLike, oy: ArrayLike, dz: float, dx: float, scale: float, core: bool) -> np.ndarray:
+def lattice_kernel(
+    ox: ArrayLike, oy: ArrayLike, dz: float, dx: float, scale: float, core: bool
+) -> np.ndarray:
     """Lattice kernel ``scale / r`` between nodes offset by (ox, oy) cells and heights ``dz``
     apart; with ``core`` it is zero where both offsets are at most CORE_CELLS (values only ever
     used for near sources, whose interpolated field the near-field correction removes again:
     keeps the kernel finite when a source plane and a data level are at the same height)."""
     ox, oy = np.asarray(ox, dtype=float), np.asarray(oy, dtype=float)
-    r2 = (ox * dx) ** 2 + (oy * dx) ** 2 + dz ** 2
+    r2 = (ox * dx) ** 2 + (oy * dx) ** 2 + dz**2
     inside = np.maximum(np.abs(ox), np.abs(oy)) <= CORE_CELLS
     if core:
         r2 = np.where(inside, 1.0, r2)
@@ -101,7 +105,9 @@ def lattice_kernel(ox: ArrayLike, oy: ArrayLike, dz: float, dx: float, scale: fl
     return np.where(inside, 0.0, kernel) if core else kernel
 
 
-def kernel_table(zl: np.ndarray, zp: np.ndarray, dx: float, scale: float, reach: int, core: bool) -> np.ndarray:
+def kernel_table(
+    zl: np.ndarray, zp: np.ndarray, dx: float, scale: float, reach: int, core: bool
+) -> np.ndarray:
     """``table[l, oy + reach, ox + reach, p]``: the lattice kernel between level ``zl[l]`` and
     plane ``zp[p]`` at node offsets up to ``reach`` cells (what the near-field correction
     subtracts; the same values as the convolver's)."""
@@ -119,12 +125,13 @@ class Convolver:
     Geophysics 85(6):G129): ``out_l = sum_p T_lp g_p``. The kernel is even in both offsets, so
     every T_lp is symmetric and the adjoint is ``g_p = sum_l T_lp out_l``."""
 
-    def __init__(self, lattice: Lattice, zl: np.ndarray, zp: np.ndarray, scale: float,
-                 core: bool = True):
+    def __init__(self, lattice: Lattice, zl: np.ndarray, zp: np.ndarray, scale: float, core: bool = True):
         self.lattice = lattice
         ny, nx = lattice.ny, lattice.nx
-        self.shape = (scipy.fft.next_fast_len(2 * ny - 1, real=True),
-                      scipy.fft.next_fast_len(2 * nx - 1, real=True))
+        self.shape = (
+            scipy.fft.next_fast_len(2 * ny - 1, real=True),
+            scipy.fft.next_fast_len(2 * nx - 1, real=True),
+        )
         py, px = self.shape
         oy = np.arange(py, dtype=float)
         oy[oy >= py / 2] -= py
@@ -161,7 +168,6 @@ class Convolver:
         return self._apply(grids, True)
 
 
-
 def capped(heights: np.ndarray, ceiling: float | None) -> np.ndarray:
     """Source heights not above ``ceiling`` (m; None = no cap)."""
     return heights if ceiling is None else np.minimum(heights, float(ceiling))
@@ -179,11 +185,18 @@ def layer_ceiling(grid_height: float | str | None, depth: float) -> float | None
 def constant_plane(u: np.ndarray, depth: float, ceiling: float | None = None) -> float:
     """Height of a constant-depth layer: ``depth`` below the median data height and at least
     ``depth / 2`` below every datum (and not above ``ceiling``)."""
-    return float(capped(min(float(np.median(u)) - depth, float(u.min()) - 0.5 * depth),
-                         ceiling))
+    return float(capped(min(float(np.median(u)) - depth, float(u.min()) - 0.5 * depth), ceiling))
 
 
-def source_heights(u: np.ndarray, groups: np.ndarray, cells: tuple[np.ndarray, np.ndarray], shape: tuple[int, int], depth: float, depth_type: str = "relative", ceiling: float | None = None) -> tuple[np.ndarray, float]:
+def source_heights(
+    u: np.ndarray,
+    groups: np.ndarray,
+    cells: tuple[np.ndarray, np.ndarray],
+    shape: tuple[int, int],
+    depth: float,
+    depth_type: str = "relative",
+    ceiling: float | None = None,
+) -> tuple[np.ndarray, float]:
     """Heights of lattice sources and the kernel scale.
 
     ``"relative"``: each source ``depth`` below the median height of the data at its lattice
@@ -222,8 +235,5 @@ def source_heights(u: np.ndarray, groups: np.ndarray, cells: tuple[np.ndarray, n
     np.minimum.at(lowest, groups, u)
     floor = np.full(shape, np.inf)
     floor[cells] = lowest
-    floor = scipy.ndimage.minimum_filter(floor, size=2 * NEAR_CELLS + 1, mode="constant",
-                                         cval=np.inf)[cells]
+    floor = scipy.ndimage.minimum_filter(floor, size=2 * NEAR_CELLS + 1, mode="constant", cval=np.inf)[cells]
     return capped(np.minimum(heights, floor - 0.5 * depth), ceiling), float(depth)
-
-

@@ -104,13 +104,18 @@ class EquivalentSourceModel:
         # Align the evaluation lattice with the source lattice (whole-cell offsets).
         ox = int(np.floor((west - x0) / dx)) - margin
         oy = int(np.floor((south - y0) / dx)) - margin
-        lat = Lattice(x0 + ox * dx, y0 + oy * dx, dx,
-                      int(np.ceil((east - x0) / dx)) - ox + margin + 1,
-                      int(np.ceil((north - y0) / dx)) - oy + margin + 1)
+        lat = Lattice(
+            x0 + ox * dx,
+            y0 + oy * dx,
+            dx,
+            int(np.ceil((east - x0) / dx)) - ox + margin + 1,
+            int(np.ceil((north - y0) / dx)) - oy + margin + 1,
+        )
         src_z = np.ascontiguousarray(self.points[2], dtype=float)
         if u.min() <= src_z.min():
-            raise BadGeometry("prediction points must lie above the equivalent sources "
-                              f"(upward > {src_z.min():.1f} m)")
+            raise BadGeometry(
+                f"prediction points must lie above the equivalent sources (upward > {src_z.min():.1f} m)"
+            )
         zl = height_levels(float(u.min()), float(u.max()), dx)
         zp = height_levels(float(src_z.min()), float(src_z.max()), dx)
         src_v = np.empty((self.n_sources, zp.size))
@@ -129,15 +134,21 @@ class EquivalentSourceModel:
         table = kernel_table(zl, zp, dx, float(self.scale), TABLE_REACH, near)
         out = np.empty(e.size)
         grid = LevelGrid(zl, lat.x0, lat.y0, dx, lat.nx, lat.ny, INTERP_ORDER)
-        sources = NearField(src_id, src_z, src_v, table, TABLE_REACH, float(self.scale),
-                            NEAR_CELLS)
-        predict_lattice(Points(e, n, u), levels, grid, sources,
-                        np.ascontiguousarray(self.coefs, dtype=float), near, out)
+        sources = NearField(src_id, src_z, src_v, table, TABLE_REACH, float(self.scale), NEAR_CELLS)
+        predict_lattice(
+            Points(e, n, u), levels, grid, sources, np.ascontiguousarray(self.coefs, dtype=float), near, out
+        )
         return out
 
-    def grid(self, region: tuple | None = None, spacing: float | None = None,
-             height: float | np.ndarray | None = None, *, name: str = "field",
-             shape: tuple | None = None) -> xr.DataArray:
+    def grid(
+        self,
+        region: tuple | None = None,
+        spacing: float | None = None,
+        height: float | np.ndarray | None = None,
+        *,
+        name: str = "field",
+        shape: tuple | None = None,
+    ) -> xr.DataArray:
         """Predict on a regular grid at constant ``height`` (m) or on a drape surface.
 
         Parameters
@@ -159,15 +170,17 @@ class EquivalentSourceModel:
         region = tuple(self.region if region is None else region)
         import verde as vd
 
-        easting, northing = vd.grid_coordinates(region, spacing=spacing, shape=shape,
-                                                adjust="region")
+        easting, northing = vd.grid_coordinates(region, spacing=spacing, shape=shape, adjust="region")
         if height is None:
             raise BadGeometry("grid needs a height (constant or a drape surface)")
         upward = np.broadcast_to(np.asarray(height, dtype=float), easting.shape)
         values = self.predict((easting, northing, upward))
-        return xr.DataArray(values, dims=("northing", "easting"),
-                            coords={"northing": northing[:, 0], "easting": easting[0]}, name=name)
-
+        return xr.DataArray(
+            values,
+            dims=("northing", "easting"),
+            coords={"northing": northing[:, 0], "easting": easting[0]},
+            name=name,
+        )
 
 
 def save_model(path: str | Path, model: EquivalentSourceModel) -> Path:
@@ -200,6 +213,6 @@ def load_model(path: str | Path) -> EquivalentSourceModel:
             lattice = (float(lat[0]), float(lat[1]), float(lat[2]), int(lat[3]), int(lat[4]))
             node_index = np.array(npz["node_index"])
         coefs = np.array(npz["coefs"])
-    return EquivalentSourceModel(method, points, coefs, scale, depth, damping, block, region,
-                                 lattice, node_index)
-
+    return EquivalentSourceModel(
+        method, points, coefs, scale, depth, damping, block, region, lattice, node_index
+    )

@@ -51,7 +51,6 @@ class NodeIndex:
         return self.order[np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])]
 
 
-
 class Schwarz:
     """Additive Schwarz preconditioner ``sum_i R_i^T M_i^-1 R_i`` from the windows' normal
     matrices ``[(sources, J^T W J), ...]`` and a damping: the Cholesky factors of ``M_i = J^T W
@@ -61,7 +60,9 @@ class Schwarz:
     windows are ill-conditioned and an explicit inverse cost 20 % more iterations. Symmetric
     positive definite, as conjugate gradients need."""
 
-    def __init__(self, normals: list[tuple[np.ndarray, np.ndarray]], damping: float, n_sources: int, chunks: int):
+    def __init__(
+        self, normals: list[tuple[np.ndarray, np.ndarray]], damping: float, n_sources: int, chunks: int
+    ):
         sizes = np.array([src.size for src, _ in normals], dtype=np.int64)
         self.src_off = np.concatenate([[0], np.cumsum(sizes)])
         self.fac_off = np.concatenate([[0], np.cumsum(sizes * (sizes + 1) // 2)])
@@ -70,10 +71,11 @@ class Schwarz:
         self.n_sources, self.chunks = int(n_sources), int(chunks)
         for k, (src, normal) in enumerate(normals):
             shifted = normal.copy()
-            shifted[np.diag_indices_from(shifted)] += max(float(damping), 1e-12 * (
-                float(np.trace(normal)) / max(src.size, 1) + 1.0))
+            shifted[np.diag_indices_from(shifted)] += max(
+                float(damping), 1e-12 * (float(np.trace(normal)) / max(src.size, 1) + 1.0)
+            )
             factor = scipy.linalg.cholesky(shifted, lower=True, check_finite=False)
-            self.fac[self.fac_off[k]:self.fac_off[k + 1]] = factor[np.tril_indices(src.size)]
+            self.fac[self.fac_off[k] : self.fac_off[k + 1]] = factor[np.tril_indices(src.size)]
 
     @property
     def windows(self) -> list[np.ndarray]:
@@ -82,8 +84,9 @@ class Schwarz:
 
     def apply(self, s: np.ndarray) -> np.ndarray:
         buffers = np.empty((self.chunks, self.n_sources))
-        _schwarz_apply(np.ascontiguousarray(s, dtype=float), self.src, self.src_off, self.fac,
-                       self.fac_off, buffers)
+        _schwarz_apply(
+            np.ascontiguousarray(s, dtype=float), self.src, self.src_off, self.fac, self.fac_off, buffers
+        )
         return buffers.sum(axis=0)
 
 
@@ -95,8 +98,9 @@ def local_normals(problem: LatticeProblem) -> list[tuple[np.ndarray, np.ndarray]
     lat = self.lattice
     iy, ix = np.divmod(self.node_index, lat.nx)
     se, sn, su = lat.x0 + ix * lat.dx, lat.y0 + iy * lat.dx, self.src_z
-    width = max(4, int(round(np.sqrt(PRECOND_SOURCES * np.ptp(ix + 1) * np.ptp(iy + 1)
-                                     / max(self.n_sources, 1)))))
+    width = max(
+        4, int(round(np.sqrt(PRECOND_SOURCES * np.ptp(ix + 1) * np.ptp(iy + 1) / max(self.n_sources, 1))))
+    )
     sources = NodeIndex(self.node_index, lat.nx)  # node_index is sorted: rows, then columns
     diy, dix = np.divmod(self.data_node, lat.nx)
     data_nodes = NodeIndex(self.data_node, lat.nx)
@@ -107,22 +111,26 @@ def local_normals(problem: LatticeProblem) -> list[tuple[np.ndarray, np.ndarray]
         for tx in range(int(ix.min()), int(ix.max()) + 1, width):
             if sources.within(tx, tx + width - 1, ty, ty + width - 1).size == 0:
                 continue
-            src = sources.within(tx - over, tx + width - 1 + over, ty - over,
-                                 ty + width - 1 + over)
-            data = data_nodes.within(tx - margin, tx + width - 1 + margin, ty - margin,
-                                     ty + width - 1 + margin)
+            src = sources.within(tx - over, tx + width - 1 + over, ty - over, ty + width - 1 + over)
+            data = data_nodes.within(
+                tx - margin, tx + width - 1 + margin, ty - margin, ty + width - 1 + margin
+            )
             # beyond PRECOND_FULL nodes only every PRECOND_FAR_STRIDE-th datum, its weight
             # multiplied by the stride (the far rows add smooth, small terms)
-            far = ((dix[data] < tx - full) | (dix[data] > tx + width - 1 + full)
-                   | (diy[data] < ty - full) | (diy[data] > ty + width - 1 + full))
+            far = (
+                (dix[data] < tx - full)
+                | (dix[data] > tx + width - 1 + full)
+                | (diy[data] < ty - full)
+                | (diy[data] > ty + width - 1 + full)
+            )
             keep = ~far
             keep[np.flatnonzero(far)[::PRECOND_FAR_STRIDE]] = True
             data = data[keep]
             jac = np.empty((data.size, src.size))
-            _dense_jacobian(self.e[data], self.n[data], self.u[data], se[src], sn[src],
-                            su[src], self.scale, jac)
-            jac *= (self.sw[data] * np.where(far[keep], np.sqrt(PRECOND_FAR_STRIDE),
-                                             1.0))[:, None]
+            _dense_jacobian(
+                self.e[data], self.n[data], self.u[data], se[src], sn[src], su[src], self.scale, jac
+            )
+            jac *= (self.sw[data] * np.where(far[keep], np.sqrt(PRECOND_FAR_STRIDE), 1.0))[:, None]
             # J^T J by a symmetric rank-k update: half the work of a general product
             lower = scipy.linalg.blas.dsyrk(1.0, jac, trans=1, lower=1)
             blocks.append((src, lower + np.tril(lower, -1).T))

@@ -49,8 +49,9 @@ DENSE_LIMIT = 4000
 
 def _prepare(easting, northing, upward, data, weights) -> tuple[np.ndarray, ...]:
     """Flat float arrays of the finite data with positive weight, weights normalised to mean 1."""
-    e, n, u, d = (np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(
-        easting, northing, upward, data))
+    e, n, u, d = (
+        np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(easting, northing, upward, data)
+    )
     w = np.ones_like(d) if weights is None else np.asarray(weights, dtype=float).ravel().copy()
     if w.size != d.size:
         raise BadParameter("weights must have the same size as data")
@@ -59,7 +60,6 @@ def _prepare(easting, northing, upward, data, weights) -> tuple[np.ndarray, ...]
     if d.size < 3:
         raise NotEnoughData("need at least 3 finite data to fit equivalent sources")
     return e, n, u, d, w / w.mean()
-
 
 
 def _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type="relative", ceiling=None):
@@ -80,12 +80,20 @@ def _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type="relative",
     return (se, sn, su), coefs, {}
 
 
-
 class LatticeProblem:
     """Damped least-squares problem of the FFT route; built once, solved for many dampings."""
 
-    def __init__(self, e: np.ndarray, n: np.ndarray, u: np.ndarray, w: np.ndarray, depth: float,
-                 spacing: float, depth_type: str = "relative", ceiling: float | None = None):
+    def __init__(
+        self,
+        e: np.ndarray,
+        n: np.ndarray,
+        u: np.ndarray,
+        w: np.ndarray,
+        depth: float,
+        spacing: float,
+        depth_type: str = "relative",
+        ceiling: float | None = None,
+    ):
         self.e, self.n, self.u = e, n, u
         self.sw = np.sqrt(w)
         self.depth = float(depth)
@@ -100,8 +108,14 @@ class LatticeProblem:
         src_id[self.node_index] = np.arange(self.node_index.size)
         self.src_id = src_id.reshape(lat.ny, lat.nx)
         self.src_z, self.scale = source_heights(
-            u, groups.ravel(), np.divmod(self.node_index, lat.nx), (lat.ny, lat.nx), self.depth,
-            depth_type, ceiling)
+            u,
+            groups.ravel(),
+            np.divmod(self.node_index, lat.nx),
+            (lat.ny, lat.nx),
+            self.depth,
+            depth_type,
+            ceiling,
+        )
         self.depth_type = depth_type
         # Source planes and data levels of the FFT part: Chebyshev heights; each source is
         # spread over the planes, each datum gathered from the levels, by Lagrange weights.
@@ -122,8 +136,7 @@ class LatticeProblem:
         # which therefore stay exact transposes (sums are in double precision).
         self.near_vals = np.empty((nd, width), dtype=np.float32)
         table = kernel_table(self.zl, self.zp, spacing, self.scale, TABLE_REACH, True)
-        near = NearField(self.src_id, self.src_z, self.src_v, table, TABLE_REACH, self.scale,
-                         NEAR_CELLS)
+        near = NearField(self.src_id, self.src_z, self.src_v, table, TABLE_REACH, self.scale, NEAR_CELLS)
         near_entries(points, grid, near, self.sw, self.near_cols, self.near_vals)
         self.chunks = max(1, numba.get_num_threads())
         self._normals = None  # local normal matrices of the preconditioner, built on first use
@@ -165,7 +178,14 @@ class LatticeProblem:
             self._normals = local_normals(self)
         return Schwarz(self._normals, damping, self.n_sources, self.chunks)
 
-    def solve(self, d: np.ndarray, damping: float, tol: float = 1e-4, maxiter: int = 500, z0: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, dict]:
+    def solve(
+        self,
+        d: np.ndarray,
+        damping: float,
+        tol: float = 1e-4,
+        maxiter: int = 500,
+        z0: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray, dict]:
         """Preconditioned CGLS for min |W^1/2 (d - A c)|^2 + damping |c|^2.
 
         Conjugate gradients on the damped normal equations, run on the stacked operator
@@ -208,7 +228,7 @@ class LatticeProblem:
         it = 0
         if gamma0 <= 0.0:
             return z, z, {"iterations": 0, "converged": True}
-        while it < maxiter and gamma > (tol ** 2) * gamma0:
+        while it < maxiter and gamma > (tol**2) * gamma0:
             q1, q2 = forward(p)
             delta = float(q1 @ q1) + float(q2 @ q2)
             if delta <= 0:
@@ -223,8 +243,11 @@ class LatticeProblem:
             p = t + (gamma_new / gamma) * p
             gamma = gamma_new
             it += 1
-        info = {"iterations": it, "converged": bool(gamma <= (tol ** 2) * gamma0),
-                "relative_gradient": float(np.sqrt(max(gamma, 0.0) / gamma0))}
+        info = {
+            "iterations": it,
+            "converged": bool(gamma <= (tol**2) * gamma0),
+            "relative_gradient": float(np.sqrt(max(gamma, 0.0) / gamma0)),
+        }
         return z.copy(), z, info
 
     def model(self, coefs: np.ndarray, damping: float, region: tuple | None) -> EquivalentSourceModel:
@@ -232,13 +255,18 @@ class LatticeProblem:
         iy, ix = np.divmod(self.node_index, lat.nx)
         points = (lat.x0 + ix * lat.dx, lat.y0 + iy * lat.dx, self.src_z.copy())
         return EquivalentSourceModel(
-            method="fft", points=points, coefs=coefs, scale=self.scale, depth=self.depth,
-            damping=float(damping), block_size=lat.dx, region=region,
-            lattice=(lat.x0, lat.y0, lat.dx, lat.nx, lat.ny), node_index=self.node_index,
-            info={"levels": int(self.zl.size), "planes": int(self.zp.size),
-                  "depth_type": self.depth_type})
-
-
+            method="fft",
+            points=points,
+            coefs=coefs,
+            scale=self.scale,
+            depth=self.depth,
+            damping=float(damping),
+            block_size=lat.dx,
+            region=region,
+            lattice=(lat.x0, lat.y0, lat.dx, lat.nx, lat.ny),
+            node_index=self.node_index,
+            info={"levels": int(self.zl.size), "planes": int(self.zp.size), "depth_type": self.depth_type},
+        )
 
 
 def _source_count(n_data, region, block_size):
@@ -260,7 +288,7 @@ def _source_count(n_data, region, block_size):
     if not block_size:
         return n_data
     span = max(region[1] - region[0], block_size) * max(region[3] - region[2], block_size)
-    return min(n_data, int(span / block_size ** 2) + 1)
+    return min(n_data, int(span / block_size**2) + 1)
 
 
 def _choose_method(method, n_data, block_size, e, n):
@@ -283,12 +311,21 @@ def _default_depth(e, n):
     return 4.5 * float(np.mean(nearest_neighbour_distances(e, n)))
 
 
-def fit_equivalent_sources(easting: np.ndarray, northing: np.ndarray, upward: np.ndarray,
-                           data: np.ndarray, weights: np.ndarray | None = None,
-                           depth: float | str = "default", damping: float = 1e-3,
-                           block_size: float | None = None, method: str = "auto",
-                           tol: float = 2e-5, maxiter: int = 1000, depth_type: str = "relative",
-                           ceiling: float | None = None) -> EquivalentSourceModel:
+def fit_equivalent_sources(
+    easting: np.ndarray,
+    northing: np.ndarray,
+    upward: np.ndarray,
+    data: np.ndarray,
+    weights: np.ndarray | None = None,
+    depth: float | str = "default",
+    damping: float = 1e-3,
+    block_size: float | None = None,
+    method: str = "auto",
+    tol: float = 2e-5,
+    maxiter: int = 1000,
+    depth_type: str = "relative",
+    ceiling: float | None = None,
+) -> EquivalentSourceModel:
     """Fit equivalent point sources to scalar potential-field data.
 
     Parameters
@@ -345,15 +382,13 @@ def fit_equivalent_sources(easting: np.ndarray, northing: np.ndarray, upward: np
     n_est = _source_count(d.size, region, block_size)
     chosen = _choose_method(method, n_est, block_size, e, n)
     if chosen == "dense":
-        points, coefs, info = _fit_dense(e, n, u, d, w, depth, damping, block_size,
-                                         depth_type, ceiling)
-        return EquivalentSourceModel("dense", points, coefs, depth, depth, damping,
-                                     float(block_size or 0.0), region, info=info)
+        points, coefs, info = _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type, ceiling)
+        return EquivalentSourceModel(
+            "dense", points, coefs, depth, depth, damping, float(block_size or 0.0), region, info=info
+        )
     spacing = source_spacing(depth, block_size if block_size else median_spacing(e, n))
     problem = LatticeProblem(e, n, u, w, depth, spacing, depth_type, ceiling)
     coefs, _, info = problem.solve(d, damping, tol=tol, maxiter=maxiter)
     model = problem.model(coefs, damping, region)
     model.info.update(info)
     return model
-
-
