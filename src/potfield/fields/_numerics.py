@@ -215,3 +215,19 @@ def sample_grid(grid: xr.DataArray, easting: ArrayLike, northing: ArrayLike) -> 
     )
     pts = np.column_stack([np.ravel(np.asarray(northing, float)), np.ravel(np.asarray(easting, float))])
     return interp(pts)
+
+
+def trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
+    """Median of values[i - width + 1 .. i] within the same group (a line or a base session;
+    NaN ignored), in the input order."""
+    import pandas as pd
+
+    series = pd.Series(values)
+    return (
+        series.groupby(groups, sort=False)
+        .rolling(int(width), min_periods=1)
+        .median()
+        .reset_index(level=0, drop=True)
+        .sort_index()
+        .to_numpy()
+    )

@@ -10,6 +10,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .._numerics import trailing_median
+
 #: Fourth-difference stencil (common practice in airborne magnetic QC). A spike of height A gives
 #: A x (1, -4, 6, -4, 1); a cubic gives exactly 0.
 FOURTH_DIFFERENCE_STENCIL = np.array([1.0, -4.0, 6.0, -4.0, 1.0])
@@ -118,25 +120,12 @@ def _group_rolling_median(values: np.ndarray, groups: np.ndarray, window: int) -
     )
 
 
-def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
-    """Median of values[i - width + 1 .. i] on the same line (NaN ignored)."""
-    series = pd.Series(values)
-    return (
-        series.groupby(groups, sort=False)
-        .rolling(int(width), min_periods=1)
-        .median()
-        .reset_index(level=0, drop=True)
-        .sort_index()
-        .to_numpy()
-    )
-
-
 def _beside_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
     """The larger of the medians of ``width`` samples left of i - 2 and right of i + 2 (same
     line), i.e. of the neighbourhood a spike's five-sample stencil does not touch; one side
     alone at a line end."""
-    left = _shift(_trailing_median(values, groups, width), groups, -3)
-    right = _shift(_trailing_median(values[::-1], groups[::-1], width)[::-1], groups, 3)
+    left = _shift(trailing_median(values, groups, width), groups, -3)
+    right = _shift(trailing_median(values[::-1], groups[::-1], width)[::-1], groups, 3)
     return np.fmax(left, right)
 
 

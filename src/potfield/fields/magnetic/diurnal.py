@@ -19,6 +19,7 @@ import numba
 import numpy as np
 import pandas as pd
 
+from .._numerics import trailing_median
 from ..errors import BadParameter, NotEnoughData
 
 #: Factor taking the median absolute deviation to a standard deviation for normal errors
@@ -197,18 +198,6 @@ class BaseSessions:
     changes: list
 
 
-def _trailing_median(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
-    series = pd.Series(values)
-    return (
-        series.groupby(groups, sort=False)
-        .rolling(int(width), min_periods=1)
-        .median()
-        .reset_index(level=0, drop=True)
-        .sort_index()
-        .to_numpy()
-    )
-
-
 def _trailing_count(values: np.ndarray, groups: np.ndarray, width: int) -> np.ndarray:
     series = pd.Series(np.isfinite(values).astype(float))
     return (
@@ -269,9 +258,9 @@ def base_sessions(
     part = np.cumsum(part)
     changes = []
     # steps inside each gap-free part: medians of the k samples before and after each position
-    before = _trailing_median(vg, part, k)  # median of vg[i-k+1 .. i]
+    before = trailing_median(vg, part, k)  # median of vg[i-k+1 .. i]
     n_before = _trailing_count(vg, part, k)
-    after = _trailing_median(vg[::-1], part[::-1], k)[::-1]  # median of vg[i .. i+k-1]
+    after = trailing_median(vg[::-1], part[::-1], k)[::-1]  # median of vg[i .. i+k-1]
     n_after = _trailing_count(vg[::-1], part[::-1], k)[::-1]
     d1 = np.r_[np.nan, np.diff(vg)]
     d1[np.r_[True, part[1:] != part[:-1]]] = np.nan
