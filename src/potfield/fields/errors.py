@@ -30,7 +30,7 @@ class FieldError(ValueError):
         What would make the computation possible (appended as ``(hint: ...)``).
     """
 
-    def __init__(self, message: str, *, hint: str | None = None):
+    def __init__(self, message: str, *, hint: str | None = None) -> None:
         self.message = " ".join(str(message).split())
         self.hint = hint
         super().__init__(f"{self.message} (hint: {hint})" if hint else self.message)

@@ -35,6 +35,7 @@ adjustment).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -43,6 +44,11 @@ import scipy.sparse
 import scipy.sparse.csgraph
 
 from ..errors import BadParameter, IllPosed, OutOfModelRange
+
+if TYPE_CHECKING:
+    from collections.abc import Iterable, Mapping
+
+    from numpy.typing import ArrayLike
 
 __all__ = [
     "FREE_AIR_GRADIENT",
@@ -73,7 +79,7 @@ class CalibrationTableError(BadParameter):
     """The calibration (interval) table is malformed. ``table_row`` is its 1-based data row or
     None."""
 
-    def __init__(self, message: str, *, row: int | None = None, hint: str | None = None):
+    def __init__(self, message: str, *, row: int | None = None, hint: str | None = None) -> None:
         super().__init__(message, hint=hint)
         self.table_row = row
 
@@ -81,7 +87,7 @@ class CalibrationTableError(BadParameter):
 class CalibrationRangeError(OutOfModelRange):
     """Readings fall outside the calibration table; ``positions`` holds their 0-based indices."""
 
-    def __init__(self, message: str, positions, *, hint: str | None = None):
+    def __init__(self, message: str, positions: ArrayLike, *, hint: str | None = None) -> None:
         super().__init__(message, hint=hint)
         self.positions = np.asarray(positions, dtype=int)
 
@@ -93,7 +99,9 @@ class NetworkError(IllPosed):
 # ------------------------------------------------------------------------------------------------
 # Calibration
 # ------------------------------------------------------------------------------------------------
-def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def calibration_arrays(
+    table: pd.DataFrame | dict[str, ArrayLike] | ArrayLike,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Counter readings, milligal values and interval factors of a calibration table.
 
     Parameters
@@ -153,7 +161,9 @@ def calibration_arrays(table) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return counter, mgal, factor
 
 
-def apply_calibration(counter, table) -> np.ndarray:
+def apply_calibration(
+    counter: ArrayLike, table: pd.DataFrame | dict[str, ArrayLike] | ArrayLike
+) -> np.ndarray:
     """Convert spring-gravimeter counter readings to milligals with an interval table.
 
     A calibration table lists counter readings ``C_i`` (usually every 100 counter units), the
@@ -209,7 +219,9 @@ def apply_calibration(counter, table) -> np.ndarray:
     return out
 
 
-def instrument_height_correction(instrument_height, free_air_gradient: float = FREE_AIR_GRADIENT):
+def instrument_height_correction(
+    instrument_height: ArrayLike, free_air_gradient: float = FREE_AIR_GRADIENT
+) -> np.ndarray:
     """Correction (mGal) that brings a reading from the sensor down to the station mark.
 
     Gravity decreases upwards by the free-air gradient, so a sensor ``h`` metres above the mark
@@ -238,7 +250,7 @@ def instrument_height_correction(instrument_height, free_air_gradient: float = F
     return float(free_air_gradient) * np.asarray(instrument_height, dtype=float)
 
 
-def hours_since(time, origin) -> np.ndarray:
+def hours_since(time: ArrayLike, origin: ArrayLike) -> np.ndarray:
     """Hours from ``origin`` to ``time`` (both datetime64-like), as float."""
     time = np.asarray(time).astype("datetime64[ns]")
     origin = np.asarray(origin).astype("datetime64[ns]")
@@ -294,7 +306,13 @@ def _interp_extrapolate(x, xp, fp):
 
 
 def loop_drift(
-    time, value, is_base, loop_id, method: str = "linear", base_value=None, use=None
+    time: ArrayLike,
+    value: ArrayLike,
+    is_base: ArrayLike,
+    loop_id: ArrayLike,
+    method: str = "linear",
+    base_value: ArrayLike | None = None,
+    use: ArrayLike | None = None,
 ) -> LoopDriftResult:
     """Instrument drift per loop from repeated base readings.
 
@@ -466,7 +484,9 @@ STEP_LIMIT_MGAL = 1.0
 STEP_RATE_ALLOWANCE = 0.5
 
 
-def _normalise_bases(bases) -> dict[str, tuple[float, float | None]]:
+def _normalise_bases(
+    bases: Mapping[str, float | tuple[float, float | None]],
+) -> dict[str, tuple[float, float | None]]:
     out = {}
     for name, spec in dict(bases).items():
         if isinstance(spec, (tuple, list)):
@@ -482,17 +502,17 @@ def _normalise_bases(bases) -> dict[str, tuple[float, float | None]]:
     return out
 
 
-def _stamp(t) -> str:
+def _stamp(t: np.datetime64 | pd.Timestamp) -> str:
     """ISO text of a datetime64 to the second (no fraction)."""
     return str(np.datetime64(t, "s"))
 
 
 def detect_steps(
-    station,
-    time,
-    value,
-    segment=None,
-    use=None,
+    station: ArrayLike,
+    time: ArrayLike,
+    value: ArrayLike,
+    segment: ArrayLike | None = None,
+    use: ArrayLike | None = None,
     *,
     limit_mgal: float = STEP_LIMIT_MGAL,
     rate_allowance: float = STEP_RATE_ALLOWANCE,
@@ -579,23 +599,23 @@ def detect_steps(
 class _Undetermined(Exception):
     """Internal: the normal matrix is singular; ``index`` lists the unknowns involved."""
 
-    def __init__(self, index):
+    def __init__(self, index: Iterable[int]) -> None:
         super().__init__("undetermined")
         self.index = list(index)
 
 
 def network_adjustment(
-    station,
-    time,
-    value,
-    loop,
-    bases,
+    station: ArrayLike,
+    time: ArrayLike,
+    value: ArrayLike,
+    loop: ArrayLike,
+    bases: Mapping[str, float | tuple[float, float | None]],
     *,
-    tares=(),
-    reading_sigma=0.01,
-    use=None,
+    tares: Iterable[np.datetime64 | str] = (),
+    reading_sigma: ArrayLike = 0.01,
+    use: ArrayLike | None = None,
     estimate_drift: bool = True,
-    meter=None,
+    meter: ArrayLike | None = None,
     tare_drift: str = "continue",
 ) -> NetworkResult:
     """Least-squares adjustment of a relative gravity network with loop drift and tares.
@@ -1105,7 +1125,7 @@ def _solve_normal(A, w, y, n_station):
     return np.concatenate([x_s, x_p]), np.concatenate([q_s, q_p]), s_inv
 
 
-def _null_index(S, M, ns) -> list[int]:
+def _null_index(S: np.ndarray, M: scipy.sparse.spmatrix, ns: int) -> list[int]:
     """Indices of the unknowns in the null space of the reduced normal matrix."""
     scale = np.sqrt(np.maximum(np.abs(np.diag(S)), 1e-300))
     evals, evecs = np.linalg.eigh(S / scale[:, None] / scale[None, :])

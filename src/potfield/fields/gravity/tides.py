@@ -49,7 +49,7 @@ _EPOCH = np.datetime64("1899-12-31T12:00:00", "ns")
 VALID_YEARS = (1800, 2200)
 
 
-def _as_times(time) -> np.ndarray:
+def _as_times(time: ArrayLike) -> np.ndarray:
     t = np.asarray(time)
     if not np.issubdtype(t.dtype, np.datetime64):
         t = np.asarray(t, dtype="datetime64[ns]")

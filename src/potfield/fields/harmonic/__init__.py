@@ -12,6 +12,7 @@ Public API (imported lazily on first use, so importing the package costs nothing
 from __future__ import annotations
 
 import importlib
+from typing import Any
 
 #: public name -> the submodule that defines it
 _API = {
@@ -75,7 +76,7 @@ _MODULES = ("eqsources", "separation", "spherical", "tiles", "transforms")
 __all__ = [*_MODULES, *_API]
 
 
-def __getattr__(name: str):
+def __getattr__(name: str) -> Any:
     if name in _MODULES:
         return importlib.import_module(f"{__name__}.{name}")
     if name in _API:

@@ -39,11 +39,15 @@ University Press.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
 
 from ..errors import BadGeometry, NotEnoughData
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
 
 __all__ = ["DEFAULT_DAMPING", "DEFAULT_DEPTH_CELLS", "LayerRTP", "layer_reduction_to_pole"]
 
@@ -120,17 +124,17 @@ def _kernel_spectrum(shape, spacing, depth, moment_dir, field_dir, fft_shape):
 
 
 def layer_reduction_to_pole(
-    values,
-    spacing,
-    inclination,
-    declination,
-    mag_inclination=None,
-    mag_declination=None,
+    values: ArrayLike,
+    spacing: tuple[float, float],
+    inclination: float,
+    declination: float,
+    mag_inclination: float | None = None,
+    mag_declination: float | None = None,
     *,
-    depth=None,
-    damping=DEFAULT_DAMPING,
-    tol=3e-4,
-    max_iter=500,
+    depth: float | None = None,
+    damping: float = DEFAULT_DAMPING,
+    tol: float = 3e-4,
+    max_iter: int = 500,
 ) -> LayerRTP:
     """Reduce a total-field anomaly grid to the pole with an equivalent dipole layer.
 

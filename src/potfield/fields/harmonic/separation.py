@@ -364,7 +364,9 @@ def fit_two_layer(
 # ==============================================================================================
 # Internal / external on a plane
 # ==============================================================================================
-def _prepared(grid: xr.DataArray, pad_fraction, pad_mode, detrend):
+def _prepared(
+    grid: xr.DataArray, pad_fraction: float, pad_mode: str, detrend: bool
+) -> tuple[tf.PaddedGrid, np.ndarray, np.ndarray]:
     """Filled, detrended (plane or mean), padded spectrum of one grid, and the trend removed."""
     filled = tf.fill_masked(grid) if np.isnan(grid.values).any() else grid
     if detrend:
@@ -676,7 +678,7 @@ class GaussFit:
         return self.coefficients[:, self.names.index(name)]
 
 
-def _same_longitude(longitude) -> bool:
+def _same_longitude(longitude: ArrayLike) -> bool:
     lon = np.radians(np.asarray(longitude, dtype=float))
     z = np.exp(1j * lon)
     return bool(np.max(np.abs(z - z[0])) < 1e-9)
@@ -894,7 +896,7 @@ def _split_names(columns):
     return out
 
 
-def _as_ns(values) -> np.ndarray:
+def _as_ns(values: ArrayLike) -> np.ndarray:
     """Timezone-naive datetime64[ns] (UTC) from datetimes or ISO strings."""
     series = pd.to_datetime(pd.Series(np.asarray(values).ravel()), utc=True, errors="coerce")
     return series.dt.tz_localize(None).to_numpy(dtype="datetime64[ns]")

@@ -232,7 +232,7 @@ def _fit_window(e, n, u, d, w, grid_e, grid_n, grid_h, points, fit_kwargs):
     return sub, at_points, info
 
 
-def _default_depth(e, n, sample=200_000, seed=0) -> float:
+def _default_depth(e: np.ndarray, n: np.ndarray, sample: int = 200_000, seed: int = 0) -> float:
     """4.5 x the mean nearest-neighbour distance (harmonica's default; Soler and Uieda 2021),
     from at most ``sample`` points drawn at random (their neighbours searched among all)."""
     pick = None

@@ -23,6 +23,7 @@ import math
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
@@ -30,6 +31,10 @@ import xarray as xr
 from scipy import ndimage
 
 from ..errors import BadGeometry, BadParameter, NotEnoughData
+
+if TYPE_CHECKING:
+    import pyproj
+    from numpy.typing import ArrayLike
 
 #: Smallest padding per side as a fraction of the grid size (common practice: >= 25 %).
 MIN_PAD_FRACTION = 0.25
@@ -93,7 +98,7 @@ class PaddedGrid:
         """The part of a padded-size array that covers the original grid."""
         return values[self.inner]
 
-    def wavenumbers(self):
+    def wavenumbers(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Wavenumbers of the real FFT of :attr:`padded` (rad/m).
 
         Returns
@@ -151,7 +156,9 @@ def _ascending(grid: xr.DataArray) -> tuple[xr.DataArray, tuple[bool, bool]]:
     return grid, (flipped[0], flipped[1])
 
 
-def _filler_values(filler, grid: xr.DataArray, flipped: tuple[bool, bool]) -> np.ndarray:
+def _filler_values(
+    filler: xr.DataArray | ArrayLike, grid: xr.DataArray, flipped: tuple[bool, bool]
+) -> np.ndarray:
     """Filler values on the (ascending) grid's cells; an array filler is in the input grid's
     (northing, easting) order, ``flipped`` says how that order was reversed."""
     if isinstance(filler, xr.DataArray):
@@ -208,7 +215,7 @@ def _smooth_fill(values: np.ndarray, holes: np.ndarray, passes: int = 8, sigma: 
     return filled
 
 
-def fill_masked(grid: xr.DataArray, filler=None) -> xr.DataArray:
+def fill_masked(grid: xr.DataArray, filler: xr.DataArray | ArrayLike | None = None) -> xr.DataArray:
     """Fill the masked (NaN) cells of a grid.
 
     Cells are taken from ``filler`` where it is finite (e.g. an equivalent-source model
@@ -236,7 +243,9 @@ def fill_masked(grid: xr.DataArray, filler=None) -> xr.DataArray:
     return _reorient(out, flipped)
 
 
-def _fill_values(asc: xr.DataArray, filler, flipped) -> tuple[np.ndarray, np.ndarray, str]:
+def _fill_values(
+    asc: xr.DataArray, filler: xr.DataArray | ArrayLike | None, flipped: tuple[bool, bool]
+) -> tuple[np.ndarray, np.ndarray, str]:
     values = np.array(asc.values, dtype=float)
     mask = ~np.isfinite(values)
     if mask.all():
@@ -264,7 +273,7 @@ def pad_grid(
     mode: str = "reflect",
     taper: bool = True,
     detrend: bool = True,
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> PaddedGrid:
     """Prepare a grid for a wavenumber-domain filter.
 
@@ -395,7 +404,7 @@ def _finish(
     units: str,
     long_name: str,
     step: str,
-    **attrs,
+    **attrs: object,
 ) -> xr.DataArray:
     asc, _ = _ascending(grid)
     values = np.where(prep.mask, np.nan, values)
@@ -434,7 +443,12 @@ def _per_metre(units: str, order: int) -> str:
 # Continuation
 # --------------------------------------------------------------------------------------------
 def upward_continuation(
-    grid: xr.DataArray, height: float, *, pad_fraction: float = 0.5, pad_mode: str = "reflect", filler=None
+    grid: xr.DataArray,
+    height: float,
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Continue a grid upward by ``height`` metres.
 
@@ -513,7 +527,7 @@ def downward_continuation(
     max_gain: float = 100.0,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Continue a grid downward by ``depth`` metres, stabilised by Tikhonov regularisation.
 
@@ -598,7 +612,7 @@ def downward_continuation(
 
 
 def model_upward_continuation(
-    predict: Callable, grid: xr.DataArray, height: float, grid_height
+    predict: Callable, grid: xr.DataArray, height: float, grid_height: ArrayLike
 ) -> xr.DataArray:
     """Upward continuation by evaluating a source model at the higher surface.
 
@@ -652,7 +666,12 @@ def model_upward_continuation(
 # Derivatives
 # --------------------------------------------------------------------------------------------
 def vertical_derivative(
-    grid: xr.DataArray, order: int = 1, *, pad_fraction: float = 0.5, pad_mode: str = "reflect", filler=None
+    grid: xr.DataArray,
+    order: int = 1,
+    *,
+    pad_fraction: float = 0.5,
+    pad_mode: str = "reflect",
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Vertical derivative of order 1 or 2, z positive down.
 
@@ -693,7 +712,13 @@ def vertical_derivative(
     )
 
 
-def _horizontal(grid: xr.DataArray, method: str, pad_fraction: float, pad_mode: str, filler):
+def _horizontal(
+    grid: xr.DataArray,
+    method: str,
+    pad_fraction: float,
+    pad_mode: str,
+    filler: xr.DataArray | ArrayLike | None,
+) -> tuple[np.ndarray, np.ndarray, PaddedGrid]:
     """(dx, dy, prep) on the ascending grid: d/d easting, d/d northing."""
     if method not in ("central", "fft"):
         raise BadParameter(f"unknown horizontal derivative method '{method}'", hint="use 'central' or 'fft'")
@@ -732,7 +757,7 @@ def horizontal_derivatives(
     *,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> tuple[xr.DataArray, xr.DataArray]:
     """Derivatives along easting (dx) and northing (dy).
 
@@ -792,7 +817,7 @@ def total_horizontal_gradient(
     *,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Total horizontal gradient ``sqrt(dx^2 + dy^2)``.
 
@@ -833,7 +858,7 @@ def total_gradient_amplitude(
     *,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Total gradient amplitude (3-D analytic signal amplitude) ``sqrt(dx^2 + dy^2 + dz^2)``.
 
@@ -877,7 +902,7 @@ def tilt_angle(
     *,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
 ) -> xr.DataArray:
     """Tilt angle ``atan(dz / sqrt(dx^2 + dy^2))`` in degrees, within [-90, 90].
 
@@ -930,7 +955,9 @@ def _theta(inclination, declination, ke, kn, k):
     return uz + 1j * (ue * ke + un * kn) / k
 
 
-def grid_declination(declination: float, crs, longitude: float, latitude: float) -> tuple[float, float]:
+def grid_declination(
+    declination: float, crs: str | pyproj.CRS, longitude: float, latitude: float
+) -> tuple[float, float]:
     """Declination measured from grid north of a projected CRS instead of true north.
 
     Grid north differs from true north by the meridian convergence (about
@@ -1006,7 +1033,7 @@ def reduction_to_pole(
     auto_threshold: float = AUTO_RTP_THRESHOLD_DEG,
     pad_fraction: float = 0.5,
     pad_mode: str = "reflect",
-    filler=None,
+    filler: xr.DataArray | ArrayLike | None = None,
     wiener_level: float = WIENER_LEVEL,
     layer_depth: float | None = None,
     layer_damping: float | None = None,
@@ -1181,7 +1208,15 @@ def reduction_to_pole(
     )
 
 
-def _layer_rtp(grid, inclination, declination, m_inc, m_dec, depth, damping) -> xr.DataArray:
+def _layer_rtp(
+    grid: xr.DataArray,
+    inclination: float,
+    declination: float,
+    m_inc: float,
+    m_dec: float,
+    depth: float | None,
+    damping: float | None,
+) -> xr.DataArray:
     """The ``sources`` branch of :func:`reduction_to_pole`."""
     from . import rtp_layer
 

@@ -54,11 +54,18 @@ al. 2002 level such lines from their neighbours' medians).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
 from ..errors import BadGeometry, BadParameter, NotEnoughData
+
+if TYPE_CHECKING:
+    from collections.abc import Iterable
+
+    import xarray as xr
+    from numpy.typing import ArrayLike
 
 __all__ = [
     "find_crossovers",
@@ -200,18 +207,18 @@ def _intersect(a, b, closes_a, closes_b):
 
 
 def find_crossovers(
-    easting,
-    northing,
-    line_ids,
-    is_tie,
-    values,
-    time=None,
-    height=None,
+    easting: ArrayLike,
+    northing: ArrayLike,
+    line_ids: ArrayLike,
+    is_tie: ArrayLike,
+    values: ArrayLike,
+    time: ArrayLike | None = None,
+    height: ArrayLike | None = None,
     *,
-    flagged=None,
-    max_segment_length=None,
-    cell_size=None,
-    tie_tie=True,
+    flagged: ArrayLike | None = None,
+    max_segment_length: float | None = None,
+    cell_size: float | None = None,
+    tie_tie: bool = True,
 ) -> pd.DataFrame:
     """Find every intersection of traverse-line tracks with tie-line tracks.
 
@@ -414,7 +421,7 @@ def _empty_crossovers(is_datetime):
 # ---------------------------------------------------------------------------------------------
 # Robust least squares
 # ---------------------------------------------------------------------------------------------
-def huber_weights(residuals, threshold, scale=None):
+def huber_weights(residuals: ArrayLike, threshold: float, scale: float | None = None) -> np.ndarray:
     """Huber weights ``w = min(1, threshold * sigma / |r|)``.
 
     Parameters
@@ -447,7 +454,14 @@ def huber_weights(residuals, threshold, scale=None):
     return np.clip(np.nan_to_num(w, nan=1.0), 1e-8, 1.0)
 
 
-def robust_lstsq(design, target, threshold=1.5, *, max_iter=50, tol=1e-10):
+def robust_lstsq(
+    design: ArrayLike,
+    target: ArrayLike,
+    threshold: float | None = 1.5,
+    *,
+    max_iter: int = 50,
+    tol: float = 1e-10,
+) -> tuple[np.ndarray, np.ndarray]:
     """Least squares ``design @ x ~ target`` with Huber weights by IRLS.
 
     Rank-deficient systems (e.g. a tie network, defined only up to a constant) get the
@@ -519,7 +533,9 @@ class TieAdjustment:
     weights: np.ndarray
 
 
-def usable_crossovers(crossovers, use=None, max_height_difference=None) -> np.ndarray:
+def usable_crossovers(
+    crossovers: pd.DataFrame, use: ArrayLike | None = None, max_height_difference: float | None = None
+) -> np.ndarray:
     """Mask of crossovers a fit may use: not flagged, finite difference, height within limit.
 
     Parameters
@@ -547,7 +563,12 @@ def usable_crossovers(crossovers, use=None, max_height_difference=None) -> np.nd
 
 
 def adjust_ties(
-    crossovers, ties=None, *, huber_threshold=1.5, max_height_difference=None, use=None
+    crossovers: pd.DataFrame,
+    ties: Iterable[str] | None = None,
+    *,
+    huber_threshold: float | None = 1.5,
+    max_height_difference: float | None = None,
+    use: ArrayLike | None = None,
 ) -> TieAdjustment:
     """Level the tie lines: one constant per tie line.
 
@@ -705,7 +726,7 @@ class LineAdjustment:
     unlevelled: list = field(default_factory=list)
     weights: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
-    def evaluate(self, line_ids, time) -> np.ndarray:
+    def evaluate(self, line_ids: ArrayLike, time: ArrayLike | None) -> np.ndarray:
         """Correction (value added) for readings on ``line_ids`` at ``time``; 0 on other lines."""
         codes, names = pd.factorize(pd.Series(np.asarray(line_ids)))
         codes = np.asarray(codes)
@@ -731,15 +752,15 @@ class LineAdjustment:
 
 
 def adjust_lines(
-    crossovers,
-    tie_corrections=None,
+    crossovers: pd.DataFrame,
+    tie_corrections: pd.Series | None = None,
     *,
-    model="constant",
-    lines=None,
-    huber_threshold=1.5,
-    min_crossovers=2,
-    max_height_difference=None,
-    use=None,
+    model: str = "constant",
+    lines: Iterable[str] | None = None,
+    huber_threshold: float | None = 1.5,
+    min_crossovers: int = 2,
+    max_height_difference: float | None = None,
+    use: ArrayLike | None = None,
 ) -> LineAdjustment:
     """Level each traverse line to the (adjusted) tie lines.
 
@@ -892,16 +913,16 @@ def _constrained_irls(design, target, constraints, threshold, max_iter=50, tol=1
 
 
 def adjust_network(
-    crossovers,
+    crossovers: pd.DataFrame,
     *,
-    model="constant",
-    lines=None,
-    ties=None,
-    huber_threshold=1.5,
-    min_crossovers=2,
-    max_height_difference=None,
-    use=None,
-):
+    model: str = "constant",
+    lines: Iterable[str] | None = None,
+    ties: Iterable[str] | None = None,
+    huber_threshold: float | None = 1.5,
+    min_crossovers: int = 2,
+    max_height_difference: float | None = None,
+    use: ArrayLike | None = None,
+) -> tuple[TieAdjustment, LineAdjustment]:
     """Level traverse and tie lines together in one least-squares network.
 
     All unknowns are solved at once: a constant per tie line and a polynomial in time per
@@ -1042,7 +1063,7 @@ def adjust_network(
 # ---------------------------------------------------------------------------------------------
 # Adaptive levelling: height gate, vertical-gradient correction, neighbour corrections
 # ---------------------------------------------------------------------------------------------
-def height_gate(height_difference, multiple=3.0, floor=10.0) -> float:
+def height_gate(height_difference: ArrayLike, multiple: float = 3.0, floor: float = 10.0) -> float:
     """Largest ``|height difference|`` (m) a crossover may have, from the data's own spread.
 
     ``gate = max(median(|dh|) + multiple * 1.4826 * MAD(|dh|), floor)``: crossovers far out in
@@ -1075,7 +1096,13 @@ def height_gate(height_difference, multiple=3.0, floor=10.0) -> float:
 
 
 def vertical_gradient_at(
-    easting, northing, values, at_easting, at_northing, cell, smoothing=None
+    easting: ArrayLike,
+    northing: ArrayLike,
+    values: ArrayLike,
+    at_easting: ArrayLike,
+    at_northing: ArrayLike,
+    cell: float,
+    smoothing: float | None = None,
 ) -> np.ndarray:
     """Upward vertical gradient ``dT/dh`` (units per metre) of line data at given points.
 
@@ -1146,7 +1173,7 @@ def vertical_gradient_at(
     return -sample_grid(dz, at_easting, at_northing)
 
 
-def height_corrected_differences(crossovers, gradient) -> np.ndarray:
+def height_corrected_differences(crossovers: pd.DataFrame, gradient: ArrayLike) -> np.ndarray:
     """Misclosures with the height effect removed: ``d - dT/dh * (h_line - h_tie)``.
 
     Two lines crossing at different heights see the field at different distances from the
@@ -1159,7 +1186,9 @@ def height_corrected_differences(crossovers, gradient) -> np.ndarray:
     return d - np.where(np.isfinite(effect), effect, 0.0)
 
 
-def neighbour_corrections(line_ids, time, correction, source, target) -> np.ndarray:
+def neighbour_corrections(
+    line_ids: ArrayLike, time: ArrayLike | None, correction: ArrayLike, source: ArrayLike, target: ArrayLike
+) -> np.ndarray:
     """Corrections of lines without enough crossovers, from the lines flown before and after.
 
     Each ``source`` line (levelled by its own crossovers) contributes its mean correction at its
@@ -1219,7 +1248,7 @@ def neighbour_corrections(line_ids, time, correction, source, target) -> np.ndar
 # ---------------------------------------------------------------------------------------------
 # Micro-levelling
 # ---------------------------------------------------------------------------------------------
-def line_azimuth(easting, northing, line_ids) -> float:
+def line_azimuth(easting: ArrayLike, northing: ArrayLike, line_ids: ArrayLike) -> float:
     """Mean direction of the lines, degrees clockwise from north in [0, 180).
 
     Each line contributes the direction from its first to its last reading, weighted by its
@@ -1253,16 +1282,16 @@ def _fill_nearest(values):
 
 
 def micro_level(
-    grid,
-    line_direction_deg,
-    line_spacing,
-    cutoff_spacings=3.0,
-    max_amplitude=None,
+    grid: xr.DataArray,
+    line_direction_deg: float,
+    line_spacing: float,
+    cutoff_spacings: float = 3.0,
+    max_amplitude: float | None = None,
     *,
-    along_wavelength=None,
-    order=4,
-    pad_fraction=0.5,
-):
+    along_wavelength: float | None = None,
+    order: int = 4,
+    pad_fraction: float = 0.5,
+) -> xr.DataArray:
     """Corrugation (line-parallel level residuals) in a grid, by directional filtering.
 
     The grid is padded by mirror reflection (``pad_fraction`` of each side, empty cells filled by
@@ -1355,7 +1384,7 @@ def micro_level(
     )
 
 
-def sample_grid(grid, easting, northing) -> np.ndarray:
+def sample_grid(grid: xr.DataArray, easting: ArrayLike, northing: ArrayLike) -> np.ndarray:
     """Bilinear interpolation of a grid at points; NaN outside the grid or in empty cells
     (:func:`potfield.fields._numerics.sample_grid`)."""
     from .._numerics import sample_grid as bilinear
@@ -1363,7 +1392,9 @@ def sample_grid(grid, easting, northing) -> np.ndarray:
     return bilinear(grid, easting, northing)
 
 
-def lowpass_along_lines(values, line_ids, distance, wavelength) -> np.ndarray:
+def lowpass_along_lines(
+    values: ArrayLike, line_ids: ArrayLike, distance: ArrayLike, wavelength: float
+) -> np.ndarray:
     """Gaussian low-pass of values along each line, as a function of distance along the line.
 
     Each line is resampled at its median reading interval, filtered with a Gaussian whose

@@ -7,10 +7,15 @@ ends, so no value leaks from one line into the next.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 import pandas as pd
 
 from .._numerics import trailing_median
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
 
 #: Fourth-difference stencil (common practice in airborne magnetic QC). A spike of height A gives
 #: A x (1, -4, 6, -4, 1); a cubic gives exactly 0.
@@ -20,7 +25,9 @@ FOURTH_DIFFERENCE_STENCIL = np.array([1.0, -4.0, 6.0, -4.0, 1.0])
 SPIKE_SHAPE_MISFIT = 0.25
 
 
-def fourth_difference(values, groups=None, normalised: bool = False) -> np.ndarray:
+def fourth_difference(
+    values: ArrayLike, groups: ArrayLike | None = None, normalised: bool = False
+) -> np.ndarray:
     """Centred fourth difference T[i-2] - 4T[i-1] + 6T[i] - 4T[i+1] + T[i+2].
 
     Parameters
@@ -82,7 +89,7 @@ def _odd_reflect(x: np.ndarray, groups: np.ndarray, half: int):
     return values[order], line_key[order], part[order] == 1
 
 
-def rolling_median(values, groups, window: int) -> np.ndarray:
+def rolling_median(values: ArrayLike, groups: ArrayLike, window: int) -> np.ndarray:
     """Centred rolling median of width ``window`` restarted at every group (line).
 
     Each line is padded by odd reflection at its ends first, so a sloping line's first and last
@@ -142,15 +149,15 @@ def _shift(x: np.ndarray, groups: np.ndarray, k: int) -> np.ndarray:
 
 
 def robust_spikes(
-    values,
-    groups,
+    values: ArrayLike,
+    groups: ArrayLike,
     window: int = 11,
     threshold: float = 6.0,
     minimum: float = 0.0,
-    fourth=None,
+    fourth: ArrayLike | None = None,
     *,
     return_strength: bool = False,
-):
+) -> tuple[np.ndarray, ...]:
     """Flag single-sample spikes from the fourth difference, against the line's own roughness.
 
     The fourth difference d4 = T[i-2] - 4T[i-1] + 6T[i] - 4T[i+1] + T[i+2] is exactly zero for a
@@ -229,7 +236,7 @@ def robust_spikes(
     return flags, departure
 
 
-def cap_flags(flags, strength, max_fraction: float) -> tuple[np.ndarray, int]:
+def cap_flags(flags: ArrayLike, strength: ArrayLike, max_fraction: float) -> tuple[np.ndarray, int]:
     """Keep at most ``max_fraction`` of the samples flagged: the strongest ones.
 
     A test that flags more than a few per cent of the readings is measuring the signal, not
@@ -256,7 +263,7 @@ def cap_flags(flags, strength, max_fraction: float) -> tuple[np.ndarray, int]:
 
 
 def first_difference_spikes(
-    values, groups, window: int = 11, threshold: float = 6.0, floor: float = 3.0
+    values: ArrayLike, groups: ArrayLike, window: int = 11, threshold: float = 6.0, floor: float = 3.0
 ) -> tuple[np.ndarray, np.ndarray]:
     """Spikes in one-minute observatory variation data from first differences.
 

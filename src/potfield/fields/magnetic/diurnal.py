@@ -14,6 +14,7 @@ Magnetic Exploration, Cambridge University Press, ch. 12).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numba
 import numpy as np
@@ -21,6 +22,9 @@ import pandas as pd
 
 from .._numerics import trailing_median
 from ..errors import BadParameter, NotEnoughData
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
 
 #: Factor taking the median absolute deviation to a standard deviation for normal errors
 #: (Rousseeuw and Croux 1993, J. Am. Stat. Assoc. 88:1273).
@@ -34,14 +38,14 @@ METHODS = ("linear", "cubic", "nearest")
 # --- time ---------------------------------------------------------------------------------------
 
 
-def _as_time_array(time) -> np.ndarray:
+def _as_time_array(time: ArrayLike) -> np.ndarray:
     arr = np.asarray(time)
     if np.issubdtype(arr.dtype, np.datetime64):
         return arr.astype("datetime64[ns]")
     return arr.astype(float)
 
 
-def time_epoch(*times):
+def time_epoch(*times: ArrayLike) -> np.datetime64 | float:
     """A common epoch for several time arrays: the earliest datetime64, or 0.0 for seconds."""
     firsts = []
     for time in times:
@@ -51,7 +55,7 @@ def time_epoch(*times):
     return min(firsts) if firsts else 0.0
 
 
-def to_seconds(time, epoch=None) -> np.ndarray:
+def to_seconds(time: ArrayLike, epoch: np.datetime64 | float | None = None) -> np.ndarray:
     """Times as float seconds from ``epoch`` (datetime64 in, or float seconds passed through)."""
     arr = _as_time_array(time)
     if np.issubdtype(arr.dtype, np.datetime64):
@@ -90,7 +94,7 @@ class BaseCleaning:
     transient: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
 
 
-def running_median(value, window: int) -> np.ndarray:
+def running_median(value: ArrayLike, window: int) -> np.ndarray:
     """Centred running median over ``window`` samples (shorter at the ends), NaN ignored
     (Tukey 1977, Exploratory Data Analysis, Addison-Wesley, ch. 7)."""
     series = pd.Series(np.asarray(value, dtype=float))
@@ -98,8 +102,8 @@ def running_median(value, window: int) -> np.ndarray:
 
 
 def clean_base(
-    time,
-    value,
+    time: ArrayLike,
+    value: ArrayLike,
     *,
     window: int = 11,
     threshold: float = 6.0,
@@ -157,7 +161,7 @@ def clean_base(
     return BaseCleaning(good=good, spike=spike, missing=missing, median=median, gaps=gaps)
 
 
-def find_gaps(seconds, good, max_gap_s: float) -> np.ndarray:
+def find_gaps(seconds: ArrayLike, good: ArrayLike, max_gap_s: float) -> np.ndarray:
     """Intervals between consecutive good samples longer than ``max_gap_s``.
 
     Returns
@@ -211,7 +215,13 @@ def _trailing_count(values: np.ndarray, groups: np.ndarray, width: int) -> np.nd
 
 
 def base_sessions(
-    time, value, good=None, *, gap_s: float = 1800.0, jump_nT: float = 20.0, window: int = 60
+    time: ArrayLike,
+    value: ArrayLike,
+    good: ArrayLike | None = None,
+    *,
+    gap_s: float = 1800.0,
+    jump_nT: float = 20.0,
+    window: int = 60,
 ) -> BaseSessions:
     """Split a base record into sessions and find datum jumps (relocations, re-set-ups).
 
@@ -323,7 +333,13 @@ def base_sessions(
 
 
 def setup_transients(
-    time, value, session, good=None, *, settle_s: float = 300.0, min_nT: float = 3.0
+    time: ArrayLike,
+    value: ArrayLike,
+    session: ArrayLike,
+    good: ArrayLike | None = None,
+    *,
+    settle_s: float = 300.0,
+    min_nT: float = 3.0,
 ) -> np.ndarray:
     """Flag the settling transient at the start of each base session.
 
@@ -383,7 +399,13 @@ def setup_transients(
     return out
 
 
-def session_datums(time, value, session, good=None, span=None) -> np.ndarray:
+def session_datums(
+    time: ArrayLike,
+    value: ArrayLike,
+    session: ArrayLike,
+    good: ArrayLike | None = None,
+    span: tuple[np.datetime64 | float, np.datetime64 | float] | None = None,
+) -> np.ndarray:
     """Median of each session's good samples inside ``span`` (the whole session when it does
     not overlap ``span``; NaN for a session without good samples), indexed by session number."""
     t = _as_time_array(time)
@@ -408,7 +430,13 @@ def session_datums(time, value, session, good=None, span=None) -> np.ndarray:
 # --- interpolation ------------------------------------------------------------------------------
 
 
-def interpolate_base(base_time, base_value, reading_time, method: str = "linear", max_gap_s: float = 10.0):
+def interpolate_base(
+    base_time: ArrayLike,
+    base_value: ArrayLike,
+    reading_time: ArrayLike,
+    method: str = "linear",
+    max_gap_s: float = 10.0,
+) -> tuple[np.ndarray, np.ndarray]:
     """Base record at the readings' times, and a flag for readings it does not cover.
 
     Parameters
@@ -472,7 +500,13 @@ def interpolate_base(base_time, base_value, reading_time, method: str = "linear"
 
 
 def base_datum(
-    base_time, base_value, mode: str = "median", *, value: float | None = None, at_time=None, span=None
+    base_time: ArrayLike,
+    base_value: ArrayLike,
+    mode: str = "median",
+    *,
+    value: float | None = None,
+    at_time: ArrayLike | None = None,
+    span: tuple[np.datetime64 | float, np.datetime64 | float] | None = None,
 ) -> float:
     """The datum B0 subtracted from the base record.
 
@@ -526,14 +560,14 @@ def base_datum(
 
 
 def diurnal_correction(
-    base_time,
-    base_value,
-    reading_time,
+    base_time: ArrayLike,
+    base_value: ArrayLike,
+    reading_time: ArrayLike,
     *,
     method: str = "linear",
     max_gap_s: float = 10.0,
     datum: float | None = None,
-):
+) -> tuple[np.ndarray, np.ndarray, float]:
     """Diurnal variation at the readings: interpolated base minus the datum.
 
     ``corrected = total_field - correction`` (Reford 1980, Geophysics 45:1640).
@@ -559,7 +593,7 @@ def diurnal_correction(
 # --- several bases ------------------------------------------------------------------------------
 
 
-def great_circle_distance(lon1, lat1, lon2, lat2) -> np.ndarray:
+def great_circle_distance(lon1: ArrayLike, lat1: ArrayLike, lon2: ArrayLike, lat2: ArrayLike) -> np.ndarray:
     """Haversine distance (m) on the sphere of GRS80's mean radius (Sinnott 1984, Sky and
     Telescope 68(2):159)."""
     lon1, lat1, lon2, lat2 = (np.radians(np.asarray(a, dtype=float)) for a in (lon1, lat1, lon2, lat2))
@@ -567,7 +601,13 @@ def great_circle_distance(lon1, lat1, lon2, lat2) -> np.ndarray:
     return 2 * EARTH_RADIUS_M * np.arcsin(np.sqrt(np.clip(h, 0.0, 1.0)))
 
 
-def combine_bases(corrections, flags, distances, method: str = "nearest", power: float = 2.0):
+def combine_bases(
+    corrections: ArrayLike,
+    flags: ArrayLike,
+    distances: ArrayLike,
+    method: str = "nearest",
+    power: float = 2.0,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Combine the corrections of several bases at each reading.
 
     Parameters
@@ -608,7 +648,9 @@ def combine_bases(corrections, flags, distances, method: str = "nearest", power:
     return (weights * c).sum(axis=0), all_flagged, weights
 
 
-def station_difference(time_a, value_a, time_b, value_b, max_gap_s: float = 10.0) -> dict:
+def station_difference(
+    time_a: ArrayLike, value_a: ArrayLike, time_b: ArrayLike, value_b: ArrayLike, max_gap_s: float = 10.0
+) -> dict[str, float]:
     """Statistics of the difference between two base records over their common span.
 
     Record b is interpolated linearly to a's good samples; the median difference (the level
@@ -684,7 +726,7 @@ class ChordDeviation:
     deviation: np.ndarray
 
 
-def chord_deviation(time, value, window_s: float) -> ChordDeviation:
+def chord_deviation(time: ArrayLike, value: ArrayLike, window_s: float) -> ChordDeviation:
     """Maximum deviation of a record from the straight chord over every window of a length.
 
     For each sample i the window runs from t_i to the last sample at or before t_i + window_s;
@@ -719,7 +761,7 @@ def chord_deviation(time, value, window_s: float) -> ChordDeviation:
     return ChordDeviation(float(out[i]), float(t[i]), full)
 
 
-def highpass(time, value, window_s: float) -> np.ndarray:
+def highpass(time: ArrayLike, value: ArrayLike, window_s: float) -> np.ndarray:
     """Record minus its centred running mean over ``window_s`` seconds (time-based window, so
     gaps and irregular sampling are handled), computed with cumulative sums."""
     t = to_seconds(time)
@@ -746,10 +788,10 @@ class TimeOffset:
 
 
 def estimate_time_offset(
-    base_time,
-    base_value,
-    survey_time,
-    survey_value,
+    base_time: ArrayLike,
+    base_value: ArrayLike,
+    survey_time: ArrayLike,
+    survey_value: ArrayLike,
     *,
     highpass_s: float = 60.0,
     max_lag_s: float = 30.0,

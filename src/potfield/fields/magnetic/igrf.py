@@ -270,7 +270,7 @@ def decimal_year(times: ArrayLike) -> np.ndarray:
     return out
 
 
-def _as_years(time) -> np.ndarray:
+def _as_years(time: ArrayLike) -> np.ndarray:
     arr = np.asarray(time)
     if arr.dtype.kind in "fiub":
         return arr.astype(float)
@@ -431,7 +431,9 @@ def _synthesis_kernel(
         out[6, i] = np.degrees(np.arctan2(bp, bx))
 
 
-def _run_kernel(longitude, coord1, coord2, time, geodetic: bool):
+def _run_kernel(
+    longitude: ArrayLike, coord1: ArrayLike, coord2: ArrayLike, time: ArrayLike, geodetic: bool
+) -> list[np.ndarray]:
     years = _as_years(time)
     _check_years(years)
     arrays = np.broadcast_arrays(

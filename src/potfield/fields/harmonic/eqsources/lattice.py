@@ -125,7 +125,9 @@ class Convolver:
     Geophysics 85(6):G129): ``out_l = sum_p T_lp g_p``. The kernel is even in both offsets, so
     every T_lp is symmetric and the adjoint is ``g_p = sum_l T_lp out_l``."""
 
-    def __init__(self, lattice: Lattice, zl: np.ndarray, zp: np.ndarray, scale: float, core: bool = True):
+    def __init__(
+        self, lattice: Lattice, zl: np.ndarray, zp: np.ndarray, scale: float, core: bool = True
+    ) -> None:
         self.lattice = lattice
         ny, nx = lattice.ny, lattice.nx
         self.shape = (

@@ -35,7 +35,7 @@ PRECOND_FAR_STRIDE = 4
 class NodeIndex:
     """Items (sources or data) by lattice node, to list those in a box of nodes quickly."""
 
-    def __init__(self, flat: np.ndarray, nx: int):
+    def __init__(self, flat: np.ndarray, nx: int) -> None:
         self.order = np.argsort(flat, kind="stable")
         self.keys = np.asarray(flat)[self.order]
         self.nx = int(nx)
@@ -62,7 +62,7 @@ class Schwarz:
 
     def __init__(
         self, normals: list[tuple[np.ndarray, np.ndarray]], damping: float, n_sources: int, chunks: int
-    ):
+    ) -> None:
         sizes = np.array([src.size for src, _ in normals], dtype=np.int64)
         self.src_off = np.concatenate([[0], np.cumsum(sizes)])
         self.fac_off = np.concatenate([[0], np.cumsum(sizes * (sizes + 1) // 2)])

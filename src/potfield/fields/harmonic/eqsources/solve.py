@@ -3,6 +3,8 @@ preconditioned CGLS solver, and the entry point :func:`fit_equivalent_sources`."
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numba
 import numpy as np
 
@@ -42,12 +44,17 @@ from .lattice import (
 from .model import EquivalentSourceModel
 from .precondition import Schwarz, local_normals
 
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+
 #: Largest number of sources for which ``method="auto"`` uses the dense solver (Jacobian of
 #: DENSE_LIMIT^2 float64 = 128 MB at 4000).
 DENSE_LIMIT = 4000
 
 
-def _prepare(easting, northing, upward, data, weights) -> tuple[np.ndarray, ...]:
+def _prepare(
+    easting: ArrayLike, northing: ArrayLike, upward: ArrayLike, data: ArrayLike, weights: ArrayLike | None
+) -> tuple[np.ndarray, ...]:
     """Flat float arrays of the finite data with positive weight, weights normalised to mean 1."""
     e, n, u, d = (
         np.asarray(a, dtype=float).ravel() for a in np.broadcast_arrays(easting, northing, upward, data)
@@ -93,7 +100,7 @@ class LatticeProblem:
         spacing: float,
         depth_type: str = "relative",
         ceiling: float | None = None,
-    ):
+    ) -> None:
         self.e, self.n, self.u = e, n, u
         self.sw = np.sqrt(w)
         self.depth = float(depth)
@@ -204,10 +211,10 @@ class LatticeProblem:
         b = self.sw * d
         blocks = self._preconditioner(damping)
 
-        def forward(z) -> np.ndarray:
+        def forward(z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
             return self.forward(z), root * z
 
-        def adjoint(r1, r2) -> np.ndarray:
+        def adjoint(r1: np.ndarray, r2: np.ndarray) -> np.ndarray:
             return self.adjoint(r1) + root * r2
 
         z = np.zeros(self.n_sources) if z0 is None else z0.copy()
