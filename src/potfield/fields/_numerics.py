@@ -3,7 +3,8 @@
 Four small operations recur across the field modules and the stages; each lives here, with a
 test against an outside reference in ``tests/fields/test_numerics.py``:
 
-- :func:`damped_lstsq`: damped (Tikhonov / ridge) least squares by the normal equations.
+- :func:`damped_lstsq`: damped (Tikhonov / ridge) least squares by the normal equations
+  (:func:`normal_matrix` and :func:`solve_damped_normal` when one matrix serves many dampings).
 - :func:`block_median` and :func:`group_median`: medians in square blocks / in groups.
 - :func:`nearest_neighbour_distances` and :func:`median_spacing`: the data spacing of
   scattered points.
@@ -27,7 +28,9 @@ __all__ = [
     "group_median",
     "median_spacing",
     "nearest_neighbour_distances",
+    "normal_matrix",
     "sample_grid",
+    "solve_damped_normal",
 ]
 
 
@@ -53,17 +56,34 @@ def damped_lstsq(matrix: np.ndarray, rhs: np.ndarray, damping: float | np.ndarra
     -------
     (M,) array
     """
-    normal = matrix.T @ matrix
-    rhs = matrix.T @ np.asarray(rhs, dtype=float)
-    normal[np.diag_indices_from(normal)] += np.broadcast_to(
-        np.asarray(damping, dtype=float), (normal.shape[0],)
-    )
+    return solve_damped_normal(normal_matrix(matrix), matrix.T @ np.asarray(rhs, dtype=float), damping)
+
+
+def normal_matrix(matrix: np.ndarray) -> np.ndarray:
+    """``A^T A`` of a (N, M) design matrix, (M, M); its upper triangle is computed (BLAS syrk,
+    half the work of a general product) and mirrored."""
+    from scipy.linalg.blas import dsyrk
+
+    upper = dsyrk(1.0, np.asfortranarray(matrix, dtype=float), trans=1, lower=0)
+    return np.triu(upper) + np.triu(upper, 1).T
+
+
+def solve_damped_normal(normal: np.ndarray, rhs: np.ndarray, damping: float | np.ndarray) -> np.ndarray:
+    """Solve ``(N + diag(damping)) x = rhs`` for a symmetric ``N = A^T A`` (not modified), by
+    Cholesky, else the least-squares solution (see :func:`damped_lstsq`); one normal matrix
+    serves many dampings."""
+
+    def damped() -> np.ndarray:
+        out = normal.copy()
+        out[np.diag_indices_from(out)] += np.broadcast_to(np.asarray(damping, dtype=float), (out.shape[0],))
+        return out
+
     try:
         return scipy.linalg.cho_solve(
-            scipy.linalg.cho_factor(normal, check_finite=False), rhs, check_finite=False
+            scipy.linalg.cho_factor(damped(), check_finite=False, overwrite_a=True), rhs, check_finite=False
         )
     except (np.linalg.LinAlgError, scipy.linalg.LinAlgError):
-        return scipy.linalg.lstsq(normal, rhs)[0]
+        return scipy.linalg.lstsq(damped(), rhs)[0]
 
 
 def group_median(values: np.ndarray, groups: np.ndarray, count: int) -> np.ndarray:

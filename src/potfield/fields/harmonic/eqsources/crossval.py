@@ -10,12 +10,13 @@ import pandas as pd
 from ..._numerics import median_spacing
 from .lattice import layer_ceiling, source_spacing
 from .solve import (
+    DenseProblem,
     LatticeProblem,
     _check_depth_type,
     _choose_method,
     _prepare,
     _source_count,
-    fit_equivalent_sources,
+    dense_jacobian,
 )
 
 
@@ -105,29 +106,21 @@ def cross_validate(
                     depth_type,
                     ceiling,
                 )
+            else:
+                # one Jacobian and normal matrix per fold and depth serve every damping
+                problem = DenseProblem(
+                    e[train], n[train], u[train], w[train], depth, block_size, depth_type, ceiling
+                )
+                test_jac = dense_jacobian(e[test], n[test], u[test], problem.points, problem.scale)
             z = None
             for damp in sorted(fold_scores, reverse=True):
                 if chosen == "fft":
                     coefs, z, _ = problem.solve(d[train], damp, tol=tol, maxiter=maxiter, z0=z)
-                    model = problem.model(coefs, damp, region)
+                    pred = problem.model(coefs, damp, region).predict((e[test], n[test], u[test]))
                 else:
-                    model = fit_equivalent_sources(
-                        e[train],
-                        n[train],
-                        u[train],
-                        d[train],
-                        w[train],
-                        depth=depth,
-                        damping=damp,
-                        block_size=block_size,
-                        method="dense",
-                        depth_type=depth_type,
-                        ceiling=ceiling,
-                    )
-                pred = model.predict((e[test], n[test], u[test]))
+                    pred = test_jac @ problem.solve(d[train], damp)
                 fold_scores[damp].append(_scores(d[test], pred, w[test]))
-            if chosen == "fft":
-                del problem
+            del problem
         for damp, values in fold_scores.items():
             arr = np.array(values)
             se = float(arr[:, 0].std(ddof=1) / np.sqrt(len(arr))) if len(arr) > 1 else 0.0

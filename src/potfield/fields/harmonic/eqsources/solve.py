@@ -10,9 +10,10 @@ import numpy as np
 
 from ..._numerics import (
     block_median,
-    damped_lstsq,
     median_spacing,
     nearest_neighbour_distances,
+    normal_matrix,
+    solve_damped_normal,
 )
 from ...errors import BadParameter, NotEnoughData
 from .kernels import (
@@ -69,22 +70,53 @@ def _prepare(
     return e, n, u, d, w / w.mean()
 
 
-def _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type="relative", ceiling=None):
-    if block_size:
-        # block-averaged sources (Soler and Uieda 2021), blocks from the data's south-west corner
-        (se, sn, su), _ = block_median(e, n, u, np.zeros(e.size), block_size)
-    else:
-        se, sn, su = e.copy(), n.copy(), u.copy()
-    if depth_type == "constant":
-        su = np.full(se.size, constant_plane(u, depth, ceiling))
-    else:
-        su = capped(su - depth, ceiling)
+class DenseProblem:
+    """Damped least-squares problem of the dense route: the weighted Jacobian and its normal
+    matrix are built once and solved for many dampings (one Cholesky factorisation each)."""
+
+    def __init__(
+        self,
+        e: np.ndarray,
+        n: np.ndarray,
+        u: np.ndarray,
+        w: np.ndarray,
+        depth: float,
+        block_size: float | None,
+        depth_type: str = "relative",
+        ceiling: float | None = None,
+    ) -> None:
+        if block_size:
+            # block-averaged sources (Soler and Uieda 2021), blocks from the data's south-west corner
+            (se, sn, su), _ = block_median(e, n, u, np.zeros(e.size), block_size)
+        else:
+            se, sn, su = e.copy(), n.copy(), u.copy()
+        if depth_type == "constant":
+            su = np.full(se.size, constant_plane(u, depth, ceiling))
+        else:
+            su = capped(su - depth, ceiling)
+        self.points = (se, sn, su)
+        self.scale = float(depth)
+        self.jac = dense_jacobian(e, n, u, self.points, self.scale)
+        self.sw = np.sqrt(w)
+        self.jac *= self.sw[:, None]
+        self.normal = normal_matrix(self.jac)
+
+    def solve(self, d: np.ndarray, damping: float) -> np.ndarray:
+        """Coefficients of the sources for data ``d`` and ``damping``."""
+        return solve_damped_normal(self.normal, self.jac.T @ (self.sw * d), damping)
+
+
+def dense_jacobian(e: np.ndarray, n: np.ndarray, u: np.ndarray, points: tuple, scale: float) -> np.ndarray:
+    """(data, sources) matrix of the dimensionless kernel ``scale / r``."""
+    se, sn, su = (np.ascontiguousarray(p, dtype=float) for p in points)
     jac = np.empty((e.size, se.size))
-    _dense_jacobian(e, n, u, se, sn, su, float(depth), jac)
-    sw = np.sqrt(w)
-    jac *= sw[:, None]
-    coefs = damped_lstsq(jac, sw * d, damping)
-    return (se, sn, su), coefs, {}
+    _dense_jacobian(e, n, u, se, sn, su, float(scale), jac)
+    return jac
+
+
+def _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type="relative", ceiling=None):
+    problem = DenseProblem(e, n, u, w, depth, block_size, depth_type, ceiling)
+    return problem.points, problem.solve(d, damping), {}
 
 
 class LatticeProblem:
