@@ -75,3 +75,52 @@ def test_format_keeps_text_and_integers():
     frame = pd.DataFrame({"line": ["1010"], "source_row": np.array([5], dtype=np.int64)})
     out = format_table(frame)
     assert out["line"].iat[0] == "1010" and out["source_row"].iat[0] == 5
+
+
+def _mixed_table(n: int = 2_500) -> pd.DataFrame:
+    rng = np.random.default_rng(3)
+    line = np.repeat([f"L{k}" for k in range(5)], n // 5)
+    return pd.DataFrame(
+        {
+            "time": pd.date_range("2025-03-03", periods=n, freq="1s"),
+            "total_field": rng.normal(57_000.0, 30.0, n),
+            # an unregistered column: 10 significant digits of the largest value of the column,
+            # which sits in the last piece only
+            "extra": np.r_[rng.normal(0.0, 1.0, n - 1), 12_345.678901234],
+            "line": pd.Categorical(line),
+            "source_file": pd.Categorical(["a.csv"] * n),
+            "flag_spike": rng.random(n) > 0.9,
+            "source_row": np.arange(n) + 2,
+        }
+    )
+
+
+def test_table_written_in_pieces_is_the_text_of_one_pyarrow_write(tmp_path):
+    # reference: the same table formatted whole and written by one pyarrow.csv.write_csv call
+    # (independent library); the piecewise writer must give the same bytes, categorical text
+    # columns included
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    frame = _mixed_table()
+    pieces = write_table(tmp_path / "pieces.csv", frame, chunk_rows=300)
+    whole = tmp_path / "whole.csv"
+    plain = frame.assign(line=frame["line"].astype(str), source_file=frame["source_file"].astype(str))
+    arrow = pa.Table.from_pandas(format_table(plain), preserve_index=False)
+    pacsv.write_csv(arrow, whole, pacsv.WriteOptions(quoting_style="needed"))
+    assert pieces.read_bytes() == whole.read_bytes()
+    assert pieces.read_text().count("\n") == len(frame) + 1
+
+
+def test_parquet_written_in_pieces_reads_back_as_pandas_wrote_it(tmp_path):
+    # reference: pandas.DataFrame.to_parquet of the whole table (pyarrow engine)
+    from potfield.io.atomic import write_parquet
+
+    frame = _mixed_table()
+    frame.to_parquet(tmp_path / "whole.parquet", index=False)
+    write_parquet(tmp_path / "pieces.parquet", frame, chunk_rows=300)
+    pieces = pd.read_parquet(tmp_path / "pieces.parquet")
+    pd.testing.assert_frame_equal(pieces, pd.read_parquet(tmp_path / "whole.parquet"))
+    import pyarrow.parquet as pq
+
+    assert pq.ParquetFile(tmp_path / "pieces.parquet").num_row_groups == 9  # ceil(2500 / 300)

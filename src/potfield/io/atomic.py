@@ -72,7 +72,23 @@ def write_csv(path: Path | str, table, **kwargs) -> Path:
     return Path(path)
 
 
-def write_parquet(path: Path | str, table) -> Path:
+#: Rows per piece when a large table is written (parquet row groups, CSV pieces): the writer
+#: then holds one piece's Arrow copy, never a copy of the whole table.
+CHUNK_ROWS = 1 << 19
+
+
+def write_parquet(path: Path | str, table, chunk_rows: int = CHUNK_ROWS) -> Path:
+    """A pandas table as parquet, written ``chunk_rows`` rows at a time (one row group each)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
     with atomic_path(path) as tmp:
-        table.to_parquet(tmp, index=False)
+        if len(table) <= chunk_rows:
+            table.to_parquet(tmp, index=False)
+            return Path(path)
+        schema = pa.Schema.from_pandas(table, preserve_index=False)
+        with pq.ParquetWriter(tmp, schema) as writer:
+            for start in range(0, len(table), chunk_rows):
+                piece = table.iloc[start : start + chunk_rows]
+                writer.write_table(pa.Table.from_pandas(piece, schema=schema, preserve_index=False))
     return Path(path)

@@ -259,16 +259,41 @@ def decimals_for(name: str, kind: str = "magnetic") -> int | None:
     return DECIMALS.get(unit)
 
 
-def _significant(values: np.ndarray, digits: int = 10) -> np.ndarray:
+def _significant_places(values: np.ndarray, digits: int = 10) -> int | None:
+    """Decimals that keep ``digits`` significant digits of the largest value (None: none finite
+    or all zero, the values are written as they are)."""
     finite = np.abs(values[np.isfinite(values)])
     if finite.size == 0 or not finite.max():
-        return values
-    decimals = max(0, digits - 1 - int(math.floor(math.log10(float(finite.max())))))
-    return np.round(values, decimals)
+        return None
+    return max(0, digits - 1 - int(math.floor(math.log10(float(finite.max())))))
 
 
-def format_table(frame: pd.DataFrame, kind: str = "magnetic") -> pd.DataFrame:
-    """A copy ready to write: rounded floats, ISO 8601 UTC millisecond times (text)."""
+def _significant(values: np.ndarray, digits: int = 10) -> np.ndarray:
+    places = _significant_places(values, digits)
+    return values if places is None else np.round(values, places)
+
+
+def float_places(frame: pd.DataFrame, kind: str = "magnetic") -> dict[str, int | None]:
+    """Decimals of every float column of ``frame`` as :func:`format_table` rounds it (None:
+    unrounded), from the whole column: the same for any piece of the table."""
+    places = {}
+    for name in frame.columns:
+        if pd.api.types.is_float_dtype(frame[name]):
+            fixed = decimals_for(str(name), kind)
+            places[name] = (
+                fixed if fixed is not None else _significant_places(frame[name].to_numpy(dtype=float))
+            )
+    return places
+
+
+def format_table(
+    frame: pd.DataFrame, kind: str = "magnetic", places: dict[str, int | None] | None = None
+) -> pd.DataFrame:
+    """A copy ready to write: rounded floats, ISO 8601 UTC millisecond times (text).
+
+    ``places`` (from :func:`float_places` of the whole table) fixes the decimals of the float
+    columns, so that pieces of a large table are rounded as the whole table would be.
+    """
     out = {}
     for name in frame.columns:
         column = frame[name]
@@ -280,22 +305,23 @@ def format_table(frame: pd.DataFrame, kind: str = "magnetic") -> pd.DataFrame:
             out[name] = out[name].where(column.notna(), None)
         elif pd.api.types.is_float_dtype(column):
             values = column.to_numpy(dtype=float)
-            places = decimals_for(str(name), kind)
-            rounded = np.round(values, places) if places is not None else _significant(values)
+            if places is not None:
+                rounded = values if places[name] is None else np.round(values, places[name])
+            else:
+                fixed = decimals_for(str(name), kind)
+                rounded = np.round(values, fixed) if fixed is not None else _significant(values)
             out[name] = rounded + 0.0  # no "-0"
         else:
             out[name] = column
     return pd.DataFrame(out, index=frame.index)
 
 
-def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic") -> Path:
-    """Write a table as CSV with pyarrow (fast; booleans lower case), atomically."""
+def _arrow(formatted: pd.DataFrame):
+    """A formatted table as Arrow; object columns of mixed types written as text."""
     import pyarrow as pa
-    import pyarrow.csv as pacsv
 
-    formatted = format_table(frame, kind)
     try:
-        arrow = pa.Table.from_pandas(formatted, preserve_index=False)
+        return pa.Table.from_pandas(formatted, preserve_index=False)
     except (pa.ArrowInvalid, pa.ArrowTypeError):  # mixed object columns: as text
         mixed = formatted.copy()
         for name in mixed.columns:
@@ -307,9 +333,48 @@ def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic") -
                         else (str(v).lower() if isinstance(v, bool) else str(v))
                     )
                 )
-        arrow = pa.Table.from_pandas(mixed, preserve_index=False)
+        return pa.Table.from_pandas(mixed, preserve_index=False)
+
+
+def _write_pieces(tmp: Path, frame: pd.DataFrame, kind: str, chunk_rows: int, options) -> bool:
+    """Write ``frame`` in pieces of ``chunk_rows`` rows; False when the pieces' Arrow types
+    differ (object columns typed by their content), and the caller writes it whole."""
+    import pyarrow.csv as pacsv
+
+    places = float_places(frame, kind)
+    schema, writer = None, None
+    try:
+        for start in range(0, len(frame), chunk_rows):
+            arrow = _arrow(format_table(frame.iloc[start : start + chunk_rows], kind, places))
+            if writer is None:
+                schema = arrow.schema
+                writer = pacsv.CSVWriter(tmp, schema, write_options=options)
+            elif not arrow.schema.equals(schema):
+                return False
+            writer.write_table(arrow)
+    finally:
+        if writer is not None:
+            writer.close()
+    return True
+
+
+def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic", chunk_rows: int = 0) -> Path:
+    """Write a table as CSV with pyarrow (fast; booleans lower case), atomically.
+
+    A table longer than ``chunk_rows`` (default :data:`potfield.io.atomic.CHUNK_ROWS`) is
+    formatted and written piece by piece, with the decimals of the whole table: the same text,
+    without a formatted copy of the whole table in memory.
+    """
+    import pyarrow.csv as pacsv
+
+    from .atomic import CHUNK_ROWS
+
+    options = pacsv.WriteOptions(quoting_style="needed")
+    chunk_rows = chunk_rows or CHUNK_ROWS
     with atomic_path(path) as tmp:
-        pacsv.write_csv(arrow, tmp, pacsv.WriteOptions(quoting_style="needed"))
+        if len(frame) > chunk_rows and _write_pieces(tmp, frame, kind, chunk_rows, options):
+            return Path(path)
+        pacsv.write_csv(_arrow(format_table(frame, kind)), tmp, options)
     return Path(path)
 
 

@@ -12,8 +12,18 @@ import pandas as pd
 
 from .atomic import write_parquet
 
-#: Text columns stored dictionary-encoded in the cache (fast to write), restored as object.
+#: Text columns of the readings table held dictionary-encoded (pandas categorical, categories
+#: sorted) from ingest on, in memory and in the cache: one small integer per reading instead of
+#: a string (a few distinct values: file names, line names, traverse/tie).
 CACHE_TEXT = ("line", "line_type", "source_file", "station", "loop")
+
+
+def dictionary_encode(table: pd.DataFrame) -> pd.DataFrame:
+    """``table`` with its :data:`CACHE_TEXT` columns categorical (in place; returned)."""
+    for name in CACHE_TEXT:
+        if name in table and not isinstance(table[name].dtype, pd.CategoricalDtype):
+            table[name] = table[name].astype("category")
+    return table
 
 
 def write_table_csv(path: Path, table: pd.DataFrame, kind: str = "magnetic") -> Path:
@@ -25,18 +35,11 @@ def write_table_csv(path: Path, table: pd.DataFrame, kind: str = "magnetic") -> 
 
 
 def write_cache_table(path: Path, table: pd.DataFrame) -> Path:
-    """A stage's readings table as parquet, text columns dictionary-encoded."""
-    frame = table.copy(deep=False)
-    for name in CACHE_TEXT:
-        if name in frame and frame[name].dtype == object:
-            frame[name] = frame[name].astype("category")
-    return write_parquet(path, frame)
+    """A stage's readings table as parquet (row groups written piece by piece), text columns
+    dictionary-encoded."""
+    return write_parquet(path, dictionary_encode(table.copy(deep=False)))
 
 
 def read_cache_table(path: Path) -> pd.DataFrame:
-    """A table written by :func:`write_cache_table`, text columns back as object."""
-    table = pd.read_parquet(path)
-    for name in CACHE_TEXT:
-        if name in table and isinstance(table[name].dtype, pd.CategoricalDtype):
-            table[name] = table[name].astype(object)
-    return table
+    """A table written by :func:`write_cache_table`, text columns categorical as after ingest."""
+    return dictionary_encode(pd.read_parquet(path))

@@ -41,7 +41,7 @@ def _gap_flags(values: np.ndarray, groups: np.ndarray, limit: float) -> tuple[np
 
 def run(ctx: StageContext) -> StageOutput:
     cfg = ctx.config.clean
-    table = ctx.table.copy()
+    table = ctx.table.copy(deep=False)  # copy-on-write: new columns only
     groups = pd.factorize(table["line"])[0]
     timed = "time" in table  # station lists may have no time: no time-based flags then
     seconds = (

@@ -226,7 +226,7 @@ def run(ctx: StageContext) -> StageOutput:
             return _remote_reference(ctx)
         why = "no base station given: diurnal correction not applied"
         return StageOutput(notes=[why], skipped=why)
-    table = ctx.table.copy()
+    table = ctx.table.copy(deep=False)  # copy-on-write: new columns only
     reading_time = table["time"].to_numpy(dtype="datetime64[ns]")
     span = (reading_time.min(), reading_time.max())
     notes: list[str] = []
@@ -539,7 +539,7 @@ def _remote_reference(ctx: StageContext) -> StageOutput:
             fix="run the observatory network first and point at its out/tables/coefficients.csv",
         )
     coefficients = pd.read_csv(path)
-    table = ctx.table.copy()
+    table = ctx.table.copy(deep=False)  # copy-on-write: new columns only
     with translate(
         InputDataError,
         file=path,

@@ -388,7 +388,7 @@ def run(ctx: StageContext) -> StageOutput:
                 key=f"input.columns.{col}",
                 fix=f"map the {col} column in [input.columns]",
             )
-    table = src.copy()
+    table = src.copy(deep=False)  # copy-on-write: new columns only
     notes: list[str] = []
     warnings: list[str] = []
     degraded: list[str] = []

@@ -346,7 +346,7 @@ def run(ctx: StageContext) -> StageOutput:
     )
     grid = _grid(model, region, spacing, height, e, n, h, mask_distance, name, units, long_name, history)
 
-    result = table.copy()
+    result = table.copy(deep=False)
     micro_note = None
     if ctx.config.level.micro_levelling:
         if not line_spacing:
@@ -533,7 +533,7 @@ def _run_tiled(
             f"depth {best['depth']:.1f} m, damping {best['damping']:g}",
         }
     )
-    out = StageOutput(table=table.copy())
+    out = StageOutput(table=table.copy(deep=False))
     out.table["grid_residual"] = values - result.predicted
     resid_rms = float(np.sqrt(np.nanmean(out.table["grid_residual"].to_numpy(float)[ok] ** 2)))
     flagged_rms = _flagged_rms(table, out.table["grid_residual"].to_numpy(float))

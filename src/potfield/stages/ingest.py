@@ -18,6 +18,7 @@ import pyproj
 from ..config import SurveyConfig, unit_factor
 from ..errors import ConfigError, CRSError, InputDataError, format_rows
 from ..io.delimited import KEEP_PREFIX, TEXT_COLUMNS, convert_units, parse_time, read_delimited, to_numeric
+from ..io.tables import dictionary_encode
 from .base import Check, Contract, Stage, StageContext, StageOutput
 
 NUMERIC_COLUMNS = (
@@ -580,7 +581,12 @@ def run(ctx: StageContext) -> StageOutput:
         f"output CRS {out_crs.name}"
     ]
     return StageOutput(
-        table=table, metrics=metrics, state=state, notes=notes, checks=checks, warnings=warnings
+        table=dictionary_encode(table),
+        metrics=metrics,
+        state=state,
+        notes=notes,
+        checks=checks,
+        warnings=warnings,
     )
 
 

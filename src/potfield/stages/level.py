@@ -65,7 +65,7 @@ def _unit(config) -> str:
 
 
 def _passthrough(table: pd.DataFrame, value: str, note: str, metrics=None) -> StageOutput:
-    table = table.copy()
+    table = table.copy(deep=False)
     table["level_correction"] = 0.0
     table[LEVELLED_COLUMN] = table[value].to_numpy(dtype=float)
     return StageOutput(
@@ -224,7 +224,7 @@ def run(ctx: StageContext) -> StageOutput:
         take = target & np.isfinite(filled)
         correction[take] = filled[take]
         neighbour_lines = [n for n in adjust.unlevelled if (take & (lines == n)).any()]
-    out = table.copy()
+    out = table.copy(deep=False)
     out["level_correction"] = correction
     out["anomaly_levelled"] = values + correction
 

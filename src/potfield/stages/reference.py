@@ -54,7 +54,7 @@ def _as_is(ctx: StageContext) -> StageOutput:
                 fix="give the readings in mGal, or enable the drift and reference stages",
             )
         values = table[source].to_numpy(dtype=float)
-    out = table.copy()
+    out = table.copy(deep=False)
     out[column] = values
     why = (
         f"reference stage disabled ([reference] enabled = false): {column} = {source} as "

@@ -180,7 +180,7 @@ def run_gravity(ctx: StageContext) -> StageOutput:
     if ctx.table is None:
         raise StageError("no readings table", fix="run the ingest stage first")
     cfg = ctx.config.reference
-    table = ctx.table.copy()
+    table = ctx.table.copy(deep=False)  # copy-on-write: new columns only
     notes: list[str] = []
     warnings: list[str] = []
     checks: list[Check] = []

@@ -237,7 +237,7 @@ def run_magnetic(ctx: StageContext) -> StageOutput:
         years,
     )
     missing = ~np.isfinite(field.total)
-    out = StageOutput(table=table.copy())
+    out = StageOutput(table=table.copy(deep=False))
     new = out.table
     new["igrf"] = field.total
     notes, warnings = out.notes, out.warnings

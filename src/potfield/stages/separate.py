@@ -131,7 +131,7 @@ def run_observatory(ctx: StageContext) -> StageOutput:
                 shift[col] = np.nanmedian(first.residual[k][:, col], axis=0)
                 baselines[c] += shift
                 arrays[c] = arrays[c] - shift[None, :]
-    out = StageOutput(table=table.copy())
+    out = StageOutput(table=table.copy(deep=False))
     ctx.progress(f"Gauss coefficients at {n_t} epochs from {int(has_data.sum())} stations")
     fit, rejected, station_rms, zscore = _fit_rejecting(cfg, arrays, positions, st_names, has_data)
     # residuals at every station, the rejected ones included (their data were left out of the fit)
@@ -625,7 +625,7 @@ def run_grids(ctx: StageContext) -> StageOutput:
         return StageOutput(
             notes=["no grid from the grid stage (not available or nothing gridded): separation skipped"]
         )
-    out = StageOutput(table=None if table is None else table.copy())
+    out = StageOutput(table=None if table is None else table.copy(deep=False))
     present = [c for c in VECTOR if table is not None and c in table.columns]
     if ctx.config.kind == "magnetic" and 0 < len(present) < 3:
         missing = [c for c in VECTOR if c not in present]
