@@ -49,6 +49,25 @@ def test_damped_lstsq_per_unknown_damping_and_rank_deficient():
     np.testing.assert_allclose(twin @ x, twin @ ref, rtol=1e-7, atol=1e-9)
 
 
+def test_one_normal_matrix_serves_many_dampings():
+    # Reference: numpy's general product A^T A, and scipy.linalg.lstsq on the augmented system
+    # [A; sqrt(mu) I] (Aster, Borchers and Thurber 2013, eq. 4.4) for every damping.
+    rng = np.random.default_rng(5)
+    a = rng.normal(size=(60, 9))
+    b = rng.normal(size=60)
+    normal = nm.normal_matrix(a)
+    np.testing.assert_allclose(normal, a.T @ a, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(nm.normal_matrix(np.asfortranarray(a)), a.T @ a, rtol=1e-12, atol=1e-12)
+    kept = normal.copy()
+    for damping in (1e-6, 1e-2, 3.0):
+        aug = np.vstack([a, np.sqrt(damping) * np.eye(9)])
+        ref = scipy.linalg.lstsq(aug, np.r_[b, np.zeros(9)])[0]
+        np.testing.assert_allclose(
+            nm.solve_damped_normal(normal, a.T @ b, damping), ref, rtol=1e-9, atol=1e-12
+        )
+    np.testing.assert_array_equal(normal, kept)  # the normal matrix is not modified
+
+
 # ------------------------------------------------------------------------------------------------
 # block median
 # ------------------------------------------------------------------------------------------------

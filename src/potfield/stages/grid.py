@@ -236,7 +236,9 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
             depths=depths,
             dampings=dampings,
             block_size=block,
-            method=cfg.method,
+            # the trials use the final fit's solver (a window of a large survey would else be
+            # scored with dense sources and the whole survey fitted on the lattice)
+            method="dense" if dense else "fft",
             folds=cfg.cv_folds,
             cv_spacing=cv_spacing,
             tol=CV_TOL,

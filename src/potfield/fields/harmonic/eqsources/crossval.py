@@ -7,7 +7,7 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 
-from ..._numerics import median_spacing
+from ..._numerics import median_spacing, single_thread_blas
 from .lattice import layer_ceiling, source_spacing
 from .solve import (
     DenseProblem,
@@ -107,10 +107,12 @@ def cross_validate(
                     ceiling,
                 )
             else:
-                # one Jacobian and normal matrix per fold and depth serve every damping
-                problem = DenseProblem(
-                    e[train], n[train], u[train], w[train], depth, block_size, depth_type, ceiling
-                )
+                # one Jacobian and normal matrix per fold and depth serve every damping; small
+                # factorisations: BLAS on one thread (potfield.fields._numerics.single_thread_blas)
+                with single_thread_blas():
+                    problem = DenseProblem(
+                        e[train], n[train], u[train], w[train], depth, block_size, depth_type, ceiling
+                    )
                 test_jac = dense_jacobian(e[test], n[test], u[test], problem.points, problem.scale)
             z = None
             for damp in sorted(fold_scores, reverse=True):
@@ -118,7 +120,8 @@ def cross_validate(
                     coefs, z, _ = problem.solve(d[train], damp, tol=tol, maxiter=maxiter, z0=z)
                     pred = problem.model(coefs, damp, region).predict((e[test], n[test], u[test]))
                 else:
-                    pred = test_jac @ problem.solve(d[train], damp)
+                    with single_thread_blas():
+                        pred = test_jac @ problem.solve(d[train], damp)
                 fold_scores[damp].append(_scores(d[test], pred, w[test]))
             del problem
         for damp, values in fold_scores.items():

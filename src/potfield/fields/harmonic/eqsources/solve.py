@@ -13,6 +13,7 @@ from ..._numerics import (
     median_spacing,
     nearest_neighbour_distances,
     normal_matrix,
+    single_thread_blas,
     solve_damped_normal,
 )
 from ...errors import BadParameter, NotEnoughData
@@ -213,9 +214,10 @@ class LatticeProblem:
         """Additive Schwarz preconditioner of the damped normal matrix (module
         :mod:`.precondition`). The local normal matrices are computed once and kept, so a
         search over dampings only refactors them."""
-        if self._normals is None:
-            self._normals = local_normals(self)
-        return Schwarz(self._normals, damping, self.n_sources, self.chunks)
+        with single_thread_blas():  # ~1,500 small products and factorisations
+            if self._normals is None:
+                self._normals = local_normals(self)
+            return Schwarz(self._normals, damping, self.n_sources, self.chunks)
 
     def solve(
         self,
