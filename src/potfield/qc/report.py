@@ -17,7 +17,6 @@ import pandas as pd
 
 from ..io.atomic import write_text
 from ..kinds import KIND_ORDER
-from . import maps
 
 CAUTION = (
     "These results need review by a qualified geophysicist before they are used for any "
@@ -62,16 +61,38 @@ def _fig(figures: dict, stage: str, title: str, path: Path) -> None:
     figures.setdefault(stage, []).append((title, path))
 
 
+class GridReader:
+    """Reads each grid file once per report (the maps, the panels and the deliverables table all
+    use the same grids)."""
+
+    def __init__(self):
+        self._grids: dict[Path, object] = {}
+
+    def __call__(self, path: Path):
+        from ..io.grids import read_netcdf
+
+        path = Path(path)
+        if path not in self._grids:
+            self._grids[path] = read_netcdf(path)
+        return self._grids[path]
+
+
 def field_unit(kind: str) -> str:
     return "mGal" if kind == "gravity" else "nT"
 
 
 def make_figures(
-    survey, config, manifest: dict, table: pd.DataFrame | None, grid_paths: dict[str, Path]
+    survey,
+    config,
+    manifest: dict,
+    table: pd.DataFrame | None,
+    grid_paths: dict[str, Path],
+    read_grid: GridReader | None = None,
 ) -> dict[str, list[tuple[str, Path]]]:
     """Draw every QC figure the outputs allow; returns stage -> [(caption, png path)]."""
-    from ..io.grids import read_netcdf
+    from . import maps
 
+    read_netcdf = read_grid or GridReader()
     figures: dict[str, list[tuple[str, Path]]] = {}
     out = survey.maps
     dpi = config.report.dpi
@@ -452,9 +473,12 @@ window.addEventListener('load', function () {
 """
 
 
-def _grid_rows(manifest: dict, grid_paths: dict[str, Path], order) -> list[dict]:
-    from ..io.grids import read_netcdf
+def _grid_rows(
+    manifest: dict, grid_paths: dict[str, Path], order, read_grid: GridReader | None = None
+) -> list[dict]:
+    from . import maps
 
+    read_netcdf = read_grid or GridReader()
     rows = []
     stages = manifest.get("stages", {})
     for stage in order:
@@ -576,6 +600,7 @@ def render_html(
     survey_toml: str | None = None,
     tables: list[Path] | None = None,
     table: pd.DataFrame | None = None,
+    read_grid: GridReader | None = None,
 ) -> str:
     """The report page: contents, deliverables, failed checks, QC per stage, provenance."""
 
@@ -642,7 +667,7 @@ def render_html(
     )
 
     parts.append("<h2 id='deliverables'>Deliverables</h2>")
-    grid_rows = _grid_rows(manifest, grid_paths or {}, order)
+    grid_rows = _grid_rows(manifest, grid_paths or {}, order, read_grid)
     parts.append(
         "<p>Links are relative to this report (the out/ folder)."
         + (
@@ -762,7 +787,8 @@ def build_report(
     survey, config, manifest: dict, table: pd.DataFrame | None, grid_paths: dict[str, Path]
 ) -> tuple[Path, int]:
     """Draw the maps and write out/report.html; returns (path, number of figures)."""
-    figures = make_figures(survey, config, manifest, table, grid_paths)
+    read_grid = GridReader()
+    figures = make_figures(survey, config, manifest, table, grid_paths, read_grid)
     checks = []
 
     for name in KIND_ORDER.get(config.kind, ()):
@@ -771,7 +797,7 @@ def build_report(
     toml_path = survey.root / "survey.toml"
     survey_toml = toml_path.read_text(encoding="utf-8") if toml_path.is_file() else None
     tables = sorted(p for p in survey.tables.glob("*.csv"))
-    text = render_html(config, manifest, figures, checks, grid_paths, survey_toml, tables, table)
+    text = render_html(config, manifest, figures, checks, grid_paths, survey_toml, tables, table, read_grid)
     write_text(survey.report_path, text)
     return survey.report_path, sum(len(v) for v in figures.values())
 

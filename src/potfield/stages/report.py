@@ -5,11 +5,14 @@ The same builder serves ``potfield report DIR``, which rebuilds from out/ withou
 
 from __future__ import annotations
 
-from ..qc.report import build_report
 from .base import Contract, Stage, StageContext, StageOutput
 
 
 def run(ctx: StageContext) -> StageOutput:
+    # matplotlib (about 0.6 s to import) is loaded only when the report is drawn, not whenever
+    # the runner loads the stage list
+    from ..qc.report import build_report
+
     manifest = dict(ctx.manifest)
     manifest["stages"] = {k: v for k, v in manifest.get("stages", {}).items() if k != "report"}
     manifest["spec"] = {k: list(v) for k, v in ctx.spec.items()}
