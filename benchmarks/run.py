@@ -1,7 +1,7 @@
 """`make bench`: run every bench_*() function of benchmarks/bench_*.py and write JSON results.
 
 Usage: python benchmarks/run.py [TOPIC | TOPIC.FUNCTION ...]
-       (e.g. `ingest igrf` or `grid.bench_grid_vs_harmonica_demo`; default: all)
+       (e.g. `ingest igrf` or `pipeline.bench_pipeline`; default: all)
 Results: benchmarks/results/<topic>.json and benchmarks/results/summary.md.
 """
 
