@@ -88,54 +88,53 @@ def cross_validate(
     )
     splits = list(kfold.split(np.column_stack([e, n])))
     rows = []
-    for depth in depths:
-        ceiling = layer_ceiling(grid_height, depth)
-        fold_scores = {float(damp): [] for damp in dampings}
-        for train, test in splits:
-            region = (e[train].min(), e[train].max(), n[train].min(), n[train].max())
-            n_est = _source_count(train.size, region, spacing if block_size else None)
-            chosen = _choose_method(method, n_est, block_size, e, n)
-            if chosen == "fft":
-                problem = LatticeProblem(
-                    e[train],
-                    n[train],
-                    u[train],
-                    w[train],
-                    depth,
-                    source_spacing(depth, spacing),
-                    depth_type,
-                    ceiling,
-                )
-            else:
-                # one Jacobian and normal matrix per fold and depth serve every damping; small
-                # factorisations: BLAS on one thread (potfield.fields._numerics.single_thread_blas)
-                with single_thread_blas():
+    # many small factorisations: BLAS on one thread (potfield.fields._numerics.single_thread_blas)
+    with single_thread_blas():
+        for depth in depths:
+            ceiling = layer_ceiling(grid_height, depth)
+            fold_scores = {float(damp): [] for damp in dampings}
+            for train, test in splits:
+                region = (e[train].min(), e[train].max(), n[train].min(), n[train].max())
+                n_est = _source_count(train.size, region, spacing if block_size else None)
+                chosen = _choose_method(method, n_est, block_size, e, n)
+                if chosen == "fft":
+                    problem = LatticeProblem(
+                        e[train],
+                        n[train],
+                        u[train],
+                        w[train],
+                        depth,
+                        source_spacing(depth, spacing),
+                        depth_type,
+                        ceiling,
+                    )
+                else:
+                    # one Jacobian and normal matrix per fold and depth serve every damping
                     problem = DenseProblem(
                         e[train], n[train], u[train], w[train], depth, block_size, depth_type, ceiling
                     )
-                test_jac = dense_jacobian(e[test], n[test], u[test], problem.points, problem.scale)
-            z = None
-            for damp in sorted(fold_scores, reverse=True):
-                if chosen == "fft":
-                    coefs, z, _ = problem.solve(d[train], damp, tol=tol, maxiter=maxiter, z0=z)
-                    pred = problem.model(coefs, damp, region).predict((e[test], n[test], u[test]))
-                else:
-                    with single_thread_blas():
+                    test_jac = dense_jacobian(e[test], n[test], u[test], problem.points, problem.scale)
+                z = None
+                for damp in sorted(fold_scores, reverse=True):
+                    if chosen == "fft":
+                        coefs, z, _ = problem.solve(d[train], damp, tol=tol, maxiter=maxiter, z0=z)
+                        pred = problem.model(coefs, damp, region).predict((e[test], n[test], u[test]))
+                    else:
                         pred = test_jac @ problem.solve(d[train], damp)
-                fold_scores[damp].append(_scores(d[test], pred, w[test]))
-            del problem
-        for damp, values in fold_scores.items():
-            arr = np.array(values)
-            se = float(arr[:, 0].std(ddof=1) / np.sqrt(len(arr))) if len(arr) > 1 else 0.0
-            rows.append(
-                {
-                    "depth": float(depth),
-                    "damping": damp,
-                    "r2": float(arr[:, 0].mean()),
-                    "r2_se": se,
-                    "rms": float(arr[:, 1].mean()),
-                }
-            )
+                    fold_scores[damp].append(_scores(d[test], pred, w[test]))
+                del problem
+            for damp, values in fold_scores.items():
+                arr = np.array(values)
+                se = float(arr[:, 0].std(ddof=1) / np.sqrt(len(arr))) if len(arr) > 1 else 0.0
+                rows.append(
+                    {
+                        "depth": float(depth),
+                        "damping": damp,
+                        "r2": float(arr[:, 0].mean()),
+                        "r2_se": se,
+                        "rms": float(arr[:, 1].mean()),
+                    }
+                )
     scores = pd.DataFrame(rows).sort_values(["r2", "damping"], ascending=False, ignore_index=True)
     scores["chosen"] = scores.index == 0
     best = scores.drop(columns="chosen").iloc[0].to_dict()

@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 import scipy.linalg
 
+from ..._numerics import normal_matrix
 from .kernels import _dense_jacobian, _schwarz_apply
 
 if TYPE_CHECKING:
@@ -131,7 +132,5 @@ def local_normals(problem: LatticeProblem) -> list[tuple[np.ndarray, np.ndarray]
                 self.e[data], self.n[data], self.u[data], se[src], sn[src], su[src], self.scale, jac
             )
             jac *= (self.sw[data] * np.where(far[keep], np.sqrt(PRECOND_FAR_STRIDE), 1.0))[:, None]
-            # J^T J by a symmetric rank-k update: half the work of a general product
-            lower = scipy.linalg.blas.dsyrk(1.0, jac, trans=1, lower=1)
-            blocks.append((src, lower + np.tril(lower, -1).T))
+            blocks.append((src, normal_matrix(jac)))
     return blocks
