@@ -268,11 +268,6 @@ def _significant_places(values: np.ndarray, digits: int = 10) -> int | None:
     return max(0, digits - 1 - int(math.floor(math.log10(float(finite.max())))))
 
 
-def _significant(values: np.ndarray, digits: int = 10) -> np.ndarray:
-    places = _significant_places(values, digits)
-    return values if places is None else np.round(values, places)
-
-
 def float_places(frame: pd.DataFrame, kind: str = "magnetic") -> dict[str, int | None]:
     """Decimals of every float column of ``frame`` as :func:`format_table` rounds it (None:
     unrounded), from the whole column: the same for any piece of the table."""
@@ -294,6 +289,7 @@ def format_table(
     ``places`` (from :func:`float_places` of the whole table) fixes the decimals of the float
     columns, so that pieces of a large table are rounded as the whole table would be.
     """
+    places = float_places(frame, kind) if places is None else places
     out = {}
     for name in frame.columns:
         column = frame[name]
@@ -305,11 +301,8 @@ def format_table(
             out[name] = out[name].where(column.notna(), None)
         elif pd.api.types.is_float_dtype(column):
             values = column.to_numpy(dtype=float)
-            if places is not None:
-                rounded = values if places[name] is None else np.round(values, places[name])
-            else:
-                fixed = decimals_for(str(name), kind)
-                rounded = np.round(values, fixed) if fixed is not None else _significant(values)
+            decimals = places[name]
+            rounded = values if decimals is None else np.round(values, decimals)
             out[name] = rounded + 0.0  # no "-0"
         else:
             out[name] = column
