@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyproj
+import pytest
 import rioxarray
 import xarray as xr
 
@@ -45,3 +46,18 @@ def test_geotiff_is_north_up_with_crs(tmp_path):
     assert raster.y.values[0] > raster.y.values[-1]  # first row is the northernmost (GIS order)
     np.testing.assert_allclose(raster.values[0], grid.values[-1])
     np.testing.assert_allclose(raster.x.values, grid.easting.values)
+
+
+def test_a_grid_read_twice_comes_from_memory_until_its_file_changes(tmp_path):
+    """Reads of an unchanged file share read-only values; a rewritten file is read again
+    (common practice for a file cache: keyed by modification time and size)."""
+    grid = _grid()
+    path = write_netcdf(tmp_path / "a.nc", grid, "EPSG:32755")
+    first, second = read_netcdf(path), read_netcdf(path)
+    assert first is not second and np.shares_memory(first.values, second.values)
+    with pytest.raises(ValueError):
+        first.values[0, 0] = 0.0  # a grid is never changed in place
+    second.attrs["units"] = "changed"  # a caller's attributes are its own
+    assert read_netcdf(path).attrs["units"] == "nT"
+    write_netcdf(path, (grid * 2).rename("anomaly").assign_attrs(grid.attrs), "EPSG:32755")
+    np.testing.assert_array_equal(read_netcdf(path).values, 2 * grid.values)

@@ -16,6 +16,7 @@ wall-clock time, so the same inputs give the same bytes; the run time is in mani
 
 from __future__ import annotations
 
+from collections import OrderedDict
 from pathlib import Path
 
 import numpy as np
@@ -197,8 +198,37 @@ def write_netcdf(path: Path | str, grid: xr.DataArray, crs) -> Path:
     return Path(path)
 
 
+#: Grids already read in this process: file -> ((mtime_ns, size), grid). A run reads each grid
+#: several times (later stages, the report's maps and tables, products.nc) and each read of a
+#: small NetCDF file costs ~45 ms of HDF5 bookkeeping. Least recently used first out, beyond
+#: :data:`READ_MEMO_BYTES` of grid values.
+_READ_MEMO: OrderedDict[Path, tuple[tuple[int, int], xr.DataArray]] = OrderedDict()
+READ_MEMO_BYTES = 256 * 2**20
+
+
 def read_netcdf(path: Path | str) -> xr.DataArray:
-    """Read a grid written by :func:`write_netcdf` (loaded into memory, file closed)."""
+    """Read a grid written by :func:`write_netcdf` (loaded into memory, file closed).
+
+    A file read before and unchanged since (same modification time and size) is not read again:
+    the caller gets a new DataArray on the same values, which are read-only (a grid is never
+    changed in place; an attempt fails loudly instead of changing another caller's grid).
+    """
+    path = Path(path).resolve()
+    info = path.stat()
+    stamp = (info.st_mtime_ns, info.st_size)
+    memo = _READ_MEMO.get(path)
+    if memo is not None and memo[0] == stamp:
+        _READ_MEMO.move_to_end(path)
+        return memo[1].copy(deep=False)
+    grid = _read_netcdf_file(path)
+    grid.values.setflags(write=False)
+    _READ_MEMO[path] = (stamp, grid)
+    while sum(g.nbytes for _, g in _READ_MEMO.values()) > READ_MEMO_BYTES and len(_READ_MEMO) > 1:
+        _READ_MEMO.popitem(last=False)
+    return grid.copy(deep=False)
+
+
+def _read_netcdf_file(path: Path) -> xr.DataArray:
     with xr.open_dataset(path, engine="h5netcdf") as ds:
         names = [v for v in ds.data_vars if v != "crs"]
         grid = ds[names[0]].load()

@@ -10,6 +10,7 @@ import base64
 import html
 import json
 import re
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -57,8 +58,10 @@ def _read_table(path: Path) -> pd.DataFrame | None:
     return pd.read_csv(path) if path.is_file() else None
 
 
-def _fig(figures: dict, stage: str, title: str, path: Path) -> None:
-    figures.setdefault(stage, []).append((title, path))
+def _fig(figures: dict, stage: str, title: str, draw: partial) -> None:
+    """Queue one figure: ``draw()`` draws and writes it and returns its path (see
+    :func:`potfield.qc.render.render_all`)."""
+    figures.setdefault(stage, []).append((title, draw))
 
 
 class GridReader:
@@ -115,7 +118,7 @@ def make_figures(
                 figures,
                 "ingest",
                 "Observatory stations on a longitude-latitude map",
-                maps.plot_station_map(stations, out / "stations.png", dpi=dpi),
+                partial(maps.plot_station_map, stations, out / "stations.png", dpi=dpi),
             )
             parts = [c for c in ("disturbance_north", "disturbance_east", "disturbance_down") if c in table]
             if parts:
@@ -123,7 +126,7 @@ def make_figures(
                     figures,
                     "reference",
                     "Disturbance (observed minus IGRF-14) at each station",
-                    maps.plot_station_series(table, parts, out / "station_series.png", dpi=dpi),
+                    partial(maps.plot_station_series, table, parts, out / "station_series.png", dpi=dpi),
                 )
         else:
             _fig(
@@ -134,7 +137,8 @@ def make_figures(
                     if gravity
                     else "Survey lines and flagged readings"
                 ),
-                maps.plot_tracks(
+                partial(
+                    maps.plot_tracks,
                     table,
                     out / "tracks.png",
                     crs_name,
@@ -148,7 +152,8 @@ def make_figures(
                 "ingest",
                 "Distance from every point of the area to the nearest "
                 + ("station" if gravity else "reading"),
-                maps.plot_coverage(
+                partial(
+                    maps.plot_coverage,
                     table,
                     out / "coverage.png",
                     crs_name,
@@ -163,8 +168,13 @@ def make_figures(
                 figures,
                 "ingest",
                 "Sensor height minus the smoothed flying surface",
-                maps.plot_height_deviation(
-                    table, out / "height_deviation.png", crs_name, tol("drape_tolerance_m"), dpi
+                partial(
+                    maps.plot_height_deviation,
+                    table,
+                    out / "height_deviation.png",
+                    crs_name,
+                    tol("drape_tolerance_m"),
+                    dpi,
                 ),
             )
         if (
@@ -176,8 +186,12 @@ def make_figures(
                 figures,
                 "clean",
                 "Fourth-difference noise along lines",
-                maps.plot_noise_profiles(
-                    table, out / "noise_profiles.png", tolerance=tol("noise_fourth_difference_nT"), dpi=dpi
+                partial(
+                    maps.plot_noise_profiles,
+                    table,
+                    out / "noise_profiles.png",
+                    tolerance=tol("noise_fourth_difference_nT"),
+                    dpi=dpi,
                 ),
             )
         words = {
@@ -191,7 +205,8 @@ def make_figures(
                     figures,
                     "reference",
                     caption,
-                    maps.plot_points(
+                    partial(
+                        maps.plot_points,
                         table,
                         column,
                         out / f"points_{column}.png",
@@ -212,7 +227,8 @@ def make_figures(
                 figures,
                 "level",
                 "Levelled anomaly along a selection of lines",
-                maps.plot_line_profiles(
+                partial(
+                    maps.plot_line_profiles,
                     table,
                     "anomaly_levelled",
                     out / "line_profiles.png",
@@ -226,7 +242,8 @@ def make_figures(
                 figures,
                 "grid",
                 "Grid residual: each reading minus the gridding model",
-                maps.plot_grid_residual(
+                partial(
+                    maps.plot_grid_residual,
                     table,
                     out / "grid_residual.png",
                     crs_name,
@@ -243,7 +260,9 @@ def make_figures(
             figures,
             "diurnal",
             "Base-station record: variation about its median",
-            maps.plot_base_record(base, out / "diurnal_record.png", tol("diurnal_chord_60s_nT"), dpi),
+            partial(
+                maps.plot_base_record, base, out / "diurnal_record.png", tol("diurnal_chord_60s_nT"), dpi
+            ),
         )
     loops = _read_table(survey.tables / "loops.csv")
     if loops is not None and len(loops):
@@ -253,7 +272,8 @@ def make_figures(
                 figures,
                 "drift",
                 "Drift rate of each loop",
-                maps.plot_bars(
+                partial(
+                    maps.plot_bars,
                     loops[loops.columns[0]],
                     loops[rate].to_numpy(float),
                     out / "drift_rates.png",
@@ -273,7 +293,7 @@ def make_figures(
             figures,
             "level",
             "Crossover misclosures before and after levelling",
-            level_plots.plot_crossover_histograms(cx, out / level_plots.FIGURE_NAME, units, dpi),
+            partial(level_plots.plot_crossover_histograms, cx, out / level_plots.FIGURE_NAME, units, dpi),
         )
     elif cx is not None and len(cx) and "difference" in cx:
         series = {"before levelling": cx["difference"].to_numpy(float)}
@@ -286,8 +306,13 @@ def make_figures(
             figures,
             "level",
             "Crossover differences before and after levelling",
-            maps.plot_histograms(
-                series, out / "crossovers.png", "Crossover differences", f"line minus tie ({units})", dpi
+            partial(
+                maps.plot_histograms,
+                series,
+                out / "crossovers.png",
+                "Crossover differences",
+                f"line minus tie ({units})",
+                dpi,
             ),
         )
 
@@ -302,7 +327,7 @@ def make_figures(
                 figures,
                 stage_name,
                 caption,
-                maps.plot_grid(grid, out / f"grid_{grid_name}.png", crs_name, dpi=dpi, survey=name),
+                partial(maps.plot_grid, grid, out / f"grid_{grid_name}.png", crs_name, dpi=dpi, survey=name),
             )
     sep = stages.get("separate", {}).get("grids", [])
     regional = [g for g in sep if "regional" in g]
@@ -316,7 +341,8 @@ def make_figures(
             figures,
             "separate",
             "Regional and residual fields side by side",
-            maps.plot_panels(
+            partial(
+                maps.plot_panels,
                 panel,
                 out / "separation_panels.png",
                 crs_name,
@@ -332,10 +358,14 @@ def make_figures(
                 figures,
                 "separate",
                 "Gauss coefficients of the internal and external fields",
-                maps.plot_coefficients(coef, out / "coefficients.png", dpi=dpi),
+                partial(maps.plot_coefficients, coef, out / "coefficients.png", dpi=dpi),
             )
             break
-    return figures
+    from .render import render_all
+
+    draws = [draw for queued in figures.values() for _, draw in queued]
+    paths = iter(render_all(draws))
+    return {stage: [(title, next(paths)) for title, _ in queued] for stage, queued in figures.items()}
 
 
 def _img(path: Path, title: str) -> str:
