@@ -335,51 +335,102 @@ def _near_entries(
 
 
 @numba.njit(parallel=True, cache=True)
-def _predict_lattice(
-    e, n, u, levels, zl, x0, y0, dx, order, src_id, coefs, src_z, src_v, table, reach, scale, half, near, out
-):
-    """Interpolate the level grids to points and (``near``) add the exact near field on the fly."""
+def _nearest_nodes(e, n, x0, y0, dx, nx, ny, out):
+    """Number ``row * nx + column`` of the lattice node nearest to every point (clamped)."""
+    for i in numba.prange(e.size):
+        ix = min(max(int(np.floor((e[i] - x0) / dx + 0.5)), 0), nx - 1)
+        iy = min(max(int(np.floor((n[i] - y0) / dx + 0.5)), 0), ny - 1)
+        out[i] = iy * nx + ix
+
+
+@numba.njit(parallel=True, cache=True)
+def _predict_lattice(e, n, u, levels, zl, x0, y0, dx, order, out):
+    """Interpolate the level grids to the points (no near field)."""
     nlev, ny, nx = levels.shape
     for i in numba.prange(e.size):
-        fx, fy, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
-        val = 0.0
-        for lev in range(nlev):
-            acc = 0.0
-            for a in range(order):
-                row = 0.0
-                for b in range(order):
-                    row += wx[b] * levels[lev, by + a, bx + b]
-                acc += wy[a] * row
-            val += wz[lev] * acc
-        if near:
-            ix = int(np.floor(fx + 0.5))
-            iy = int(np.floor(fy + 0.5))
-            for q in range(max(iy - half, 0), min(iy + half + 1, ny)):
-                for p in range(max(ix - half, 0), min(ix + half + 1, nx)):
+        _, _, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
+        out[i] = _interpolate(levels, 0, 0, bx, by, wx, wy, wz)
+
+
+@numba.njit(cache=True)
+def _interpolate(grids, oy, ox, bx, by, wx, wy, wz):
+    """Lagrange interpolation of ``grids[level, row - oy, column - ox]`` with a point's stencil."""
+    order = wx.size
+    val = 0.0
+    for lev in range(wz.size):
+        acc = 0.0
+        for a in range(order):
+            row = 0.0
+            for b in range(order):
+                row += wx[b] * grids[lev, by + a - oy, bx + b - ox]
+            acc += wy[a] * row
+        val += wz[lev] * acc
+    return val
+
+
+@numba.njit(parallel=True, cache=True)
+def _predict_near(
+    e, n, u, ranked, starts, levels, zl, x0, y0, dx, order, src_id, coefs, src_z, src_v, table, reach, scale,
+    half, out
+):  # fmt: skip
+    """Interpolated level grids plus the exact near field, one group of points at a time.
+
+    The points of a group share their nearest lattice node (``ranked[starts[g]:starts[g+1]]``),
+    hence the same near sources. Their cored lattice field is formed once per group on the
+    patch of nodes the group's stencils cover and taken off the level grids there; each point
+    then interpolates the patch and adds the sources' exact field. Per point this is the sum
+    ``interpolated levels + sum_j c_j (exact_j - interpolated cored kernel_j)`` of
+    :func:`_near_value`, with the kernel interpolation done once per group instead of once per
+    point and source (on the 1e6-reading demo, about 15 readings share a node).
+    """
+    nlev, ny, nx = levels.shape
+    npl = src_v.shape[1]
+    for g in numba.prange(starts.size - 1):
+        lo = starts[g]
+        hi = starts[g + 1]
+        bx0, by0, bx1, by1 = nx, ny, -1, -1
+        for k in range(lo, hi):
+            i = ranked[k]
+            bx = _stencil_base((e[i] - x0) / dx, nx, order)
+            by = _stencil_base((n[i] - y0) / dx, ny, order)
+            bx0, bx1 = min(bx0, bx), max(bx1, bx)
+            by0, by1 = min(by0, by), max(by1, by)
+        width = bx1 - bx0 + order
+        height = by1 - by0 + order
+        patch = levels[:, by0 : by0 + height, bx0 : bx0 + width].copy()
+        first = ranked[lo]
+        ix = min(max(int(np.floor((e[first] - x0) / dx + 0.5)), 0), nx - 1)
+        iy = min(max(int(np.floor((n[first] - y0) / dx + 0.5)), 0), ny - 1)
+        q0, q1 = max(iy - half, 0), min(iy + half + 1, ny)
+        p0, p1 = max(ix - half, 0), min(ix + half + 1, nx)
+        for q in range(q0, q1):
+            for p in range(p0, p1):
+                j = src_id[q, p]
+                if j < 0:
+                    continue
+                cj = coefs[j]
+                for lev in range(nlev):
+                    for a in range(height):
+                        oy = by0 + a - q + reach
+                        for b in range(width):
+                            ox = bx0 + b - p + reach
+                            kernel = 0.0
+                            for pl in range(npl):
+                                kernel += src_v[j, pl] * table[lev, oy, ox, pl]
+                            patch[lev, a, b] -= cj * kernel
+        for k in range(lo, hi):
+            i = ranked[k]
+            _, _, bx, by, wx, wy, wz = _point_stencil(e[i], n[i], u[i], zl, x0, y0, dx, nx, ny, order)
+            val = _interpolate(patch, by0, bx0, bx, by, wx, wy, wz)
+            for q in range(q0, q1):
+                for p in range(p0, p1):
                     j = src_id[q, p]
                     if j >= 0:
-                        val += coefs[j] * _near_value(
-                            e[i],
-                            n[i],
-                            u[i],
-                            p,
-                            q,
-                            src_z[j],
-                            src_v[j],
-                            table,
-                            reach,
-                            wz,
-                            wy,
-                            wx,
-                            bx,
-                            by,
-                            x0,
-                            y0,
-                            dx,
-                            order,
-                            scale,
-                        )
-        out[i] = val
+                        ddx = e[i] - (x0 + p * dx)
+                        ddy = n[i] - (y0 + q * dx)
+                        ddz = u[i] - src_z[j]
+                        val += coefs[j] * scale / np.sqrt(ddx * ddx + ddy * ddy + ddz * ddz)
+            out[i] = val
 
 
 @numba.njit(parallel=True, cache=True)
@@ -446,9 +497,20 @@ def predict_lattice(
     out: np.ndarray,
 ) -> None:
     """Interpolate the level grids (``levels``, shaped like ``grid``) to the points and, with
-    ``with_near``, add the exact near field of the sources on the fly."""
-    _predict_lattice(
+    ``with_near``, add the exact near field of the sources (points grouped by nearest node)."""
+    if not with_near:
+        _predict_lattice(*points, levels, grid.levels, grid.x0, grid.y0, grid.dx, grid.order, out)
+        return
+    nodes = np.empty(points.easting.size, dtype=np.int64)
+    _nearest_nodes(points.easting, points.northing, grid.x0, grid.y0, grid.dx, grid.nx, grid.ny, nodes)
+    ranked = np.argsort(nodes, kind="stable")
+    nodes = nodes[ranked]
+    starts = np.flatnonzero(np.diff(nodes)) + 1
+    starts = np.concatenate(([0], starts, [nodes.size])).astype(np.int64)
+    _predict_near(
         *points,
+        ranked,
+        starts,
         levels,
         grid.levels,
         grid.x0,
@@ -463,6 +525,5 @@ def predict_lattice(
         near.reach,
         near.scale,
         near.half,
-        with_near,
         out,
     )
