@@ -48,7 +48,6 @@ DECIMALS_BY_NAME = {"height": 3, "instrument_height": 3, "elevation": 3}
 
 #: Time format of every table (ISO 8601 UTC, milliseconds).
 TIME_FORMAT = "%Y-%m-%dT%H:%M:%S.%LZ"
-TIME_FORMAT_PANDAS = "%Y-%m-%dT%H:%M:%S.%fZ"  # trimmed to milliseconds by format_times
 
 # name -> (unit, meaning, stage). Unit "field" means nT (magnetic) or mGal (gravity).
 COLUMNS: dict[str, tuple[str, str, str]] = {
@@ -281,6 +280,18 @@ def float_places(frame: pd.DataFrame, kind: str = "magnetic") -> dict[str, int |
     return places
 
 
+def iso_millis(times: np.ndarray) -> np.ndarray:
+    """ISO 8601 UTC text to the millisecond, ``2024-11-18T22:30:00.000Z``, of naive UTC
+    datetime64 values (truncated, not rounded, to the millisecond; NaT -> None). numpy's own
+    formatting: pandas' strftime took half the time of writing a million-row table."""
+    nanoseconds = times.astype("datetime64[ns]").view(np.int64)
+    missing = np.isnat(times)
+    millis = np.floor_divide(nanoseconds, 1_000_000).astype("datetime64[ms]")
+    text = np.char.add(np.datetime_as_string(millis, unit="ms"), "Z").astype(object)
+    text[missing] = None
+    return text
+
+
 def format_table(
     frame: pd.DataFrame, kind: str = "magnetic", places: dict[str, int | None] | None = None
 ) -> pd.DataFrame:
@@ -296,9 +307,7 @@ def format_table(
         if pd.api.types.is_datetime64_any_dtype(column):
             if getattr(column.dt, "tz", None) is not None:
                 column = column.dt.tz_convert("UTC").dt.tz_localize(None)
-            text = column.dt.strftime(TIME_FORMAT_PANDAS)
-            out[name] = text.str.slice(0, 23) + "Z"
-            out[name] = out[name].where(column.notna(), None)
+            out[name] = iso_millis(column.to_numpy(dtype="datetime64[ns]"))
         elif pd.api.types.is_float_dtype(column):
             values = column.to_numpy(dtype=float)
             decimals = places[name]
