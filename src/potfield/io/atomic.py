@@ -92,3 +92,28 @@ def write_parquet(path: Path | str, table, chunk_rows: int = CHUNK_ROWS) -> Path
                 piece = table.iloc[start : start + chunk_rows]
                 writer.write_table(pa.Table.from_pandas(piece, schema=schema, preserve_index=False))
     return Path(path)
+
+
+def write_parquet_pieces(path: Path | str, pieces) -> Path:
+    """Pandas tables (an iterable of pieces of one table, same columns and types) as one parquet
+    file, one row group per piece: the file :func:`write_parquet` writes for the whole table
+    with ``chunk_rows`` = the pieces' length, holding one piece at a time."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pieces = iter(pieces)
+    first = next(pieces)
+    second = next(pieces, None)
+    with atomic_path(path) as tmp:
+        if second is None:
+            first.to_parquet(tmp, index=False)
+            return Path(path)
+        schema = pa.Schema.from_pandas(first, preserve_index=False)
+        with pq.ParquetWriter(tmp, schema) as writer:
+            writer.write_table(pa.Table.from_pandas(first, schema=schema, preserve_index=False))
+            del first
+            piece = second
+            while piece is not None:
+                writer.write_table(pa.Table.from_pandas(piece, schema=schema, preserve_index=False))
+                piece = next(pieces, None)
+    return Path(path)
