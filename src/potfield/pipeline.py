@@ -43,6 +43,7 @@ from .io.tables import (
     RowCountMismatch,
     manifest_layout,
     read_cache_columns,
+    release_memory,
     write_cache_table,
     write_readings,
 )
@@ -525,6 +526,7 @@ def run_survey(
             say(f"{name}: {verb} in {seconds:.1f} s" + _loud(entry))
             # the table is on disk now: free it before the next stage reads its columns
             table = output = ctx = None
+            release_memory()
         _mark_stale(manifest, later, stale_reason)
         stale = [n for n in later if manifest["stages"].get(n, {}).get("status") == "stale"]
         if stale:

@@ -130,6 +130,7 @@ def read_cache_columns(layout: dict[str, Path], columns: Sequence[str] | None = 
     parts = []
     for path, names in _by_file(layout, columns).items():
         parts.append(pq.read_table(path, columns=names).to_pandas(split_blocks=True))
+    release_memory()
     table = pd.concat(parts, axis=1) if parts else pd.DataFrame(index=pd.RangeIndex(rows))
     return _sorted_categories(table[columns] if parts else table)
 
@@ -214,6 +215,35 @@ def cache_float_places(layout: dict[str, Path], kind: str = "magnetic") -> dict[
     return places
 
 
+def release_memory() -> None:
+    """Hand memory that pyarrow's pool keeps for reuse back to the system (after a table was
+    read or written: otherwise the next stage starts from a larger resident size)."""
+    import pyarrow as pa
+
+    pa.default_memory_pool().release_unused()
+    _malloc_trim()
+
+
+def _malloc_trim() -> None:
+    """glibc's ``malloc_trim(0)``: freed heap pages (numpy and pandas buffers) back to the
+    system; nothing elsewhere."""
+    import ctypes
+    import ctypes.util
+
+    global _LIBC
+    if _LIBC is None:
+        name = ctypes.util.find_library("c")
+        try:
+            _LIBC = ctypes.CDLL(name) if name else False
+        except OSError:
+            _LIBC = False
+    if _LIBC and hasattr(_LIBC, "malloc_trim"):
+        _LIBC.malloc_trim(0)
+
+
+_LIBC = None
+
+
 def write_readings(
     csv_path: Path, parquet_path: Path, layout: dict[str, Path], kind: str = "magnetic", chunk_rows: int = 0
 ) -> None:
@@ -226,4 +256,6 @@ def write_readings(
     chunk_rows = chunk_rows or CHUNK_ROWS
     places = cache_float_places(layout, kind)
     write_table_pieces(csv_path, iter_cache_pieces(layout, chunk_rows), kind, places)
+    release_memory()
     write_parquet_pieces(parquet_path, iter_cache_pieces(layout, chunk_rows))
+    release_memory()
