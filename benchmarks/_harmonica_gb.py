@@ -52,8 +52,8 @@ def stage_blocks(root: Path) -> dict:
 
     Block medians (:func:`potfield.fields.harmonic.eqsources.block_median`) of the usable
     readings (:func:`potfield.stages.base.usable`, finite value and position) of the value the
-    stage gridded (grid state ``column``: the levelled anomaly, read from the cached
-    ``out/cache/level.parquet``), at the stage's block size.
+    stage gridded (grid state ``column``: the levelled anomaly, read by column from the cache
+    files, :func:`potfield.io.tables.read_cache_columns`), at the stage's block size.
 
     Returns
     -------
@@ -62,19 +62,18 @@ def stage_blocks(root: Path) -> dict:
         ``block_m``, ``depth``, ``damping``, ``height``, ``column``, ``drape``.
     """
     import numpy as np
-    import pyarrow.parquet as pq
 
     from potfield.fields.harmonic import eqsources as eqs
-    from potfield.io.tables import read_cache_table
+    from potfield.io.tables import manifest_layout, read_cache_columns
+    from potfield.kinds import KIND_ORDER
     from potfield.stages.base import usable
 
     manifest = json.loads((root / "out" / "manifest.json").read_text())
     state = manifest["stages"]["grid"]["state"]
     column = state["column"]
-    path = root / "out" / "cache" / "level.parquet"
-    if column not in pq.read_schema(path).names:  # micro-levelled: the grid stage's own column
-        path = root / "out" / "cache" / "grid.parquet"
-    table = read_cache_table(path)
+    layout = manifest_layout(root / "out" / "cache", manifest["stages"], KIND_ORDER["magnetic"])
+    flags = [c for c in layout if c.startswith("flag_")]
+    table = read_cache_columns(layout, [column, "easting", "northing", "height", *flags])
     values = table[column].to_numpy(float)
     e, n, h = (table[c].to_numpy(float) for c in ("easting", "northing", "height"))
     ok = usable(table) & np.isfinite(values) & np.isfinite(e) & np.isfinite(n) & np.isfinite(h)

@@ -161,12 +161,13 @@ def _child_generate(readings: int, folder: Path, tiled: bool) -> dict:
     }
 
 
-def _last_table(out: Path, order) -> Path | None:
-    for name in reversed(order):
-        path = out / "cache" / f"{name}.parquet"
-        if path.is_file():
-            return path
-    return None
+def _layout(out: Path, order) -> dict:
+    """Column -> cache file of the current stages (each file holds the columns its stage
+    added; :func:`potfield.io.tables.manifest_layout`)."""
+    from potfield.io.tables import manifest_layout
+
+    manifest = json.loads((out / "manifest.json").read_text()) if (out / "manifest.json").is_file() else {}
+    return manifest_layout(out / "cache", manifest.get("stages", {}), order)
 
 
 def _grid_truth_rms(grid, truth_grid_path: Path) -> dict:
@@ -197,18 +198,18 @@ def _grid_truth_rms(grid, truth_grid_path: Path) -> dict:
 def _accuracy(root: Path, order) -> dict:
     import numpy as np
     import pandas as pd
-    import pyarrow.parquet as pq
+
+    from potfield.io.tables import read_cache_columns
 
     result: dict = {}
-    table_path = _last_table(root / "out", order)
-    if table_path is None:
+    layout = _layout(root / "out", order)
+    if not layout:
         return {"note": "no readings table was produced"}
-    names = set(pq.read_schema(table_path).names)
-    value_cols = [c for c in ("anomaly_levelled", "anomaly") if c in names]
+    value_cols = [c for c in ("anomaly_levelled", "anomaly") if c in layout]
     if not value_cols:
-        return {"note": f"no anomaly column in {table_path.name}"}
-    flags = [c for c in names if c.startswith("flag_")]
-    table = pd.read_parquet(table_path, columns=["source_file", "source_row", *value_cols, *flags])
+        return {"note": "no anomaly column in the cached readings table"}
+    flags = [c for c in layout if c.startswith("flag_")]
+    table = read_cache_columns(layout, ["source_file", "source_row", *value_cols, *flags])
     usable = ~table[flags].to_numpy(dtype=bool).any(axis=1) if flags else np.ones(len(table), bool)
     truth = pd.read_csv(
         root / "truth" / "readings_truth.csv",

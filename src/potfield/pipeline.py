@@ -2,9 +2,13 @@
 
 ``run_survey`` runs the stages of a survey's kind in order. Each stage's cache key hashes the
 stage name, potfield's source code, the survey.toml sections the stage reads, the checksums of
-the files it reads and the key of the stage before it; a stage whose key is unchanged is not
-recomputed (its table is loaded from out/cache/). Everything is written atomically; raw/ is only
-read.
+the files it reads, the cache layout and the key of the stage before it; a stage whose key is
+unchanged is not recomputed. Everything is written atomically; raw/ is only read.
+
+The readings table lives on disk, by column: out/cache/STAGE.parquet holds only the columns that
+stage added (the manifest's ``columns_added``), and a stage gets a table of just the columns its
+contract ``reads``, read from the files of the stages that added them and joined by row position.
+readings.csv and readings.parquet are streamed from those files a piece at a time.
 
 Every stage declares a :class:`potfield.stages.base.Contract`: the runner checks its required
 columns and earlier records before running it, and what it added after (an undeclared or dropped
@@ -32,9 +36,17 @@ import pandas as pd
 
 from . import __version__
 from .errors import InputDataError, PotfieldError, StageError
-from .io.atomic import write_json, write_parquet
+from .io.atomic import write_json
 from .io.columns import write_table
-from .io.tables import read_cache_table, write_cache_table, write_table_csv
+from .io.tables import (
+    CACHE_LAYOUT,
+    RowCountMismatch,
+    manifest_layout,
+    read_cache_columns,
+    release_memory,
+    write_cache_table,
+    write_readings,
+)
 from .kinds import KIND_ORDER
 from .qc.specs import load_spec
 from .stages.base import Check, Stage, StageContext, StageOutput
@@ -185,6 +197,7 @@ def _stage_key(stage: Stage, config, survey: Survey, previous: str, checksums: d
         "config": config.section_hash(*stage.sections),
         "inputs": inputs,
         "previous": previous,
+        "layout": CACHE_LAYOUT,
     }
     return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest(), inputs
 
@@ -211,14 +224,18 @@ def _check_requires(
     stage: Stage,
     kind: str,
     order: tuple[str, ...],
-    table: pd.DataFrame | None,
+    table,
     state: dict,
     manifest: dict,
     root: Path,
 ) -> None:
-    """A StageError naming the stage and what to run first when a requirement is missing."""
+    """A StageError naming the stage and what to run first when a requirement is missing.
+
+    ``table``: the columns available (a table or the column names; None: no table yet).
+    """
     contract = stage.contract
-    missing = [c for c in contract.requires(kind) if table is None or c not in table.columns]
+    columns = set(table.columns) if isinstance(table, pd.DataFrame) else set(table or ())
+    missing = [c for c in contract.requires(kind) if c not in columns]
     for column in missing:
         provider = _provider(order, stage.name, column, kind)
         if provider is None:
@@ -241,8 +258,38 @@ def _check_requires(
             )
 
 
-def _check_provides(stage: Stage, kind: str, before: pd.DataFrame | None, output: StageOutput) -> list[str]:
-    """The columns the stage added; a ContractError when it broke its contract."""
+def _stage_columns(stage: Stage, kind: str, available) -> list[str]:
+    """The columns of ``available`` (in their order) the stage reads; a ContractError when a
+    column it requires is not among those it reads."""
+    contract = stage.contract
+    unread = [c for c in contract.requires(kind) if not contract.may_read(kind, c)]
+    if unread:
+        raise ContractError(f"stage '{stage.name}' requires column(s) {unread} it does not read")
+    return [c for c in available if contract.may_read(kind, c)]
+
+
+def _read_table(layout: dict[str, Path], columns=None) -> pd.DataFrame:
+    """The table of ``layout`` (only ``columns``); a ContractError when its cache files differ
+    in length (a stage dropped or added readings)."""
+    try:
+        return read_cache_columns(layout, columns)
+    except RowCountMismatch as err:
+        raise ContractError(str(err)) from None
+
+
+def _check_provides(
+    stage: Stage,
+    kind: str,
+    before: pd.DataFrame | None,
+    output: StageOutput,
+    existing=(),
+) -> list[str]:
+    """The columns the stage added; a ContractError when it broke its contract.
+
+    ``before`` is the table the stage received (its ``reads`` columns), ``existing`` every
+    column of the earlier stages: a stage may not drop a column it received, add one it did not
+    declare, rewrite one it was not given, or change the number of readings.
+    """
     contract = stage.contract
     for what, names, declared in (
         ("grid", output.grids, contract.grids(kind)),
@@ -261,7 +308,17 @@ def _check_provides(stage: Stage, kind: str, before: pd.DataFrame | None, output
     dropped = [c for c in received if c not in produced]
     if dropped:
         raise ContractError(f"stage '{stage.name}' dropped column(s) {dropped}")
+    if before is not None and len(output.table) != len(before):
+        raise ContractError(
+            f"stage '{stage.name}' returned {len(output.table)} readings for {len(before)} "
+            "(stages flag readings, they never drop or add any)"
+        )
     added = [c for c in output.table.columns if c not in set(received)]
+    rewritten = [c for c in added if c in set(existing)]
+    if rewritten:
+        raise ContractError(
+            f"stage '{stage.name}' wrote column(s) {rewritten} of an earlier stage it does not read"
+        )
     undeclared = [c for c in added if not contract.may_add(kind, c)]
     if undeclared:
         raise ContractError(f"stage '{stage.name}' added column(s) {undeclared} it does not declare")
@@ -349,7 +406,6 @@ def run_survey(
         }
         hashes: dict = {}
         checksums: dict[str, str] = {}
-        table: pd.DataFrame | None = None
         state: dict[str, dict] = {}
         grids: dict = {}
         previous_key = ""
@@ -383,7 +439,7 @@ def run_survey(
                 not (force and name in selected)
                 and cached.get("key") == key
                 and status in CURRENT
-                and (not cached.get("table") or cache_file.is_file())
+                and _cache_file_ok(cache_file, cached.get("columns_added") or [])
                 and all((survey.grids / f"{g}.nc").is_file() for g in cached.get("grids", []))
             )
             if name not in selected or is_cached:
@@ -395,8 +451,6 @@ def run_survey(
                 if cached.get("status") == "stale":  # an unchanged result comes back
                     cached["status"] = cached.pop("status_before_stale", "done")
                     cached.pop("stale_reason", None)
-                if cached.get("table"):
-                    table = read_cache_table(cache_file)
                 state[name] = cached.get("state", {})
                 for g in cached.get("grids", []):
                     grids[g] = survey.grids / f"{g}.nc"
@@ -414,7 +468,10 @@ def run_survey(
                 continue
             # Whatever follows this stage was made from results about to change: stale until rerun.
             _mark_stale(manifest, order[index + 1 :], stale_reason)
-            _check_requires(stage, config.kind, order, table, state, manifest, survey.root)
+            # the columns of the stages before this one, each in the cache file of its stage
+            layout = manifest_layout(survey.cache, manifest["stages"], order[:index])
+            _check_requires(stage, config.kind, order, list(layout), state, manifest, survey.root)
+            table = _read_table(layout, _stage_columns(stage, config.kind, layout)) if layout else None
             say(f"{name}: running")
             ctx = StageContext(
                 config=config,
@@ -431,9 +488,9 @@ def run_survey(
                 output = stage.run(ctx)
                 if not isinstance(output, StageOutput):
                     raise TypeError(f"stage {name} returned {type(output).__name__}, not StageOutput")
-                added = _check_provides(stage, config.kind, table, output)
+                added = _check_provides(stage, config.kind, table, output, layout)
                 seconds = time.perf_counter() - started
-                entry = _write_stage(survey, config, name, output, state, key, seconds, ctx)
+                entry = _write_stage(survey, config, name, output, added, state, key, seconds, ctx)
             except BaseException:
                 # out/ keeps describing what is current: the stages before this one
                 _mark_stale(
@@ -442,14 +499,12 @@ def run_survey(
                     f"stage '{name}' failed in the run of {stamp}; these results are not current",
                 )
                 try:
-                    _finish(survey, config, manifest, order[:index], table, hashes, state, grids)
+                    _finish(survey, config, manifest, order[:index], hashes, state, grids)
                 except Exception:  # noqa: BLE001, S110  (the original error matters more)
                     pass
                 raise
             entry["contract"] = stage.contract.as_record(config.kind)
             entry["columns_added"] = added
-            if output.table is not None:
-                table = output.table
             for g in entry["grids"]:
                 grids[g] = survey.grids / f"{g}.nc"
             manifest["stages"][name] = entry
@@ -469,6 +524,9 @@ def run_survey(
             )
             verb = "skipped" if entry["status"] == "skipped" else "done"
             say(f"{name}: {verb} in {seconds:.1f} s" + _loud(entry))
+            # the table is on disk now: free it before the next stage reads its columns
+            table = output = ctx = None
+            release_memory()
         _mark_stale(manifest, later, stale_reason)
         stale = [n for n in later if manifest["stages"].get(n, {}).get("status") == "stale"]
         if stale:
@@ -476,9 +534,7 @@ def run_survey(
                 f"{', '.join(stale)}: marked stale (results not in readings.csv/checks.csv; "
                 "run again without --until/--only to bring them back)"
             )
-        checks, steps = _finish(
-            survey, config, manifest, order[: last_index + 1], table, hashes, state, grids
-        )
+        checks, steps = _finish(survey, config, manifest, order[: last_index + 1], hashes, state, grids)
     return RunSummary(survey.root, records, checks, manifest, steps)
 
 
@@ -487,18 +543,22 @@ def _finish(
     config,
     manifest: dict,
     current,
-    table: pd.DataFrame | None,
     hashes: dict,
     state: dict,
     grids: dict,
 ) -> tuple[list[dict], list[dict]]:
-    """Write readings.csv and readings.parquet (the table of the last current stage), checks.csv
-    (the checks and skipped/degraded steps of the ``current`` stages), the data dictionary, the
-    multi-variable products file of the current grids, and the manifest with the outputs'
-    checksums."""
-    if table is not None:
-        write_table_csv(survey.tables / "readings.csv", table, config.kind)
-        write_parquet(survey.tables / "readings.parquet", table)
+    """Write readings.csv and readings.parquet (the table of the ``current`` stages, streamed from
+    their cache files), checks.csv (the checks and skipped/degraded steps of the ``current``
+    stages), the data dictionary, the multi-variable products file of the current grids, and the
+    manifest with the outputs' checksums."""
+    layout = manifest_layout(survey.cache, manifest["stages"], current)
+    if layout:
+        try:
+            write_readings(
+                survey.tables / "readings.csv", survey.tables / "readings.parquet", layout, config.kind
+            )
+        except RowCountMismatch as err:
+            raise ContractError(str(err)) from None
     _write_deliverables(survey, config, state, grids)
     checks, steps = [], []
     for name in current:
@@ -527,6 +587,20 @@ def _write_deliverables(survey: Survey, config, state: dict, grids: dict) -> Non
         write_products(products, dict(grids), crs, title=f"{config.survey.name}: gridded products")
     elif products.is_file():
         products.unlink()
+
+
+def _cache_file_ok(path: Path, columns: list[str]) -> bool:
+    """True when the cache file holds exactly ``columns`` (no file needed when there are none)."""
+    if not columns:
+        return True
+    if not path.is_file():
+        return False
+    import pyarrow.parquet as pq
+
+    try:
+        return pq.read_schema(path).names == list(columns)
+    except (OSError, ValueError):  # unreadable (pyarrow's errors derive from these): recompute
+        return False
 
 
 def _loud(entry: dict) -> str:
@@ -583,6 +657,7 @@ def _write_stage(
     config,
     name: str,
     output: StageOutput,
+    added: list[str],
     state: dict,
     key: str,
     seconds: float,
@@ -592,8 +667,11 @@ def _write_stage(
 
     crs = state.get("ingest", {}).get("crs") or output.state.get("crs")
     state[name] = output.state
-    if output.table is not None:
-        write_cache_table(survey.cache / f"{name}.parquet", output.table)
+    cache_file = survey.cache / f"{name}.parquet"
+    if added:  # only the columns this stage added; the others are in earlier stages' files
+        write_cache_table(cache_file, output.table[added])
+    else:
+        cache_file.unlink(missing_ok=True)
     for table_name, frame in output.tables.items():
         write_table(survey.tables / f"{table_name}.csv", frame, config.kind)
     for grid_name, grid in output.grids.items():

@@ -13,6 +13,7 @@ import json
 from pathlib import Path
 
 import pandas as pd
+import pyarrow.parquet as pq
 
 from potfield.cli import main
 
@@ -42,7 +43,17 @@ def _readings_columns(root: Path) -> set[str]:
 
 
 def _cache_columns(root: Path, stage: str) -> set[str]:
-    return set(pd.read_parquet(root / "out" / "cache" / f"{stage}.parquet").columns)
+    """Columns of the table of ``stage``: those of its own and the earlier stages' cache files
+    (each file holds only the columns its stage added)."""
+    from potfield.kinds import KIND_ORDER
+
+    order = KIND_ORDER["magnetic"]
+    columns: set[str] = set()
+    for name in order[: order.index(stage) + 1]:
+        path = root / "out" / "cache" / f"{name}.parquet"
+        if path.is_file():
+            columns |= set(pq.read_schema(path).names)
+    return columns
 
 
 def _one_line_error(capsys, argv) -> str:

@@ -267,17 +267,21 @@ def _significant_places(values: np.ndarray, digits: int = 10) -> int | None:
     return max(0, digits - 1 - int(math.floor(math.log10(float(finite.max())))))
 
 
+def column_places(name: str, values: np.ndarray, kind: str = "magnetic") -> int | None:
+    """Decimals :func:`format_table` keeps for the float column ``name`` holding ``values`` (the
+    whole column; None: unrounded)."""
+    fixed = decimals_for(str(name), kind)
+    return fixed if fixed is not None else _significant_places(np.asarray(values, dtype=float))
+
+
 def float_places(frame: pd.DataFrame, kind: str = "magnetic") -> dict[str, int | None]:
     """Decimals of every float column of ``frame`` as :func:`format_table` rounds it (None:
     unrounded), from the whole column: the same for any piece of the table."""
-    places = {}
-    for name in frame.columns:
-        if pd.api.types.is_float_dtype(frame[name]):
-            fixed = decimals_for(str(name), kind)
-            places[name] = (
-                fixed if fixed is not None else _significant_places(frame[name].to_numpy(dtype=float))
-            )
-    return places
+    return {
+        name: column_places(name, frame[name].to_numpy(dtype=float), kind)
+        for name in frame.columns
+        if pd.api.types.is_float_dtype(frame[name])
+    }
 
 
 def iso_millis(times: np.ndarray) -> np.ndarray:
@@ -338,22 +342,27 @@ def _arrow(formatted: pd.DataFrame):
         return pa.Table.from_pandas(mixed, preserve_index=False)
 
 
-def _write_pieces(tmp: Path, frame: pd.DataFrame, kind: str, chunk_rows: int, options) -> bool:
-    """Write ``frame`` in pieces of ``chunk_rows`` rows; False when the pieces' Arrow types
-    differ (object columns typed by their content), and the caller writes it whole."""
+def _write_pieces(tmp: Path, pieces, kind: str, places, options, cast: bool = False) -> bool:
+    """Write the pieces of one table (pandas) as one CSV, each rounded with ``places`` (those of
+    the whole table); False when the pieces' Arrow types differ (object columns typed by their
+    content) and ``cast`` is off, so the caller writes the table whole. With ``cast`` a piece is
+    cast to the first piece's types (text stays the same text)."""
     import pyarrow.csv as pacsv
 
-    places = float_places(frame, kind)
     schema, writer = None, None
     try:
-        for start in range(0, len(frame), chunk_rows):
-            arrow = _arrow(format_table(frame.iloc[start : start + chunk_rows], kind, places))
+        for piece in pieces:
+            arrow = _arrow(format_table(piece, kind, places))
             if writer is None:
                 schema = arrow.schema
                 writer = pacsv.CSVWriter(tmp, schema, write_options=options)
             elif not arrow.schema.equals(schema):
-                return False
+                if not cast:
+                    return False
+                arrow = arrow.cast(schema)
             writer.write_table(arrow)
+        if writer is None:  # no piece at all: nothing to write
+            return False
     finally:
         if writer is not None:
             writer.close()
@@ -374,9 +383,25 @@ def write_table(path: Path | str, frame: pd.DataFrame, kind: str = "magnetic", c
     options = pacsv.WriteOptions(quoting_style="needed")
     chunk_rows = chunk_rows or CHUNK_ROWS
     with atomic_path(path) as tmp:
-        if len(frame) > chunk_rows and _write_pieces(tmp, frame, kind, chunk_rows, options):
-            return Path(path)
+        if len(frame) > chunk_rows:
+            pieces = (frame.iloc[start : start + chunk_rows] for start in range(0, len(frame), chunk_rows))
+            if _write_pieces(tmp, pieces, kind, float_places(frame, kind), options):
+                return Path(path)
         pacsv.write_csv(_arrow(format_table(frame, kind)), tmp, options)
+    return Path(path)
+
+
+def write_table_pieces(path: Path | str, pieces, kind: str, places: dict[str, int | None]) -> Path:
+    """Write a table given as pieces (pandas, same columns; e.g. read from parquet a chunk at a
+    time) as one CSV, atomically, formatted as :func:`write_table` formats the whole table:
+    ``places`` are the decimals of the whole table's float columns (:func:`float_places`, or
+    :func:`potfield.io.tables.cache_float_places`), so the text is the same."""
+    import pyarrow.csv as pacsv
+
+    options = pacsv.WriteOptions(quoting_style="needed")
+    with atomic_path(path) as tmp:
+        if not _write_pieces(tmp, pieces, kind, places, options, cast=True):
+            raise ValueError(f"{path}: no rows to write")
     return Path(path)
 
 

@@ -835,7 +835,7 @@ def build_report(
 def rebuild_report(root: Path) -> Path:
     """``potfield report DIR``: rebuild maps and report.html from out/ without recomputing."""
     from ..errors import StageError
-    from ..io.tables import read_cache_table
+    from ..io.tables import manifest_layout, read_cache_columns
     from ..qc.specs import load_spec
     from ..survey import Survey
 
@@ -847,12 +847,9 @@ def rebuild_report(root: Path) -> Path:
         )
     manifest = json.loads(survey.manifest_path.read_text())
     manifest["spec"] = {k: list(v) for k, v in load_spec(config, survey).items()}
-    table = None
-    for name in reversed(KIND_ORDER[config.kind]):
-        path = survey.cache / f"{name}.parquet"
-        if path.is_file() and manifest.get("stages", {}).get(name, {}).get("table"):
-            table = read_cache_table(path)
-            break
+    # the readings table of the current stages, put together from their cache files by column
+    layout = manifest_layout(survey.cache, manifest.get("stages", {}), KIND_ORDER[config.kind])
+    table = read_cache_columns(layout) if layout else None
     grid_paths = {p.stem: p for p in survey.grids.glob("*.nc") if p.stem != "products"}
     with survey.lock():
         path, _ = build_report(survey, config, manifest, table, grid_paths)

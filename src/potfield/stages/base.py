@@ -3,8 +3,10 @@
 A stage is a pure-ish function ``run(ctx) -> StageOutput``: it reads the readings table the
 previous stage produced (``ctx.table``), the survey configuration and the records of earlier
 stages (``ctx.state``), and returns the columns it adds, plus tables, grids, spec checks and key
-numbers. It never rewrites a column it did not create and never drops a reading (it flags it in a
-``flag_*`` column). The runner (potfield.pipeline) writes everything to out/, atomically.
+numbers. It never rewrites a column it did not create and never drops or reorders a reading (it
+flags it in a ``flag_*`` column), so the runner can keep each stage's added columns in a file of
+their own and put a table together by row position. ``ctx.table`` holds only the columns the
+stage's contract ``reads``. The runner (potfield.pipeline) writes everything to out/, atomically.
 """
 
 from __future__ import annotations
@@ -85,7 +87,8 @@ class StageContext:
 
     config: SurveyConfig
     survey: Survey
-    #: Readings table from the previous stage (None before ingest).
+    #: Readings table of the earlier stages, only the columns the contract ``reads`` (None
+    #: before ingest).
     table: pd.DataFrame | None
     #: Records of earlier stages: ``state[stage_name]`` is that stage's ``StageOutput.state``.
     state: dict[str, dict[str, Any]] = field(default_factory=dict)
@@ -148,6 +151,12 @@ class Contract:
     records (``ctx.state[name]``) the stage reads; ``provides_grids`` / ``provides_tables`` are
     the grids and tables it may write (again possibly per kind). The runner records the contract
     in manifest.json.
+
+    ``reads`` are the table columns the stage reads (names or shell patterns such as ``flag_*``,
+    a tuple or a dict kind -> tuple), optional ones included: the runner hands the stage a table
+    of just the columns of earlier stages that match, read from their cache files, so a column
+    left out of the list is simply not there (a ``KeyError`` or a silently skipped optional
+    step). ``None`` (the default) is every column. ``requires_columns`` must be among them.
     """
 
     requires_columns: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
@@ -156,6 +165,7 @@ class Contract:
     requires_state: tuple[str, ...] = ()
     provides_grids: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
     provides_tables: tuple[str, ...] | dict[str, tuple[str, ...]] = ()
+    reads: tuple[str, ...] | dict[str, tuple[str, ...]] | None = None
 
     def requires(self, kind: str) -> tuple[str, ...]:
         return _per_kind(self.requires_columns, kind)
@@ -172,6 +182,17 @@ class Contract:
     def tables(self, kind: str) -> tuple[str, ...]:
         return _per_kind(self.provides_tables, kind)
 
+    def reads_for(self, kind: str) -> tuple[str, ...] | None:
+        """The column names/patterns the stage reads for a survey kind (None: every column)."""
+        return None if self.reads is None else _per_kind(self.reads, kind)
+
+    def may_read(self, kind: str, column: str) -> bool:
+        """True when ``column`` is one the stage reads (always, when ``reads`` is None)."""
+        from fnmatch import fnmatchcase
+
+        patterns = self.reads_for(kind)
+        return patterns is None or any(fnmatchcase(column, pattern) for pattern in patterns)
+
     def may_add(self, kind: str, column: str) -> bool:
         """True when ``column`` is one the stage declared (provides or optional)."""
         from fnmatch import fnmatchcase
@@ -180,9 +201,11 @@ class Contract:
             fnmatchcase(column, pattern) for pattern in self.optional(kind)
         )
 
-    def as_record(self, kind: str) -> dict[str, list[str]]:
+    def as_record(self, kind: str) -> dict[str, list[str] | None]:
         """The contract for one survey kind, JSON-able (for manifest.json)."""
+        reads = self.reads_for(kind)
         return {
+            "reads": None if reads is None else list(reads),
             "requires_columns": list(self.requires(kind)),
             "provides_columns": list(self.provides(kind)),
             "optional_columns": list(self.optional(kind)),

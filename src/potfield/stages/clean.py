@@ -189,6 +189,18 @@ STAGE = Stage(
     sections=("clean",),
     contract=Contract(
         requires_columns=("line", "line_type"),
+        reads=(
+            "line",
+            "line_type",
+            "time",
+            "distance",
+            "height",
+            "total_field",
+            "mag_north",
+            "mag_east",
+            "mag_down",
+            "flag_*",
+        ),
         provides_columns={"gravity": ("flag_duplicate_time",), "*": ("flag_duplicate_time", "flag_spike")},
         optional_columns=(
             "flag_time_gap",

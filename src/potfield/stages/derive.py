@@ -310,6 +310,8 @@ STAGE = Stage(
     sections=("derive", "grid"),
     kinds=("magnetic", "gravity"),
     contract=Contract(
-        requires_state=("grid",), provides_grids=tuple(f"{name}_*" for name in ANOMALY_COLUMN.values())
+        requires_state=("grid",),
+        reads=(),  # grids and the grid stage's model only
+        provides_grids=tuple(f"{name}_*" for name in ANOMALY_COLUMN.values()),
     ),
 )

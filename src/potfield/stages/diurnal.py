@@ -613,6 +613,7 @@ STAGE = Stage(
     kinds=("magnetic",),
     contract=Contract(
         provides_columns=("diurnal", "flag_base_gap"),
+        reads=("time", "longitude", "latitude", "height", "total_field", "line", "flag_*"),
         requires_state=("ingest",),
         provides_tables=("diurnal_lines", "base_record"),
     ),

@@ -612,6 +612,18 @@ STAGE = Stage(
         requires_columns={k: ("easting", "northing", "height", c) for k, c in ANOMALY_COLUMN.items()},
         provides_columns=("grid_residual",),
         optional_columns=("micro_level_correction", "*_micro"),
+        # the value column (base.value_column) is one of the anomalies, levelled or not
+        reads=(
+            "easting",
+            "northing",
+            "height",
+            "distance",
+            "line",
+            "line_type",
+            "station",
+            "flag_*",
+            *(f"{c}*" for c in ANOMALY_COLUMN.values()),
+        ),
         requires_state=("ingest",),
         provides_grids={k: (c,) for k, c in ANOMALY_COLUMN.items()},
         provides_tables=("grid_cv", "grid_tiles"),

@@ -615,5 +615,6 @@ STAGE = Stage(
             "source_row",
         ),
         optional_columns=("*",),
+        reads=(),  # it reads the raw files, no earlier table
     ),
 )

@@ -466,6 +466,16 @@ STAGE = Stage(
     contract=Contract(
         requires_columns={k: ("easting", "northing", c) for k, c in ANOMALY_COLUMN.items()},
         provides_columns=("level_correction", LEVELLED_COLUMN),
+        reads=(
+            "easting",
+            "northing",
+            "height",
+            "time",
+            "line",
+            "line_type",
+            "flag_*",
+            *ANOMALY_COLUMN.values(),
+        ),
         provides_tables=("crossovers", "lines"),
     ),
 )

@@ -34,7 +34,17 @@ from ..fields._numerics import sample_grid
 from ..fields.errors import BadParameter, FieldError, IllPosed, NotEnoughData
 from ..fields.harmonic import separation as sep
 from ._boundary import Rule, translate
-from .base import Check, Contract, Stage, StageContext, StageOutput, main_grid_names, usable, value_column
+from .base import (
+    ANOMALY_COLUMN,
+    Check,
+    Contract,
+    Stage,
+    StageContext,
+    StageOutput,
+    main_grid_names,
+    usable,
+    value_column,
+)
 from .gridmodel import grid_height, load_grid_model
 
 VECTOR = ("mag_north", "mag_east", "mag_down")
@@ -720,6 +730,29 @@ STAGE = Stage(
     sections=("separate", "grid"),
     contract=Contract(
         requires_columns={"observatory": ("time",)},
+        reads={
+            "observatory": (
+                "time",
+                "longitude",
+                "latitude",
+                "height",
+                "station",
+                "line",
+                "disturbance_*",
+                "mag_*",
+                "igrf_*",
+                "flag_*",
+            ),
+            # the value column (base.value_column) is one of the anomalies, levelled or not
+            "*": (
+                "easting",
+                "northing",
+                "height",
+                *VECTOR,
+                "flag_*",
+                *(f"{c}*" for c in ANOMALY_COLUMN.values()),
+            ),
+        },
         optional_columns={
             "observatory": ("sep_internal_*", "sep_external_*", "sep_residual_*"),
             "*": ("regional", "residual", "internal_*", "external_*"),
