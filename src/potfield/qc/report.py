@@ -849,7 +849,13 @@ def rebuild_report(root: Path) -> Path:
     manifest["spec"] = {k: list(v) for k, v in load_spec(config, survey).items()}
     # the readings table of the current stages, put together from their cache files by column
     layout = manifest_layout(survey.cache, manifest.get("stages", {}), KIND_ORDER[config.kind])
-    table = read_cache_columns(layout) if layout else None
+    if layout:
+        from ..pipeline import load_stage
+
+        report = load_stage("report").contract
+        table = read_cache_columns(layout, [c for c in layout if report.may_read(config.kind, c)])
+    else:
+        table = None
     grid_paths = {p.stem: p for p in survey.grids.glob("*.nc") if p.stem != "products"}
     with survey.lock():
         path, _ = build_report(survey, config, manifest, table, grid_paths)

@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError, StageError
+from ..fields._numerics import nearest_neighbour_distances
 from ..fields.harmonic import eqsources as eqs
 from ..io.grids import make_grid
 from .base import ANOMALY_COLUMN, Check, Contract, Stage, StageContext, StageOutput, usable, value_column
@@ -50,22 +51,15 @@ def _station_spacing(table: pd.DataFrame, ok: np.ndarray):
     """Median nearest-neighbour distance (m) between the distinct positions of a station survey
     (a ``station`` column; repeat occupations count once), else None. The grid stage uses it
     for gravity station surveys, and for other kinds when the ingest found no line spacing or
-    one below the station spacing (a line survey with station pegs keeps its lines). A small
-    local helper: a shared nearest-neighbour spacing may later live in the fields' numerics."""
+    one below the station spacing (a line survey with station pegs keeps its lines)."""
     if "station" not in table.columns:
         return None
-    from scipy.spatial import cKDTree
-
-    pts = np.unique(
-        np.round(
-            np.column_stack([table["easting"].to_numpy(float)[ok], table["northing"].to_numpy(float)[ok]]), 1
-        ),
-        axis=0,
-    )
-    if len(pts) < 2:
+    positions = np.column_stack([table["easting"].to_numpy(float)[ok], table["northing"].to_numpy(float)[ok]])
+    pts = np.unique(np.round(positions, 1), axis=0)
+    distances = nearest_neighbour_distances(pts[:, 0], pts[:, 1])
+    if distances.size == 0:
         return None
-    dist, _ = cKDTree(pts).query(pts, k=2)
-    spacing = float(np.median(dist[:, 1]))
+    spacing = float(np.median(distances))
     return spacing if spacing > 0 else None
 
 
@@ -224,7 +218,8 @@ def _search(be, bn, bh, bd, cfg, block, line_spacing, progress, height):
     if bd.size >= MIN_CV_DATA and (len(depths) > 1 or len(dampings) > 1):
         cv_spacing = _cv_spacing(block, depths, line_spacing, extent)
         progress(f"cross-validating {len(depths)} depths x {len(dampings)} dampings on {bd.size} blocks")
-        dense = cfg.method == "dense" or (cfg.method == "auto" and bd.size <= eqs.DENSE_LIMIT)
+        region = (be.min(), be.max(), bn.min(), bn.max())
+        dense = eqs.solver_method(cfg.method, bd.size, region, block) == "dense"
         ce, cn, ch, cd = _cv_window(be, bn, bh, bd, MAX_CV_DENSE_BLOCKS if dense else MAX_CV_BLOCKS)
         if cd.size < bd.size:
             progress(f"cross-validating on a central window of {cd.size} of {bd.size} blocks")

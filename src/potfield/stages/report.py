@@ -5,7 +5,32 @@ The same builder serves ``potfield report DIR``, which rebuilds from out/ withou
 
 from __future__ import annotations
 
+from ..qc.report import RESIDUAL_COLUMNS
 from .base import Contract, Stage, StageContext, StageOutput
+
+#: Columns of the readings table the report uses: positions and lines for the maps, the flags,
+#: the values drawn (anomalies before gridding, levelled profiles, grid residuals, noise,
+#: observatory disturbances) and the residual/correction columns it tabulates.
+REPORT_READS = (
+    "easting",
+    "northing",
+    "height",
+    "longitude",
+    "latitude",
+    "time",
+    "line",
+    "line_type",
+    "station",
+    "distance",
+    "flag_*",
+    "fourth_difference",
+    "anomaly",
+    "anomaly_levelled",
+    "bouguer_anomaly",
+    "free_air_anomaly",
+    "disturbance_*",
+    *RESIDUAL_COLUMNS,
+)
 
 
 def run(ctx: StageContext) -> StageOutput:
@@ -30,5 +55,10 @@ STAGE = Stage(
     summary="QC maps, residual tables and the self-contained HTML report with spec checks and provenance",
     run=run,
     sections=("report",),
-    contract=Contract(requires_state=("ingest",)),
+    contract=Contract(
+        requires_state=("ingest",),
+        # what qc/report.py and qc/maps.py draw and tabulate (the readings table is not all
+        # read: at 1e7 readings that would be ~2 GB)
+        reads=REPORT_READS,
+    ),
 )

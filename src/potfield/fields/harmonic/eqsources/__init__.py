@@ -63,7 +63,7 @@ from ..._numerics import block_median, median_spacing
 from .crossval import cross_validate
 from .lattice import layer_ceiling, source_heights, source_spacing
 from .model import DIRECT_LIMIT, EquivalentSourceModel, load_model, save_model
-from .solve import DENSE_LIMIT, fit_equivalent_sources
+from .solve import DENSE_LIMIT, fit_equivalent_sources, solver_method
 
 __all__ = [
     "DENSE_LIMIT",
@@ -77,5 +77,6 @@ __all__ = [
     "median_spacing",
     "save_model",
     "source_heights",
+    "solver_method",
     "source_spacing",
 ]

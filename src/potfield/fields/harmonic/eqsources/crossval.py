@@ -13,10 +13,9 @@ from .solve import (
     DenseProblem,
     LatticeProblem,
     _check_depth_type,
-    _choose_method,
     _prepare,
-    _source_count,
     dense_jacobian,
+    solver_method,
 )
 
 
@@ -95,8 +94,7 @@ def cross_validate(
             fold_scores = {float(damp): [] for damp in dampings}
             for train, test in splits:
                 region = (e[train].min(), e[train].max(), n[train].min(), n[train].max())
-                n_est = _source_count(train.size, region, spacing if block_size else None)
-                chosen = _choose_method(method, n_est, block_size, e, n)
+                chosen = solver_method(method, train.size, region, spacing if block_size else None)
                 if chosen == "fft":
                     problem = LatticeProblem(
                         e[train],

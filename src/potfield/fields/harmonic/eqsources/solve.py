@@ -332,14 +332,15 @@ def _source_count(n_data, region, block_size):
     return min(n_data, int(span / block_size**2) + 1)
 
 
-def _choose_method(method, n_data, block_size, e, n):
+def solver_method(method: str, n_data: int, region: tuple, block_size: float | None) -> str:
+    """The solver :func:`fit_equivalent_sources` uses for ``n_data`` data in ``region``:
+    ``method`` itself, or for ``"auto"`` dense up to :data:`DENSE_LIMIT` sources (estimated by
+    :func:`_source_count`) and the FFT lattice beyond."""
     if method not in ("auto", "dense", "fft"):
         raise BadParameter(f"unknown method '{method}'; use 'auto', 'dense' or 'fft'")
     if method != "auto":
         return method
-    if n_data <= DENSE_LIMIT:
-        return "dense"
-    return "fft"
+    return "dense" if _source_count(n_data, region, block_size) <= DENSE_LIMIT else "fft"
 
 
 def _check_depth_type(depth_type):
@@ -420,8 +421,7 @@ def fit_equivalent_sources(
         raise BadParameter("depth must be positive")
     damping = float(damping or 0.0)
     _check_depth_type(depth_type)
-    n_est = _source_count(d.size, region, block_size)
-    chosen = _choose_method(method, n_est, block_size, e, n)
+    chosen = solver_method(method, d.size, region, block_size)
     if chosen == "dense":
         points, coefs, info = _fit_dense(e, n, u, d, w, depth, damping, block_size, depth_type, ceiling)
         return EquivalentSourceModel(
