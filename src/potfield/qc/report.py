@@ -592,6 +592,31 @@ RESIDUAL_COLUMNS = (
 )
 
 
+#: Columns of the readings table the report uses: positions and lines for the maps, the flags,
+#: the values drawn (anomalies before gridding, levelled profiles, grid residuals, noise,
+#: observatory disturbances) and the residual/correction columns it tabulates.
+REPORT_READS = (
+    "easting",
+    "northing",
+    "height",
+    "longitude",
+    "latitude",
+    "time",
+    "line",
+    "line_type",
+    "station",
+    "distance",
+    "flag_*",
+    "fourth_difference",
+    "anomaly",
+    "anomaly_levelled",
+    "bouguer_anomaly",
+    "free_air_anomaly",
+    "disturbance_*",
+    *RESIDUAL_COLUMNS,
+)
+
+
 def residual_rows(table: pd.DataFrame | None, kind: str) -> list[dict]:
     """RMS, smallest and largest value of each residual/correction column at the readings."""
     from ..io.columns import describe
@@ -850,10 +875,10 @@ def rebuild_report(root: Path) -> Path:
     # the readings table of the current stages, put together from their cache files by column
     layout = manifest_layout(survey.cache, manifest.get("stages", {}), KIND_ORDER[config.kind])
     if layout:
-        from ..pipeline import load_stage
+        from fnmatch import fnmatchcase
 
-        report = load_stage("report").contract
-        table = read_cache_columns(layout, [c for c in layout if report.may_read(config.kind, c)])
+        wanted = [c for c in layout if any(fnmatchcase(c, p) for p in REPORT_READS)]
+        table = read_cache_columns(layout, wanted)
     else:
         table = None
     grid_paths = {p.stem: p for p in survey.grids.glob("*.nc") if p.stem != "products"}

@@ -5,32 +5,8 @@ The same builder serves ``potfield report DIR``, which rebuilds from out/ withou
 
 from __future__ import annotations
 
-from ..qc.report import RESIDUAL_COLUMNS
+from ..qc.report import REPORT_READS
 from .base import Contract, Stage, StageContext, StageOutput
-
-#: Columns of the readings table the report uses: positions and lines for the maps, the flags,
-#: the values drawn (anomalies before gridding, levelled profiles, grid residuals, noise,
-#: observatory disturbances) and the residual/correction columns it tabulates.
-REPORT_READS = (
-    "easting",
-    "northing",
-    "height",
-    "longitude",
-    "latitude",
-    "time",
-    "line",
-    "line_type",
-    "station",
-    "distance",
-    "flag_*",
-    "fourth_difference",
-    "anomaly",
-    "anomaly_levelled",
-    "bouguer_anomaly",
-    "free_air_anomaly",
-    "disturbance_*",
-    *RESIDUAL_COLUMNS,
-)
 
 
 def run(ctx: StageContext) -> StageOutput:
