@@ -175,3 +175,29 @@ def test_iso_time_of_day_with_the_date_in_the_config():
     frame = _frame(time=["23:59:59", "00:00:01"])
     got = parse_times(frame, TimeSection(date="2024-05-01"), PATH)
     assert list(got) == [_utc(datetime(2024, 5, 1, 23, 59, 59)), _utc(datetime(2024, 5, 2, 0, 0, 1))]
+
+
+def test_iso_fast_path_agrees_with_pandas_and_defers_what_it_cannot_read():
+    """Arrow's ISO 8601 parser (fast path of the iso layout) against pandas.to_datetime
+    (format="ISO8601", utc=True) as the reference; mixed, missing and out-of-range values go
+    to the general path (None), which names the rows it cannot read (ISO 8601-1:2019)."""
+    import pandas as pd
+
+    from potfield.io.delimited import _iso_times_fast
+
+    for values in (
+        ["2024-11-18T22:30:00.100Z", "2024-11-18T22:30:01Z", "2024-11-18T22:30:00+10:00"],
+        ["2024-11-18 22:30:00.125", "2024-11-18"],
+    ):
+        raw = pd.Series(values, dtype=object)
+        reference = pd.to_datetime(raw, utc=True, format="ISO8601").dt.tz_convert(None)
+        fast = _iso_times_fast(raw)
+        assert fast is not None
+        assert (fast == reference.astype("datetime64[ns]").to_numpy()).all()
+    for values in (
+        ["2024-11-18T22:30:00Z", "2024-11-18 22:30:00"],  # with and without a zone
+        ["2024-11-18T22:30:00Z", None],
+        ["2300-01-01T00:00:00Z"],  # beyond datetime64[ns]
+        [" 2024-11-18T22:30:00Z"],
+    ):
+        assert _iso_times_fast(pd.Series(values, dtype=object)) is None

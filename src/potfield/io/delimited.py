@@ -657,6 +657,30 @@ def _drop_out_of_range_years(text: pd.Series) -> pd.Series:
 MAX_SECONDS = 400 * 86400.0
 
 
+def _iso_times_fast(raw: pd.Series) -> np.ndarray | None:
+    """ISO 8601 times parsed by Arrow's C++ parser, when every value is a plain timestamp, all
+    with a UTC designator or offset (``2024-11-18T22:30:00.100Z``) or all without (taken as
+    UTC, as the general path does); None otherwise, and the general path reads them and names
+    the rows it cannot read. At 1e7 readings the general path took 17.5 s and 1.8 GB of string
+    copies."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    try:
+        text = pa.array(raw, type=pa.string(), from_pandas=True)
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        return None
+    if text.null_count or len(text) == 0:
+        return None
+    for target in (pa.timestamp("ns", tz="UTC"), pa.timestamp("ns")):
+        try:
+            parsed = pc.cast(text, target)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            continue
+        return parsed.cast(pa.int64()).to_numpy(zero_copy_only=False).view("datetime64[ns]")
+    return None
+
+
 def _parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
     if "time" not in frame:
         raise InputDataError(
@@ -666,6 +690,8 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
             fix='add time = "<your time column>" under [input.columns]',
         )
     raw = frame["time"]
+    if spec.format == "iso" and (fast := _iso_times_fast(raw)) is not None:
+        return fast
     if spec.format == "iso":
         text = raw.astype("string").str.strip()
         # years pandas cannot hold in datetime64[ns] (1677-09-21..2262-04-11) become NaT first:
@@ -674,7 +700,7 @@ def _parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:
         parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
         result = parsed.dt.tz_convert(None).astype("datetime64[ns]").to_numpy()
         bad = np.isnat(result)
-        example_source = raw.astype("string").str.strip()
+        example_source = raw.astype("string").str.strip() if bad.any() else None
     else:
         seconds = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
         if spec.format == "decimal_hours":
