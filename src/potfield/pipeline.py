@@ -40,6 +40,7 @@ from .io.atomic import write_json
 from .io.columns import write_table
 from .io.tables import (
     CACHE_LAYOUT,
+    CURRENT,
     RowCountMismatch,
     manifest_layout,
     read_cache_columns,
@@ -71,8 +72,6 @@ PACKAGES = (
 #: Columns of out/tables/checks.csv. Spec checks have result pass/fail; a skipped or degraded
 #: step is a row with result "skipped" / "degraded" and the reason in ``detail``.
 CHECK_COLUMNS = ["check", "value", "tolerance", "sense", "unit", "result", "source", "detail", "stage"]
-#: Stage statuses whose results are current (reusable when the key is unchanged).
-CURRENT = ("done", "skipped")
 
 
 class ContractError(RuntimeError):
@@ -224,17 +223,15 @@ def _check_requires(
     stage: Stage,
     kind: str,
     order: tuple[str, ...],
-    table,
+    available: list[str],
     state: dict,
     manifest: dict,
     root: Path,
 ) -> None:
-    """A StageError naming the stage and what to run first when a requirement is missing.
-
-    ``table``: the columns available (a table or the column names; None: no table yet).
-    """
+    """A StageError naming the stage and what to run first when a requirement is missing
+    (``available``: the columns of the earlier stages)."""
     contract = stage.contract
-    columns = set(table.columns) if isinstance(table, pd.DataFrame) else set(table or ())
+    columns = set(available)
     missing = [c for c in contract.requires(kind) if c not in columns]
     for column in missing:
         provider = _provider(order, stage.name, column, kind)

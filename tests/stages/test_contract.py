@@ -44,12 +44,16 @@ def test_missing_requirement_names_the_stage_to_run_first(tmp_path):
     table = pd.DataFrame({"easting": [0.0], "northing": [0.0]})
     manifest = {"stages": {}}
     with pytest.raises(StageError) as err:
-        pipeline._check_requires(level, "magnetic", order, table, {"ingest": {}}, manifest, tmp_path)
+        pipeline._check_requires(
+            level, "magnetic", order, list(table.columns), {"ingest": {}}, manifest, tmp_path
+        )
     text = str(err.value)
     assert "'level'" in text and "'anomaly'" in text and "--from reference" in text
     manifest = {"stages": {"reference": {"status": "skipped", "summary": "disabled"}}}
     with pytest.raises(StageError, match="skipped: disabled"):
-        pipeline._check_requires(level, "magnetic", order, table, {"ingest": {}}, manifest, tmp_path)
+        pipeline._check_requires(
+            level, "magnetic", order, list(table.columns), {"ingest": {}}, manifest, tmp_path
+        )
 
 
 def test_every_stage_declares_its_contract_for_every_kind():

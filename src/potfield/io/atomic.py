@@ -82,24 +82,15 @@ CHUNK_ROWS = 1 << 17
 def write_parquet(path: Path | str, table, chunk_rows: int = CHUNK_ROWS) -> Path:
     """A pandas table as parquet, written ``chunk_rows`` rows at a time (one row group each)."""
     import pyarrow as pa
-    import pyarrow.parquet as pq
 
-    with atomic_path(path) as tmp:
-        if len(table) <= chunk_rows:
-            table.to_parquet(tmp, index=False)
-            return Path(path)
-        schema = pa.Schema.from_pandas(table, preserve_index=False)
-        with pq.ParquetWriter(tmp, schema) as writer:
-            for start in range(0, len(table), chunk_rows):
-                piece = table.iloc[start : start + chunk_rows]
-                writer.write_table(pa.Table.from_pandas(piece, schema=schema, preserve_index=False))
-    return Path(path)
+    pieces = (table.iloc[start : start + chunk_rows] for start in range(0, max(len(table), 1), chunk_rows))
+    return write_parquet_pieces(path, pieces, pa.Schema.from_pandas(table, preserve_index=False))
 
 
-def write_parquet_pieces(path: Path | str, pieces) -> Path:
+def write_parquet_pieces(path: Path | str, pieces, schema=None) -> Path:
     """Pandas tables (an iterable of pieces of one table, same columns and types) as one parquet
-    file, one row group per piece: the file :func:`write_parquet` writes for the whole table
-    with ``chunk_rows`` = the pieces' length, holding one piece at a time."""
+    file, one row group per piece, holding one piece at a time; ``schema`` (default: the first
+    piece's) is the whole table's Arrow schema. A single piece is written by pandas as it is."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -110,7 +101,7 @@ def write_parquet_pieces(path: Path | str, pieces) -> Path:
         if second is None:
             first.to_parquet(tmp, index=False)
             return Path(path)
-        schema = pa.Schema.from_pandas(first, preserve_index=False)
+        schema = schema or pa.Schema.from_pandas(first, preserve_index=False)
         with pq.ParquetWriter(tmp, schema) as writer:
             writer.write_table(pa.Table.from_pandas(first, schema=schema, preserve_index=False))
             del first

@@ -672,13 +672,19 @@ def _iso_times_fast(raw: pd.Series) -> np.ndarray | None:
         return None
     if text.null_count or len(text) == 0:
         return None
-    for target in (pa.timestamp("ns", tz="UTC"), pa.timestamp("ns")):
+
+    def cast(target):  # None: not every value is a timestamp of this kind
         try:
-            parsed = pc.cast(text, target)
+            return pc.cast(text, target)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-            continue
-        return parsed.cast(pa.int64()).to_numpy(zero_copy_only=False).view("datetime64[ns]")
-    return None
+            return None
+
+    parsed = cast(pa.timestamp("ns", tz="UTC"))
+    if parsed is None:
+        parsed = cast(pa.timestamp("ns"))
+    if parsed is None:
+        return None
+    return parsed.cast(pa.int64()).to_numpy(zero_copy_only=False).view("datetime64[ns]")
 
 
 def _parse_time(frame: pd.DataFrame, spec: TimeSpec, path: Path) -> np.ndarray:

@@ -28,7 +28,8 @@ CACHE_TEXT = ("line", "line_type", "source_file", "station", "loop")
 #: columns it added (1, before: the whole table), so files of the old layout are recomputed.
 CACHE_LAYOUT = 2
 
-#: Manifest statuses of stages whose cache files are current.
+#: Manifest statuses of stages whose results are current (their cache files reusable when the
+#: stage key is unchanged).
 CURRENT = ("done", "skipped")
 
 
@@ -44,23 +45,10 @@ def dictionary_encode(table: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
-def write_table_csv(path: Path, table: pd.DataFrame, kind: str = "magnetic") -> Path:
-    """The residual table as CSV (:func:`potfield.io.columns.write_table`: ISO 8601 UTC times,
-    lower-case booleans, floats rounded to the precision of their unit)."""
-    from .columns import write_table
-
-    return write_table(path, table, kind)
-
-
 def write_cache_table(path: Path, table: pd.DataFrame) -> Path:
     """A stage's columns as parquet (row groups written piece by piece), text columns
     dictionary-encoded."""
     return write_parquet(path, dictionary_encode(table.copy(deep=False)))
-
-
-def read_cache_table(path: Path) -> pd.DataFrame:
-    """One cache file whole, text columns categorical as after ingest."""
-    return dictionary_encode(pd.read_parquet(path))
 
 
 def manifest_layout(cache: Path, stages: dict, order: Iterable[str]) -> dict[str, Path]:
@@ -207,8 +195,9 @@ def cache_float_places(layout: dict[str, Path], kind: str = "magnetic") -> dict[
     for name, path in layout.items():
         if not pa.types.is_floating(schemas[path].field(name).type):
             continue
-        if decimals_for(name, kind) is not None:
-            places[name] = decimals_for(name, kind)
+        fixed = decimals_for(name, kind)
+        if fixed is not None:
+            places[name] = fixed
         else:
             values = pq.read_table(path, columns=[name]).column(0).to_numpy()
             places[name] = column_places(name, values, kind)
@@ -248,7 +237,7 @@ def write_readings(
     csv_path: Path, parquet_path: Path, layout: dict[str, Path], kind: str = "magnetic", chunk_rows: int = 0
 ) -> None:
     """readings.csv and readings.parquet of the table of ``layout``, streamed from the cache files
-    piece by piece (:func:`iter_cache_pieces`): the same files as :func:`write_table_csv` and
+    piece by piece (:func:`iter_cache_pieces`): the same files as :func:`potfield.io.columns.write_table` and
     :func:`potfield.io.atomic.write_parquet` of the whole table, without the whole table in
     memory."""
     from .columns import write_table_pieces

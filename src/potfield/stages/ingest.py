@@ -186,8 +186,8 @@ def input_format(config: SurveyConfig, path: Path) -> str:
 def _stripped_text(column: pd.Series) -> np.ndarray:
     """A text column as an object array of stripped strings (missing: ``pd.NA``).
 
-    Each distinct value is stripped once and shared by its readings: a line column of 1e7
-    readings holds a few hundred names, and stripping every reading's copy held ~1 GB more.
+    Each distinct value is stripped once and its string shared by its readings (a line column
+    of 1e7 readings holds a few hundred names), instead of one new string per reading.
     """
     codes, uniques = pd.factorize(column, use_na_sentinel=True)
     names = pd.Series(uniques, dtype="string").str.strip().astype(object).to_numpy()

@@ -156,21 +156,8 @@ def _stencils(e, n, u, zl, x0, y0, dx, nx, ny, order, base, wx, wy, wz):
 @numba.njit(parallel=True, cache=True)
 def _gather(levels, base, wx, wy, wz, sw, out):
     """out_i = sw_i * (interpolation of the level grids at point i)."""
-    nlev = levels.shape[0]
-    order = wx.shape[1]
     for i in numba.prange(base.shape[0]):
-        bx = base[i, 0]
-        by = base[i, 1]
-        val = 0.0
-        for lev in range(nlev):
-            acc = 0.0
-            for a in range(order):
-                row = 0.0
-                for b in range(order):
-                    row += wx[i, b] * levels[lev, by + a, bx + b]
-                acc += wy[i, a] * row
-            val += wz[i, lev] * acc
-        out[i] = sw[i] * val
+        out[i] = sw[i] * _interpolate(levels, 0, 0, base[i, 0], base[i, 1], wx[i], wy[i], wz[i])
 
 
 @numba.njit(cache=True)
